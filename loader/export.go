@@ -1,0 +1,296 @@
+package loader
+
+import (
+	"fmt"
+)
+
+// Export is one opened export in the heed-export/1 convention: one file, a
+// directory of per-layer files, or several files whose array names do not
+// collide. Close releases its files.
+type Export struct {
+	// Paths are the files the export was assembled from.
+	Paths []string
+	// Format is the metadata's "format" ("heed-export/1"), or "" without metadata.
+	Format string
+	// Blocks in name order.
+	Blocks []*Block
+	// Sides by name ("target", "source", ...): tokens, padding and segments.
+	Sides map[string]*Side
+	// Logits is the optional `logits` array [batch, position, vocab].
+	Logits Array
+	// Warnings are things a user should know that are not errors (e.g. head
+	// axis of length 1: heads were averaged at export).
+	Warnings []string
+
+	containers []Container
+}
+
+// Close closes every file of the export.
+func (e *Export) Close() error {
+	var first error
+	for _, c := range e.containers {
+		if err := c.Close(); err != nil && first == nil {
+			first = err
+		}
+	}
+	e.containers = nil
+	return first
+}
+
+// Block returns the block with the given name, or nil.
+func (e *Export) Block(name string) *Block {
+	for _, b := range e.Blocks {
+		if b.Name == name {
+			return b
+		}
+	}
+	return nil
+}
+
+// Side returns the named side, or nil.
+func (e *Export) Side(name string) *Side {
+	if e.Sides == nil {
+		return nil
+	}
+	return e.Sides[name]
+}
+
+// Side is one token sequence of the export (e.g. "target" or "source").
+type Side struct {
+	Name string
+	// Len is the sequence length.
+	Len int
+	// Tokens per batch item ([batch][Len]); a [seq] array is shared by every
+	// batch item (len(Tokens) == 1). nil when the export has no tokens.
+	Tokens [][]string
+	// Valid per batch item: true = real token, false = padding. nil = all valid.
+	Valid [][]bool
+	// Segments per batch item: document id per position. nil = one document.
+	Segments [][]int64
+}
+
+// Token returns the token at (batch, pos), or "" when unknown.
+func (s *Side) Token(batch, pos int) string {
+	if s == nil || len(s.Tokens) == 0 {
+		return ""
+	}
+	row := s.Tokens[0]
+	if batch < len(s.Tokens) {
+		row = s.Tokens[batch]
+	}
+	if pos < 0 || pos >= len(row) {
+		return ""
+	}
+	return row[pos]
+}
+
+// IsValid reports whether (batch, pos) is a real token (true when the export has no valid array).
+func (s *Side) IsValid(batch, pos int) bool {
+	if s == nil || len(s.Valid) == 0 {
+		return true
+	}
+	row := s.Valid[0]
+	if batch < len(s.Valid) {
+		row = s.Valid[batch]
+	}
+	if pos < 0 || pos >= len(row) {
+		return true
+	}
+	return row[pos]
+}
+
+// Segment returns the document id at (batch, pos), 0 when the export has none.
+func (s *Side) Segment(batch, pos int) int64 {
+	if s == nil || len(s.Segments) == 0 {
+		return 0
+	}
+	row := s.Segments[0]
+	if batch < len(s.Segments) {
+		row = s.Segments[batch]
+	}
+	if pos < 0 || pos >= len(row) {
+		return 0
+	}
+	return row[pos]
+}
+
+// Block is one attention block (e.g. "decoder", "encoder", "cross") with its
+// rules and lazy access to every (layer, batch, head) matrix.
+type Block struct {
+	Name      string
+	Kind      Kind
+	QuerySide string // side name of the queries, "" when unknown
+	KeySide   string // side name of the keys
+	DType     DType
+	Layers    int
+	Batch     int // 1 when the export has no batch axis
+	Heads     int
+	Queries   int
+	Keys      int
+	// Window W > 0: a query at absolute position p may see keys p-W < k <= p.
+	Window int
+	// Prefix P > 0: the first P positions see each other both ways.
+	Prefix int
+	// KVHeads is the number of key/value heads (grouped-query attention); 0 = Heads.
+	KVHeads int
+	// QueryOffset is the absolute position of query row 0 (Keys-Queries for a
+	// causal block whose queries are the last Q of K positions, else 0).
+	QueryOffset int
+
+	HasGrad  bool
+	HasAllow bool
+	// OutLayers, Positions, Features describe the optional activations
+	// `BLOCK/out` [layer, batch, position, feature]; OutLayers is 0 without them.
+	OutLayers int
+	Positions int
+	Features  int
+
+	attn  []slab // per layer
+	grad  []slab // per layer, nil without gradients
+	out   []slab // per layer, nil without activations
+	allow *allowSource
+}
+
+// slab locates one layer's [batch, head, query, key] data inside an array.
+type slab struct {
+	arr Array
+	// prefix is the index template passed to ReadFloat32; batchAt and headAt are
+	// the positions in prefix to fill in, -1 when the axis is absent.
+	prefix  []int
+	batchAt int
+	headAt  int
+	// transposed is true when the stored order of the last two axes is key, query.
+	transposed bool
+}
+
+// allowSource is an explicit mask array broadcastable to [batch, head, query, key].
+type allowSource struct {
+	arr Array
+	// shape4 is the array's shape left-padded with 1s to rank 4.
+	shape4 [4]int
+	// additive is true for a float bias array (0 = allowed, <= -1e4 or -inf = blocked).
+	additive bool
+}
+
+func (b *Block) check(layer, batch, head int, n int) error {
+	if layer < 0 || layer >= b.Layers || batch < 0 || batch >= b.Batch || head < 0 || head >= b.Heads {
+		return fmt.Errorf("loader: %s: layer %d batch %d head %d out of range [%d, %d, %d]", b.Name, layer, batch, head, b.Layers, b.Batch, b.Heads)
+	}
+	if n != b.Queries*b.Keys {
+		return fmt.Errorf("loader: %s: buffer of %d values, need %d x %d", b.Name, n, b.Queries, b.Keys)
+	}
+	return nil
+}
+
+func (s *slab) read(batch, head int, dst []float32, q, k int) error {
+	idx := make([]int, len(s.prefix))
+	copy(idx, s.prefix)
+	if s.batchAt >= 0 {
+		idx[s.batchAt] = batch
+	}
+	if s.headAt >= 0 {
+		idx[s.headAt] = head
+	}
+	if !s.transposed {
+		return s.arr.ReadFloat32(idx, dst)
+	}
+	tmp := make([]float32, len(dst))
+	if err := s.arr.ReadFloat32(idx, tmp); err != nil {
+		return err
+	}
+	for kk := 0; kk < k; kk++ {
+		for qq := 0; qq < q; qq++ {
+			dst[qq*k+kk] = tmp[kk*q+qq]
+		}
+	}
+	return nil
+}
+
+// ReadAttn copies the attention probabilities of (layer, batch, head) into
+// dst as a row-major Queries x Keys matrix.
+func (b *Block) ReadAttn(layer, batch, head int, dst []float32) error {
+	if err := b.check(layer, batch, head, len(dst)); err != nil {
+		return err
+	}
+	return b.attn[layer].read(batch, head, dst, b.Queries, b.Keys)
+}
+
+// ReadGrad copies dL/dA of (layer, batch, head) into dst (Queries x Keys).
+func (b *Block) ReadGrad(layer, batch, head int, dst []float32) error {
+	if !b.HasGrad {
+		return fmt.Errorf("loader: %s: the export has no gradients (%s/grad)", b.Name, b.Name)
+	}
+	if err := b.check(layer, batch, head, len(dst)); err != nil {
+		return err
+	}
+	return b.grad[layer].read(batch, head, dst, b.Queries, b.Keys)
+}
+
+// ReadAllow fills dst (Queries x Keys) with the explicit mask of (batch,
+// head): true = may attend. Without an explicit mask every cell is true.
+func (b *Block) ReadAllow(batch, head int, dst []bool) error {
+	if err := b.check(0, batch, head, len(dst)); err != nil {
+		return err
+	}
+	if b.allow == nil {
+		for i := range dst {
+			dst[i] = true
+		}
+		return nil
+	}
+	return b.allow.read(batch, head, b.Queries, b.Keys, dst)
+}
+
+func (a *allowSource) read(batch, head, q, k int, dst []bool) error {
+	s := a.shape4
+	idx := make([]int, 0, 2)
+	rank := len(a.arr.Shape())
+	// leading axes present in the array (rank-2 of them), broadcast when 1
+	lead := []int{batch, head}
+	for i := 4 - rank; i < 2; i++ {
+		v := lead[i]
+		if s[i] == 1 {
+			v = 0
+		}
+		idx = append(idx, v)
+	}
+	rows, cols := s[2], s[3]
+	buf := make([]float32, rows*cols)
+	if err := a.arr.ReadFloat32(idx, buf); err != nil {
+		return err
+	}
+	for qq := 0; qq < q; qq++ {
+		r := qq
+		if rows == 1 {
+			r = 0
+		}
+		for kk := 0; kk < k; kk++ {
+			c := kk
+			if cols == 1 {
+				c = 0
+			}
+			v := buf[r*cols+c]
+			if a.additive {
+				dst[qq*k+kk] = v > -1e4 // -inf and large negative biases block
+			} else {
+				dst[qq*k+kk] = v != 0
+			}
+		}
+	}
+	return nil
+}
+
+// ReadOut copies the activations of (layer, batch) into dst as a row-major
+// Positions x Features matrix.
+func (b *Block) ReadOut(layer, batch int, dst []float32) error {
+	if b.OutLayers == 0 {
+		return fmt.Errorf("loader: %s: the export has no activations (%s/out)", b.Name, b.Name)
+	}
+	if layer < 0 || layer >= b.OutLayers || batch < 0 || batch >= b.Batch {
+		return fmt.Errorf("loader: %s: out layer %d batch %d out of range [%d, %d]", b.Name, layer, batch, b.OutLayers, b.Batch)
+	}
+	if len(dst) != b.Positions*b.Features {
+		return fmt.Errorf("loader: %s: buffer of %d values, need %d x %d", b.Name, len(dst), b.Positions, b.Features)
+	}
+	return b.out[layer].read(batch, 0, dst, b.Positions, b.Features)
+}
