@@ -1,0 +1,34 @@
+package main
+
+import (
+	"github.com/heed-dev/heed/loader"
+	"github.com/spf13/cobra"
+)
+
+// loadFlags are the flags every command that opens exports shares: they
+// override what the files say.
+type loadFlags struct {
+	axes, kind, tokens      string
+	window, prefix, kvHeads int
+}
+
+func (lf *loadFlags) register(cmd *cobra.Command) {
+	f := cmd.Flags()
+	f.StringVar(&lf.axes, "axes", "", `axis names of the attention arrays, e.g. "layer batch head query key"`)
+	f.StringVar(&lf.kind, "kind", "", "block kind: causal, bidirectional or cross")
+	f.StringVar(&lf.tokens, "tokens", "", "file of tokens: one a line, or a JSON list")
+	f.IntVar(&lf.window, "window", -1, "sliding window W: a query at q may see keys q-W < k <= q")
+	f.IntVar(&lf.prefix, "prefix", -1, "prefix length P: the first P positions see each other both ways")
+	f.IntVar(&lf.kvHeads, "kv-heads", -1, "number of key/value heads (grouped-query attention)")
+}
+
+func (lf *loadFlags) options() loader.Options {
+	o := loader.NewOptions()
+	o.Axes = lf.axes
+	o.Kind = loader.Kind(lf.kind)
+	o.TokensFile = lf.tokens
+	o.Window = lf.window
+	o.Prefix = lf.prefix
+	o.KVHeads = lf.kvHeads
+	return o
+}

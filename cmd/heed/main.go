@@ -1,0 +1,83 @@
+// Command heed inspects exported attention probabilities of transformer
+// models: it finds leaking masks, ranks heads for pruning and explains
+// predictions, in a terminal UI or as scriptable commands.
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"os"
+	"os/signal"
+	"runtime/debug"
+
+	"github.com/spf13/cobra"
+)
+
+// version is set with -ldflags "-X main.version=..."; otherwise taken from the build info.
+var version = ""
+
+func versionString() string {
+	if version != "" {
+		return version
+	}
+	if bi, ok := debug.ReadBuildInfo(); ok && bi.Main.Version != "" {
+		return bi.Main.Version
+	}
+	return "devel"
+}
+
+func newRootCmd() *cobra.Command {
+	root := newOpenCmd()
+	root.Use = "heed [FILE...]"
+	root.Short = "Find leaking attention masks, rank heads, explain predictions"
+	root.Long = `heed reads attention probabilities exported from a transformer (NPY, NPZ,
+safetensors, HDF5; see the README for the export convention) and helps you
+find leaking causal / padding / window / packed-sequence masks, decide which
+heads to prune, and explain a prediction.
+
+Its suggestions (likely bugs, heads to prune) are evidence to confirm by
+re-evaluating the model, not verdicts.
+
+Run "heed demo" to try it on an export embedded in the binary.`
+	root.Version = versionString()
+	root.SilenceUsage = true
+	root.SilenceErrors = true
+	root.AddCommand(newOpenCmd())
+	root.AddCommand(newInfoCmd())
+	return root
+}
+
+func main() {
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt)
+	err := newRootCmd().ExecuteContext(ctx)
+	interrupted := ctx.Err() != nil
+	stop()
+	os.Exit(exitCode(err, interrupted))
+}
+
+// exitCode maps an error to the command contract's exit codes: 0 success,
+// 1 findings, 2 bad input (any other error), 130 interrupted.
+func exitCode(err error, interrupted bool) int {
+	if interrupted {
+		if err != nil {
+			fmt.Fprintln(os.Stderr, "heed: interrupted")
+		}
+		return 130
+	}
+	if err == nil {
+		return 0
+	}
+	var f *findingsError
+	if errors.As(err, &f) {
+		return 1
+	}
+	fmt.Fprintln(os.Stderr, "heed: "+err.Error())
+	return 2
+}
+
+// findingsError is returned by commands that completed but found problems
+// (heed check): exit code 1, nothing more printed.
+type findingsError struct{ n int }
+
+func (f *findingsError) Error() string { return fmt.Sprintf("%d findings", f.n) }
