@@ -1,0 +1,53 @@
+# heed: build, test, benchmark.
+# PYTHON must be an interpreter that imports numpy, h5py, scipy and torch (Debian's).
+PYTHON ?= /usr/bin/python3
+GO ?= go
+FUZZTIME ?= 20s
+BIN ?= ./heed
+
+.PHONY: all build demo deps test check-fmt vet unit purego fuzz crosscheck bench clean
+
+all: build
+
+deps:
+	@scripts/install-deps.sh
+
+build: deps
+	$(GO) build -o $(BIN) ./cmd/heed
+
+# The main job on the export embedded in the binary.
+demo: build
+	$(BIN) demo
+
+test: deps check-fmt vet unit purego fuzz crosscheck
+
+check-fmt:
+	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
+	if [ -n "$$out" ]; then echo "gofmt would change:"; echo "$$out"; exit 1; fi
+	@$(GO) mod tidy -diff >/dev/null || { echo "go.mod/go.sum drift: run go mod tidy"; $(GO) mod tidy -diff; exit 1; }
+
+vet:
+	$(GO) vet ./...
+
+unit:
+	HEED_PYTHON=$(PYTHON) $(GO) test -race -count=1 -timeout 30m ./...
+
+# The build without cgo must still build (it refuses HDF5 with a message).
+purego:
+	CGO_ENABLED=0 $(GO) build -o /dev/null ./cmd/heed
+	CGO_ENABLED=0 $(GO) test -count=1 -run 'NoHDF5|PureGo' ./loader
+
+fuzz:
+	$(GO) test -run '^$$' -fuzz '^FuzzNPY$$' -fuzztime $(FUZZTIME) ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) ./loader
+
+# Regenerate reference data with numpy / h5py / torch and compare with what is committed.
+crosscheck:
+	$(PYTHON) testdata/gen_fixtures.py --check
+
+bench: build
+	@echo "bench: see issue 7"
+
+clean:
+	rm -f $(BIN)
