@@ -1,0 +1,432 @@
+//go:build linux
+
+// Command bench is heed's whole-process benchmark (make bench).
+//
+// It writes seeded float16 causal exports with numpy (bench/gen_export.py)
+// into a cache directory, then in one run, alternating the three in turn
+// over several rounds with the page cache warm, times
+//
+//	(a) reading the file once: a fresh process of this program reading it
+//	    with read(2) calls into a 1 MiB buffer;
+//	(b) the plain numpy script bench/reference_stats.py computing row entropy,
+//	    confidence, causal leak mass and mean distance per head;
+//	(c) heed check followed by heed rank on the same file;
+//
+// and prints the medians and the ratios against the targets of the design
+// (c at least 4x faster than b, within 4x of a). Before timing it compares
+// heed's statistics with the numpy script's, head by head.
+//
+// It then measures memory: the peak anonymous resident size (RssAnon in
+// /proc/PID/status, sampled while the process runs; file-backed mapped
+// pages are RssFile and do not count) of heed check and heed rank on the
+// 0.3 GB export and on a 4 GiB one, to show the ceiling and that it does
+// not grow with the file.
+//
+// Usage: go run ./bench [-heed ./heed] [-dir /tmp/heed-bench] [-rounds 7] [-big=false]
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"errors"
+	"flag"
+	"fmt"
+	"math"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"runtime"
+	"strings"
+	"syscall"
+	"time"
+)
+
+// shape of a generated export: [layers, heads, seq, seq] float16.
+type shape struct{ layers, heads, seq int }
+
+func (s shape) bytes() int64 { return int64(s.layers) * int64(s.heads) * int64(s.seq) * int64(s.seq) * 2 }
+
+func (s shape) String() string { return fmt.Sprintf("[%d %d %d %d]", s.layers, s.heads, s.seq, s.seq) }
+
+var (
+	small = shape{12, 12, 1024} // 0.3 GB: the design's timing target
+	big   = shape{32, 16, 2048} // 4 GiB: the memory target
+)
+
+type config struct {
+	heed, python, dir, script string
+	rounds                    int
+	big                       bool
+	sample                    time.Duration
+}
+
+func main() {
+	if len(os.Args) == 3 && os.Args[1] == "-read" {
+		// (a): the child process that reads the file once.
+		if _, err := readFile(os.Args[2]); err != nil {
+			fmt.Fprintln(os.Stderr, "bench:", err)
+			os.Exit(2)
+		}
+		return
+	}
+	var c config
+	defDir := os.Getenv("HEED_BENCH_DIR")
+	if defDir == "" {
+		defDir = filepath.Join(os.TempDir(), "heed-bench")
+	}
+	flag.StringVar(&c.heed, "heed", "./heed", "the heed binary to time")
+	flag.StringVar(&c.python, "python", "/usr/bin/python3", "a python with numpy")
+	flag.StringVar(&c.dir, "dir", defDir, "cache directory for the generated exports (not committed)")
+	flag.StringVar(&c.script, "scripts", "bench", "directory of gen_export.py and reference_stats.py")
+	flag.IntVar(&c.rounds, "rounds", 7, "timed rounds (after one warm-up round)")
+	flag.BoolVar(&c.big, "big", true, "also measure memory on a 4 GiB export (written once, about 4.3 GB of disk)")
+	flag.DurationVar(&c.sample, "sample", time.Millisecond, "interval between /proc samples of the memory runs")
+	flag.Parse()
+	if err := bench(c); err != nil {
+		fmt.Fprintln(os.Stderr, "bench:", err)
+		os.Exit(1)
+	}
+}
+
+func bench(c config) error {
+	heed, err := filepath.Abs(c.heed)
+	if err != nil {
+		return err
+	}
+	if _, err := os.Stat(heed); err != nil {
+		return fmt.Errorf("no heed binary at %s (make build)", heed)
+	}
+	c.heed = heed
+	self, err := os.Executable()
+	if err != nil {
+		return err
+	}
+	if err := os.MkdirAll(c.dir, 0o755); err != nil {
+		return err
+	}
+	fmt.Println("heed bench")
+	fmt.Println("machine:", machine(c.python))
+
+	file, err := ensureExport(c, small)
+	if err != nil {
+		return err
+	}
+	fmt.Printf("export:  %s, decoder/attn %s f16 causal, %.1f MB\n", file, small, float64(fileSize(file))/1e6)
+
+	// Warm the page cache, then compare statistics with the numpy script.
+	if _, err := readFile(file); err != nil {
+		return err
+	}
+	if err := crossCheck(c, file); err != nil {
+		return err
+	}
+
+	if err := timing(c, self, file); err != nil {
+		return err
+	}
+
+	sizes := []struct {
+		file string
+		s    shape
+	}{{file, small}}
+	if c.big {
+		bf, err := ensureExport(c, big)
+		if err != nil {
+			return err
+		}
+		sizes = append(sizes, struct {
+			file string
+			s    shape
+		}{bf, big})
+	}
+	fmt.Printf("\nmemory: peak RssAnon (anonymous resident memory; mapped file pages are RssFile and do not count), /proc sampled every %v\n", c.sample)
+	fmt.Printf("  %-10s %-22s %10s %10s %10s %9s\n", "command", "export", "RssAnon", "RssFile", "wall", "samples")
+	var peaks []int64
+	for _, sz := range sizes {
+		if _, err := readFile(sz.file); err != nil { // warm, as in the timing
+			return err
+		}
+		for _, sub := range []string{"check", "rank"} {
+			r, err := spawn([]string{c.heed, sub, "--json", sz.file}, nil, c.sample)
+			if err != nil {
+				return err
+			}
+			if err := judge(sub, r); err != nil {
+				return err
+			}
+			fmt.Printf("  %-10s %-22s %8.1f MB %7.0f MB %10s %9d\n", "heed "+sub,
+				fmt.Sprintf("%s %.2f GB", sz.s, float64(fileSize(sz.file))/1e9),
+				float64(r.peakAnon)/1e6, float64(r.peakFile)/1e6, ms(r.wall), r.samples)
+			peaks = append(peaks, r.peakAnon)
+		}
+	}
+	var top int64
+	for _, p := range peaks {
+		top = max(top, p)
+	}
+	fmt.Printf("  largest RssAnon %.1f MB (target < 100 MB: %s)", float64(top)/1e6, verdict(top < 100e6))
+	if len(peaks) == 4 {
+		fmt.Printf("; %.2f GB -> %.2f GB export: check %+.1f MB, rank %+.1f MB",
+			float64(small.bytes())/1e9, float64(big.bytes())/1e9,
+			float64(peaks[2]-peaks[0])/1e6, float64(peaks[3]-peaks[1])/1e6)
+	}
+	fmt.Println()
+	return nil
+}
+
+// timing runs the alternating rounds and prints medians and ratios.
+func timing(c config, self, file string) error {
+	type item struct {
+		name string
+		argv [][]string // run one after the other; the item's time is the sum
+	}
+	items := []item{
+		{"(a) read the file once (read(2), 1 MiB buffer)", [][]string{{self, "-read", file}}},
+		{"(b) numpy script bench/reference_stats.py", [][]string{{c.python, filepath.Join(c.script, "reference_stats.py"), file}}},
+		{"(c) heed check + heed rank", [][]string{{c.heed, "check", "--json", file}, {c.heed, "rank", "--json", file}}},
+	}
+	wall := make([][]time.Duration, len(items))
+	cpu := make([][]time.Duration, len(items))
+	parts := make([][]time.Duration, 2) // check, rank separately
+	for round := 0; round <= c.rounds; round++ {
+		for j := range items {
+			i := (j + round) % len(items) // rotate the order from round to round
+			var w, u time.Duration
+			for p, argv := range items[i].argv {
+				r, err := spawn(argv, nil, 0)
+				if err != nil {
+					return err
+				}
+				if r.code != 0 && !(i == 2 && p == 0 && r.code == 1) {
+					return fmt.Errorf("%s exited %d: %s", strings.Join(argv, " "), r.code, firstLine(r.stderr))
+				}
+				w += r.wall
+				u += r.cpu
+				if round > 0 && i == 2 {
+					parts[p] = append(parts[p], r.wall)
+				}
+			}
+			if round > 0 { // round 0 is the warm-up
+				wall[i] = append(wall[i], w)
+				cpu[i] = append(cpu[i], u)
+			}
+		}
+	}
+	fmt.Printf("\ntiming: %d rounds after a warm-up, (a) (b) (c) in turn with the order rotated each round;\n", c.rounds)
+	fmt.Println("        wall time of whole processes (start to exit), page cache warm")
+	fmt.Printf("  %-48s %9s %9s %9s %11s\n", "", "median", "min", "max", "cpu median")
+	for i, it := range items {
+		lo, hi := minmax(wall[i])
+		fmt.Printf("  %-48s %9s %9s %9s %11s\n", it.name, ms(median(wall[i])), ms(lo), ms(hi), ms(median(cpu[i])))
+	}
+	fmt.Printf("  %-48s %9s\n", "    of which heed check", ms(median(parts[0])))
+	fmt.Printf("  %-48s %9s\n", "    of which heed rank", ms(median(parts[1])))
+	var speedup, overRead []float64
+	for r := range wall[0] {
+		speedup = append(speedup, wall[1][r].Seconds()/wall[2][r].Seconds())
+		overRead = append(overRead, wall[2][r].Seconds()/wall[0][r].Seconds())
+	}
+	s, o := medianF(speedup), medianF(overRead)
+	fmt.Println("ratios (median of the per-round ratios):")
+	fmt.Printf("  numpy / heed = %5.1fx   (target >= 4x: %s)\n", s, verdict(s >= 4))
+	fmt.Printf("  heed  / read = %5.1fx   (target <= 4x: %s)\n", o, verdict(o <= 4))
+	return nil
+}
+
+// crossCheck compares heed rank's per-head statistics and heed check's
+// verdict with the numpy script's output on the same file.
+func crossCheck(c config, file string) error {
+	ref, err := spawn([]string{c.python, filepath.Join(c.script, "reference_stats.py"), file}, nil, 0)
+	if err != nil || ref.code != 0 {
+		return fmt.Errorf("reference_stats.py failed (%v): %s", err, firstLine(ref.stderr))
+	}
+	var want struct {
+		Heads []map[string]any `json:"heads"`
+	}
+	if err := json.Unmarshal(ref.stdout, &want); err != nil {
+		return fmt.Errorf("reference_stats.py output: %w", err)
+	}
+	rank, err := spawn([]string{c.heed, "rank", "--json", file}, nil, 0)
+	if err != nil {
+		return err
+	}
+	if err := judge("rank", rank); err != nil {
+		return err
+	}
+	var got struct {
+		Heads []map[string]any `json:"heads"`
+	}
+	if err := json.Unmarshal(rank.stdout, &got); err != nil {
+		return fmt.Errorf("heed rank --json output: %w", err)
+	}
+	type key struct{ l, h int }
+	byKey := map[key]map[string]any{}
+	for _, h := range got.Heads {
+		if b, _ := h["block"].(string); b != "" && b != "decoder" {
+			continue
+		}
+		byKey[key{num(h["layer"]), num(h["head"])}] = h
+	}
+	fields := []string{"entropy", "entropy_norm", "confidence", "distance"}
+	worst := map[string]float64{}
+	compared := map[string]int{}
+	for _, w := range want.Heads {
+		g, ok := byKey[key{num(w["layer"]), num(w["head"])}]
+		if !ok {
+			return fmt.Errorf("heed rank has no head L%v H%v", w["layer"], w["head"])
+		}
+		for _, f := range fields {
+			gv, ok := g[f].(float64)
+			if !ok {
+				continue
+			}
+			wv := w[f].(float64)
+			d := math.Abs(gv-wv) / math.Max(1, math.Abs(wv))
+			worst[f] = math.Max(worst[f], d)
+			compared[f]++
+		}
+	}
+	fmt.Printf("check:   heed rank vs numpy script, %d heads, largest difference (relative, or absolute below 1):", len(want.Heads))
+	bad := false
+	for _, f := range fields {
+		if compared[f] == 0 {
+			fmt.Printf(" %s not in heed's output;", f)
+			continue
+		}
+		fmt.Printf(" %s %.1e", f, worst[f])
+		if worst[f] > 1e-4 {
+			fmt.Print(" (MISMATCH)")
+			bad = true
+		}
+	}
+	fmt.Println()
+
+	// The export is causal and clean: the numpy script finds no leak mass,
+	// and heed check must agree.
+	var leak float64
+	for _, w := range want.Heads {
+		leak += w["leak_mass"].(float64)
+	}
+	chk, err := spawn([]string{c.heed, "check", "--json", file}, nil, 0)
+	if err != nil {
+		return err
+	}
+	if err := judge("check", chk); err != nil {
+		return err
+	}
+	var res struct {
+		Clean    bool             `json:"clean"`
+		Findings []map[string]any `json:"findings"`
+	}
+	if err := json.Unmarshal(chk.stdout, &res); err != nil {
+		return fmt.Errorf("heed check --json output: %w", err)
+	}
+	fmt.Printf("         numpy causal leak mass %g; heed check: clean %v, %d findings\n", leak, res.Clean, len(res.Findings))
+	if (leak == 0) != res.Clean {
+		bad = true
+		fmt.Println("         (MISMATCH)")
+	}
+	if bad {
+		return errors.New("heed and the numpy script disagree")
+	}
+	return nil
+}
+
+// judge accepts exit 0, and 1 for check (findings); anything else is an error.
+func judge(sub string, r run) error {
+	if r.code == 0 || (sub == "check" && r.code == 1) {
+		return nil
+	}
+	return fmt.Errorf("heed %s exited %d: %s", sub, r.code, firstLine(r.stderr))
+}
+
+// ensureExport returns the cached export of shape s, writing it with numpy
+// first when it is missing or has the wrong size.
+func ensureExport(c config, s shape) (string, error) {
+	name := filepath.Join(c.dir, fmt.Sprintf("attn-%dx%dx%d.safetensors", s.layers, s.heads, s.seq))
+	if st, err := os.Stat(name); err == nil && st.Size() > s.bytes() && st.Size() < s.bytes()+4096 {
+		return name, nil
+	}
+	var fs syscall.Statfs_t
+	if err := syscall.Statfs(c.dir, &fs); err != nil {
+		return "", err
+	}
+	free := int64(fs.Bavail) * int64(fs.Bsize)
+	if need := s.bytes() + 1<<30; free < need {
+		return "", fmt.Errorf("%s has %.1f GB free; the %s export needs %.1f GB (use -dir, or -big=false)",
+			c.dir, float64(free)/1e9, s, float64(need)/1e9)
+	}
+	fmt.Printf("writing %s with numpy (%.2f GB; %.0f GB free in %s)...\n", name, float64(s.bytes())/1e9, float64(free)/1e9, c.dir)
+	cmd := exec.Command(c.python, filepath.Join(c.script, "gen_export.py"), name,
+		"--layers", fmt.Sprint(s.layers), "--heads", fmt.Sprint(s.heads), "--seq", fmt.Sprint(s.seq))
+	cmd.Stdout, cmd.Stderr = os.Stdout, os.Stderr
+	if err := cmd.Run(); err != nil {
+		return "", fmt.Errorf("gen_export.py: %w", err)
+	}
+	return name, nil
+}
+
+// machine describes where the figures come from.
+func machine(python string) string {
+	model := "unknown CPU"
+	if b, err := os.ReadFile("/proc/cpuinfo"); err == nil {
+		for _, l := range strings.Split(string(b), "\n") {
+			if k, v, ok := strings.Cut(l, ":"); ok && strings.TrimSpace(k) == "model name" {
+				model = strings.TrimSpace(v)
+				break
+			}
+		}
+	}
+	mem := ""
+	if st, err := readStatus("/proc/meminfo"); err == nil {
+		mem = fmt.Sprintf(", %.1f GiB RAM", float64(st["MemTotal"])/(1<<30))
+	}
+	kernel := ""
+	if b, err := os.ReadFile("/proc/sys/kernel/osrelease"); err == nil {
+		kernel = ", Linux " + strings.TrimSpace(string(b))
+	}
+	np := "numpy ?"
+	if out, err := exec.Command(python, "-c", "import numpy, sys; print('python', sys.version.split()[0], 'numpy', numpy.__version__)").Output(); err == nil {
+		np = strings.TrimSpace(string(out))
+	}
+	return fmt.Sprintf("%s, %d CPUs%s%s; bench built with %s; %s", model, runtime.NumCPU(), mem, kernel, runtime.Version(), np)
+}
+
+func fileSize(path string) int64 {
+	st, err := os.Stat(path)
+	if err != nil {
+		return 0
+	}
+	return st.Size()
+}
+
+func num(v any) int {
+	f, _ := v.(float64)
+	return int(f)
+}
+
+func minmax(ds []time.Duration) (lo, hi time.Duration) {
+	for i, d := range ds {
+		if i == 0 || d < lo {
+			lo = d
+		}
+		if d > hi {
+			hi = d
+		}
+	}
+	return lo, hi
+}
+
+func ms(d time.Duration) string { return fmt.Sprintf("%.1f ms", d.Seconds()*1e3) }
+
+func verdict(ok bool) string {
+	if ok {
+		return "met"
+	}
+	return "MISSED"
+}
+
+func firstLine(b []byte) string {
+	line, _, _ := bytes.Cut(bytes.TrimSpace(b), []byte("\n"))
+	return string(line)
+}
