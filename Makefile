@@ -47,7 +47,7 @@ crosscheck:
 	$(PYTHON) testdata/gen_fixtures.py --check
 
 # Whole-process timing and memory figures (bench/main.go says what is measured).
-# Exports are written once with numpy into $$HEED_BENCH_DIR or /tmp/heed-bench
+# Exports are written once with numpy into HEED_BENCH_DIR or /tmp/heed-bench
 # (never committed); make bench BENCH_FLAGS=-big=false skips the 4 GiB export.
 bench: build
 	$(GO) run ./bench -heed $(BIN) -python $(PYTHON) $(BENCH_FLAGS)
