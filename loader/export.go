@@ -2,6 +2,7 @@ package loader
 
 import (
 	"fmt"
+	"sync"
 )
 
 // Export is one opened export in the heed-export/1 convention: one file, a
@@ -136,6 +137,12 @@ type Block struct {
 	// QueryOffset is the absolute position of query row 0 (Keys-Queries for a
 	// causal block whose queries are the last Q of K positions, else 0).
 	QueryOffset int
+	// Axes names the stored axes of the attention arrays, e.g.
+	// "layer batch head query key" (per-layer arrays: without "layer").
+	Axes string
+	// Source names the array(s) the attention comes from, e.g. "decoder/attn"
+	// or "decoder/attn/{0..11}", for messages.
+	Source string
 
 	HasGrad  bool
 	HasAllow bool
@@ -161,6 +168,23 @@ type slab struct {
 	headAt  int
 	// transposed is true when the stored order of the last two axes is key, query.
 	transposed bool
+	// flat is set when arr is stored in C order: a (batch, head) matrix is
+	// then the contiguous run of elements starting at
+	// base + batch*batchStride + head*headStride, read without building an index.
+	flat                          flatReader
+	base, batchStride, headStride int
+}
+
+// matPool recycles the scratch matrices of transposed reads and masks.
+var matPool sync.Pool
+
+func getScratch(n int) *[]float32 {
+	if p, ok := matPool.Get().(*[]float32); ok && cap(*p) >= n {
+		*p = (*p)[:n]
+		return p
+	}
+	s := make([]float32, n)
+	return &s
 }
 
 // allowSource is an explicit mask array broadcastable to [batch, head, query, key].
@@ -183,6 +207,40 @@ func (b *Block) check(layer, batch, head int, n int) error {
 }
 
 func (s *slab) read(batch, head int, dst []float32, q, k int) error {
+	if s.batchAt < 0 {
+		batch = 0
+	}
+	if s.headAt < 0 {
+		head = 0
+	}
+	if !s.transposed {
+		if s.flat != nil {
+			return s.flat.readFlat(s.base+batch*s.batchStride+head*s.headStride, len(dst), dst)
+		}
+		return s.arr.ReadFloat32(s.index(batch, head), dst)
+	}
+	tp := getScratch(len(dst))
+	defer matPool.Put(tp)
+	tmp := *tp
+	var err error
+	if s.flat != nil {
+		err = s.flat.readFlat(s.base+batch*s.batchStride+head*s.headStride, len(tmp), tmp)
+	} else {
+		err = s.arr.ReadFloat32(s.index(batch, head), tmp)
+	}
+	if err != nil {
+		return err
+	}
+	for kk := 0; kk < k; kk++ {
+		row := tmp[kk*q : kk*q+q]
+		for qq, v := range row {
+			dst[qq*k+kk] = v
+		}
+	}
+	return nil
+}
+
+func (s *slab) index(batch, head int) []int {
 	idx := make([]int, len(s.prefix))
 	copy(idx, s.prefix)
 	if s.batchAt >= 0 {
@@ -191,19 +249,7 @@ func (s *slab) read(batch, head int, dst []float32, q, k int) error {
 	if s.headAt >= 0 {
 		idx[s.headAt] = head
 	}
-	if !s.transposed {
-		return s.arr.ReadFloat32(idx, dst)
-	}
-	tmp := make([]float32, len(dst))
-	if err := s.arr.ReadFloat32(idx, tmp); err != nil {
-		return err
-	}
-	for kk := 0; kk < k; kk++ {
-		for qq := 0; qq < q; qq++ {
-			dst[qq*k+kk] = tmp[kk*q+qq]
-		}
-	}
-	return nil
+	return idx
 }
 
 // ReadAttn copies the attention probabilities of (layer, batch, head) into
@@ -243,10 +289,11 @@ func (b *Block) ReadAllow(batch, head int, dst []bool) error {
 
 func (a *allowSource) read(batch, head, q, k int, dst []bool) error {
 	s := a.shape4
-	idx := make([]int, 0, 2)
 	rank := len(a.arr.Shape())
 	// leading axes present in the array (rank-2 of them), broadcast when 1
-	lead := []int{batch, head}
+	var ib [2]int
+	idx := ib[:0]
+	lead := [2]int{batch, head}
 	for i := 4 - rank; i < 2; i++ {
 		v := lead[i]
 		if s[i] == 1 {
@@ -255,7 +302,9 @@ func (a *allowSource) read(batch, head, q, k int, dst []bool) error {
 		idx = append(idx, v)
 	}
 	rows, cols := s[2], s[3]
-	buf := make([]float32, rows*cols)
+	bp := getScratch(rows * cols)
+	defer matPool.Put(bp)
+	buf := *bp
 	if err := a.arr.ReadFloat32(idx, buf); err != nil {
 		return err
 	}

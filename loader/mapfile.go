@@ -1,0 +1,88 @@
+package loader
+
+import (
+	"fmt"
+	"io"
+	"os"
+
+	"github.com/edsrzf/mmap-go"
+)
+
+// mappedFile is a file opened read-only and mapped into memory, so that a
+// read of one head touches only that head's pages.
+type mappedFile struct {
+	path string
+	f    *os.File
+	m    mmap.MMap // nil for an empty file
+	life lifetime
+}
+
+func mapFile(path string) (*mappedFile, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, err
+	}
+	st, err := f.Stat()
+	if err != nil {
+		f.Close()
+		return nil, err
+	}
+	if st.IsDir() {
+		f.Close()
+		return nil, fmt.Errorf("%s: is a directory", path)
+	}
+	mf := &mappedFile{path: path, f: f}
+	if st.Size() > 0 {
+		if int64(int(st.Size())) != st.Size() {
+			f.Close()
+			return nil, &FormatError{File: path, Offset: -1, Msg: "file too large to map on this platform"}
+		}
+		m, err := mmap.Map(f, mmap.RDONLY, 0)
+		if err != nil {
+			f.Close()
+			return nil, fmt.Errorf("%s: mmap: %w", path, err)
+		}
+		mf.m = m
+		adviseSequential(m)
+	}
+	return mf, nil
+}
+
+// bytes returns the whole mapping.
+func (m *mappedFile) bytes() []byte { return m.m }
+
+func (m *mappedFile) size() int64 { return int64(len(m.m)) }
+
+// readerAt reads the mapping; used to parse indexes (zip directories).
+func (m *mappedFile) readerAt() io.ReaderAt { return bytesReaderAt(m.m) }
+
+func (m *mappedFile) close() error {
+	return m.life.end(func() error {
+		var err error
+		if m.m != nil {
+			err = m.m.Unmap()
+			m.m = nil
+		}
+		if cerr := m.f.Close(); err == nil {
+			err = cerr
+		}
+		return err
+	})
+}
+
+// bytesReaderAt is an io.ReaderAt over a byte slice.
+type bytesReaderAt []byte
+
+func (b bytesReaderAt) ReadAt(p []byte, off int64) (int, error) {
+	if off < 0 {
+		return 0, fmt.Errorf("negative offset")
+	}
+	if off >= int64(len(b)) {
+		return 0, io.EOF
+	}
+	n := copy(p, b[off:])
+	if n < len(p) {
+		return n, io.EOF
+	}
+	return n, nil
+}
