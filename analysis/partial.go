@@ -1,0 +1,368 @@
+package analysis
+
+import (
+	"fmt"
+	"sort"
+)
+
+// PartialVersion is written in every Partial; Merge refuses other versions.
+const PartialVersion = "heed-partial/1"
+
+// Partial is the exact state of an analysis: per block, per (layer, head,
+// batch item) sums and counts over every example seen. It is what a shard of
+// a large job writes (it marshals to JSON and back without loss) and what
+// Merge combines; Result turns it into statistics, findings and diagnoses.
+// Merging partials of disjoint sets of examples, in any grouping and order,
+// gives the same Partial bit for bit as one run over all of them.
+type Partial struct {
+	Version  string          `json:"version"`
+	Examples int64           `json:"examples"`
+	Options  PartialOptions  `json:"options"`
+	Blocks   []*BlockPartial `json:"blocks"`
+}
+
+// PartialOptions are the options that change the sums; partials made with
+// different ones cannot be merged.
+type PartialOptions struct {
+	Tol      float64  `json:"tol"`
+	SumTol   float64  `json:"sum_tol"`
+	SumBelow bool     `json:"sum_below"`
+	Rules    []string `json:"rules,omitempty"`
+}
+
+// BlockPartial is the state of one block. Examples of a set share its
+// layers, heads, kind and rules, but may differ in batch size, sequence
+// lengths, window and prefix: Batch, Queries and Keys are the largest seen;
+// Window, Prefix and QueryOffset are -1 when examples disagree.
+type BlockPartial struct {
+	Name        string   `json:"name"`
+	Kind        string   `json:"kind"`
+	DType       string   `json:"dtype"`
+	Layers      int      `json:"layers"`
+	Heads       int      `json:"heads"`
+	Batch       int      `json:"batch"`
+	Queries     int      `json:"queries"`
+	Keys        int      `json:"keys"`
+	QueryOffset int      `json:"query_offset"`
+	Window      int      `json:"window"`
+	Prefix      int      `json:"prefix"`
+	KVHeads     int      `json:"kv_heads"`
+	Rules       []string `json:"rules"`
+	SelfAttn    bool     `json:"self_attention"`
+	HasGrad     bool     `json:"grad"`
+	// Units holds the accumulators of (layer, head) at index layer*Heads+head,
+	// one per batch item (batch item b of every example adds to entry b).
+	Units [][]HeadAcc `json:"units"`
+	// Geometry holds, per batch item, what the rules forbid independently of
+	// the values (for coverage in the diagnosis), summed over examples.
+	Geometry []GeometryAcc `json:"geometry"`
+}
+
+// Unit returns the accumulator of (layer, head, batch).
+func (bp *BlockPartial) Unit(layer, head, batch int) *HeadAcc {
+	return &bp.Units[layer*bp.Heads+head][batch]
+}
+
+// grow makes room for batch items [0, batch).
+func (bp *BlockPartial) grow(batch int) {
+	if batch <= bp.Batch {
+		return
+	}
+	for i := range bp.Units {
+		bp.Units[i] = append(bp.Units[i], make([]HeadAcc, batch-len(bp.Units[i]))...)
+	}
+	bp.Geometry = append(bp.Geometry, make([]GeometryAcc, batch-len(bp.Geometry))...)
+	bp.Batch = batch
+}
+
+// absorb takes in the sizes of o (another example's or partial's block).
+func (bp *BlockPartial) absorb(o *BlockPartial) {
+	bp.grow(o.Batch)
+	bp.Queries = max(bp.Queries, o.Queries)
+	bp.Keys = max(bp.Keys, o.Keys)
+	agree := func(a *int, b int) {
+		if *a != b {
+			*a = -1
+		}
+	}
+	agree(&bp.Window, o.Window)
+	agree(&bp.Prefix, o.Prefix)
+	agree(&bp.QueryOffset, o.QueryOffset)
+	if bp.DType != o.DType {
+		bp.DType = "mixed"
+	}
+	bp.HasGrad = bp.HasGrad || o.HasGrad
+}
+
+// HeadAcc accumulates one (layer, head, batch item) over examples. Sums are
+// exact; counts are int64; maxima are order-independent by construction.
+type HeadAcc struct {
+	Rows       int64 `json:"rows"`         // judged rows with finite values
+	NaNRows    int64 `json:"nan_rows"`     // judged rows holding NaN or Inf
+	PadRows    int64 `json:"pad_rows"`     // padding query rows (not judged)
+	PadNaNRows int64 `json:"pad_nan_rows"` // padding query rows holding NaN or Inf
+
+	Entropy     Sum   `json:"entropy"`
+	EntropyNorm Sum   `json:"entropy_norm"`
+	Confidence  Sum   `json:"confidence"`
+	Distance    Sum   `json:"distance"`
+	PosRows     int64 `json:"pos_rows"` // rows with a key at k = q-1 (prev share)
+	Prev        Sum   `json:"prev"`
+	SelfRows    int64 `json:"self_rows"` // rows with a key at k = q
+	Self        Sum   `json:"self"`
+	SinkRows    int64 `json:"sink_rows"`
+	Sink        Sum   `json:"sink"`
+	DocSinkRows int64 `json:"doc_sink_rows"`
+	DocSink     Sum   `json:"doc_sink"`
+	JSRows      int64 `json:"js_rows"` // (row, other head) pairs
+	JS          Sum   `json:"js"`
+
+	GradExamples int64 `json:"grad_examples"`
+	Importance   Sum   `json:"importance"` // sum over examples of |sum_{q,k} A*G|
+	GradRows     int64 `json:"grad_rows_skipped"`
+
+	RowSum     Sum     `json:"row_sum"`
+	SumBadRows int64   `json:"sum_bad_rows"`
+	SumBadDev  Sum     `json:"sum_bad_dev"` // sum of |row sum - 1| over bad rows
+	SumMin     float64 `json:"sum_min"`
+	SumMax     float64 `json:"sum_max"`
+	SumSeen    bool    `json:"sum_seen"`
+	NegCells   int64   `json:"neg_cells"`
+	NegRows    int64   `json:"neg_rows"`
+	NegMass    Sum     `json:"neg_mass"`
+	AllowCells int64   `json:"allowed_cells"`
+	AllowZeros int64   `json:"allowed_zeros"`
+	AllowMass  Sum     `json:"allowed_mass"`
+	NaNWorst   Cell    `json:"nan_first"` // first NaN row seen (lowest example, query)
+	SumWorst   Cell    `json:"sum_worst"`
+
+	Leaks [numMask]LeakAcc `json:"leaks"` // indexed by Rule; [0] unused
+}
+
+// LeakAcc accumulates the forbidden mass of one mask rule.
+type LeakAcc struct {
+	Mass      Sum   `json:"mass"`
+	Cells     int64 `json:"cells"`     // forbidden cells with mass > tol
+	Rows      int64 `json:"rows"`      // rows with at least one such cell
+	Forbidden int64 `json:"forbidden"` // forbidden cells in judged finite rows
+	Worst     Cell  `json:"worst"`
+	// Offsets counts leaking cells by k - (absolute query position), for
+	// positional rules.
+	Offsets map[int]int64 `json:"offsets,omitempty"`
+}
+
+// Cell locates one value of an export: example (its first file), query row,
+// key, and the value there. Set is false for an empty Cell.
+type Cell struct {
+	Set     bool    `json:"set"`
+	Example string  `json:"example,omitempty"`
+	Query   int     `json:"query"`
+	Key     int     `json:"key"`
+	Value   float64 `json:"value"`
+}
+
+// worse reports whether c should replace w as the worst cell: larger value,
+// ties broken by example, query, key so the result does not depend on order.
+func (c Cell) worse(w Cell) bool {
+	if !c.Set {
+		return false
+	}
+	if !w.Set || c.Value > w.Value {
+		return true
+	}
+	if c.Value < w.Value {
+		return false
+	}
+	if c.Example != w.Example {
+		return c.Example < w.Example
+	}
+	if c.Query != w.Query {
+		return c.Query < w.Query
+	}
+	return c.Key < w.Key
+}
+
+// first reports whether c comes before w (example, query, key order).
+func (c Cell) first(w Cell) bool {
+	if !c.Set {
+		return false
+	}
+	if !w.Set {
+		return true
+	}
+	if c.Example != w.Example {
+		return c.Example < w.Example
+	}
+	if c.Query != w.Query {
+		return c.Query < w.Query
+	}
+	return c.Key < w.Key
+}
+
+// GeometryAcc counts, for one batch item over examples, the cells each
+// positional rule forbids in judged rows, by offset k - q.
+type GeometryAcc struct {
+	Rows      int64                  `json:"rows"`
+	Forbidden [numMask]map[int]int64 `json:"forbidden"`
+}
+
+// Merge adds o into a.
+func (a *HeadAcc) Merge(o *HeadAcc) {
+	a.Rows += o.Rows
+	a.NaNRows += o.NaNRows
+	a.PadRows += o.PadRows
+	a.PadNaNRows += o.PadNaNRows
+	a.Entropy.Merge(o.Entropy)
+	a.EntropyNorm.Merge(o.EntropyNorm)
+	a.Confidence.Merge(o.Confidence)
+	a.Distance.Merge(o.Distance)
+	a.PosRows += o.PosRows
+	a.Prev.Merge(o.Prev)
+	a.SelfRows += o.SelfRows
+	a.Self.Merge(o.Self)
+	a.SinkRows += o.SinkRows
+	a.Sink.Merge(o.Sink)
+	a.DocSinkRows += o.DocSinkRows
+	a.DocSink.Merge(o.DocSink)
+	a.JSRows += o.JSRows
+	a.JS.Merge(o.JS)
+	a.GradExamples += o.GradExamples
+	a.Importance.Merge(o.Importance)
+	a.GradRows += o.GradRows
+	a.RowSum.Merge(o.RowSum)
+	a.SumBadRows += o.SumBadRows
+	a.SumBadDev.Merge(o.SumBadDev)
+	if o.SumSeen {
+		if !a.SumSeen || o.SumMin < a.SumMin {
+			a.SumMin = o.SumMin
+		}
+		if !a.SumSeen || o.SumMax > a.SumMax {
+			a.SumMax = o.SumMax
+		}
+		a.SumSeen = true
+	}
+	a.NegCells += o.NegCells
+	a.NegRows += o.NegRows
+	a.NegMass.Merge(o.NegMass)
+	a.AllowCells += o.AllowCells
+	a.AllowZeros += o.AllowZeros
+	a.AllowMass.Merge(o.AllowMass)
+	if o.NaNWorst.first(a.NaNWorst) {
+		a.NaNWorst = o.NaNWorst
+	}
+	if o.SumWorst.worse(a.SumWorst) {
+		a.SumWorst = o.SumWorst
+	}
+	for r := range a.Leaks {
+		a.Leaks[r].merge(&o.Leaks[r])
+	}
+}
+
+func (l *LeakAcc) merge(o *LeakAcc) {
+	l.Mass.Merge(o.Mass)
+	l.Cells += o.Cells
+	l.Rows += o.Rows
+	l.Forbidden += o.Forbidden
+	if o.Worst.worse(l.Worst) {
+		l.Worst = o.Worst
+	}
+	l.Offsets = mergeCounts(l.Offsets, o.Offsets)
+}
+
+func mergeCounts(a, b map[int]int64) map[int]int64 {
+	if len(b) == 0 {
+		return a
+	}
+	if a == nil {
+		a = make(map[int]int64, len(b))
+	}
+	for k, v := range b {
+		a[k] += v
+	}
+	return a
+}
+
+func (g *GeometryAcc) merge(o *GeometryAcc) {
+	g.Rows += o.Rows
+	for r := range g.Forbidden {
+		g.Forbidden[r] = mergeCounts(g.Forbidden[r], o.Forbidden[r])
+	}
+}
+
+// sameShape reports why two block partials cannot be merged ("" when they can).
+func (bp *BlockPartial) sameShape(o *BlockPartial) string {
+	switch {
+	case bp.Kind != o.Kind || bp.Layers != o.Layers || bp.Heads != o.Heads || bp.KVHeads != o.KVHeads || bp.SelfAttn != o.SelfAttn:
+		return fmt.Sprintf("kind %q with %d layers x %d heads (kv %d) differs from kind %q with %d x %d (kv %d)",
+			bp.Kind, bp.Layers, bp.Heads, bp.KVHeads, o.Kind, o.Layers, o.Heads, o.KVHeads)
+	case fmt.Sprint(bp.Rules) != fmt.Sprint(o.Rules):
+		return fmt.Sprintf("rules %v differ from %v", bp.Rules, o.Rules)
+	}
+	return ""
+}
+
+// Merge adds the state of o (other examples of the same model layout) into
+// p. Blocks are matched by name; a block only one side has is kept as is.
+// It fails when versions, options or block shapes differ.
+func (p *Partial) Merge(o *Partial) error {
+	if p.Version != PartialVersion || o.Version != PartialVersion {
+		return fmt.Errorf("analysis: merge: partial version %q and %q, want %q", p.Version, o.Version, PartialVersion)
+	}
+	if fmt.Sprint(p.Options) != fmt.Sprint(o.Options) {
+		return fmt.Errorf("analysis: merge: partials made with different options (%+v vs %+v)", p.Options, o.Options)
+	}
+	for _, ob := range o.Blocks {
+		pb := p.block(ob.Name)
+		if pb == nil {
+			continue
+		}
+		if why := pb.sameShape(ob); why != "" {
+			return fmt.Errorf("analysis: merge: block %s: %s", ob.Name, why)
+		}
+	}
+	p.Examples += o.Examples
+	for _, ob := range o.Blocks {
+		pb := p.block(ob.Name)
+		if pb == nil {
+			p.Blocks = append(p.Blocks, cloneBlock(ob))
+			continue
+		}
+		pb.absorb(ob)
+		for i := range ob.Units {
+			for b := range ob.Units[i] {
+				pb.Units[i][b].Merge(&ob.Units[i][b])
+			}
+		}
+		for b := range ob.Geometry {
+			pb.Geometry[b].merge(&ob.Geometry[b])
+		}
+	}
+	sort.Slice(p.Blocks, func(i, j int) bool { return p.Blocks[i].Name < p.Blocks[j].Name })
+	return nil
+}
+
+func (p *Partial) block(name string) *BlockPartial {
+	for _, b := range p.Blocks {
+		if b.Name == name {
+			return b
+		}
+	}
+	return nil
+}
+
+func cloneBlock(b *BlockPartial) *BlockPartial {
+	c := *b
+	c.Rules = append([]string(nil), b.Rules...)
+	c.Units = make([][]HeadAcc, len(b.Units))
+	for i := range b.Units {
+		c.Units[i] = make([]HeadAcc, len(b.Units[i]))
+		for j := range b.Units[i] {
+			c.Units[i][j].Merge(&b.Units[i][j])
+		}
+	}
+	c.Geometry = make([]GeometryAcc, len(b.Geometry))
+	for i := range b.Geometry {
+		c.Geometry[i].merge(&b.Geometry[i])
+	}
+	return &c
+}

@@ -1,0 +1,827 @@
+package analysis
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math"
+	"runtime"
+	"sync"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// DefaultTol is the default leak tolerance: forbidden cells holding at most
+// this much mass are not counted as leaks.
+const DefaultTol = 1e-6
+
+// DefaultMaxLayerBytes bounds the memory that holds one layer's heads for the
+// redundancy (Jensen-Shannon) pass; beyond it, evenly spaced query rows are
+// used (see Options.MaxLayerBytes).
+const DefaultMaxLayerBytes = 64 << 20
+
+// Options control an analysis pass. The zero value is not useful: start from
+// DefaultOptions.
+type Options struct {
+	// Rules, when not empty, are exactly the checks that run (mask and row
+	// rules: the --rule flag); empty = the mask rules that follow from each
+	// block's kind and metadata plus every row check.
+	Rules []Rule
+	// Tol: a forbidden cell is a leak when its value is above Tol.
+	Tol float64
+	// SumTol: a judged row is un-normalised when |sum - 1| > SumTol; 0 = by
+	// dtype (SumTolerance).
+	SumTol float64
+	// SumBelow accepts rows summing below 1 (models with learned sink logits):
+	// only sums above 1 + SumTol are flagged.
+	SumBelow bool
+	// Workers is the number of goroutines; 0 = runtime.GOMAXPROCS(0).
+	Workers int
+	// Progress, when set, is called from the calling goroutine after each
+	// (layer, batch item) of each block, with the heads done and the total
+	// expected (the total is an estimate when examples differ in shape).
+	Progress func(done, total int64)
+	// MaxLayerBytes bounds the float32 copy of one layer's heads kept for the
+	// redundancy pass; when a layer needs more, every s-th query row is kept
+	// (s the smallest stride that fits) and the redundancy is the mean over
+	// those rows. 0 = DefaultMaxLayerBytes.
+	MaxLayerBytes int64
+	// Blocks, when not empty, restricts the pass to these block names.
+	Blocks []string
+}
+
+// DefaultOptions returns the options heed check and heed rank start from.
+func DefaultOptions() Options { return Options{Tol: DefaultTol} }
+
+// SumTolerance is the row-sum tolerance for a dtype: about the rounding of a
+// softmax row stored in it (common practice: bf16 keeps 8 bits of mantissa,
+// f16 11, f32 24).
+func SumTolerance(d loader.DType) float64 {
+	switch d {
+	case loader.BFloat16:
+		return 1e-2
+	case loader.Float16:
+		return 1e-3
+	case loader.Float64:
+		return 1e-9
+	default:
+		return 1e-5
+	}
+}
+
+// ErrCanceled is returned (wrapped with the context's error) when the
+// context is canceled during a pass.
+var ErrCanceled = errors.New("analysis: canceled")
+
+// reader is what a pass reads from a block; *loader.Block implements it.
+type reader interface {
+	ReadAttn(layer, batch, head int, dst []float32) error
+	ReadGrad(layer, batch, head int, dst []float32) error
+	ReadAllow(batch, head int, dst []bool) error
+}
+
+// NewPartial returns an empty Partial for passes made with opt.
+func NewPartial(opt Options) *Partial {
+	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow}
+	for _, r := range opt.Rules {
+		po.Rules = append(po.Rules, r.String())
+	}
+	return &Partial{Version: PartialVersion, Options: po}
+}
+
+// Analyze runs every statistic and check over one export and returns its Partial.
+func Analyze(ctx context.Context, ex *loader.Export, opt Options) (*Partial, error) {
+	p := NewPartial(opt)
+	name := ""
+	if len(ex.Paths) > 0 {
+		name = ex.Paths[0]
+	}
+	err := p.Add(ctx, ex, name, opt)
+	return p, err
+}
+
+// AnalyzeSet runs the pass over n examples, opening each with open (which
+// returns the export and a name for it, usually its first file) and closing
+// it after use. Examples are processed one after another, each with all
+// workers.
+func AnalyzeSet(ctx context.Context, n int, open func(i int) (*loader.Export, string, error), opt Options) (*Partial, error) {
+	p := NewPartial(opt)
+	var prog *progress
+	if opt.Progress != nil {
+		prog = &progress{fn: opt.Progress}
+	}
+	for i := 0; i < n; i++ {
+		if err := ctx.Err(); err != nil {
+			return p, fmt.Errorf("%w: %w", ErrCanceled, err)
+		}
+		ex, name, err := open(i)
+		if err != nil {
+			return p, err
+		}
+		if prog != nil && i == 0 {
+			prog.total = int64(n) * exportUnits(ex, opt)
+		}
+		err = p.add(ctx, ex, name, opt, prog)
+		if cerr := ex.Close(); err == nil && cerr != nil {
+			err = cerr
+		}
+		if err != nil {
+			return p, err
+		}
+	}
+	return p, nil
+}
+
+type progress struct {
+	fn          func(done, total int64)
+	done, total int64
+}
+
+func exportUnits(ex *loader.Export, opt Options) int64 {
+	var n int64
+	for _, b := range ex.Blocks {
+		if wanted(opt, b.Name) {
+			n += int64(b.Layers) * int64(b.Batch) * int64(b.Heads)
+		}
+	}
+	return n
+}
+
+func wanted(opt Options, name string) bool {
+	if len(opt.Blocks) == 0 {
+		return true
+	}
+	for _, b := range opt.Blocks {
+		if b == name {
+			return true
+		}
+	}
+	return false
+}
+
+// Add runs the pass over one more example (an opened export named example,
+// usually its first file) and adds it to p. opt must be the options p was
+// made with (NewPartial).
+func (p *Partial) Add(ctx context.Context, ex *loader.Export, example string, opt Options) error {
+	return p.add(ctx, ex, example, opt, nil)
+}
+
+func (p *Partial) add(ctx context.Context, ex *loader.Export, example string, opt Options, prog *progress) error {
+	if prog == nil && opt.Progress != nil {
+		prog = &progress{fn: opt.Progress, total: exportUnits(ex, opt)}
+	}
+	for _, name := range opt.Blocks {
+		if ex.Block(name) == nil {
+			return fmt.Errorf("analysis: %s: no block %q", example, name)
+		}
+	}
+	for _, blk := range ex.Blocks {
+		if !wanted(opt, blk.Name) {
+			continue
+		}
+		if err := p.addBlock(ctx, blk, blk, ex.Side(blk.QuerySide), ex.Side(blk.KeySide), example, opt, prog); err != nil {
+			return err
+		}
+	}
+	p.Examples++
+	return nil
+}
+
+func maskRules(rs []Rule) []Rule {
+	var out []Rule
+	for _, r := range rs {
+		if r.IsMask() {
+			out = append(out, r)
+		}
+	}
+	if len(rs) > 0 && len(out) == 0 {
+		return []Rule{} // --rule given with row rules only: no mask rule
+	}
+	return out
+}
+
+// rowChecks returns which row rules run.
+func rowChecks(rs []Rule) (nan, sum, neg bool) {
+	if len(rs) == 0 {
+		return true, true, true
+	}
+	for _, r := range rs {
+		switch r {
+		case RuleNaNRows:
+			nan = true
+		case RuleRowSum:
+			sum = true
+		case RuleNegative:
+			neg = true
+		}
+	}
+	return
+}
+
+func (p *Partial) addBlock(ctx context.Context, blk *loader.Block, rd reader, qs, ks *loader.Side, example string, opt Options, prog *progress) error {
+	only := maskRules(opt.Rules)
+	var rules *Rules
+	var err error
+	if only != nil && len(only) == 0 {
+		rules, err = NewRules(blk, qs, ks, nil)
+		if err == nil {
+			rules.active = [numMask]bool{}
+		}
+	} else {
+		rules, err = NewRules(blk, qs, ks, only)
+	}
+	if err != nil {
+		return err
+	}
+	if blk.Queries <= 0 || blk.Keys <= 0 || blk.Layers <= 0 || blk.Heads <= 0 || blk.Batch <= 0 {
+		return fmt.Errorf("analysis: block %s: empty shape", blk.Name)
+	}
+	bp := p.block(blk.Name)
+	nb := newBlockPartial(blk, rules)
+	if bp == nil {
+		bp = nb
+		p.Blocks = append(p.Blocks, bp)
+		sortBlocks(p.Blocks)
+	} else if why := bp.sameShape(nb); why != "" {
+		return fmt.Errorf("analysis: %s: block %s: %s (every example must have the same layout)", example, blk.Name, why)
+	} else {
+		bp.absorb(nb)
+	}
+	for b := 0; b < blk.Batch; b++ {
+		g := geometry(rules, b)
+		bp.Geometry[b].merge(&g)
+	}
+	return runBlock(ctx, bp, blk, rd, rules, example, opt, prog)
+}
+
+func sortBlocks(bs []*BlockPartial) {
+	for i := 1; i < len(bs); i++ {
+		for j := i; j > 0 && bs[j].Name < bs[j-1].Name; j-- {
+			bs[j], bs[j-1] = bs[j-1], bs[j]
+		}
+	}
+}
+
+func newBlockPartial(blk *loader.Block, rules *Rules) *BlockPartial {
+	bp := &BlockPartial{
+		Name: blk.Name, Kind: string(blk.Kind), DType: blk.DType.String(),
+		Layers: blk.Layers, Heads: blk.Heads, Batch: blk.Batch, Queries: blk.Queries, Keys: blk.Keys,
+		QueryOffset: blk.QueryOffset, Window: blk.Window, Prefix: blk.Prefix, KVHeads: blk.KVHeads,
+		SelfAttn: rules.SelfAttention(), HasGrad: blk.HasGrad,
+	}
+	for _, r := range rules.Active() {
+		bp.Rules = append(bp.Rules, r.String())
+	}
+	bp.Units = make([][]HeadAcc, blk.Layers*blk.Heads)
+	for i := range bp.Units {
+		bp.Units[i] = make([]HeadAcc, blk.Batch)
+	}
+	bp.Geometry = make([]GeometryAcc, blk.Batch)
+	return bp
+}
+
+// geometry counts the cells each positional rule forbids in the judged rows
+// of batch item b, by offset k - p.
+func geometry(r *Rules, b int) GeometryAcc {
+	var g GeometryAcc
+	base := r.QueryOffset + r.Queries - 1
+	diff := make([][]int64, numMask)
+	add := func(rule Rule, lo, hi int) { // offsets [lo, hi)
+		if lo >= hi {
+			return
+		}
+		if diff[rule] == nil {
+			diff[rule] = make([]int64, base+r.Keys+1)
+		}
+		diff[rule][lo+base]++
+		diff[rule][hi+base]--
+	}
+	for q := 0; q < r.Queries; q++ {
+		if !r.Judged(b, q) {
+			continue
+		}
+		g.Rows++
+		p := r.Pos(q)
+		if r.active[RuleCausal] {
+			if r.active[RulePrefix] && p < r.Prefix {
+				add(RulePrefix, max(r.Prefix, p+1)-p, r.Keys-p)
+			} else {
+				add(RuleCausal, 1, r.Keys-p)
+			}
+		}
+		if r.active[RuleWindow] && p-r.Window >= 0 {
+			add(RuleWindow, -p, min(p-r.Window, r.Keys-1)-p+1)
+		}
+	}
+	for rule, d := range diff {
+		if d == nil {
+			continue
+		}
+		m := map[int]int64{}
+		var run int64
+		for i, v := range d {
+			run += v
+			if run != 0 {
+				m[i-base] = run
+			}
+		}
+		g.Forbidden[rule] = m
+	}
+	return g
+}
+
+// worker holds the buffers one goroutine reuses for every head.
+type worker struct {
+	a, g  []float32
+	allow []bool
+	rr    []Rule
+	hist  [numMask][]int64
+	lo    [numMask]int
+	hi    [numMask]int
+	u     unitAcc
+}
+
+// unitAcc holds the float64 sums of one (example, layer, head, batch item),
+// computed in row order by one worker: deterministic, then added exactly.
+type unitAcc struct {
+	rows, nanRows, padRows, padNaN int64
+	ent, entN, conf, dist          float64
+	posRows, selfRows              int64
+	prev, self                     float64
+	sinkRows, docRows              int64
+	sink, doc                      float64
+	imp                            float64
+	gradSkip                       int64
+	rowSum, badDev                 float64
+	sumBad                         int64
+	sumMin, sumMax                 float64
+	sumSeen                        bool
+	negCells, negRows              int64
+	negMass                        float64
+	allowCells, allowZeros         int64
+	allowMass                      float64
+	nanFirst, sumWorst             Cell
+	leak                           [numMask]leakUnit
+}
+
+type leakUnit struct {
+	mass              float64
+	cells, rows, forb int64
+	worst             Cell
+}
+
+// layerStore keeps (possibly strided) rows of every head of one (layer,
+// batch item) for the redundancy pass.
+type layerStore struct {
+	stride, rows, keys int
+	vals               []float32 // [head][row][key]
+	ent                []float64 // [head][row]
+	ok                 []bool    // [head][row]: judged and finite
+}
+
+func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reader, rules *Rules, example string, opt Options, prog *progress) error {
+	Q, K, H := blk.Queries, blk.Keys, blk.Heads
+	nw := opt.Workers
+	if nw <= 0 {
+		nw = runtime.GOMAXPROCS(0)
+	}
+	nw = min(nw, H)
+	limit := opt.MaxLayerBytes
+	if limit <= 0 {
+		limit = DefaultMaxLayerBytes
+	}
+	stride := 1
+	for int64(H)*int64((Q+stride-1)/stride)*int64(K)*4 > limit && stride < Q {
+		stride++
+	}
+	nr := (Q + stride - 1) / stride
+	st := &layerStore{stride: stride, rows: nr, keys: K,
+		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr)}
+	sumTol := opt.SumTol
+	if sumTol <= 0 {
+		sumTol = SumTolerance(blk.DType)
+	}
+	doNaN, doSum, doNeg := rowChecks(opt.Rules)
+	cfg := passConfig{tol: opt.Tol, sumTol: sumTol, sumBelow: opt.SumBelow, doNaN: doNaN, doSum: doSum, doNeg: doNeg,
+		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example}
+	workers := make([]*worker, nw)
+	base := blk.QueryOffset + Q - 1
+	for i := range workers {
+		w := &worker{a: make([]float32, Q*K), rr: make([]Rule, K)}
+		if cfg.grad {
+			w.g = make([]float32, Q*K)
+		}
+		if cfg.allow {
+			w.allow = make([]bool, Q*K)
+		}
+		for _, r := range []Rule{RuleCausal, RulePrefix, RuleWindow} {
+			if rules.active[r] {
+				w.hist[r] = make([]int64, base+K)
+			}
+		}
+		workers[i] = w
+	}
+	pairs := H * (H - 1) / 2
+	pairSum := make([]float64, pairs)
+	pairCnt := make([]int64, pairs)
+	pi, pj := make([]int, pairs), make([]int, pairs)
+	for i, n := 0, 0; i < H; i++ {
+		for j := i + 1; j < H; j++ {
+			pi[n], pj[n] = i, j
+			n++
+		}
+	}
+	for l := 0; l < blk.Layers; l++ {
+		for b := 0; b < blk.Batch; b++ {
+			if err := ctx.Err(); err != nil {
+				return fmt.Errorf("%w: %w", ErrCanceled, err)
+			}
+			err := parallel(ctx, workers, H, func(w *worker, h int) error {
+				return w.head(rd, rules, cfg, bp.Unit(l, h, b), st, l, b, h)
+			})
+			if err != nil {
+				return err
+			}
+			err = parallel(ctx, workers, pairs, func(w *worker, n int) error {
+				pairSum[n], pairCnt[n] = st.js(pi[n], pj[n])
+				return nil
+			})
+			if err != nil {
+				return err
+			}
+			for n := 0; n < pairs; n++ {
+				for _, h := range [2]int{pi[n], pj[n]} {
+					u := bp.Unit(l, h, b)
+					u.JS.Add(pairSum[n])
+					u.JSRows += pairCnt[n]
+				}
+			}
+			if prog != nil {
+				prog.done += int64(H)
+				prog.fn(prog.done, max(prog.total, prog.done))
+			}
+		}
+	}
+	return nil
+}
+
+// parallel runs fn(w, i) for i in [0, n) over the workers and returns the
+// first error.
+func parallel(ctx context.Context, workers []*worker, n int, fn func(w *worker, i int) error) error {
+	if n == 0 {
+		return nil
+	}
+	var (
+		mu    sync.Mutex
+		next  int
+		first error
+		wg    sync.WaitGroup
+	)
+	for _, w := range workers[:min(len(workers), n)] {
+		wg.Add(1)
+		go func(w *worker) {
+			defer wg.Done()
+			for {
+				mu.Lock()
+				if first != nil || next >= n {
+					mu.Unlock()
+					return
+				}
+				i := next
+				next++
+				mu.Unlock()
+				err := ctx.Err()
+				if err != nil {
+					err = fmt.Errorf("%w: %w", ErrCanceled, err)
+				} else {
+					err = fn(w, i)
+				}
+				if err != nil {
+					mu.Lock()
+					if first == nil {
+						first = err
+					}
+					mu.Unlock()
+					return
+				}
+			}
+		}(w)
+	}
+	wg.Wait()
+	return first
+}
+
+type passConfig struct {
+	tol, sumTol                   float64
+	sumBelow, doNaN, doSum, doNeg bool
+	grad, allow                   bool
+	example                       string
+}
+
+func finite32(row []float32) (int, bool) {
+	for k, x := range row {
+		if math.Float32bits(x)&0x7f800000 == 0x7f800000 {
+			return k, false
+		}
+	}
+	return -1, true
+}
+
+// head computes everything about one (layer, batch item, head) in one pass
+// over its matrix and adds it to acc; it also copies the rows the redundancy
+// pass needs into st.
+func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st *layerStore, l, b, h int) error {
+	Q, K := rules.Queries, rules.Keys
+	if err := rd.ReadAttn(l, b, h, w.a); err != nil {
+		return err
+	}
+	if cfg.grad {
+		if err := rd.ReadGrad(l, b, h, w.g); err != nil {
+			return err
+		}
+	}
+	if cfg.allow {
+		if err := rd.ReadAllow(b, h, w.allow); err != nil {
+			return err
+		}
+	}
+	u := &w.u
+	*u = unitAcc{}
+	for r := range w.lo {
+		w.lo[r], w.hi[r] = math.MaxInt, -1
+	}
+	base := rules.QueryOffset + Q - 1
+	masked := false
+	for r := RuleCausal; r < numMask; r++ {
+		masked = masked || rules.active[r]
+	}
+	self := rules.SelfAttention()
+	tol := cfg.tol
+	for q := 0; q < Q; q++ {
+		row := w.a[q*K : (q+1)*K]
+		p := q + rules.QueryOffset
+		badK, fin := finite32(row)
+		if cfg.grad {
+			grow := w.g[q*K : (q+1)*K]
+			if _, gfin := finite32(grow); fin && gfin {
+				var s float64
+				for k, x := range row {
+					s += float64(x) * float64(grow[k])
+				}
+				u.imp += s
+			} else {
+				u.gradSkip++
+			}
+		}
+		sr := q / st.stride
+		keep := q%st.stride == 0
+		if keep {
+			st.ok[h*st.rows+sr] = false
+		}
+		if !rules.Judged(b, q) {
+			u.padRows++
+			if !fin {
+				u.padNaN++
+			}
+			continue
+		}
+		if !fin {
+			u.nanRows++
+			c := Cell{Set: true, Example: cfg.example, Query: q, Key: badK}
+			if c.first(u.nanFirst) {
+				u.nanFirst = c
+			}
+			continue
+		}
+		var allowRow []bool
+		if cfg.allow {
+			allowRow = w.allow[q*K : (q+1)*K]
+		}
+		rules.Row(b, q, allowRow, w.rr)
+		var s, ent, dist, amass, negm float64
+		mx := math.Inf(-1)
+		var nAllow, zeros, neg int64
+		var hit [numMask]bool
+		for k, x32 := range row {
+			x := float64(x32)
+			if x > mx {
+				mx = x
+			}
+			if x != 0 {
+				s += x
+				d := k - p
+				if d < 0 {
+					d = -d
+				}
+				dist += x * float64(d)
+				if x > 0 {
+					ent -= x * math.Log(x)
+				} else {
+					neg++
+					negm -= x
+				}
+			}
+			r := w.rr[k]
+			if r == RuleNone {
+				nAllow++
+				amass += x
+				if x == 0 {
+					zeros++
+				}
+				continue
+			}
+			lu := &u.leak[r]
+			lu.forb++
+			if x > tol {
+				lu.cells++
+				lu.mass += x
+				hit[r] = true
+				if !lu.worst.Set || x > lu.worst.Value {
+					lu.worst = Cell{Set: true, Example: cfg.example, Query: q, Key: k, Value: x}
+				}
+				if hs := w.hist[r]; hs != nil {
+					i := k - p + base
+					hs[i]++
+					w.lo[r] = min(w.lo[r], i)
+					w.hi[r] = max(w.hi[r], i)
+				}
+			}
+		}
+		for r := range hit {
+			if hit[r] {
+				u.leak[r].rows++
+			}
+		}
+		u.rows++
+		u.ent += ent
+		n := int64(K)
+		if masked {
+			n = nAllow
+		}
+		if n > 1 {
+			u.entN += ent / math.Log(float64(n))
+		}
+		u.conf += mx
+		u.dist += dist
+		if self {
+			if p-1 >= 0 && p-1 < K {
+				u.prev += float64(row[p-1])
+				u.posRows++
+			}
+			if p < K {
+				u.self += float64(row[p])
+				u.selfRows++
+			}
+			if p != 0 {
+				u.sink += float64(row[0])
+				u.sinkRows++
+			}
+			if ds := rules.DocStart(b, p); ds != p {
+				u.doc += float64(row[ds])
+				u.docRows++
+			}
+		} else {
+			u.sink += float64(row[0])
+			u.sinkRows++
+			u.doc += float64(row[0])
+			u.docRows++
+		}
+		u.allowCells += nAllow
+		u.allowZeros += zeros
+		u.allowMass += amass
+		u.rowSum += s
+		if !u.sumSeen || s < u.sumMin {
+			u.sumMin = s
+		}
+		if !u.sumSeen || s > u.sumMax {
+			u.sumMax = s
+		}
+		u.sumSeen = true
+		if dev := s - 1; dev > cfg.sumTol || (!cfg.sumBelow && dev < -cfg.sumTol) {
+			u.sumBad++
+			u.badDev += math.Abs(dev)
+			c := Cell{Set: true, Example: cfg.example, Query: q, Key: -1, Value: math.Abs(dev)}
+			if c.worse(u.sumWorst) {
+				u.sumWorst = c
+			}
+		}
+		if neg > 0 {
+			u.negCells += neg
+			u.negRows++
+			u.negMass += negm
+		}
+		if keep {
+			i := h*st.rows + sr
+			copy(st.vals[i*K:(i+1)*K], row)
+			st.ent[i] = ent
+			st.ok[i] = true
+		}
+	}
+	w.commit(acc, cfg)
+	return nil
+}
+
+// commit adds the unit's sums to acc (exactly) and clears the histograms.
+func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
+	u := &w.u
+	acc.Rows += u.rows
+	acc.PadRows += u.padRows
+	acc.PadNaNRows += u.padNaN
+	acc.Entropy.Add(u.ent)
+	acc.EntropyNorm.Add(u.entN)
+	acc.Confidence.Add(u.conf)
+	acc.Distance.Add(u.dist)
+	acc.PosRows += u.posRows
+	acc.Prev.Add(u.prev)
+	acc.SelfRows += u.selfRows
+	acc.Self.Add(u.self)
+	acc.SinkRows += u.sinkRows
+	acc.Sink.Add(u.sink)
+	acc.DocSinkRows += u.docRows
+	acc.DocSink.Add(u.doc)
+	if cfg.grad {
+		acc.GradExamples++
+		acc.Importance.Add(math.Abs(u.imp))
+		acc.GradRows += u.gradSkip
+	}
+	acc.RowSum.Add(u.rowSum)
+	acc.AllowCells += u.allowCells
+	acc.AllowZeros += u.allowZeros
+	acc.AllowMass.Add(u.allowMass)
+	if u.sumSeen {
+		o := HeadAcc{SumSeen: true, SumMin: u.sumMin, SumMax: u.sumMax}
+		acc.Merge(&o)
+	}
+	if cfg.doNaN {
+		acc.NaNRows += u.nanRows
+		if u.nanFirst.first(acc.NaNWorst) {
+			acc.NaNWorst = u.nanFirst
+		}
+	}
+	if cfg.doSum {
+		acc.SumBadRows += u.sumBad
+		acc.SumBadDev.Add(u.badDev)
+		if u.sumWorst.worse(acc.SumWorst) {
+			acc.SumWorst = u.sumWorst
+		}
+	}
+	if cfg.doNeg {
+		acc.NegCells += u.negCells
+		acc.NegRows += u.negRows
+		acc.NegMass.Add(u.negMass)
+	}
+	for r := range u.leak {
+		lu := &u.leak[r]
+		la := &acc.Leaks[r]
+		la.Mass.Add(lu.mass)
+		la.Cells += lu.cells
+		la.Rows += lu.rows
+		la.Forbidden += lu.forb
+		if lu.worst.worse(la.Worst) {
+			la.Worst = lu.worst
+		}
+		if hs := w.hist[r]; hs != nil && w.hi[r] >= 0 {
+			base := len(hs) - len(w.rr) // QueryOffset + Queries - 1
+			if la.Offsets == nil {
+				la.Offsets = map[int]int64{}
+			}
+			for i := w.lo[r]; i <= w.hi[r]; i++ {
+				if hs[i] != 0 {
+					la.Offsets[i-base] += hs[i]
+					hs[i] = 0
+				}
+			}
+		}
+	}
+}
+
+// js returns the sum over rows judged and finite in both heads of the
+// Jensen-Shannon divergence between heads i and j, and the number of rows.
+// JS(P, Q) = H(M) - (H(P) + H(Q))/2 with M = (P+Q)/2 (Clark et al. 2019,
+// sec. 6); rows are used as exported, not renormalised.
+func (st *layerStore) js(i, j int) (float64, int64) {
+	var sum float64
+	var n int64
+	K := st.keys
+	for r := 0; r < st.rows; r++ {
+		a, b := i*st.rows+r, j*st.rows+r
+		if !st.ok[a] || !st.ok[b] {
+			continue
+		}
+		pa, pb := st.vals[a*K:(a+1)*K], st.vals[b*K:(b+1)*K]
+		var hm float64
+		for k, x := range pa {
+			m := 0.5 * (float64(x) + float64(pb[k]))
+			if m > 0 {
+				hm -= m * math.Log(m)
+			}
+		}
+		d := hm - 0.5*(st.ent[a]+st.ent[b])
+		if d < 0 {
+			d = 0
+		}
+		sum += d
+		n++
+	}
+	return sum, n
+}

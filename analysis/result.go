@@ -1,0 +1,433 @@
+package analysis
+
+import (
+	"fmt"
+	"math"
+	"sort"
+	"strings"
+)
+
+// Stats are the statistics of one head, over the judged rows of the examples
+// (and batch items) they aggregate. Row quantities are means over judged
+// rows whose values are all finite; NaN rows are counted, never averaged in.
+// A mean over no rows is NaN.
+type Stats struct {
+	// Rows is the number of judged rows with finite values; NaNRows the
+	// judged rows holding NaN or Inf; PadNaNRows the padding query rows
+	// (not judged) holding NaN or Inf.
+	Rows, NaNRows, PadNaNRows int64
+	// Entropy is the mean row entropy in nats, -sum_k A ln A with 0 ln 0 = 0
+	// (Clark et al. 2019, sec. 3.3); EntropyNorm divides each row's entropy by
+	// ln n_q, n_q the keys the row may see (all keys without mask rules),
+	// 0 when n_q = 1 (common practice).
+	Entropy, EntropyNorm float64
+	// Confidence is the mean row maximum (Voita et al. 2019, sec. 4).
+	Confidence float64
+	// PrevShare and SelfShare are the mean mass on k = q-1 and k = q
+	// (absolute positions; self-attention only, else NaN).
+	PrevShare, SelfShare float64
+	// Distance is the mean attention distance sum_k A |k - q| (Dosovitskiy
+	// et al. 2021, appendix D.7, with d = |q - k| for text).
+	Distance float64
+	// Sink is the mean mass on key 0 over rows other than query position 0
+	// (Gu et al. 2025's sink score; a sink head has Sink > 0.3). DocSink is
+	// the mean mass on the first key of the query's own document, over rows
+	// that are not themselves the first of their document (= Sink without
+	// segments).
+	Sink, DocSink float64
+	// Redundancy is the mean Jensen-Shannon divergence (nats, in [0, ln 2])
+	// between this head's rows and the same rows of each other head of the
+	// layer (Clark et al. 2019, sec. 6): low = the head duplicates others.
+	Redundancy float64
+	// Importance is Michel et al. (2019)'s head importance E_x |sum_{q,k}
+	// A*G| (see docs/methods.md), the mean over examples (each batch item of
+	// each file is one example); NaN without gradients.
+	Importance float64
+	// LeakMass is the forbidden mass (cells above the tolerance, every mask
+	// rule) per judged row; LeakCells counts those cells.
+	LeakMass  float64
+	LeakCells int64
+	// RowSum is the mean row sum.
+	RowSum float64
+}
+
+// HeadStats are one head's statistics aggregated over batch items and
+// examples, with the per-batch-item values in Batch.
+type HeadStats struct {
+	Layer, Head int
+	Stats
+	// ImportanceNorm is Importance divided by the L2 norm of the layer's
+	// importances (Michel et al. 2019); NaN without gradients.
+	ImportanceNorm float64
+	// Score is the heuristic pruning score used without gradients
+	// (ScoreName): Confidence * Redundancy / ln 2. Low = a diffuse head
+	// that duplicates others.
+	Score float64
+	// Batch[b] aggregates batch item b of every example.
+	Batch []Stats
+}
+
+// ScoreName names the heuristic score (HeadStats.Score) in output.
+const ScoreName = "confidence_x_js"
+
+// ScoreDoc says what the heuristic score is made of.
+const ScoreDoc = "confidence_x_js = confidence (mean row maximum, Voita et al. 2019) x redundancy / ln 2 (mean Jensen-Shannon divergence to the layer's other heads, Clark et al. 2019); a heuristic, not an importance: low means a diffuse head that duplicates others"
+
+// BlockResult is the analysis of one block.
+type BlockResult struct {
+	Name, Kind, DType          string
+	Layers, Heads, Batch       int
+	Queries, Keys, QueryOffset int
+	Window, Prefix, KVHeads    int
+	// Rules are the mask rules that were checked.
+	Rules         []Rule
+	SelfAttention bool
+	HasGrad       bool
+	// Stats holds one entry per (layer, head), layer-major.
+	Stats []HeadStats
+
+	bp *BlockPartial
+}
+
+// Head returns the statistics of (layer, head), nil when out of range.
+func (br *BlockResult) Head(layer, head int) *HeadStats {
+	if layer < 0 || layer >= br.Layers || head < 0 || head >= br.Heads {
+		return nil
+	}
+	return &br.Stats[layer*br.Heads+head]
+}
+
+// Result is what a Partial means: statistics per head, findings grouped so
+// that one bug is a few findings, and diagnoses naming the likely bugs.
+type Result struct {
+	Examples int64
+	Blocks   []*BlockResult
+	// Findings, worst (largest Mass) first.
+	Findings []Finding
+	// Diagnoses name the likely bugs behind the findings.
+	Diagnoses []Diagnosis
+	// Notes are things worth knowing that are not findings (e.g. padding
+	// rows that are NaN, which are benign).
+	Notes []string
+}
+
+// Clean reports whether there are no findings.
+func (r *Result) Clean() bool { return len(r.Findings) == 0 }
+
+// Block returns the named block's result, or nil.
+func (r *Result) Block(name string) *BlockResult {
+	for _, b := range r.Blocks {
+		if b.Name == name {
+			return b
+		}
+	}
+	return nil
+}
+
+func mean(s Sum, n int64) float64 {
+	if n == 0 {
+		return math.NaN()
+	}
+	return s.Float64() / float64(n)
+}
+
+func statsOf(a *HeadAcc, grad bool, self bool) Stats {
+	s := Stats{
+		Rows: a.Rows, NaNRows: a.NaNRows, PadNaNRows: a.PadNaNRows,
+		Entropy: mean(a.Entropy, a.Rows), EntropyNorm: mean(a.EntropyNorm, a.Rows),
+		Confidence: mean(a.Confidence, a.Rows), Distance: mean(a.Distance, a.Rows),
+		PrevShare: mean(a.Prev, a.PosRows), SelfShare: mean(a.Self, a.SelfRows),
+		Sink: mean(a.Sink, a.SinkRows), DocSink: mean(a.DocSink, a.DocSinkRows),
+		Redundancy: mean(a.JS, a.JSRows), Importance: math.NaN(), RowSum: mean(a.RowSum, a.Rows),
+	}
+	if !self {
+		s.PrevShare, s.SelfShare = math.NaN(), math.NaN()
+	}
+	if grad && a.GradExamples > 0 {
+		s.Importance = a.Importance.Float64() / float64(a.GradExamples)
+	}
+	var leak Sum
+	for r := RuleCausal; r < numMask; r++ {
+		leak.Merge(a.Leaks[r].Mass)
+		s.LeakCells += a.Leaks[r].Cells
+	}
+	s.LeakMass = mean(leak, a.Rows)
+	return s
+}
+
+// Result computes statistics, findings and diagnoses from the partial. It
+// does not change p.
+func (p *Partial) Result() *Result {
+	res := &Result{Examples: p.Examples}
+	for _, bp := range p.Blocks {
+		br := &BlockResult{
+			Name: bp.Name, Kind: bp.Kind, DType: bp.DType, Layers: bp.Layers, Heads: bp.Heads, Batch: bp.Batch,
+			Queries: bp.Queries, Keys: bp.Keys, QueryOffset: bp.QueryOffset, Window: bp.Window, Prefix: bp.Prefix,
+			KVHeads: bp.KVHeads, SelfAttention: bp.SelfAttn, HasGrad: bp.HasGrad, bp: bp,
+		}
+		for _, n := range bp.Rules {
+			if r, err := ParseRule(n); err == nil {
+				br.Rules = append(br.Rules, r)
+			}
+		}
+		br.Stats = make([]HeadStats, bp.Layers*bp.Heads)
+		for l := 0; l < bp.Layers; l++ {
+			var norm2 float64
+			for h := 0; h < bp.Heads; h++ {
+				var all HeadAcc
+				hs := &br.Stats[l*bp.Heads+h]
+				hs.Layer, hs.Head = l, h
+				hs.Batch = make([]Stats, bp.Batch)
+				for b := 0; b < bp.Batch; b++ {
+					u := bp.Unit(l, h, b)
+					hs.Batch[b] = statsOf(u, bp.HasGrad, bp.SelfAttn)
+					all.Merge(u)
+				}
+				hs.Stats = statsOf(&all, bp.HasGrad, bp.SelfAttn)
+				hs.Score = hs.Confidence * hs.Redundancy / math.Ln2
+				if bp.Heads == 1 {
+					hs.Score = hs.Confidence
+				}
+				norm2 += hs.Importance * hs.Importance
+			}
+			for h := 0; h < bp.Heads; h++ {
+				hs := &br.Stats[l*bp.Heads+h]
+				switch {
+				case math.IsNaN(hs.Importance):
+					hs.ImportanceNorm = math.NaN()
+				case norm2 == 0:
+					hs.ImportanceNorm = 0
+				default:
+					hs.ImportanceNorm = hs.Importance / math.Sqrt(norm2)
+				}
+			}
+		}
+		res.Blocks = append(res.Blocks, br)
+		fs := findings(bp)
+		res.Findings = append(res.Findings, fs...)
+		res.Diagnoses = append(res.Diagnoses, diagnose(bp, fs)...)
+		res.Notes = append(res.Notes, notes(bp)...)
+	}
+	sort.SliceStable(res.Findings, func(i, j int) bool { return res.Findings[i].Mass > res.Findings[j].Mass })
+	return res
+}
+
+func notes(bp *BlockPartial) []string {
+	var pad, padNaN int64
+	for i := range bp.Units {
+		for j := range bp.Units[i] {
+			pad += bp.Units[i][j].PadRows
+			padNaN += bp.Units[i][j].PadNaNRows
+		}
+	}
+	var out []string
+	if padNaN > 0 {
+		out = append(out, fmt.Sprintf("%s: %d of %d padding query rows hold NaN; padding rows are not judged (benign unless NaN spreads into real rows)", bp.Name, padNaN, pad))
+	}
+	if bp.Heads == 1 {
+		out = append(out, fmt.Sprintf("%s: the head axis has length 1: heads were probably averaged at export, so per-head statistics describe the average", bp.Name))
+	}
+	return out
+}
+
+// Location is a place in an export, printed as a LOC a person can paste:
+// BLOCK:L<layer>:H<head>:B<batch>:q<query> (see DESIGN.md).
+type Location struct {
+	Block   string  `json:"block"`
+	Layer   int     `json:"layer"`
+	Head    int     `json:"head"`
+	Batch   int     `json:"batch"`
+	Query   int     `json:"query"`
+	Key     int     `json:"key"` // -1 for row findings
+	Value   float64 `json:"value"`
+	Example string  `json:"example,omitempty"`
+}
+
+// String formats the location as a LOC.
+func (l Location) String() string {
+	return fmt.Sprintf("%s:L%d:H%d:B%d:q%d", l.Block, l.Layer, l.Head, l.Batch, l.Query)
+}
+
+// OffsetCount is how many leaking cells sit at offset k - q.
+type OffsetCount struct {
+	Offset int   `json:"offset"`
+	Count  int64 `json:"count"`
+}
+
+// Finding is one group of problems of one rule in one block: the leaking
+// (layer, head, batch item) units form the product Layers x Heads x Batches.
+//
+// Mass is the total forbidden mass for mask rules, the number of NaN rows for
+// nan_rows, the total |row sum - 1| for row_sum and the total negative mass
+// for negative. Cells counts leaking cells (negative cells for negative, 0
+// for row rules); Max is the largest leaking value (largest |sum - 1| for
+// row_sum); Rows the rows concerned; JudgedRows the judged rows of the group.
+type Finding struct {
+	Block      string        `json:"block"`
+	Rule       Rule          `json:"rule"`
+	Layers     []int         `json:"layer"`
+	Heads      []int         `json:"head"`
+	Batches    []int         `json:"batch"`
+	Mass       float64       `json:"mass"`
+	Cells      int64         `json:"cells"`
+	Max        float64       `json:"max"`
+	Rows       int64         `json:"rows"`
+	JudgedRows int64         `json:"judged_rows"`
+	Offsets    []OffsetCount `json:"offsets,omitempty"`
+	// Worst is the cell to look at first (the largest leak, the first NaN
+	// row, the row furthest from summing to 1).
+	Worst Location `json:"worst"`
+
+	agg HeadAcc // the group's units merged, for the diagnosis
+}
+
+type triple struct{ l, h, b int }
+
+func hasProblem(a *HeadAcc, r Rule) bool {
+	switch r {
+	case RuleNaNRows:
+		return a.NaNRows > 0
+	case RuleRowSum:
+		return a.SumBadRows > 0
+	case RuleNegative:
+		return a.NegCells > 0
+	}
+	return a.Leaks[r].Cells > 0
+}
+
+// findings groups the problem units of every rule into products of layer,
+// head and batch sets: first layers with the same set of (head, batch)
+// units, then within those heads with the same batch set.
+func findings(bp *BlockPartial) []Finding {
+	var out []Finding
+	for r := RuleCausal; r < numRules; r++ {
+		byLayer := map[int][]triple{}
+		for l := 0; l < bp.Layers; l++ {
+			for h := 0; h < bp.Heads; h++ {
+				for b := 0; b < bp.Batch; b++ {
+					if hasProblem(bp.Unit(l, h, b), r) {
+						byLayer[l] = append(byLayer[l], triple{l, h, b})
+					}
+				}
+			}
+		}
+		if len(byLayer) == 0 {
+			continue
+		}
+		type lgroup struct {
+			layers []int
+			hb     []triple
+		}
+		var lgs []*lgroup
+		seen := map[string]*lgroup{}
+		for l := 0; l < bp.Layers; l++ {
+			ts, ok := byLayer[l]
+			if !ok {
+				continue
+			}
+			var key strings.Builder
+			for _, t := range ts {
+				fmt.Fprintf(&key, "%d.%d,", t.h, t.b)
+			}
+			if g := seen[key.String()]; g != nil {
+				g.layers = append(g.layers, l)
+				continue
+			}
+			g := &lgroup{layers: []int{l}, hb: ts}
+			seen[key.String()] = g
+			lgs = append(lgs, g)
+		}
+		for _, lg := range lgs {
+			byHead := map[int][]int{}
+			var heads []int
+			for _, t := range lg.hb {
+				if _, ok := byHead[t.h]; !ok {
+					heads = append(heads, t.h)
+				}
+				byHead[t.h] = append(byHead[t.h], t.b)
+			}
+			hseen := map[string]int{}
+			var hgroups [][]int
+			var bsets [][]int
+			for _, h := range heads {
+				key := fmt.Sprint(byHead[h])
+				if i, ok := hseen[key]; ok {
+					hgroups[i] = append(hgroups[i], h)
+					continue
+				}
+				hseen[key] = len(hgroups)
+				hgroups = append(hgroups, []int{h})
+				bsets = append(bsets, byHead[h])
+			}
+			for i := range hgroups {
+				out = append(out, makeFinding(bp, r, lg.layers, hgroups[i], bsets[i]))
+			}
+		}
+	}
+	return out
+}
+
+func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding {
+	f := Finding{Block: bp.Name, Rule: r, Layers: layers, Heads: heads, Batches: batches}
+	var worst Cell
+	var wl, wh, wb int
+	var first Cell
+	for _, l := range layers {
+		for _, h := range heads {
+			for _, b := range batches {
+				u := bp.Unit(l, h, b)
+				f.agg.Merge(u)
+				f.JudgedRows += u.Rows + u.NaNRows
+				var c Cell
+				switch {
+				case r == RuleNaNRows:
+					c = u.NaNWorst
+					// the first NaN row in layer order: lowest layer wins
+					if c.Set && !first.Set {
+						first, wl, wh, wb = c, l, h, b
+					}
+					continue
+				case r == RuleRowSum:
+					c = u.SumWorst
+				case r == RuleNegative:
+					continue
+				default:
+					c = u.Leaks[r].Worst
+				}
+				if c.Set && (!worst.Set || c.Value > worst.Value) {
+					worst, wl, wh, wb = c, l, h, b
+				}
+			}
+		}
+	}
+	if r == RuleNaNRows {
+		worst = first
+	}
+	a := &f.agg
+	switch r {
+	case RuleNaNRows:
+		f.Mass, f.Rows = float64(a.NaNRows), a.NaNRows
+	case RuleRowSum:
+		f.Mass, f.Rows, f.Max = a.SumBadDev.Float64(), a.SumBadRows, worst.Value
+	case RuleNegative:
+		f.Mass, f.Rows, f.Cells = a.NegMass.Float64(), a.NegRows, a.NegCells
+	default:
+		la := &a.Leaks[r]
+		f.Mass, f.Cells, f.Rows, f.Max = la.Mass.Float64(), la.Cells, la.Rows, worst.Value
+		if r.Positional() {
+			for o, n := range la.Offsets {
+				f.Offsets = append(f.Offsets, OffsetCount{o, n})
+			}
+			sort.Slice(f.Offsets, func(i, j int) bool { return f.Offsets[i].Offset < f.Offsets[j].Offset })
+		}
+	}
+	if worst.Set {
+		f.Worst = Location{Block: bp.Name, Layer: wl, Head: wh, Batch: wb, Query: worst.Query, Key: worst.Key, Value: worst.Value, Example: worst.Example}
+	} else {
+		f.Worst = Location{Block: bp.Name, Layer: layers[0], Head: heads[0], Batch: batches[0], Key: -1}
+	}
+	if r == RuleNaNRows {
+		f.Worst.Value = 0
+	}
+	return f
+}
