@@ -104,13 +104,15 @@ func openFile(ref fileRef) (Container, error) {
 	switch format {
 	case "npy":
 		return openNPY(ref)
-	case "npz", "safetensors", "hdf5":
-		if format == "hdf5" {
-			if err := checkHDF5Signature(ref.path); err != nil {
-				return nil, err
-			}
+	case "npz":
+		return openNPZ(ref.path)
+	case "safetensors":
+		return openSafetensors(ref.path)
+	case "hdf5":
+		if err := checkHDF5Signature(ref.path); err != nil {
+			return nil, err
 		}
-		return nil, &FormatError{File: ref.path, Offset: -1, Msg: format + " files are not readable yet (the loader's next step)"}
+		return openHDF5(ref.path)
 	}
 	if st.Size() == 0 {
 		return nil, &FormatError{File: ref.path, Offset: -1, Msg: "empty file"}

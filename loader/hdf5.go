@@ -1,0 +1,646 @@
+//go:build cgo && !nohdf5
+
+package loader
+
+// HDF5 through gonum.org/v1/hdf5 (files, groups, datasets, dataspaces,
+// hyperslabs, chunk-cache properties) plus a few direct calls to the HDF5 C
+// library for what that package does not expose: reading with a chosen
+// memory type (so the library converts h5py's float16, ints and big-endian
+// data to float32 for us), datatype introspection (h5py's bool enum,
+// string kinds) and attribute reads. The library (Debian's serial build) is
+// not thread-safe, so every call goes through h5mu.
+
+/*
+#cgo pkg-config: hdf5
+#include <hdf5.h>
+#include <stdlib.h>
+#include <string.h>
+
+static hid_t heed_native_float(void) { return H5T_NATIVE_FLOAT; }
+static hid_t heed_native_llong(void) { return H5T_NATIVE_LLONG; }
+static hid_t heed_native_double(void) { return H5T_NATIVE_DOUBLE; }
+
+static hid_t heed_vlen_str(H5T_cset_t cset) {
+	hid_t t = H5Tcopy(H5T_C_S1);
+	if (t < 0) return t;
+	if (H5Tset_size(t, H5T_VARIABLE) < 0 || H5Tset_cset(t, cset) < 0) { H5Tclose(t); return -1; }
+	return t;
+}
+
+// heed_enum_is_bool reports whether an enum type is h5py's bool: two members
+// named FALSE = 0 and TRUE = 1 over a 1-byte integer.
+static int heed_enum_is_bool(hid_t t) {
+	if (H5Tget_nmembers(t) != 2 || H5Tget_size(t) != 1) return 0;
+	int ok = 1;
+	for (unsigned i = 0; i < 2 && ok; i++) {
+		char *name = H5Tget_member_name(t, i);
+		signed char v = -1;
+		if (name == NULL || H5Tget_member_value(t, i, &v) < 0) ok = 0;
+		else if (!((strcmp(name, "FALSE") == 0 && v == 0) || (strcmp(name, "TRUE") == 0 && v == 1))) ok = 0;
+		if (name != NULL) H5free_memory(name);
+	}
+	return ok;
+}
+
+// heed_chunk returns the chunk dims of a chunked dataset (0 when not chunked).
+static int heed_chunk(hid_t ds, int rank, hsize_t *dims) {
+	hid_t p = H5Dget_create_plist(ds);
+	if (p < 0) return -1;
+	int r = 0;
+	if (H5Pget_layout(p) == H5D_CHUNKED) r = H5Pget_chunk(p, rank, dims);
+	H5Pclose(p);
+	return r;
+}
+
+static herr_t heed_read(hid_t ds, hid_t mem, hid_t mspace, hid_t fspace, void *buf) {
+	return H5Dread(ds, mem, mspace, fspace, H5P_DEFAULT, buf);
+}
+
+static herr_t heed_reclaim(hid_t type, hid_t space, void *buf) {
+	return H5Dvlen_reclaim(type, space, H5P_DEFAULT, buf);
+}
+
+static herr_t heed_silence(void) { return H5Eset_auto2(H5E_DEFAULT, NULL, NULL); }
+*/
+import "C"
+
+import (
+	"fmt"
+	"math"
+	"strconv"
+	"strings"
+	"sync"
+	"unsafe"
+
+	"gonum.org/v1/hdf5"
+)
+
+// HDF5Supported reports whether this build reads HDF5 files.
+const HDF5Supported = true
+
+var (
+	h5mu       sync.Mutex
+	h5initOnce sync.Once
+)
+
+// blockAttrs are the dataset attributes Assemble understands (see attrReader).
+var blockAttrs = []string{"kind", "query", "key", "axes", "window", "prefix", "kv_heads"}
+
+type h5File struct {
+	path    string
+	f       *hdf5.File
+	life    lifetime
+	arrays  []Array
+	dsets   []*h5Array
+	meta    string
+	hasMeta bool
+}
+
+type h5Array struct {
+	file    *h5File
+	name    string
+	ds      *hdf5.Dataset
+	dtype   DType
+	shape   []int
+	enum    bool // an enum (h5py bool): read raw and convert
+	strVar  bool
+	strSize int
+	cset    C.H5T_cset_t
+	ftype   C.hid_t // copy of the file type, for enums and fixed strings (0 otherwise)
+	attrs   map[string]string
+}
+
+func openHDF5(path string) (Container, error) {
+	h5mu.Lock()
+	defer h5mu.Unlock()
+	h5initOnce.Do(func() { C.heed_silence() })
+	f, err := hdf5.OpenFile(path, hdf5.F_ACC_RDONLY)
+	if err != nil {
+		return nil, &FormatError{File: path, Offset: -1, Msg: "the HDF5 library cannot open it (corrupt or truncated HDF5 file?)"}
+	}
+	h := &h5File{path: path, f: f}
+	if err := h.walk(&f.CommonFG, "", 0); err != nil {
+		h.closeLocked()
+		return nil, err
+	}
+	if v, ok, err := readAttr(C.hid_t(f.ID()), "meta"); err != nil {
+		h.closeLocked()
+		return nil, &FormatError{File: path, Array: "meta", Offset: -1, Msg: "cannot read the root attribute", Err: err}
+	} else if ok {
+		h.meta, h.hasMeta = v, true
+	}
+	sortedArrays(h.arrays)
+	return h, nil
+}
+
+// maxDepth bounds the group walk (hard links can make cycles).
+const maxDepth = 32
+
+func (h *h5File) walk(g *hdf5.CommonFG, prefix string, depth int) error {
+	if depth > maxDepth {
+		return &FormatError{File: h.path, Array: prefix, Offset: -1, Msg: "groups nested too deeply (a cycle of links?)"}
+	}
+	n, err := g.NumObjects()
+	if err != nil {
+		return &FormatError{File: h.path, Array: prefix, Offset: -1, Msg: "cannot list the group"}
+	}
+	for i := uint(0); i < n; i++ {
+		name, err := g.ObjectNameByIndex(i)
+		if err != nil {
+			continue
+		}
+		typ, err := g.ObjectTypeByIndex(i)
+		if err != nil {
+			continue // dangling or external link
+		}
+		full := name
+		if prefix != "" {
+			full = prefix + "/" + name
+		}
+		switch typ {
+		case hdf5.H5G_GROUP:
+			sub, err := g.OpenGroup(name)
+			if err != nil {
+				return &FormatError{File: h.path, Array: full, Offset: -1, Msg: "cannot open the group"}
+			}
+			err = h.walk(&sub.CommonFG, full, depth+1)
+			sub.Close()
+			if err != nil {
+				return err
+			}
+		case hdf5.H5G_DATASET:
+			a, err := h.dataset(g, name, full)
+			if err != nil {
+				return err
+			}
+			if a != nil {
+				h.arrays = append(h.arrays, a)
+				h.dsets = append(h.dsets, a)
+			}
+		}
+	}
+	return nil
+}
+
+func (h *h5File) dataset(g *hdf5.CommonFG, name, full string) (*h5Array, error) {
+	ferr := func(format string, a ...any) error {
+		return &FormatError{File: h.path, Array: full, Offset: -1, Msg: fmt.Sprintf(format, a...)}
+	}
+	ds, err := g.OpenDataset(name)
+	if err != nil {
+		return nil, ferr("cannot open the dataset")
+	}
+	a := &h5Array{file: h, name: full}
+	shape, err := dsShape(ds)
+	if err != nil {
+		ds.Close()
+		return nil, ferr("%v", err)
+	}
+	a.shape = shape
+	if err := a.classify(C.hid_t(ds.ID())); err != nil {
+		ds.Close()
+		a.closeType()
+		return nil, ferr("%v", err)
+	}
+	for _, n := range blockAttrs {
+		v, ok, err := readAttr(C.hid_t(ds.ID()), n)
+		if err != nil {
+			ds.Close()
+			a.closeType()
+			return nil, ferr("attribute %s: %v", n, err)
+		}
+		if ok {
+			if a.attrs == nil {
+				a.attrs = map[string]string{}
+			}
+			a.attrs[n] = v
+		}
+	}
+	// A chunk cache that holds every chunk one head touches: reading the
+	// next head of the same chunks then inflates nothing twice.
+	cache := 0
+	if len(shape) >= 2 {
+		chunk := make([]C.hsize_t, len(shape))
+		if r := C.heed_chunk(C.hid_t(ds.ID()), C.int(len(shape)), &chunk[0]); r > 0 {
+			n := 1
+			bytes := max(itemSize(a.dtype), a.strSize, 8)
+			for i, c := range chunk {
+				bytes *= int(c)
+				if i >= len(shape)-2 && c > 0 {
+					n *= (shape[i] + int(c) - 1) / int(c)
+				}
+			}
+			cache = min(n*bytes, 256<<20)
+			if cache > 1<<20 { // HDF5's default is 1 MiB
+				dapl, err := hdf5.NewPropList(hdf5.P_DATASET_ACCESS)
+				if err == nil {
+					if dapl.SetChunkCache(nextPrime(100*n), cache, 1) == nil {
+						if ds2, err := g.OpenDatasetWith(name, dapl); err == nil {
+							ds.Close()
+							ds = ds2
+						}
+					}
+					dapl.Close()
+				}
+			}
+		}
+	}
+	a.ds = ds
+	return a, nil
+}
+
+func nextPrime(n int) int {
+	if n < 2 {
+		return 2
+	}
+	for ; ; n++ {
+		p := true
+		for d := 2; d*d <= n; d++ {
+			if n%d == 0 {
+				p = false
+				break
+			}
+		}
+		if p {
+			return n
+		}
+	}
+}
+
+func dsShape(ds *hdf5.Dataset) ([]int, error) {
+	sp := ds.Space()
+	if sp == nil {
+		return nil, fmt.Errorf("no dataspace")
+	}
+	defer sp.Close()
+	switch sp.SimpleExtentType() {
+	case hdf5.S_SCALAR:
+		return []int{}, nil
+	case hdf5.S_SIMPLE:
+	default:
+		return nil, fmt.Errorf("empty (null) dataspace")
+	}
+	if sp.SimpleExtentNDims() <= 0 || sp.SimpleExtentNDims() > maxRank {
+		return nil, fmt.Errorf("rank %d", sp.SimpleExtentNDims())
+	}
+	dims, _, err := sp.SimpleExtentDims()
+	if err != nil {
+		return nil, err
+	}
+	shape := make([]int, len(dims))
+	for i, d := range dims {
+		if d > math.MaxInt32*uint(1<<20) {
+			return nil, fmt.Errorf("dimension %d too large", d)
+		}
+		shape[i] = int(d)
+	}
+	if _, ok := numElems(shape, math.MaxInt64/16); !ok {
+		return nil, fmt.Errorf("shape %v overflows", shape)
+	}
+	return shape, nil
+}
+
+// classify sets dtype and the reading strategy from the dataset's type.
+func (a *h5Array) classify(ds C.hid_t) error {
+	t := C.H5Dget_type(ds)
+	if t < 0 {
+		return fmt.Errorf("no datatype")
+	}
+	defer C.H5Tclose(t)
+	size := int(C.H5Tget_size(t))
+	switch C.H5Tget_class(t) {
+	case C.H5T_FLOAT:
+		switch size {
+		case 2:
+			// h5py's float16 is a custom IEEE type (sign 15, exponent 10..14,
+			// mantissa 0..9); a 2-byte float with an 8-bit exponent is bfloat16.
+			var spos, epos, esize, mpos, msize C.size_t
+			C.H5Tget_fields(t, &spos, &epos, &esize, &mpos, &msize)
+			a.dtype = Float16
+			if esize == 8 && msize == 7 {
+				a.dtype = BFloat16
+			}
+		case 4:
+			a.dtype = Float32
+		case 8:
+			a.dtype = Float64
+		default:
+			return fmt.Errorf("%d-byte floats are not supported", size)
+		}
+	case C.H5T_INTEGER:
+		signed := C.H5Tget_sign(t) == C.H5T_SGN_2
+		types := map[int][2]DType{1: {Uint8, Int8}, 2: {Uint16, Int16}, 4: {Uint32, Int32}, 8: {Uint64, Int64}}
+		d, ok := types[size]
+		if !ok {
+			return fmt.Errorf("%d-byte integers are not supported", size)
+		}
+		a.dtype = d[0]
+		if signed {
+			a.dtype = d[1]
+		}
+	case C.H5T_ENUM:
+		if C.heed_enum_is_bool(t) == 1 {
+			a.dtype, a.enum = Bool, true
+			a.ftype = C.H5Tcopy(t)
+			return nil
+		}
+		return fmt.Errorf("enum datatypes other than h5py's bool are not supported")
+	case C.H5T_STRING:
+		a.dtype = String
+		a.cset = C.H5Tget_cset(t)
+		if C.H5Tis_variable_str(t) > 0 {
+			a.strVar = true
+		} else {
+			a.strSize = size
+			if size > 1<<22 {
+				return fmt.Errorf("fixed strings of %d bytes", size)
+			}
+			a.ftype = C.H5Tcopy(t)
+		}
+	default:
+		return fmt.Errorf("datatype class %d is not supported (heed reads floats, integers, h5py bools and strings)", int(C.H5Tget_class(t)))
+	}
+	return nil
+}
+
+// readAttr reads a scalar (or one-element) string or number attribute of
+// object obj as a string.
+func readAttr(obj C.hid_t, name string) (string, bool, error) {
+	cname := C.CString(name)
+	defer C.free(unsafe.Pointer(cname))
+	if C.H5Aexists(obj, cname) <= 0 {
+		return "", false, nil
+	}
+	at := C.H5Aopen(obj, cname, C.H5P_DEFAULT)
+	if at < 0 {
+		return "", false, fmt.Errorf("cannot open")
+	}
+	defer C.H5Aclose(at)
+	sp := C.H5Aget_space(at)
+	if sp < 0 {
+		return "", false, fmt.Errorf("no dataspace")
+	}
+	defer C.H5Sclose(sp)
+	if C.H5Sget_simple_extent_npoints(sp) != 1 {
+		return "", false, fmt.Errorf("not a single value")
+	}
+	t := C.H5Aget_type(at)
+	if t < 0 {
+		return "", false, fmt.Errorf("no datatype")
+	}
+	defer C.H5Tclose(t)
+	switch C.H5Tget_class(t) {
+	case C.H5T_STRING:
+		if C.H5Tis_variable_str(t) > 0 {
+			mt := C.heed_vlen_str(C.H5Tget_cset(t))
+			if mt < 0 {
+				return "", false, fmt.Errorf("cannot build a string type")
+			}
+			defer C.H5Tclose(mt)
+			var p *C.char
+			if C.H5Aread(at, mt, unsafe.Pointer(&p)) < 0 {
+				return "", false, fmt.Errorf("cannot read")
+			}
+			s := ""
+			if p != nil {
+				s = C.GoString(p)
+			}
+			C.heed_reclaim(mt, sp, unsafe.Pointer(&p))
+			return s, true, nil
+		}
+		n := int(C.H5Tget_size(t))
+		if n <= 0 || n > 1<<24 {
+			return "", false, fmt.Errorf("string of %d bytes", n)
+		}
+		buf := C.malloc(C.size_t(n))
+		defer C.free(buf)
+		if C.H5Aread(at, t, buf) < 0 {
+			return "", false, fmt.Errorf("cannot read")
+		}
+		return trimNul(C.GoBytes(buf, C.int(n))), true, nil
+	case C.H5T_INTEGER:
+		var v C.longlong
+		if C.H5Aread(at, C.heed_native_llong(), unsafe.Pointer(&v)) < 0 {
+			return "", false, fmt.Errorf("cannot read")
+		}
+		return strconv.FormatInt(int64(v), 10), true, nil
+	case C.H5T_FLOAT:
+		var v C.double
+		if C.H5Aread(at, C.heed_native_double(), unsafe.Pointer(&v)) < 0 {
+			return "", false, fmt.Errorf("cannot read")
+		}
+		return strconv.FormatFloat(float64(v), 'g', -1, 64), true, nil
+	}
+	return "", false, fmt.Errorf("unsupported attribute type")
+}
+
+func trimNul(b []byte) string {
+	if i := strings.IndexByte(string(b), 0); i >= 0 {
+		b = b[:i]
+	}
+	return string(b)
+}
+
+func (h *h5File) Path() string         { return h.path }
+func (h *h5File) Format() string       { return "hdf5" }
+func (h *h5File) Arrays() []Array      { return append([]Array(nil), h.arrays...) }
+func (h *h5File) Meta() (string, bool) { return h.meta, h.hasMeta }
+
+func (h *h5File) Close() error {
+	return h.life.end(func() error {
+		h5mu.Lock()
+		defer h5mu.Unlock()
+		return h.closeLocked()
+	})
+}
+
+func (h *h5File) closeLocked() error {
+	for _, d := range h.dsets {
+		d.closeType()
+		if d.ds != nil {
+			d.ds.Close()
+			d.ds = nil
+		}
+	}
+	h.dsets = nil
+	if h.f != nil {
+		err := h.f.Close()
+		h.f = nil
+		return err
+	}
+	return nil
+}
+
+func (a *h5Array) closeType() {
+	if a.ftype > 0 {
+		C.H5Tclose(a.ftype)
+		a.ftype = 0
+	}
+}
+
+func (a *h5Array) Name() string  { return a.name }
+func (a *h5Array) File() string  { return a.file.path }
+func (a *h5Array) DType() DType  { return a.dtype }
+func (a *h5Array) Shape() []int  { return append([]int(nil), a.shape...) }
+func (a *h5Array) label() string { return a.file.path + ": " + a.name }
+
+// Attr returns a dataset attribute Assemble reads (kind, query, key, axes,
+// window, prefix, kv_heads).
+func (a *h5Array) Attr(name string) (string, bool) {
+	v, ok := a.attrs[name]
+	return v, ok
+}
+
+// read selects the sub-array idx with a hyperslab and reads it as memory
+// type mem into buf, which holds n elements.
+func (a *h5Array) read(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) error {
+	if err := a.file.life.enter(); err != nil {
+		return err
+	}
+	defer a.file.life.leave()
+	h5mu.Lock()
+	defer h5mu.Unlock()
+	return a.readLocked(idx, n, mem, buf)
+}
+
+func (a *h5Array) readLocked(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) error {
+	if n == 0 {
+		return nil
+	}
+	fs := a.ds.Space()
+	if fs == nil {
+		return fmt.Errorf("loader: %s: no dataspace", a.label())
+	}
+	defer fs.Close()
+	if len(a.shape) > 0 {
+		off := make([]uint, len(a.shape))
+		cnt := make([]uint, len(a.shape))
+		for i := range a.shape {
+			cnt[i] = uint(a.shape[i])
+			if i < len(idx) {
+				off[i], cnt[i] = uint(idx[i]), 1
+			}
+		}
+		if err := fs.SelectHyperslab(off, nil, cnt, nil); err != nil {
+			return fmt.Errorf("loader: %s: hyperslab: %v", a.label(), err)
+		}
+	}
+	ms, err := hdf5.CreateSimpleDataspace([]uint{uint(n)}, nil)
+	if err != nil {
+		return fmt.Errorf("loader: %s: %v", a.label(), err)
+	}
+	defer ms.Close()
+	if C.heed_read(C.hid_t(a.ds.ID()), mem, C.hid_t(ms.ID()), C.hid_t(fs.ID()), buf) < 0 {
+		return &FormatError{File: a.file.path, Array: a.name, Offset: -1, Msg: "the HDF5 library cannot read the data (corrupt file or unsupported filter?)"}
+	}
+	return nil
+}
+
+// readEnum reads an enum (bool) sub-array as its raw bytes.
+func (a *h5Array) readEnum(idx []int, n int) ([]byte, error) {
+	buf := make([]byte, max(n, 1))
+	if err := a.read(idx, n, a.ftype, unsafe.Pointer(&buf[0])); err != nil {
+		return nil, err
+	}
+	return buf[:n], nil
+}
+
+func (a *h5Array) ReadFloat32(idx []int, dst []float32) error {
+	if a.dtype == String {
+		return fmt.Errorf("loader: %s: a string array has no numeric values", a.label())
+	}
+	n, err := checkSub(a.label(), a.shape, idx, len(dst))
+	if err != nil || n == 0 {
+		return err
+	}
+	if a.enum {
+		b, err := a.readEnum(idx, n)
+		if err != nil {
+			return err
+		}
+		for i, v := range b {
+			dst[i] = float32(v)
+		}
+		return nil
+	}
+	return a.read(idx, n, C.heed_native_float(), unsafe.Pointer(&dst[0]))
+}
+
+func (a *h5Array) ReadInt64(idx []int, dst []int64) error {
+	if !a.dtype.IsInt() {
+		return fmt.Errorf("loader: %s: %s array read as integers", a.label(), a.dtype)
+	}
+	n, err := checkSub(a.label(), a.shape, idx, len(dst))
+	if err != nil || n == 0 {
+		return err
+	}
+	if a.enum {
+		b, err := a.readEnum(idx, n)
+		if err != nil {
+			return err
+		}
+		for i, v := range b {
+			dst[i] = int64(v)
+		}
+		return nil
+	}
+	return a.read(idx, n, C.heed_native_llong(), unsafe.Pointer(&dst[0]))
+}
+
+func (a *h5Array) ReadStrings() ([]string, error) {
+	if a.dtype != String {
+		return nil, fmt.Errorf("loader: %s: %s array read as strings", a.label(), a.dtype)
+	}
+	n := prod(a.shape)
+	out := make([]string, n)
+	if n == 0 {
+		return out, nil
+	}
+	if a.strVar {
+		if err := a.file.life.enter(); err != nil {
+			return nil, err
+		}
+		defer a.file.life.leave()
+		h5mu.Lock()
+		defer h5mu.Unlock()
+		mt := C.heed_vlen_str(a.cset)
+		if mt < 0 {
+			return nil, fmt.Errorf("loader: %s: cannot build a string type", a.label())
+		}
+		defer C.H5Tclose(mt)
+		mem := C.calloc(C.size_t(n), C.size_t(unsafe.Sizeof(uintptr(0))))
+		if mem == nil {
+			return nil, fmt.Errorf("loader: %s: out of memory", a.label())
+		}
+		defer C.free(mem)
+		ptrs := unsafe.Slice((**C.char)(mem), n)
+		if err := a.readLocked(nil, n, mt, mem); err != nil {
+			return nil, err
+		}
+		for i, p := range ptrs {
+			if p != nil {
+				out[i] = C.GoString(p)
+			}
+		}
+		sp, err := hdf5.CreateSimpleDataspace([]uint{uint(n)}, nil)
+		if err == nil {
+			C.heed_reclaim(mt, C.hid_t(sp.ID()), mem)
+			sp.Close()
+		}
+		return out, nil
+	}
+	if a.strSize == 0 {
+		return out, nil
+	}
+	if int64(n)*int64(a.strSize) > 1<<31 {
+		return nil, fmt.Errorf("loader: %s: %d strings of %d bytes is too much to read", a.label(), n, a.strSize)
+	}
+	buf := make([]byte, n*a.strSize)
+	if err := a.read(nil, n, a.ftype, unsafe.Pointer(&buf[0])); err != nil {
+		return nil, err
+	}
+	for i := range out {
+		out[i] = trimNul(buf[i*a.strSize : (i+1)*a.strSize])
+	}
+	return out, nil
+}
