@@ -1,6 +1,9 @@
 package main
 
 import (
+	"errors"
+	"fmt"
+
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
@@ -31,4 +34,22 @@ func (lf *loadFlags) options() loader.Options {
 	o.Prefix = lf.prefix
 	o.KVHeads = lf.kvHeads
 	return o
+}
+
+// openSet opens the examples named by args (files, directories, @LIST
+// files) with the overrides of lf. Every example is checked up front, so a
+// bad input fails here with one line naming the file and the array.
+func openSet(args []string, lf *loadFlags) (*loader.Set, error) {
+	if len(args) == 0 {
+		return nil, errors.New("no export files given")
+	}
+	switch loader.Kind(lf.kind) {
+	case loader.KindUnknown, loader.KindCausal, loader.KindBidirectional, loader.KindCross:
+	default:
+		return nil, fmt.Errorf("--kind %q: must be causal, bidirectional or cross", lf.kind)
+	}
+	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 {
+		return nil, errors.New("--window, --prefix and --kv-heads must not be negative")
+	}
+	return loader.OpenSet(args, lf.options())
 }

@@ -1,0 +1,274 @@
+package main
+
+import (
+	"encoding/json"
+	"fmt"
+	"io"
+	"strconv"
+	"strings"
+
+	"github.com/heed-dev/heed/loader"
+	"github.com/spf13/cobra"
+)
+
+// newInfoCmd returns "heed info FILE... [--json]": what an export holds and
+// which rules heed check will apply to it.
+func newInfoCmd() *cobra.Command {
+	lf := &loadFlags{}
+	var asJSON bool
+	cmd := &cobra.Command{
+		Use:   "info FILE...",
+		Short: "Show blocks, shapes, dtypes, tokens and the rules that will apply",
+		Long: `info lists each block of the export (name, kind, dtype, layers, batch, heads,
+queries, keys), its token sides with their first tokens, which optional
+arrays are present (grad, allow, valid, segments, out) and the rules
+"heed check" will apply. Several files, a directory or @LIST open as one set
+of examples; info describes the first and checks that the others match it.`,
+		Args: cobra.MinimumNArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			set, err := openSet(args, lf)
+			if err != nil {
+				return err
+			}
+			ex, err := set.Open(0)
+			if err != nil {
+				return err
+			}
+			defer ex.Close()
+			rep := newInfoReport(set, ex)
+			if asJSON {
+				enc := json.NewEncoder(cmd.OutOrStdout())
+				enc.SetIndent("", "  ")
+				return enc.Encode(rep)
+			}
+			rep.writeText(cmd.OutOrStdout())
+			return nil
+		},
+	}
+	lf.register(cmd)
+	cmd.Flags().BoolVar(&asJSON, "json", false, "print JSON (field names are stable, snake_case)")
+	return cmd
+}
+
+// firstTokens is how many tokens info shows per side.
+const firstTokens = 8
+
+// infoReport is the JSON of heed info; field names are part of the command contract.
+type infoReport struct {
+	Files    []string    `json:"files"`
+	Examples int         `json:"examples"`
+	Format   string      `json:"format"`
+	Blocks   []infoBlock `json:"blocks"`
+	Sides    []infoSide  `json:"sides"`
+	Logits   *infoLogits `json:"logits"`
+	Warnings []string    `json:"warnings"`
+	files    [][]string  // per example, for the text form
+	ex       *loader.Export
+}
+
+type infoBlock struct {
+	Name        string   `json:"name"`
+	Kind        string   `json:"kind"`
+	DType       string   `json:"dtype"`
+	Layers      int      `json:"layers"`
+	Batch       int      `json:"batch"`
+	Heads       int      `json:"heads"`
+	KVHeads     int      `json:"kv_heads"`
+	Queries     int      `json:"queries"`
+	Keys        int      `json:"keys"`
+	QueryOffset int      `json:"query_offset"`
+	Window      int      `json:"window"`
+	Prefix      int      `json:"prefix"`
+	Axes        string   `json:"axes"`
+	Source      string   `json:"source"`
+	QuerySide   string   `json:"query_side"`
+	KeySide     string   `json:"key_side"`
+	Grad        bool     `json:"grad"`
+	Allow       bool     `json:"allow"`
+	Valid       bool     `json:"valid"`
+	Segments    bool     `json:"segments"`
+	Out         bool     `json:"out"`
+	OutLayers   int      `json:"out_layers"`
+	Positions   int      `json:"positions"`
+	Features    int      `json:"features"`
+	Rules       []string `json:"rules"`
+}
+
+type infoSide struct {
+	Name        string   `json:"name"`
+	Len         int      `json:"len"`
+	Tokens      bool     `json:"tokens"`
+	TokenRows   int      `json:"token_rows"`
+	FirstTokens []string `json:"first_tokens"`
+	Valid       bool     `json:"valid"`
+	Padding     int      `json:"padding"`
+	Segments    bool     `json:"segments"`
+	Documents   int      `json:"documents"`
+}
+
+type infoLogits struct {
+	DType string `json:"dtype"`
+	Shape []int  `json:"shape"`
+}
+
+func kindName(k loader.Kind) string {
+	if k == loader.KindUnknown {
+		return "unknown"
+	}
+	return string(k)
+}
+
+func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
+	r := &infoReport{Examples: set.Len(), Format: ex.Format, Blocks: []infoBlock{}, Sides: []infoSide{},
+		files: set.Examples, ex: ex}
+	for _, e := range set.Examples {
+		r.Files = append(r.Files, e...)
+	}
+	for _, b := range ex.Blocks {
+		qs, ks := ex.Side(b.QuerySide), ex.Side(b.KeySide)
+		rules := ex.Rules(b)
+		if rules == nil {
+			rules = []string{}
+		}
+		r.Blocks = append(r.Blocks, infoBlock{
+			Name: b.Name, Kind: kindName(b.Kind), DType: b.DType.String(),
+			Layers: b.Layers, Batch: b.Batch, Heads: b.Heads, KVHeads: b.KVHeads,
+			Queries: b.Queries, Keys: b.Keys, QueryOffset: b.QueryOffset,
+			Window: b.Window, Prefix: b.Prefix, Axes: b.Axes, Source: b.Source,
+			QuerySide: b.QuerySide, KeySide: b.KeySide,
+			Grad: b.HasGrad, Allow: b.HasAllow,
+			Valid:    qs != nil && qs.Valid != nil || ks != nil && ks.Valid != nil,
+			Segments: qs != nil && qs.Segments != nil || ks != nil && ks.Segments != nil,
+			Out:      b.OutLayers > 0, OutLayers: b.OutLayers, Positions: b.Positions, Features: b.Features,
+			Rules: rules,
+		})
+	}
+	for _, name := range sortedSides(ex) {
+		s := ex.Sides[name]
+		is := infoSide{Name: name, Len: s.Len, Tokens: s.Tokens != nil, TokenRows: len(s.Tokens),
+			FirstTokens: []string{}, Valid: s.Valid != nil, Segments: s.Segments != nil}
+		if len(s.Tokens) > 0 {
+			row := s.Tokens[0]
+			is.FirstTokens = append(is.FirstTokens, row[:min(firstTokens, len(row))]...)
+		}
+		for _, row := range s.Valid {
+			for _, v := range row {
+				if !v {
+					is.Padding++
+				}
+			}
+		}
+		docs := map[[2]int64]bool{}
+		for i, row := range s.Segments {
+			for _, v := range row {
+				docs[[2]int64{int64(i), v}] = true
+			}
+		}
+		is.Documents = len(docs)
+		r.Sides = append(r.Sides, is)
+	}
+	if ex.Logits != nil {
+		r.Logits = &infoLogits{DType: ex.Logits.DType().String(), Shape: ex.Logits.Shape()}
+	}
+	r.Warnings = append([]string{}, ex.Warnings...)
+	return r
+}
+
+func sortedSides(ex *loader.Export) []string {
+	var names []string
+	for n := range ex.Sides {
+		names = append(names, n)
+	}
+	for i := 1; i < len(names); i++ {
+		for j := i; j > 0 && names[j] < names[j-1]; j-- {
+			names[j], names[j-1] = names[j-1], names[j]
+		}
+	}
+	return names
+}
+
+func dash(n int) string {
+	if n <= 0 {
+		return "-"
+	}
+	return strconv.Itoa(n)
+}
+
+func yesNo(b bool) string {
+	if b {
+		return "yes"
+	}
+	return "no"
+}
+
+func (r *infoReport) writeText(w io.Writer) {
+	if len(r.files) == 1 {
+		fmt.Fprintf(w, "export    %s\n", strings.Join(r.files[0], ", "))
+	} else {
+		fmt.Fprintf(w, "examples  %d (the first, %s, is described; every example shares its layout)\n", len(r.files), strings.Join(r.files[0], ", "))
+	}
+	format := r.Format
+	if format == "" {
+		format = "no heed-export/1 metadata"
+	}
+	fmt.Fprintf(w, "format    %s\n", format)
+	for _, b := range r.Blocks {
+		fmt.Fprintf(w, "\nblock %s  (%s, %s)\n", b.Name, b.Kind, b.DType)
+		if b.Layers > 0 {
+			fmt.Fprintf(w, "  attention   %d layers x batch %d x %d heads x %d queries x %d keys   [%s] from %s\n",
+				b.Layers, b.Batch, b.Heads, b.Queries, b.Keys, b.Axes, b.Source)
+			fmt.Fprintf(w, "  settings    kv heads %s, window %s, prefix %s, query offset %d\n", dash(b.KVHeads), dash(b.Window), dash(b.Prefix), b.QueryOffset)
+			q, k := b.QuerySide, b.KeySide
+			if q == "" {
+				q = "-"
+			}
+			if k == "" {
+				k = "-"
+			}
+			fmt.Fprintf(w, "  sides       queries %s, keys %s\n", q, k)
+		}
+		fmt.Fprintf(w, "  present     grad %s, allow %s, valid %s, segments %s, out %s\n", yesNo(b.Grad), yesNo(b.Allow), yesNo(b.Valid), yesNo(b.Segments), yesNo(b.Out))
+		if b.Out {
+			fmt.Fprintf(w, "  activations %d layers x batch %d x %d positions x %d features\n", b.OutLayers, b.Batch, b.Positions, b.Features)
+		}
+		if len(b.Rules) > 0 {
+			fmt.Fprintf(w, "  rules       %s\n", strings.Join(b.Rules, ", "))
+		}
+	}
+	for _, s := range r.Sides {
+		fmt.Fprintf(w, "\nside %s  (%d positions)\n", s.Name, s.Len)
+		if s.Tokens {
+			quoted := make([]string, len(s.FirstTokens))
+			for i, t := range s.FirstTokens {
+				quoted[i] = strconv.Quote(t)
+			}
+			more := ""
+			if s.Len > len(s.FirstTokens) {
+				more = " ..."
+			}
+			rows := "shared by every batch item"
+			if s.TokenRows > 1 {
+				rows = fmt.Sprintf("%d rows, first shown", s.TokenRows)
+			}
+			fmt.Fprintf(w, "  tokens      %s%s  (%s)\n", strings.Join(quoted, " "), more, rows)
+		} else {
+			fmt.Fprintf(w, "  tokens      none (give them with --tokens FILE)\n")
+		}
+		if s.Valid {
+			fmt.Fprintf(w, "  valid       %d padding positions\n", s.Padding)
+		}
+		if s.Segments {
+			fmt.Fprintf(w, "  segments    %d documents\n", s.Documents)
+		}
+	}
+	if r.Logits != nil {
+		fmt.Fprintf(w, "\nlogits      %s %v\n", r.Logits.DType, r.Logits.Shape)
+	}
+	if len(r.Warnings) > 0 {
+		fmt.Fprintf(w, "\nwarnings\n")
+		for _, m := range r.Warnings {
+			fmt.Fprintf(w, "  %s\n", m)
+		}
+	}
+	fmt.Fprintf(w, "\nRules listed are what heed check will test; its findings are evidence to confirm by re-evaluating the model, not verdicts.\n")
+}
