@@ -101,7 +101,10 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 	for i := range fs {
 		f := &fs[i]
 		d := Diagnosis{Block: bp.Name, Rule: f.Rule, Layers: f.Layers, Heads: f.Heads, Batches: f.Batches, At: f.Worst}
-		la := &f.agg.Leaks[f.Rule]
+		var la LeakAcc
+		if f.Rule.IsMask() {
+			la = f.agg.Leaks[f.Rule]
+		}
 		where := fmt.Sprintf("%s %s %s, %s %s, batch %s", bp.Name, plural(len(f.Layers), "layer", "layers"), list(f.Layers),
 			plural(len(f.Heads), "head", "heads"), list(f.Heads), list(f.Batches))
 		if f.Rule.IsMask() {
@@ -256,6 +259,29 @@ func padNaNFirst(bp *BlockPartial) int {
 // whereDiagnosis names where a mask leak is when it is not everywhere.
 func whereDiagnosis(bp *BlockPartial, f *Finding, what Diagnosis) (Diagnosis, bool) {
 	allL, allH, allB := len(f.Layers) == bp.Layers, len(f.Heads) == bp.Heads, len(f.Batches) == bp.Batch
+	// Only a leak that others could have had but did not says where the bug
+	// is: units outside the finding must have had cells this rule forbids.
+	in := func(xs []int, x int) bool {
+		for _, y := range xs {
+			if y == x {
+				return true
+			}
+		}
+		return false
+	}
+	var forbiddenOutside int64
+	for l := 0; l < bp.Layers; l++ {
+		for h := 0; h < bp.Heads; h++ {
+			for b := 0; b < bp.Batch; b++ {
+				if !(in(f.Layers, l) && in(f.Heads, h) && in(f.Batches, b)) {
+					forbiddenOutside += bp.Unit(l, h, b).Leaks[f.Rule].Forbidden
+				}
+			}
+		}
+	}
+	if forbiddenOutside == 0 {
+		return Diagnosis{}, false
+	}
 	d := Diagnosis{Block: bp.Name, Rule: f.Rule, Layers: f.Layers, Heads: f.Heads, Batches: f.Batches, At: f.Worst}
 	d.Evidence = []string{fmt.Sprintf("%s leak (%s) in %d of %d layers, %d of %d heads, %d of %d batch items; the rest is clean for this rule",
 		f.Rule, what.Pattern, len(f.Layers), bp.Layers, len(f.Heads), bp.Heads, len(f.Batches), bp.Batch)}

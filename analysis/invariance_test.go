@@ -1,0 +1,389 @@
+package analysis
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"math"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"reflect"
+	"strings"
+	"testing"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// The fixtures in testdata/invariance are written by gen.py with PyTorch
+// 1.13 (torch.nn.MultiheadAttention with need_weights=False, layer outputs
+// caught by forward hooks). cases.json records what each model got wrong and
+// where the differences must appear; gen.py derives that from the mask it
+// built and asserts it against the differences PyTorch itself produced, so
+// these tests compare heed with PyTorch, not with heed.
+
+const invDir = "../testdata/invariance"
+
+type invCase struct {
+	A, B     string
+	Block    string
+	From     []int
+	Clean    bool
+	BadInput string `json:"bad_input"`
+	Broken   *struct {
+		Layer, Head, Ahead int
+		What               string
+	}
+	Expect struct {
+		FirstLayer int     `json:"first_layer"`
+		Layers     []int   `json:"layers"`
+		Positions  [][]int `json:"positions"`
+		Earliest   []int   `json:"earliest"`
+		Heads      []struct {
+			Layer, Head int
+			Rows        [][]int
+		}
+	}
+	TorchMaxRel float64 `json:"torch_max_rel"`
+}
+
+func invCases(t *testing.T) map[string]invCase {
+	t.Helper()
+	raw, err := os.ReadFile(filepath.Join(invDir, "cases.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var m struct{ Cases map[string]invCase }
+	if err := json.Unmarshal(raw, &m); err != nil {
+		t.Fatal(err)
+	}
+	return m.Cases
+}
+
+func openPair(t *testing.T, c invCase) (*loader.Export, *loader.Export) {
+	t.Helper()
+	a, err := loader.Open([]string{filepath.Join(invDir, c.A)}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { a.Close() })
+	b, err := loader.Open([]string{filepath.Join(invDir, c.B)}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { b.Close() })
+	return a, b
+}
+
+func runCase(t *testing.T, c invCase, opt InvarianceOptions) *Invariance {
+	t.Helper()
+	a, b := openPair(t, c)
+	res, err := CheckInvariance(context.Background(), a, b, opt)
+	if err != nil {
+		t.Fatalf("CheckInvariance(%s, %s) = %v", c.A, c.B, err)
+	}
+	return res
+}
+
+func findingOf(res *Invariance, block string) *InvarianceFinding {
+	for i := range res.Findings {
+		if res.Findings[i].Block == block {
+			return &res.Findings[i]
+		}
+	}
+	return nil
+}
+
+func TestInvarianceCorrectModelIsClean(t *testing.T) {
+	for _, name := range []string{"causal", "prefix"} {
+		c := invCases(t)[name]
+		res := runCase(t, c, NewInvarianceOptions())
+		if !res.Clean() || len(res.Findings) != 0 || len(res.Diagnoses) != 0 {
+			t.Errorf("%s: Clean() = %v, findings %+v, diagnoses %+v; want clean (cases.json: torch found no change)", name, res.Clean(), res.Findings, res.Diagnoses)
+		}
+		if !reflect.DeepEqual(res.From, c.From) || res.Side != "target" {
+			t.Errorf("%s: From = %v on %q, want %v on target", name, res.From, res.Side, c.From)
+		}
+		if len(res.Parts) != 2 || res.Parts[0].Block != c.Block || res.Parts[1].Block != "logits" {
+			t.Fatalf("%s: parts %v, want %s and logits", name, res.Parts, c.Block)
+		}
+		p := res.Parts[0]
+		if p.Tol != InvarianceTol(loader.Float32) || p.DType != loader.Float32 {
+			t.Errorf("%s: tol %v dtype %v, want the f32 default", name, p.Tol, p.DType)
+		}
+		_, rel := p.Max(0)
+		if name == "causal" && rel != 0 {
+			// Same shapes: PyTorch's passes agree bit for bit before P
+			// (gen.py asserts torch.equal), so heed must see exactly 0.
+			t.Errorf("causal: max rel %v, want 0", rel)
+		}
+		if name == "prefix" {
+			// Other shapes: rounding differs; heed's measure must be of the
+			// order gen.py measured with torch (same formula, float64 here).
+			if rel == 0 || rel > 10*c.TorchMaxRel || rel > p.Tol/10 {
+				t.Errorf("prefix: max rel %v; torch measured %v, tolerance %v", rel, c.TorchMaxRel, p.Tol)
+			}
+		}
+	}
+}
+
+func TestInvarianceNamesTheLeakingLayer(t *testing.T) {
+	for _, name := range []string{"leak", "leak_attn"} {
+		c := invCases(t)[name]
+		res := runCase(t, c, NewInvarianceOptions())
+		if res.Clean() {
+			t.Fatalf("%s: clean, want the leak of %s", name, c.Broken.What)
+		}
+		f := findingOf(res, c.Block)
+		if f == nil {
+			t.Fatalf("%s: no finding for %s: %+v", name, c.Block, res.Findings)
+		}
+		if f.Rule != RuleInvariance || f.Rule.String() != "invariance" {
+			t.Errorf("%s: rule %v", name, f.Rule)
+		}
+		if f.Layers[0] != c.Broken.Layer || !reflect.DeepEqual(f.Layers, c.Expect.Layers) {
+			t.Errorf("%s: layers %v, want %v (first = the broken layer %d)", name, f.Layers, c.Expect.Layers, c.Broken.Layer)
+		}
+		if !reflect.DeepEqual(f.Batches, []int{0, 1}) || !reflect.DeepEqual(f.Positions, c.Expect.Positions) || !reflect.DeepEqual(f.From, c.From) {
+			t.Errorf("%s: batches %v positions %v from %v, want [0 1] %v %v", name, f.Batches, f.Positions, f.From, c.Expect.Positions, c.From)
+		}
+		p := res.Parts[0]
+		for b, want := range c.Expect.Earliest {
+			if got := p.FirstLayer(b); got != c.Broken.Layer {
+				t.Errorf("%s: FirstLayer(%d) = %d, want %d", name, b, got, c.Broken.Layer)
+			}
+			if got := p.Changed(c.Broken.Layer, b); len(got) == 0 || got[0] != want {
+				t.Errorf("%s: item %d earliest changed %v, want %d", name, b, got, want)
+			}
+		}
+		// The logits change at the same positions, and are a finding too.
+		if lf := findingOf(res, "logits"); lf == nil || !reflect.DeepEqual(lf.Positions, c.Expect.Positions) {
+			t.Errorf("%s: logits finding %+v, want positions %v", name, lf, c.Expect.Positions)
+		}
+		d := res.Diagnoses[0]
+		wantText := "position 4 of layer 2 changed when only tokens from 6 on were changed: something at layer 2 reads the future"
+		if d.Pattern != patReadsFuture || !strings.HasPrefix(d.Text, wantText) || !strings.HasSuffix(d.Text, Caveat) {
+			t.Errorf("%s: diagnosis %q %q, want %q ... %q", name, d.Pattern, d.Text, wantText, Caveat)
+		}
+		if d.Value != float64(c.Broken.Layer) || d.At.Layer != c.Broken.Layer || d.At.Query != c.Expect.Earliest[0] {
+			t.Errorf("%s: diagnosis at %+v value %v", name, d.At, d.Value)
+		}
+		reach := "lets query q see keys up to q+2"
+		if !strings.Contains(strings.Join(d.Evidence, "\n"), reach) {
+			t.Errorf("%s: evidence %q lacks %q (the generator's mask is off by %d)", name, d.Evidence, reach, c.Broken.Ahead)
+		}
+		for _, d := range res.Diagnoses {
+			if d.Block == "logits" {
+				t.Errorf("%s: a logits diagnosis %q beside the block's", name, d.Text)
+			}
+		}
+	}
+}
+
+func TestInvarianceHeads(t *testing.T) {
+	c := invCases(t)["leak_attn"]
+	res := runCase(t, c, NewInvarianceOptions())
+	type hk struct{ l, h int }
+	got := map[hk][][]int{}
+	for _, h := range res.Heads {
+		k := hk{h.Layer, h.Head}
+		for len(got[k]) <= h.Batch {
+			got[k] = append(got[k], nil)
+		}
+		got[k][h.Batch] = h.Rows
+	}
+	want := map[hk][][]int{}
+	for _, h := range c.Expect.Heads {
+		want[hk{h.Layer, h.Head}] = h.Rows
+	}
+	if !reflect.DeepEqual(got, want) {
+		t.Errorf("heads %v, want %v (cases.json, from torch)", got, want)
+	}
+	f := findingOf(res, c.Block)
+	if f == nil || !reflect.DeepEqual(f.Heads, []int{c.Broken.Head}) {
+		t.Fatalf("finding heads %+v, want [%d]", f, c.Broken.Head)
+	}
+	var hd *Diagnosis
+	for i := range res.Diagnoses {
+		if res.Diagnoses[i].Pattern == patFutureHeads {
+			hd = &res.Diagnoses[i]
+		}
+	}
+	if hd == nil || !reflect.DeepEqual(hd.Heads, []int{1}) || hd.Layers[0] != 2 ||
+		!strings.HasPrefix(hd.Text, "at layer 2 only head 1 of 4 changed their rows before P") {
+		t.Errorf("heads diagnosis %+v", hd)
+	}
+	// Without attention (leak_*) there is no heads diagnosis and no heads.
+	res = runCase(t, invCases(t)["leak"], NewInvarianceOptions())
+	if len(res.Heads) != 0 || len(findingOf(res, "decoder").Heads) != 0 {
+		t.Errorf("leak without attention: heads %v", res.Heads)
+	}
+}
+
+func TestInvarianceEncoderIsNotCausal(t *testing.T) {
+	c := invCases(t)["encoder"]
+	res := runCase(t, c, NewInvarianceOptions())
+	f := findingOf(res, "encoder")
+	if f == nil || f.Layers[0] != 0 || !reflect.DeepEqual(f.Positions, c.Expect.Positions) || !reflect.DeepEqual(f.Layers, c.Expect.Layers) {
+		t.Fatalf("encoder finding %+v, want every position before P at layers %v: %v", f, c.Expect.Layers, c.Expect.Positions)
+	}
+	d := res.Diagnoses[0]
+	if d.Pattern != patNotCausal || !strings.Contains(d.Text, "not causal") || !strings.Contains(d.Text, "declares it bidirectional") {
+		t.Errorf("encoder diagnosis %q: %q", d.Pattern, d.Text)
+	}
+}
+
+func TestInvarianceFrom(t *testing.T) {
+	cs := invCases(t)
+	// P = 3 for both items: the correct model is clean before 3.
+	opt := NewInvarianceOptions()
+	opt.From = 3
+	res := runCase(t, cs["causal"], opt)
+	if !res.Clean() || res.Side != "" || !reflect.DeepEqual(res.From, []int{3, 3}) {
+		t.Errorf("causal --from 3: clean %v side %q from %v", res.Clean(), res.Side, res.From)
+	}
+	// P = 6 for both: item 1's tokens change from 7 on, its leak reaches 5
+	// and 6 (cases.json), so before 6 only position 5 is left.
+	opt.From = 6
+	res = runCase(t, cs["leak"], opt)
+	f := findingOf(res, "decoder")
+	if f == nil || !reflect.DeepEqual(f.Positions, [][]int{{4, 5}, {5}}) {
+		t.Errorf("leak --from 6: finding %+v, want positions [[4 5] [5]]", f)
+	}
+	// A larger tolerance than the leak's largest difference hides it.
+	opt = NewInvarianceOptions()
+	opt.Tol = 0.5
+	if res := runCase(t, cs["leak"], opt); !res.Clean() {
+		t.Errorf("leak --tol 0.5: findings %+v", res.Findings)
+	}
+}
+
+func TestInvarianceBadInput(t *testing.T) {
+	cs := invCases(t)
+	c := cs["mismatch"]
+	a, b := openPair(t, c)
+	_, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	if err == nil || !strings.Contains(err.Error(), "decoder/out") || !strings.Contains(err.Error(), "layer 4") || !strings.Contains(err.Error(), "layer 3") {
+		t.Errorf("mismatch: err = %v, want a shape error naming decoder/out and both layer counts (%s)", err, c.BadInput)
+	}
+	// The same export twice: nothing changed, nothing tells P.
+	a, _ = openPair(t, cs["causal"])
+	_, err = CheckInvariance(context.Background(), a, a, NewInvarianceOptions())
+	if err == nil || !strings.Contains(err.Error(), "tokens are the same") {
+		t.Errorf("same export: err = %v", err)
+	}
+	// A decoder against an encoder: blocks do not pair up.
+	a, b = openPair(t, invCase{A: "causal_a.npz", B: "encoder_b.npz"})
+	if _, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions()); err == nil || !strings.Contains(err.Error(), "decoder/out: in") {
+		t.Errorf("decoder vs encoder: err = %v", err)
+	}
+	// Cancelled.
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	a, b = openPair(t, cs["causal"])
+	if _, err := CheckInvariance(ctx, a, b, NewInvarianceOptions()); !errors.Is(err, context.Canceled) {
+		t.Errorf("cancelled: err = %v", err)
+	}
+}
+
+// TestInvarianceFixturesMatchTorch regenerates the fixtures with PyTorch and
+// compares them with the committed files (gen.py --check).
+func TestInvarianceFixturesMatchTorch(t *testing.T) {
+	py := pythonWithTorch(t)
+	cmd := exec.Command(py, filepath.Join(invDir, "gen.py"), "--check")
+	if out, err := cmd.CombinedOutput(); err != nil {
+		t.Fatalf("gen.py --check: %v\n%s", err, out)
+	}
+}
+
+func pythonWithTorch(t *testing.T) string {
+	t.Helper()
+	py := os.Getenv("HEED_PYTHON")
+	if py == "" {
+		py = "/usr/bin/python3"
+	}
+	if err := exec.Command(py, "-c", "import torch, numpy").Run(); err != nil {
+		if os.Getenv("CI") != "" {
+			t.Fatalf("%s cannot import torch and numpy (%v); scripts/install-deps.sh installs them", py, err)
+		}
+		t.Skipf("%s cannot import torch and numpy: %v", py, err)
+	}
+	return py
+}
+
+func TestInvarianceDiff(t *testing.T) {
+	nan, inf := math.NaN(), math.Inf(1)
+	for _, c := range []struct{ a, b, scale, abs, rel float64 }{
+		{1, 1, 1, 0, 0},
+		{1.5, 1, 1, 0.5, 0.25},           // |a-b| / (|b| + rms)
+		{0, 1e-3, 0, 1e-3, 1},            // no scale: purely relative
+		{nan, nan, 1, 0, 0},              // NaN on both sides: the same
+		{nan, 1, 1, inf, inf},            // NaN on one side: changed
+		{inf, inf, 1, 0, 0},              // equal infinities
+		{inf, -inf, 1, inf, inf},         // opposite infinities
+		{0, 0, rmsFloor, 0, 0},           // zeros agree
+		{1e-20, 0, rmsFloor, 1e-20, inf}, // anything against an all-zero layer
+	} {
+		abs, rel := diff(c.a, c.b, c.scale)
+		if abs != c.abs || (rel != c.rel && !(math.IsInf(c.rel, 1) && rel > 1e9)) {
+			t.Errorf("diff(%v, %v, %v) = %v, %v, want %v, %v", c.a, c.b, c.scale, abs, rel, c.abs, c.rel)
+		}
+	}
+}
+
+func TestInvarianceTol(t *testing.T) {
+	// Epsilons (IEEE 754 binary16, binary32; bfloat16 has 8 significand
+	// bits): each tolerance is several times the rounding measured by
+	// calibrate.py (1.8 epsilons), and below the smallest leak of the
+	// fixtures (6.6e-3 relative in f32).
+	for _, c := range []struct {
+		d   loader.DType
+		eps float64
+	}{{loader.Float32, 0x1p-23}, {loader.Float64, 0x1p-23}, {loader.Float16, 0x1p-10}, {loader.BFloat16, 0x1p-7}} {
+		tol := InvarianceTol(c.d)
+		if tol < 4*1.8*c.eps {
+			t.Errorf("InvarianceTol(%v) = %v, want >= 4 x 1.8 eps = %v", c.d, tol, 4*1.8*c.eps)
+		}
+	}
+	if InvarianceTol(loader.Float32) >= 6.6e-3 {
+		t.Errorf("f32 tolerance %v would hide the fixture's leak", InvarianceTol(loader.Float32))
+	}
+}
+
+func TestInvarianceSpan(t *testing.T) {
+	for _, c := range []struct {
+		in   []int
+		want string
+	}{{nil, ""}, {[]int{4}, "4"}, {[]int{4, 5}, "4, 5"}, {[]int{0, 1, 2, 7}, "0-2, 7"}, {[]int{1, 3, 4, 5, 9, 10}, "1, 3-5, 9, 10"}} {
+		if got := span(c.in); got != c.want {
+			t.Errorf("span(%v) = %q, want %q", c.in, got, c.want)
+		}
+	}
+}
+
+func TestInvarianceSideFrom(t *testing.T) {
+	tok := func(rows ...string) *loader.Side {
+		s := &loader.Side{}
+		for _, r := range rows {
+			s.Tokens = append(s.Tokens, strings.Fields(r))
+		}
+		s.Len = len(s.Tokens[0])
+		return s
+	}
+	for _, c := range []struct {
+		a, b    *loader.Side
+		batch   int
+		want    []int
+		changed bool
+	}{
+		{tok("x y z w"), tok("x y q w"), 1, []int{2}, true},
+		{tok("x y z w", "a b c d"), tok("x y z q", "a b c d"), 2, []int{3, 4}, true}, // item 1 unchanged: whole row judged
+		{tok("x y z w"), tok("x y"), 1, []int{2}, true},                              // B shorter: P = its length
+		{tok("x y z w"), tok("x y z w"), 2, []int{4, 4}, false},                      // shared [seq] tokens, no change
+	} {
+		got, ch := sideFrom(c.a, c.b, c.batch)
+		if !reflect.DeepEqual(got, c.want) || ch != c.changed {
+			t.Errorf("sideFrom(%v, %v) = %v, %v, want %v, %v", c.a.Tokens, c.b.Tokens, got, ch, c.want, c.changed)
+		}
+	}
+}

@@ -1,0 +1,156 @@
+package analysis
+
+import (
+	"context"
+	"math"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"testing"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// The worked example of methods.md (derived from Abnar & Zuidema 2020's
+// definitions): A1 = [[1,0],[.5,.5]], A2 = [[1,0],[.2,.8]] give the rollout
+// [[1,0],[0.325,0.675]] and the flow from top token 1 to the inputs [0.35, 0.75].
+func TestRolloutFlowWorkedExample(t *testing.T) {
+	layers := func() [][]float64 {
+		l := [][]float64{{1, 0, .5, .5}, {1, 0, .2, .8}}
+		for _, m := range l {
+			ResidualRows(m, 2)
+		}
+		return l
+	}
+	for q, want := range [][]float64{{1, 0}, {0.325, 0.675}} {
+		got := RolloutRow(layers(), 2, q)
+		for i := range want {
+			if !near(got[i], want[i], 1e-12) {
+				t.Errorf("rollout row %d = %v, want %v", q, got, want)
+			}
+		}
+	}
+	got, err := Flow(context.Background(), layers(), 2, 1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !near(got[0], 0.35, 1e-12) || !near(got[1], 0.75, 1e-12) {
+		t.Errorf("flow from top token 1 = %v, want [0.35 0.75]", got)
+	}
+}
+
+func traceOf(t *testing.T, path string, opt TraceOptions) *TraceResult {
+	t.Helper()
+	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	ex, err := set.Open(0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	r, err := Trace(context.Background(), ex, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return r
+}
+
+// TestRolloutAgainstNumpy: rollout rows equal numpy's matrix product of the
+// residual-augmented head means (gen_cases.py), and rows sum to 1; causal
+// rollout has nothing above the diagonal.
+func TestRolloutAgainstNumpy(t *testing.T) {
+	ref := loadExpected(t).Refs.Stats.Rollout
+	for q, want := range ref {
+		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), TraceOptions{Method: MethodRollout, Query: q})
+		var sum float64
+		for i, tok := range r.Tokens {
+			sum += tok.Share
+			if !near(tok.Share, want[i], 1e-6) {
+				t.Errorf("rollout q%d token %d = %v, want %v (numpy)", q, i, tok.Share, want[i])
+			}
+			if i > q && tok.Share != 0 {
+				t.Errorf("rollout q%d has mass %v above the diagonal at %d", q, tok.Share, i)
+			}
+		}
+		if !near(sum, 1, 1e-9) || !r.Normalised {
+			t.Errorf("rollout q%d sums to %v", q, sum)
+		}
+		if q == 0 && r.Tokens[0].Token == "" {
+			t.Error("trace lost the tokens")
+		}
+	}
+}
+
+// TestFlowAgainstScipy: attention flow equals scipy.sparse.csgraph.maximum_flow
+// on the same graph with capacities scaled to integers by 1e6 (so within
+// about edges/1e6).
+func TestFlowAgainstScipy(t *testing.T) {
+	for qs, want := range loadExpected(t).Refs.Stats.Flow {
+		q, _ := strconv.Atoi(qs)
+		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), TraceOptions{Method: MethodFlow, Query: q})
+		for i, tok := range r.Tokens {
+			if math.Abs(tok.Share-want[i]) > 2e-4 {
+				t.Errorf("flow q%d token %d = %v, want %v (scipy maximum_flow)", q, i, tok.Share, want[i])
+			}
+		}
+		if r.Normalised {
+			t.Error("flow says it is normalised")
+		}
+	}
+}
+
+func TestFlowLimit(t *testing.T) {
+	n := 600
+	layers := [][]float64{make([]float64, n*n)}
+	_, err := Flow(context.Background(), layers, n, 0)
+	if err == nil || !strings.Contains(err.Error(), "rollout") {
+		t.Fatalf("flow beyond the limit: err = %v, want a message pointing to rollout", err)
+	}
+}
+
+// TestRelevanceDecoder: Chefer et al. (2021)'s self-attention rule from the
+// exported A and G, against gen_cases.py's numpy version of the same rules.
+func TestRelevanceDecoder(t *testing.T) {
+	ref := loadExpected(t).Refs.Importance.Relevance
+	for q, want := range ref {
+		r := traceOf(t, filepath.Join(casesDir, "importance", "ex0.npz"), TraceOptions{Method: MethodGrad, Query: q})
+		for i, tok := range r.Tokens {
+			if !near(tok.Share, want[i], 1e-6) {
+				t.Errorf("relevance q%d token %d = %v, want %v", q, i, tok.Share, want[i])
+			}
+		}
+	}
+}
+
+// TestRelevanceEncoderDecoder: a target position explained by source tokens
+// through cross-attention (Chefer et al. 2021, encoder-decoder rules), with
+// gradients and with attention only (rollout method on a cross block).
+func TestRelevanceEncoderDecoder(t *testing.T) {
+	ref := loadExpected(t).Refs.EncDec
+	path := filepath.Join(casesDir, "encdec_grad.npz")
+	for _, c := range []struct {
+		m    Method
+		want []float64
+	}{{MethodGrad, ref.Relevance}, {MethodRollout, ref.Attention}} {
+		r := traceOf(t, path, TraceOptions{Method: c.m, Query: ref.Target})
+		if r.Block != "cross" || r.Side != "source" || len(r.Tokens) != len(c.want) {
+			t.Fatalf("%s: block %s side %s, %d tokens", c.m, r.Block, r.Side, len(r.Tokens))
+		}
+		for i, tok := range r.Tokens {
+			if !near(tok.Share, c.want[i], 1e-6) {
+				t.Errorf("%s: source token %d = %v, want %v", c.m, i, tok.Share, c.want[i])
+			}
+		}
+	}
+	set, _ := loader.OpenSet([]string{path}, loader.NewOptions())
+	ex, _ := set.Open(0)
+	defer ex.Close()
+	if _, err := Trace(context.Background(), ex, TraceOptions{Method: MethodFlow, Query: 0}); err == nil {
+		t.Error("flow through cross-attention: no error")
+	}
+	if _, err := Trace(context.Background(), ex, TraceOptions{Query: 99}); err == nil {
+		t.Error("query out of range: no error")
+	}
+}
