@@ -65,8 +65,8 @@ type statsRefs struct {
 		refStats
 		Batch []refStats `json:"batch"`
 	} `json:"heads"`
-	Rollout [][]float64            `json:"rollout_batch0"`
-	Flow    map[string][]float64   `json:"flow_batch0"`
+	Rollout [][]float64          `json:"rollout_batch0"`
+	Flow    map[string][]float64 `json:"flow_batch0"`
 }
 
 type refStats struct {
