@@ -1,0 +1,269 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"math"
+	"strings"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
+	"github.com/spf13/cobra"
+)
+
+// againstFlags are heed check's flags for the causal-invariance check:
+// `heed check A --against B [--from P]`.
+type againstFlags struct {
+	against []string
+	from    int
+}
+
+func (af *againstFlags) register(cmd *cobra.Command) {
+	f := cmd.Flags()
+	f.StringSliceVar(&af.against, "against", nil, "export B of the same model on inputs that agree with A's before P and differ from P on: check that nothing before P changed (causal invariance; needs BLOCK/out, logits or attention in both)")
+	f.IntVar(&af.from, "from", -1, "with --against: the first changed position P (default: the first token that differs)")
+}
+
+// active reports whether the invariance check takes over the check command
+// (--against or --from given).
+func (af *againstFlags) active(cmd *cobra.Command) bool {
+	return cmd.Flags().Changed("against") || cmd.Flags().Changed("from")
+}
+
+// runAgainst opens A (args) and B (--against), compares them with
+// analysis.CheckInvariance and prints the result as text or JSON to w. It
+// returns a *findingsError when a position before P changed (exit 1) and
+// any other error for input that cannot be compared (exit 2). tol > 0
+// replaces the dtype's tolerance.
+func runAgainst(ctx context.Context, w io.Writer, args []string, af *againstFlags, opt loader.Options, tol float64, asJSON bool) error {
+	switch {
+	case len(af.against) == 0:
+		return fmt.Errorf("--from needs --against B (the second export to compare A with)")
+	case len(args) == 0:
+		return fmt.Errorf("--against needs the export A to compare: heed check A --against B")
+	case af.from < -1:
+		return fmt.Errorf("--from %d: want a position >= 0", af.from)
+	case tol < 0 || math.IsNaN(tol) || math.IsInf(tol, 0):
+		return fmt.Errorf("--tol %v: want a finite tolerance > 0", tol)
+	}
+	a, err := loader.Open(args, opt)
+	if err != nil {
+		return err
+	}
+	defer a.Close()
+	b, err := loader.Open(af.against, opt)
+	if err != nil {
+		return err
+	}
+	defer b.Close()
+	o := analysis.NewInvarianceOptions()
+	o.From = af.from
+	o.Tol = tol
+	res, err := analysis.CheckInvariance(ctx, a, b, o)
+	if err != nil {
+		return err
+	}
+	if asJSON {
+		if err := writeInvarianceJSON(w, res); err != nil {
+			return err
+		}
+	} else {
+		writeInvarianceText(w, res, strings.Join(args, " "), strings.Join(af.against, " "))
+	}
+	if !res.Clean() {
+		return &findingsError{n: len(res.Findings)}
+	}
+	return nil
+}
+
+// invariancePartJSON summarises one analysis.InvariancePart per layer.
+type invariancePartJSON struct {
+	Block     string  `json:"block"`
+	Kind      string  `json:"kind"`
+	DType     string  `json:"dtype"`
+	Tol       float64 `json:"tol"`
+	Layers    int     `json:"layers"`
+	Batch     int     `json:"batch"`
+	Positions int     `json:"positions"`
+	From      []int   `json:"from"`
+	// FirstLayer per batch item, -1 when nothing before P changed.
+	FirstLayer []int `json:"first_layer"`
+	// MaxAbs and MaxRel per layer, over batch items and positions before P.
+	MaxAbs []float64 `json:"max_abs"`
+	MaxRel []float64 `json:"max_rel"`
+	// Changed[layer][batch] are the positions before P that changed.
+	Changed [][][]int `json:"changed"`
+}
+
+type invarianceDetailJSON struct {
+	Side  string                `json:"side"`
+	From  []int                 `json:"from"`
+	Parts []invariancePartJSON  `json:"parts"`
+	Heads []analysis.HeadChange `json:"heads"`
+}
+
+type invarianceJSON struct {
+	Clean     bool                         `json:"clean"`
+	Findings  []analysis.InvarianceFinding `json:"findings"`
+	Diagnosis []analysis.Diagnosis         `json:"diagnosis"`
+	Detail    invarianceDetailJSON         `json:"invariance"`
+	Notes     []string                     `json:"notes"`
+	Caveat    string                       `json:"caveat"`
+}
+
+// jsonNum keeps a number encodable: JSON has no infinity.
+func jsonNum(x float64) float64 {
+	if math.IsInf(x, 0) || math.IsNaN(x) {
+		return math.MaxFloat64
+	}
+	return x
+}
+
+func partJSON(p *analysis.InvariancePart) invariancePartJSON {
+	j := invariancePartJSON{Block: p.Block, Kind: string(p.Kind), DType: p.DType.String(), Tol: p.Tol,
+		Layers: p.Layers, Batch: p.Batch, Positions: p.Positions, From: p.From,
+		FirstLayer: make([]int, p.Batch), MaxAbs: make([]float64, p.Layers), MaxRel: make([]float64, p.Layers),
+		Changed: make([][][]int, p.Layers)}
+	for b := 0; b < p.Batch; b++ {
+		j.FirstLayer[b] = p.FirstLayer(b)
+	}
+	for l := 0; l < p.Layers; l++ {
+		j.Changed[l] = make([][]int, p.Batch)
+		for b := 0; b < p.Batch; b++ {
+			j.Changed[l][b] = p.Changed(l, b)
+			if j.Changed[l][b] == nil {
+				j.Changed[l][b] = []int{}
+			}
+			for pos := 0; pos < p.From[b]; pos++ {
+				if p.Pad != nil && p.Pad[b][pos] {
+					continue
+				}
+				j.MaxAbs[l] = math.Max(j.MaxAbs[l], jsonNum(p.Abs[l][b][pos]))
+				j.MaxRel[l] = math.Max(j.MaxRel[l], jsonNum(p.Rel[l][b][pos]))
+			}
+		}
+	}
+	return j
+}
+
+func writeInvarianceJSON(w io.Writer, res *analysis.Invariance) error {
+	out := invarianceJSON{Clean: res.Clean(), Findings: res.Findings, Diagnosis: res.Diagnoses,
+		Detail: invarianceDetailJSON{Side: res.Side, From: res.From, Parts: []invariancePartJSON{}, Heads: res.Heads},
+		Notes:  res.Notes, Caveat: analysis.Caveat}
+	if out.Findings == nil {
+		out.Findings = []analysis.InvarianceFinding{}
+	}
+	if out.Diagnosis == nil {
+		out.Diagnosis = []analysis.Diagnosis{}
+	}
+	if out.Detail.Heads == nil {
+		out.Detail.Heads = []analysis.HeadChange{}
+	}
+	if out.Notes == nil {
+		out.Notes = []string{}
+	}
+	for i := range out.Detail.Heads {
+		out.Detail.Heads[i].MaxAbs = jsonNum(out.Detail.Heads[i].MaxAbs)
+		out.Detail.Heads[i].MaxRel = jsonNum(out.Detail.Heads[i].MaxRel)
+	}
+	for _, p := range res.Parts {
+		out.Detail.Parts = append(out.Detail.Parts, partJSON(p))
+	}
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(out)
+}
+
+func fromText(res *analysis.Invariance) string {
+	same := true
+	for _, f := range res.From {
+		same = same && f == res.From[0]
+	}
+	if len(res.From) == 0 {
+		return "P unknown"
+	}
+	if same {
+		return fmt.Sprintf("P = %d", res.From[0])
+	}
+	parts := make([]string, len(res.From))
+	for i, f := range res.From {
+		parts[i] = fmt.Sprintf("%d (item %d)", f, i)
+	}
+	return "P = " + strings.Join(parts, ", ")
+}
+
+func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB string) {
+	where := "given by --from"
+	if res.Side != "" {
+		where = "first differing token of tokens/" + res.Side
+	}
+	fmt.Fprintf(w, "causal invariance: %s against %s, %s (%s)\n", nameA, nameB, fromText(res), where)
+	for _, p := range res.Parts {
+		j := partJSON(p)
+		state := "agrees before P"
+		for _, fl := range j.FirstLayer {
+			if fl >= 0 {
+				state = "CHANGED before P"
+			}
+		}
+		fmt.Fprintf(w, "\n%s  %s, tolerance %.3g: %s\n", p.Block, p.DType, p.Tol, state)
+		fmt.Fprintf(w, "  %-6s %-12s %-12s %s\n", "layer", "max |a-b|", "max rel", "changed before P")
+		for l := 0; l < p.Layers; l++ {
+			var ch []string
+			for b := 0; b < p.Batch; b++ {
+				if len(j.Changed[l][b]) > 0 {
+					ch = append(ch, fmt.Sprintf("item %d: %s", b, positions(j.Changed[l][b])))
+				}
+			}
+			label := fmt.Sprint(l)
+			if p.Block == "logits" {
+				label = "-"
+			}
+			fmt.Fprintf(w, "  %-6s %-12.3g %-12.3g %s\n", label, j.MaxAbs[l], j.MaxRel[l], strings.Join(ch, "; "))
+		}
+	}
+	if len(res.Heads) > 0 {
+		fmt.Fprintf(w, "\nheads whose rows before P changed:\n")
+		for _, h := range res.Heads {
+			fmt.Fprintf(w, "  %s layer %d head %d item %d: rows %s (max |a-b| %.3g)\n", h.Block, h.Layer, h.Head, h.Batch, positions(h.Rows), jsonNum(h.MaxAbs))
+		}
+	}
+	for _, n := range res.Notes {
+		fmt.Fprintf(w, "\nnote: %s\n", n)
+	}
+	if len(res.Diagnoses) > 0 {
+		fmt.Fprintf(w, "\ndiagnosis:\n")
+		for _, d := range res.Diagnoses {
+			fmt.Fprintf(w, "  [%s] %s\n", d.Pattern, d.Text)
+			if d.Check != "" {
+				fmt.Fprintf(w, "    check: %s\n", d.Check)
+			}
+			for _, e := range d.Evidence {
+				fmt.Fprintf(w, "    - %s\n", e)
+			}
+		}
+	}
+	if res.Clean() {
+		fmt.Fprintf(w, "\nclean: no position before P changed beyond the tolerance. One pair tests one change of the input: other inputs or lengths may still leak. %s\n", analysis.Caveat)
+	}
+}
+
+// positions writes sorted positions compactly ("4-5", "0, 2, 7-9").
+func positions(xs []int) string {
+	var out []string
+	for i := 0; i < len(xs); {
+		j := i
+		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
+			j++
+		}
+		if j > i {
+			out = append(out, fmt.Sprintf("%d-%d", xs[i], xs[j]))
+		} else {
+			out = append(out, fmt.Sprint(xs[i]))
+		}
+		i = j + 1
+	}
+	return strings.Join(out, ", ")
+}
