@@ -260,7 +260,7 @@ func outSource(blk *loader.Block, file string) *source {
 		buf        []float32
 		cur        = [2]int{-1, -1}
 		n          = blk.Features
-		src        = &source{name: blk.Name + "/out", file: file, layers: blk.OutLayers, batch: blk.Batch, positions: blk.Positions, features: n, dtype: blk.DType}
+		src        = &source{name: blk.Name + "/out", file: file, layers: blk.OutLayers, batch: blk.Batch, positions: blk.Positions, features: n, dtype: blk.OutDType}
 		readMatrix = func(layer, batch int) error {
 			if cur == [2]int{layer, batch} {
 				return nil

@@ -387,3 +387,89 @@ func TestInvarianceSideFrom(t *testing.T) {
 		}
 	}
 }
+
+// memPair builds two in-memory exports of one causal block: attention
+// (f32, uniform causal rows: the same in A and B), activations outA / outB
+// of dtype d with shape [1, 1, n, 2], and tokens that differ from `from` on.
+func memPair(t *testing.T, d loader.DType, n, from int, outA, outB []float64, valid []float64) (*loader.Export, *loader.Export) {
+	t.Helper()
+	attn := make([]float64, n*n)
+	for q := 0; q < n; q++ {
+		for k := 0; k <= q; k++ {
+			attn[q*n+k] = 1 / float64(q+1)
+		}
+	}
+	mk := func(out []float64, changed bool) *loader.Export {
+		toks := make([]string, n)
+		for i := range toks {
+			toks[i] = "w" + string(rune('a'+i))
+			if changed && i >= from {
+				toks[i] = "v" + string(rune('a'+i))
+			}
+		}
+		arrs := []loader.Array{
+			loader.NewMemArray("decoder/attn", loader.Float32, []int{1, 1, 1, n, n}, attn),
+			loader.NewMemArray("decoder/out", d, []int{1, 1, n, 2}, out),
+			loader.NewMemStrings("tokens/target", []int{1, n}, toks),
+		}
+		if valid != nil {
+			arrs = append(arrs, loader.NewMemArray("valid/target", loader.Bool, []int{1, n}, valid))
+		}
+		ex, err := loader.Assemble(arrs, `{"format":"heed-export/1","blocks":{"decoder":{"kind":"causal","query":"target","key":"target"}}}`, loader.NewOptions())
+		if err != nil {
+			t.Fatal(err)
+		}
+		return ex
+	}
+	return mk(outA, false), mk(outB, true)
+}
+
+func TestInvarianceOutDType(t *testing.T) {
+	// Activations stored in f16 beside f32 attention: the f16 tolerance
+	// applies to them. Position 1 differs by 2 f16 ulps of 1.0 (2^-9):
+	// rounding for f16, a change for f32.
+	outA := []float64{1, 1, 1, 1, 0.5, 0.5}
+	outB := []float64{1, 1, 1 + 0x1p-9, 1, 0.7, 0.1}
+	a, b := memPair(t, loader.Float16, 3, 2, outA, outB, nil)
+	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	p := res.Parts[0]
+	if p.DType != loader.Float16 || p.Tol != InvarianceTol(loader.Float16) || !res.Clean() {
+		t.Errorf("f16 out: dtype %v tol %v clean %v (rel %v)", p.DType, p.Tol, res.Clean(), p.Rel[0][0])
+	}
+	opt := NewInvarianceOptions()
+	opt.Tol = 1e-5
+	if res, _ := CheckInvariance(context.Background(), a, b, opt); res.Clean() || !reflect.DeepEqual(res.Findings[0].Positions, [][]int{{1}}) {
+		t.Errorf("f16 out with --tol 1e-5: want position 1 changed, got %+v", res.Findings)
+	}
+}
+
+func TestInvariancePaddingNotJudged(t *testing.T) {
+	// Position 0 is padding (valid = 0): NaN on one side there is not
+	// judged; position 1 is real and changed.
+	nan := math.NaN()
+	outA := []float64{nan, nan, 1, 2, 3, 4, 5, 6}
+	outB := []float64{0, 0, 1, 2.5, 3, 4, 9, 9}
+	a, b := memPair(t, loader.Float32, 4, 3, outA, outB, []float64{0, 1, 1, 1})
+	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	f := findingOf(res, "decoder")
+	if f == nil || !reflect.DeepEqual(f.Positions, [][]int{{1}}) || f.JudgedRows != 2 {
+		t.Fatalf("padding: finding %+v, want position 1 only, 2 judged cells", f)
+	}
+	if _, err := json.Marshal(res.Findings); err != nil {
+		t.Errorf("findings do not encode: %v", err)
+	}
+	// Without padding the NaN at position 0 is a change, encoded finitely.
+	a, b = memPair(t, loader.Float32, 4, 3, outA, outB, nil)
+	res, _ = CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	if f := findingOf(res, "decoder"); f == nil || !reflect.DeepEqual(f.Positions, [][]int{{0, 1}}) || f.MaxRel != math.MaxFloat64 {
+		t.Errorf("NaN on one side: finding %+v", f)
+	} else if _, err := json.Marshal(res.Findings); err != nil {
+		t.Errorf("findings with NaN do not encode: %v", err)
+	}
+}

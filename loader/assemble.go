@@ -826,6 +826,7 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 			return nil, ferr(o0, "an axis is empty (shape %v)", sh)
 		}
 		b.OutLayers, b.Positions, b.Features = layers, sh[rank-2], sh[rank-1]
+		b.OutDType = o0.DType()
 		if len(attnArrs) == 0 {
 			b.Batch = batch
 			b.DType = o0.DType()

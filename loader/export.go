@@ -151,6 +151,8 @@ type Block struct {
 	OutLayers int
 	Positions int
 	Features  int
+	// OutDType is the element type of the activations (Invalid without them).
+	OutDType DType
 
 	attn  []slab // per layer
 	grad  []slab // per layer, nil without gradients
