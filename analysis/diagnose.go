@@ -61,6 +61,17 @@ func list(xs []int) string {
 	return strings.Join(s, ", ")
 }
 
+// which names a set of indices: "all 4 heads", "head 2", "heads 1, 3".
+func which(xs []int, total int, one, many string) string {
+	switch {
+	case len(xs) == total && total > 1:
+		return fmt.Sprintf("all %d %s", total, many)
+	case len(xs) == 1:
+		return fmt.Sprintf("%s %d", one, xs[0])
+	}
+	return many + " " + list(xs)
+}
+
 func plural(n int, one, many string) string {
 	if n == 1 {
 		return one
@@ -105,8 +116,8 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 		if f.Rule.IsMask() {
 			la = f.agg.Leaks[f.Rule]
 		}
-		where := fmt.Sprintf("%s %s %s, %s %s, batch %s", bp.Name, plural(len(f.Layers), "layer", "layers"), list(f.Layers),
-			plural(len(f.Heads), "head", "heads"), list(f.Heads), list(f.Batches))
+		where := fmt.Sprintf("%s %s, %s, %s", bp.Name, which(f.Layers, bp.Layers, "layer", "layers"),
+			which(f.Heads, bp.Heads, "head", "heads"), which(f.Batches, bp.Batch, "batch item", "batch items"))
 		if f.Rule.IsMask() {
 			d.Evidence = append(d.Evidence, fmt.Sprintf("%.4g forbidden mass on %d cells in %d of %d judged rows (%s)", f.Mass, f.Cells, f.Rows, f.JudgedRows, where))
 			if la.Forbidden > 0 {

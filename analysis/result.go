@@ -1,6 +1,7 @@
 package analysis
 
 import (
+	"encoding/json"
 	"fmt"
 	"math"
 	"sort"
@@ -203,12 +204,14 @@ func (p *Partial) Result() *Result {
 			}
 		}
 		res.Blocks = append(res.Blocks, br)
-		fs := findings(bp)
-		res.Findings = append(res.Findings, fs...)
-		res.Diagnoses = append(res.Diagnoses, diagnose(bp, fs)...)
+		res.Findings = append(res.Findings, findings(bp)...)
 		res.Notes = append(res.Notes, notes(bp)...)
 	}
+	// worst first: NaN rows and leaks by mass; diagnoses follow that order
 	sort.SliceStable(res.Findings, func(i, j int) bool { return res.Findings[i].Mass > res.Findings[j].Mass })
+	for _, f := range res.Findings {
+		res.Diagnoses = append(res.Diagnoses, diagnose(p.block(f.Block), []Finding{f})...)
+	}
 	return res
 }
 
@@ -241,6 +244,15 @@ type Location struct {
 	Key     int     `json:"key"` // -1 for row findings
 	Value   float64 `json:"value"`
 	Example string  `json:"example,omitempty"`
+}
+
+// MarshalJSON adds "loc", the location as a LOC string.
+func (l Location) MarshalJSON() ([]byte, error) {
+	type plain Location
+	return json.Marshal(struct {
+		plain
+		Loc string `json:"loc"`
+	}{plain(l), l.String()})
 }
 
 // String formats the location as a LOC.

@@ -45,6 +45,9 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.SilenceErrors = true
 	root.AddCommand(newOpenCmd())
 	root.AddCommand(newInfoCmd())
+	root.AddCommand(newCheckCmd())
+	root.AddCommand(newRankCmd())
+	root.AddCommand(newTraceCmd())
 	return root
 }
 

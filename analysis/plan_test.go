@@ -1,0 +1,92 @@
+package analysis
+
+import (
+	"math"
+	"path/filepath"
+	"reflect"
+	"sort"
+	"testing"
+)
+
+func synthResult(layers, heads, kv int, scores [][]float64, grad bool) *Result {
+	br := &BlockResult{Name: "decoder", Layers: layers, Heads: heads, KVHeads: kv, HasGrad: grad}
+	for l := 0; l < layers; l++ {
+		for h := 0; h < heads; h++ {
+			hs := HeadStats{Layer: l, Head: h, Score: scores[l][h], ImportanceNorm: math.NaN()}
+			if grad {
+				hs.ImportanceNorm = scores[l][h]
+			}
+			br.Stats = append(br.Stats, hs)
+		}
+	}
+	return &Result{Blocks: []*BlockResult{br}}
+}
+
+func TestPlanLowestFirstNeverWholeLayer(t *testing.T) {
+	r := synthResult(2, 3, 0, [][]float64{{0.1, 0.2, 0.3}, {0.9, 0.8, 0.7}}, true)
+	p, err := r.MakePlan(3, 0, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// layer 0 keeps its best head; the third pruned head comes from layer 1
+	want := map[int][]int{0: {0, 1}, 1: {2}}
+	if !reflect.DeepEqual(p.Heads["decoder"], want) || p.Pruned != 3 || p.Metric != "importance_norm" {
+		t.Fatalf("plan = %v (%d pruned, %s), want %v", p.Heads, p.Pruned, p.Metric, want)
+	}
+	if n := len(p.Curve); n != 4 || p.Curve[n-1].Heads != 4 {
+		t.Fatalf("curve %v: want 4 steps (6 heads less one per layer)", p.Curve)
+	}
+	if got := p.Curve[2].RemovedFrac; math.Abs(got-(0.1+0.2+0.7)/3.0) > 1e-12 {
+		t.Errorf("removed_frac after 3 heads = %v", got)
+	}
+	if len(p.Warnings) < 2 {
+		t.Error("plan without the compute and re-evaluation warnings")
+	}
+}
+
+func TestPlanKVGroups(t *testing.T) {
+	// 4 query heads over 2 KV heads: groups {0,1} and {2,3}
+	r := synthResult(2, 4, 2, [][]float64{{0.1, 0.5, 0.2, 0.2}, {0.3, 0.3, 0.05, 0.9}}, false)
+	p, err := r.MakePlan(-1, 0.5, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if p.Metric != ScoreName {
+		t.Errorf("metric without gradients = %s", p.Metric)
+	}
+	// group sums: L0 {0.6, 0.4}, L1 {0.6, 0.95}; 4 heads = two groups, one per layer at most
+	want := map[int][]int{0: {2, 3}, 1: {0, 1}}
+	if !reflect.DeepEqual(p.Heads["decoder"], want) {
+		t.Fatalf("plan = %v, want %v", p.Heads, want)
+	}
+}
+
+// TestPlanOnImportanceCase: the plan from autograd-checked importances
+// prunes the heads with the lowest importance_norm.
+func TestPlanOnImportanceCase(t *testing.T) {
+	files, _ := filepath.Glob(filepath.Join(casesDir, "importance", "*.npz"))
+	res := analyzePaths(t, DefaultOptions(), files...).Result()
+	p, err := res.MakePlan(-1, 0.25, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	type lh struct {
+		l, h int
+		v    float64
+	}
+	var all []lh
+	for _, hs := range res.Block("decoder").Stats {
+		all = append(all, lh{hs.Layer, hs.Head, hs.ImportanceNorm})
+	}
+	sort.Slice(all, func(i, j int) bool { return all[i].v < all[j].v })
+	want := map[int][]int{}
+	for _, x := range all[:2] {
+		want[x.l] = append(want[x.l], x.h)
+	}
+	for l := range want {
+		sort.Ints(want[l])
+	}
+	if !reflect.DeepEqual(p.Heads["decoder"], want) {
+		t.Fatalf("plan %v, want the two lowest importance_norm heads %v", p.Heads, want)
+	}
+}

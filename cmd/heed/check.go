@@ -1,0 +1,260 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"math"
+	"strings"
+	"text/tabwriter"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
+	"github.com/spf13/cobra"
+)
+
+// passFlags are the analysis options check and rank share.
+type passFlags struct {
+	rules    []string
+	tol      float64
+	sumTol   float64
+	sumBelow bool
+	blocks   []string
+}
+
+func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
+	f := cmd.Flags()
+	if withRules {
+		f.StringArrayVar(&pf.rules, "rule", nil, "run only this check (repeatable): causal, window, prefix, padding, segments, explicit, nan_rows, row_sum, negative")
+	}
+	f.Float64Var(&pf.tol, "tol", analysis.DefaultTol, "a forbidden cell holding more than this mass is a leak")
+	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 1e-5)")
+	f.BoolVar(&pf.sumBelow, "sum-below", false, "rows may sum below 1 (models with learned sink logits)")
+	f.StringArrayVar(&pf.blocks, "block", nil, "only this block (repeatable)")
+}
+
+func (pf *passFlags) options() (analysis.Options, error) {
+	opt := analysis.DefaultOptions()
+	opt.Tol, opt.SumTol, opt.SumBelow, opt.Blocks = pf.tol, pf.sumTol, pf.sumBelow, pf.blocks
+	if pf.tol < 0 || math.IsNaN(pf.tol) || pf.sumTol < 0 || math.IsNaN(pf.sumTol) {
+		return opt, fmt.Errorf("--tol and --sum-tol must not be negative")
+	}
+	for _, r := range pf.rules {
+		for _, name := range strings.Split(r, ",") {
+			rule, err := analysis.ParseRule(name)
+			if err != nil {
+				return opt, fmt.Errorf("--rule: %w", err)
+			}
+			opt.Rules = append(opt.Rules, rule)
+		}
+	}
+	return opt, nil
+}
+
+// runPass opens the examples and runs the analysis pass over all of them.
+func runPass(ctx context.Context, args []string, lf *loadFlags, pf *passFlags) (*analysis.Partial, *loader.Set, error) {
+	opt, err := pf.options()
+	if err != nil {
+		return nil, nil, err
+	}
+	set, err := openSet(args, lf)
+	if err != nil {
+		return nil, nil, err
+	}
+	p, err := analysis.AnalyzeSet(ctx, set.Len(), func(i int) (*loader.Export, string, error) {
+		ex, err := set.Open(i)
+		return ex, strings.Join(set.Examples[i], ","), err
+	}, opt)
+	if err != nil {
+		return nil, nil, err
+	}
+	return p, set, nil
+}
+
+// newCheckCmd returns "heed check": every mask and row check; exit 0 clean,
+// 1 findings, 2 bad input.
+func newCheckCmd() *cobra.Command {
+	lf := &loadFlags{}
+	pf := &passFlags{}
+	af := &againstFlags{}
+	var asJSON bool
+	cmd := &cobra.Command{
+		Use:   "check FILE...",
+		Short: "Check masks and rows: leaks, NaN rows, un-normalised rows; name the likely bug",
+		Long: `check runs every mask rule that follows from each block's kind and metadata
+(causal, sliding window, prefix, padding, packed-document segments, explicit
+allow mask) and every row check (NaN rows, rows not summing to 1, negative
+values) over all examples given, groups what it finds so that one bug is a
+few findings, and names the likely bug with what to look at in the model
+code. Its diagnoses are evidence to confirm by re-evaluating the model, not
+verdicts.
+
+With --against B it runs the causal-invariance check instead: A and B are
+the same model on inputs that differ from position P on, and nothing before
+P may change (see --against, --from and the README).
+
+Exit status: 0 clean, 1 findings, 2 bad input.`,
+		Args: cobra.MinimumNArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			if af.active(cmd) {
+				return af.run(cmd, args, lf, pf.tol, asJSON)
+			}
+			p, set, err := runPass(cmd.Context(), args, lf, pf)
+			if err != nil {
+				return err
+			}
+			res := p.Result()
+			out := cmd.OutOrStdout()
+			if asJSON {
+				if err := writeCheckJSON(out, res, set.Warnings); err != nil {
+					return err
+				}
+			} else {
+				writeCheckText(out, res, set.Warnings)
+			}
+			if !res.Clean() {
+				return &findingsError{len(res.Findings)}
+			}
+			return nil
+		},
+	}
+	lf.register(cmd)
+	pf.register(cmd, true)
+	af.register(cmd)
+	cmd.Flags().BoolVar(&asJSON, "json", false, "print JSON (see docs/json.md)")
+	return cmd
+}
+
+// checkReport is the JSON of heed check (docs/json.md).
+type checkReport struct {
+	Clean     bool                 `json:"clean"`
+	Examples  int64                `json:"examples"`
+	Findings  []analysis.Finding   `json:"findings"`
+	Diagnosis []analysis.Diagnosis `json:"diagnosis"`
+	Rules     map[string][]string  `json:"rules"`
+	Notes     []string             `json:"notes"`
+	Warnings  []string             `json:"warnings"`
+	Caveat    string               `json:"caveat"`
+}
+
+func writeCheckJSON(w io.Writer, res *analysis.Result, warnings []string) error {
+	rep := checkReport{Clean: res.Clean(), Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
+		Rules: map[string][]string{}, Notes: res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
+	if rep.Findings == nil {
+		rep.Findings = []analysis.Finding{}
+	}
+	if rep.Diagnosis == nil {
+		rep.Diagnosis = []analysis.Diagnosis{}
+	}
+	if rep.Notes == nil {
+		rep.Notes = []string{}
+	}
+	if rep.Warnings == nil {
+		rep.Warnings = []string{}
+	}
+	for _, b := range res.Blocks {
+		rs := []string{}
+		for _, r := range b.Rules {
+			rs = append(rs, r.String())
+		}
+		rep.Rules[b.Name] = rs
+	}
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(rep)
+}
+
+func rulesLine(res *analysis.Result) string {
+	var parts []string
+	for _, b := range res.Blocks {
+		rs := make([]string, len(b.Rules))
+		for i, r := range b.Rules {
+			rs[i] = r.String()
+		}
+		if len(rs) == 0 {
+			rs = []string{"row checks only (kind unknown: pass --kind)"}
+		}
+		parts = append(parts, b.Name+": "+strings.Join(rs, ", "))
+	}
+	return strings.Join(parts, "; ")
+}
+
+func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
+	ex := fmt.Sprintf("%d %s", res.Examples, plural(int(res.Examples), "example", "examples"))
+	if res.Clean() {
+		fmt.Fprintf(w, "heed check: clean: no mask leaks, NaN rows or un-normalised rows in %s.\n", ex)
+		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
+	} else {
+		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), plural(len(res.Diagnoses), "likely bug", "likely bugs"),
+			len(res.Findings), plural(len(res.Findings), "finding", "findings"), ex, "These are evidence to confirm by re-evaluating the model, not verdicts.")
+		for i, d := range res.Diagnoses {
+			text := strings.TrimSuffix(d.Text, " "+analysis.Caveat)
+			fmt.Fprintf(w, "%d. [%s] %s\n", i+1, d.Pattern, text)
+			loc := d.At.String()
+			if d.At.Key >= 0 && d.Rule != analysis.RuleNaNRows {
+				loc += fmt.Sprintf(" key %d (%.3g)", d.At.Key, d.At.Value)
+			}
+			fmt.Fprintf(w, "   look at:  %s\n", loc)
+			fmt.Fprintf(w, "   check:    %s\n", d.Check)
+			for _, e := range d.Evidence {
+				fmt.Fprintf(w, "   evidence: %s\n", e)
+			}
+			fmt.Fprintln(w)
+		}
+		fmt.Fprintln(w, "findings, worst first:")
+		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+		fmt.Fprintln(tw, "block\trule\tlayers\theads\tbatch\tmass\tcells\tmax\trows\toffsets\tworst")
+		for _, f := range res.Findings {
+			fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%.4g\t%d\t%.3g\t%d/%d\t%s\t%s\n", f.Block, f.Rule, ranges(f.Layers), ranges(f.Heads), ranges(f.Batches),
+				f.Mass, f.Cells, f.Max, f.Rows, f.JudgedRows, offsetsShort(f.Offsets), f.Worst)
+		}
+		tw.Flush()
+		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
+	}
+	for _, n := range res.Notes {
+		fmt.Fprintf(w, "note: %s\n", n)
+	}
+	for _, n := range warnings {
+		fmt.Fprintf(w, "warning: %s\n", n)
+	}
+}
+
+func plural(n int, one, many string) string {
+	if n == 1 {
+		return one
+	}
+	return many
+}
+
+// ranges writes 0,1,2,3,7 as 0-3,7.
+func ranges(xs []int) string {
+	var parts []string
+	for i := 0; i < len(xs); {
+		j := i
+		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
+			j++
+		}
+		if j > i {
+			parts = append(parts, fmt.Sprintf("%d-%d", xs[i], xs[j]))
+		} else {
+			parts = append(parts, fmt.Sprint(xs[i]))
+		}
+		i = j + 1
+	}
+	return strings.Join(parts, ",")
+}
+
+func offsetsShort(os []analysis.OffsetCount) string {
+	switch {
+	case len(os) == 0:
+		return "-"
+	case len(os) <= 3:
+		s := make([]string, len(os))
+		for i, o := range os {
+			s[i] = fmt.Sprintf("%+d:%d", o.Offset, o.Count)
+		}
+		return strings.Join(s, " ")
+	}
+	return fmt.Sprintf("%+d..%+d (%d)", os[0].Offset, os[len(os)-1].Offset, len(os))
+}

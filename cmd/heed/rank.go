@@ -1,0 +1,322 @@
+package main
+
+import (
+	"encoding/csv"
+	"encoding/json"
+	"fmt"
+	"io"
+	"math"
+	"sort"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/spf13/cobra"
+)
+
+// rankColumns are the per-head columns of heed rank, in output order; the
+// JSON field names are the same (docs/json.md).
+var rankColumns = []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share",
+	"distance", "sink", "doc_sink", "redundancy", "importance", "importance_norm", analysis.ScoreName, "leak_mass", "rows", "nan_rows"}
+
+// rankHead is one head's row of heed rank; nil = not defined (no gradients, no rows).
+type rankHead struct {
+	Block          string   `json:"block"`
+	Layer          int      `json:"layer"`
+	Head           int      `json:"head"`
+	Entropy        *float64 `json:"entropy"`
+	EntropyNorm    *float64 `json:"entropy_norm"`
+	Confidence     *float64 `json:"confidence"`
+	PrevShare      *float64 `json:"prev_share"`
+	SelfShare      *float64 `json:"self_share"`
+	Distance       *float64 `json:"distance"`
+	Sink           *float64 `json:"sink"`
+	DocSink        *float64 `json:"doc_sink"`
+	Redundancy     *float64 `json:"redundancy"`
+	Importance     *float64 `json:"importance"`
+	ImportanceNorm *float64 `json:"importance_norm"`
+	Score          *float64 `json:"confidence_x_js"`
+	LeakMass       *float64 `json:"leak_mass"`
+	Rows           int64    `json:"rows"`
+	NaNRows        int64    `json:"nan_rows"`
+}
+
+func num(x float64) *float64 {
+	if math.IsNaN(x) || math.IsInf(x, 0) {
+		return nil
+	}
+	return &x
+}
+
+func (r *rankHead) value(col string) (float64, bool) {
+	var p *float64
+	switch col {
+	case "layer":
+		return float64(r.Layer), true
+	case "head":
+		return float64(r.Head), true
+	case "rows":
+		return float64(r.Rows), true
+	case "nan_rows":
+		return float64(r.NaNRows), true
+	case "entropy":
+		p = r.Entropy
+	case "entropy_norm":
+		p = r.EntropyNorm
+	case "confidence":
+		p = r.Confidence
+	case "prev_share":
+		p = r.PrevShare
+	case "self_share":
+		p = r.SelfShare
+	case "distance":
+		p = r.Distance
+	case "sink":
+		p = r.Sink
+	case "doc_sink":
+		p = r.DocSink
+	case "redundancy":
+		p = r.Redundancy
+	case "importance":
+		p = r.Importance
+	case "importance_norm":
+		p = r.ImportanceNorm
+	case analysis.ScoreName:
+		p = r.Score
+	case "leak_mass":
+		p = r.LeakMass
+	}
+	if p == nil {
+		return math.NaN(), false
+	}
+	return *p, true
+}
+
+func (r *rankHead) cell(col string) string {
+	switch col {
+	case "block":
+		return r.Block
+	case "layer", "head", "rows", "nan_rows":
+		v, _ := r.value(col)
+		return strconv.Itoa(int(v))
+	}
+	v, ok := r.value(col)
+	if !ok {
+		return ""
+	}
+	return strconv.FormatFloat(v, 'g', 6, 64)
+}
+
+// rankReport is the JSON of heed rank (docs/json.md).
+type rankReport struct {
+	Examples int64          `json:"examples"`
+	Metric   string         `json:"metric"`
+	Score    rankScore      `json:"score"`
+	Heads    []rankHead     `json:"heads"`
+	Plan     *analysis.Plan `json:"plan,omitempty"`
+	Warnings []string       `json:"warnings"`
+	Caveat   string         `json:"caveat"`
+}
+
+type rankScore struct {
+	Name string `json:"name"`
+	Doc  string `json:"doc"`
+}
+
+// newRankCmd returns "heed rank": per-head statistics, importance and a pruning plan.
+func newRankCmd() *cobra.Command {
+	lf := &loadFlags{}
+	pf := &passFlags{}
+	var (
+		asJSON, asCSV bool
+		sortCol       string
+		prune         int
+		pruneFrac     float64
+	)
+	cmd := &cobra.Command{
+		Use:   "rank FILE...",
+		Short: "Rank heads: statistics, importance, a pruning plan",
+		Long: `rank prints every head's statistics aggregated over all examples given (each
+batch item of each file is one example): entropy, normalised entropy,
+confidence, positional shares, mean distance, sink mass, redundancy (mean
+Jensen-Shannon divergence to the layer's other heads) and, when the export has
+gradients (BLOCK/grad), Michel et al. (2019)'s head importance. Without
+gradients there is no importance; the heuristic score ` + analysis.ScoreName + `
+orders heads instead.
+
+--prune N or --prune-frac F adds a plan {block: {layer: [heads]}}: lowest first
+model-wide, never every head of a layer, whole KV groups when kv_heads is set.
+A plan is a hypothesis to confirm by re-evaluating the model, and masking a
+head saves no compute until the model is rebuilt without it.`,
+		Args: cobra.MinimumNArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			if asJSON && asCSV {
+				return fmt.Errorf("--json and --csv exclude each other")
+			}
+			if cmd.Flags().Changed("prune") && cmd.Flags().Changed("prune-frac") {
+				return fmt.Errorf("--prune and --prune-frac exclude each other")
+			}
+			if prune < -1 || (cmd.Flags().Changed("prune-frac") && (pruneFrac < 0 || pruneFrac > 1)) {
+				return fmt.Errorf("--prune must be >= 0 and --prune-frac in [0, 1]")
+			}
+			if sortCol != "" && !validColumn(strings.TrimPrefix(sortCol, "-")) {
+				return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", sortCol, strings.Join(rankColumns, ", "))
+			}
+			p, set, err := runPass(cmd.Context(), args, lf, pf)
+			if err != nil {
+				return err
+			}
+			res := p.Result()
+			rep := rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
+				Warnings: append([]string{}, set.Warnings...), Caveat: analysis.Caveat}
+			grad := true
+			for _, b := range res.Blocks {
+				grad = grad && b.HasGrad
+				for _, hs := range b.Stats {
+					rep.Heads = append(rep.Heads, rankHead{Block: b.Name, Layer: hs.Layer, Head: hs.Head,
+						Entropy: num(hs.Entropy), EntropyNorm: num(hs.EntropyNorm), Confidence: num(hs.Confidence),
+						PrevShare: num(hs.PrevShare), SelfShare: num(hs.SelfShare), Distance: num(hs.Distance),
+						Sink: num(hs.Sink), DocSink: num(hs.DocSink), Redundancy: num(hs.Redundancy),
+						Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score),
+						LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
+				}
+			}
+			rep.Metric = "importance_norm"
+			if !grad {
+				rep.Metric = analysis.ScoreName
+				rep.Warnings = append(rep.Warnings, "no gradients in the export: no importance; "+analysis.ScoreDoc)
+			}
+			if !res.Clean() {
+				rep.Warnings = append(rep.Warnings, fmt.Sprintf("heed check finds %d problems in these exports (leaks or bad rows): statistics of a buggy export describe the bug too; run heed check", len(res.Findings)))
+			}
+			if cmd.Flags().Changed("prune") || cmd.Flags().Changed("prune-frac") {
+				n := prune
+				if cmd.Flags().Changed("prune-frac") {
+					n = -1
+				}
+				plan, err := res.MakePlan(n, pruneFrac, pf.blocks)
+				if err != nil {
+					return err
+				}
+				rep.Plan = plan
+			}
+			sortHeads(rep.Heads, sortCol)
+			out := cmd.OutOrStdout()
+			switch {
+			case asJSON:
+				if rep.Heads == nil {
+					rep.Heads = []rankHead{}
+				}
+				enc := json.NewEncoder(out)
+				enc.SetIndent("", "  ")
+				return enc.Encode(rep)
+			case asCSV:
+				return writeRankCSV(out, rep.Heads)
+			}
+			writeRankText(out, &rep)
+			return nil
+		},
+	}
+	lf.register(cmd)
+	pf.register(cmd, false)
+	f := cmd.Flags()
+	f.BoolVar(&asJSON, "json", false, "print JSON (see docs/json.md)")
+	f.BoolVar(&asCSV, "csv", false, "print the head table as CSV")
+	f.StringVar(&sortCol, "sort", "", "sort heads by this column, ascending (prefix - for descending): "+strings.Join(rankColumns[1:], ", "))
+	f.IntVar(&prune, "prune", -1, "plan pruning N heads")
+	f.Float64Var(&pruneFrac, "prune-frac", 0, "plan pruning this fraction of all heads (e.g. 0.2)")
+	return cmd
+}
+
+func validColumn(c string) bool {
+	for _, x := range rankColumns {
+		if x == c {
+			return true
+		}
+	}
+	return false
+}
+
+// sortHeads sorts by a column (ascending, "-col" descending); heads without
+// a value go last; ties keep block, layer, head order.
+func sortHeads(hs []rankHead, col string) {
+	if col == "" || col == "block" {
+		return
+	}
+	desc := strings.HasPrefix(col, "-")
+	col = strings.TrimPrefix(col, "-")
+	sort.SliceStable(hs, func(i, j int) bool {
+		a, aok := hs[i].value(col)
+		b, bok := hs[j].value(col)
+		if aok != bok {
+			return aok
+		}
+		if desc {
+			return a > b
+		}
+		return a < b
+	})
+}
+
+func writeRankCSV(w io.Writer, hs []rankHead) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write(rankColumns); err != nil {
+		return err
+	}
+	for i := range hs {
+		row := make([]string, len(rankColumns))
+		for j, c := range rankColumns {
+			row[j] = hs[i].cell(c)
+		}
+		if err := cw.Write(row); err != nil {
+			return err
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+func writeRankText(w io.Writer, rep *rankReport) {
+	cols := []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share", "distance", "sink", "redundancy"}
+	if rep.Metric == "importance_norm" {
+		cols = append(cols, "importance", "importance_norm")
+	} else {
+		cols = append(cols, analysis.ScoreName)
+	}
+	fmt.Fprintf(w, "heed rank: %d heads over %d %s; ordering metric %s\n", len(rep.Heads), rep.Examples, plural(int(rep.Examples), "example", "examples"), rep.Metric)
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, strings.Join(cols, "\t")+"\t")
+	for i := range rep.Heads {
+		row := make([]string, len(cols))
+		for j, c := range cols {
+			row[j] = rep.Heads[i].cell(c)
+			if v, ok := rep.Heads[i].value(c); ok && c != "layer" && c != "head" {
+				row[j] = strconv.FormatFloat(v, 'f', 3, 64)
+			} else if row[j] == "" {
+				row[j] = "-"
+			}
+		}
+		fmt.Fprintln(tw, strings.Join(row, "\t")+"\t")
+	}
+	tw.Flush()
+	if p := rep.Plan; p != nil {
+		js, _ := json.Marshal(p.Heads)
+		fmt.Fprintf(w, "\npruning plan (%d of %d heads, lowest %s first):\n%s\n", p.Pruned, p.Total, p.Metric, js)
+		fmt.Fprintln(w, "cumulative "+p.Metric+" removed:")
+		for _, pt := range p.Curve {
+			mark := " "
+			if pt.Heads <= p.Pruned {
+				mark = "*"
+			}
+			fmt.Fprintf(w, " %s %3d heads  %6.1f%%  (%s layer %d heads %s)\n", mark, pt.Heads, 100*pt.RemovedFrac, pt.Block, pt.Layer, ranges(pt.Unit))
+		}
+		for _, x := range p.Warnings {
+			fmt.Fprintf(w, "warning: %s\n", x)
+		}
+	}
+	for _, x := range rep.Warnings {
+		fmt.Fprintf(w, "warning: %s\n", x)
+	}
+	fmt.Fprintln(w, analysis.Caveat)
+}

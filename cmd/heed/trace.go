@@ -1,0 +1,108 @@
+package main
+
+import (
+	"encoding/json"
+	"fmt"
+	"io"
+	"strings"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/spf13/cobra"
+)
+
+// newTraceCmd returns "heed trace": the explanation of one output position.
+func newTraceCmd() *cobra.Command {
+	lf := &loadFlags{}
+	var (
+		asJSON  bool
+		method  string
+		block   string
+		batch   int
+		query   int
+		example int
+	)
+	cmd := &cobra.Command{
+		Use:   "trace FILE... --query Q",
+		Short: "Explain one output position by the input tokens",
+		Long: `trace propagates attention from query position Q back to the input tokens:
+  rollout  attention rollout (Abnar & Zuidema 2020): shares sum to 1
+  flow     attention flow (Abnar & Zuidema 2020), max-flow per input token:
+           shares are flows in [0, 1], not normalised across tokens; limited
+           to layers * n^3 <= ` + fmt.Sprint(analysis.FlowLimit) + ` (n positions reachable from Q)
+  grad     gradient-weighted relevance (Chefer, Gur & Wolf 2021): needs
+           BLOCK/grad, the gradient of the loss at the traced position
+For an encoder-decoder export the default block is the cross block: a target
+position is explained by source tokens through cross-attention (rollout and
+grad). An explanation is evidence to confirm by re-evaluating the model.`,
+		Args: cobra.MinimumNArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			if !cmd.Flags().Changed("query") {
+				return fmt.Errorf("--query Q is required")
+			}
+			switch analysis.Method(method) {
+			case analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad:
+			default:
+				return fmt.Errorf("--method %q: want rollout, flow or grad", method)
+			}
+			set, err := openSet(args, lf)
+			if err != nil {
+				return err
+			}
+			if example < 0 || example >= set.Len() {
+				return fmt.Errorf("--example %d: the input has %d examples", example, set.Len())
+			}
+			ex, err := set.Open(example)
+			if err != nil {
+				return err
+			}
+			defer ex.Close()
+			res, err := analysis.Trace(cmd.Context(), ex, analysis.TraceOptions{Method: analysis.Method(method), Block: block, Batch: batch, Query: query})
+			if err != nil {
+				return err
+			}
+			if asJSON {
+				enc := json.NewEncoder(cmd.OutOrStdout())
+				enc.SetIndent("", "  ")
+				return enc.Encode(res)
+			}
+			writeTraceText(cmd.OutOrStdout(), res)
+			return nil
+		},
+	}
+	lf.register(cmd)
+	f := cmd.Flags()
+	f.BoolVar(&asJSON, "json", false, `print JSON {"block", "query", "method", "tokens": [{"index", "token", "share"}]} (docs/json.md)`)
+	f.StringVar(&method, "method", "rollout", "rollout, flow or grad")
+	f.StringVar(&block, "block", "", "block whose query is explained (default: cross if present, else the causal block)")
+	f.IntVar(&batch, "batch", 0, "batch item")
+	f.IntVar(&query, "query", 0, "query position to explain (row of the block)")
+	f.IntVar(&example, "example", 0, "which example when several are given")
+	return cmd
+}
+
+func writeTraceText(w io.Writer, r *analysis.TraceResult) {
+	norm := "shares sum to 1"
+	if !r.Normalised {
+		norm = "shares are not normalised"
+	}
+	fmt.Fprintf(w, "heed trace: %s query %d (batch %d) by %s tokens, method %s (%s)\n", r.Block, r.Query, r.Batch, r.Side, r.Method, norm)
+	var top float64
+	width := 5
+	for _, t := range r.Tokens {
+		top = max(top, t.Share)
+		width = max(width, len([]rune(t.Token)))
+	}
+	const bar = 40
+	for _, t := range r.Tokens {
+		n := 0
+		if top > 0 && t.Share > 0 {
+			n = int(t.Share/top*bar + 0.5)
+		}
+		tok := t.Token
+		if tok == "" {
+			tok = "-"
+		}
+		fmt.Fprintf(w, "%5d  %-*s  %-*s  %.4f\n", t.Index, width, tok, bar, strings.Repeat("█", n), t.Share)
+	}
+	fmt.Fprintln(w, analysis.Caveat)
+}
