@@ -32,6 +32,17 @@ func (af *againstFlags) active(cmd *cobra.Command) bool {
 	return cmd.Flags().Changed("against") || cmd.Flags().Changed("from")
 }
 
+// run is what check's RunE calls when active: check's --tol, when given,
+// becomes the invariance tolerance (otherwise it depends on the dtype).
+func (af *againstFlags) run(cmd *cobra.Command, args []string, lf *loadFlags, tol float64, asJSON bool) error {
+	if !cmd.Flags().Changed("tol") {
+		tol = 0
+	} else if tol == 0 {
+		return fmt.Errorf("--tol 0 with --against: give a tolerance > 0, or leave --tol out for the dtype's")
+	}
+	return runAgainst(cmd.Context(), cmd.OutOrStdout(), args, af, lf.options(), tol, asJSON)
+}
+
 // runAgainst opens A (args) and B (--against), compares them with
 // analysis.CheckInvariance and prints the result as text or JSON to w. It
 // returns a *findingsError when a position before P changed (exit 1) and
@@ -65,12 +76,13 @@ func runAgainst(ctx context.Context, w io.Writer, args []string, af *againstFlag
 	if err != nil {
 		return err
 	}
+	warnings := append(append([]string{}, a.Warnings...), b.Warnings...)
 	if asJSON {
-		if err := writeInvarianceJSON(w, res); err != nil {
+		if err := writeInvarianceJSON(w, res, warnings); err != nil {
 			return err
 		}
 	} else {
-		writeInvarianceText(w, res, strings.Join(args, " "), strings.Join(af.against, " "))
+		writeInvarianceText(w, res, strings.Join(args, " "), strings.Join(af.against, " "), warnings)
 	}
 	if !res.Clean() {
 		return &findingsError{n: len(res.Findings)}
@@ -110,6 +122,7 @@ type invarianceJSON struct {
 	Diagnosis []analysis.Diagnosis         `json:"diagnosis"`
 	Detail    invarianceDetailJSON         `json:"invariance"`
 	Notes     []string                     `json:"notes"`
+	Warnings  []string                     `json:"warnings"`
 	Caveat    string                       `json:"caveat"`
 }
 
@@ -148,10 +161,10 @@ func partJSON(p *analysis.InvariancePart) invariancePartJSON {
 	return j
 }
 
-func writeInvarianceJSON(w io.Writer, res *analysis.Invariance) error {
+func writeInvarianceJSON(w io.Writer, res *analysis.Invariance, warnings []string) error {
 	out := invarianceJSON{Clean: res.Clean(), Findings: res.Findings, Diagnosis: res.Diagnoses,
 		Detail: invarianceDetailJSON{Side: res.Side, From: res.From, Parts: []invariancePartJSON{}, Heads: res.Heads},
-		Notes:  res.Notes, Caveat: analysis.Caveat}
+		Notes:  res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
 	if out.Findings == nil {
 		out.Findings = []analysis.InvarianceFinding{}
 	}
@@ -163,6 +176,9 @@ func writeInvarianceJSON(w io.Writer, res *analysis.Invariance) error {
 	}
 	if out.Notes == nil {
 		out.Notes = []string{}
+	}
+	if out.Warnings == nil {
+		out.Warnings = []string{}
 	}
 	for i := range out.Detail.Heads {
 		out.Detail.Heads[i].MaxAbs = jsonNum(out.Detail.Heads[i].MaxAbs)
@@ -189,17 +205,22 @@ func fromText(res *analysis.Invariance) string {
 	}
 	parts := make([]string, len(res.From))
 	for i, f := range res.From {
-		parts[i] = fmt.Sprintf("%d (item %d)", f, i)
+		parts[i] = fmt.Sprintf("%d for item %d", f, i)
 	}
 	return "P = " + strings.Join(parts, ", ")
 }
 
-func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB string) {
+func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB string, warnings []string) {
 	where := "given by --from"
 	if res.Side != "" {
-		where = "first differing token of tokens/" + res.Side
+		where = "the first differing token of tokens/" + res.Side
 	}
-	fmt.Fprintf(w, "causal invariance: %s against %s, %s (%s)\n", nameA, nameB, fromText(res), where)
+	if res.Clean() {
+		fmt.Fprintf(w, "heed check: causal invariance clean: nothing before P changed between %s and %s (%s, %s).\n", nameA, nameB, fromText(res), where)
+	} else {
+		fmt.Fprintf(w, "heed check: causal invariance: %d %s between %s and %s (%s, %s). %s\n", len(res.Findings), plural(len(res.Findings), "finding", "findings"),
+			nameA, nameB, fromText(res), where, "These are evidence to confirm by re-evaluating the model, not verdicts.")
+	}
 	for _, p := range res.Parts {
 		j := partJSON(p)
 		state := "agrees before P"
@@ -231,23 +252,39 @@ func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB str
 		}
 	}
 	for _, n := range res.Notes {
-		fmt.Fprintf(w, "\nnote: %s\n", n)
+		fmt.Fprintf(w, "note: %s\n", n)
 	}
 	if len(res.Diagnoses) > 0 {
-		fmt.Fprintf(w, "\ndiagnosis:\n")
-		for _, d := range res.Diagnoses {
-			fmt.Fprintf(w, "  [%s] %s\n", d.Pattern, d.Text)
+		fmt.Fprintln(w)
+		for i, d := range res.Diagnoses {
+			fmt.Fprintf(w, "%d. [%s] %s\n", i+1, d.Pattern, strings.TrimSuffix(d.Text, " "+analysis.Caveat))
+			fmt.Fprintf(w, "   look at:  %s\n", lookAt(d.At))
 			if d.Check != "" {
-				fmt.Fprintf(w, "    check: %s\n", d.Check)
+				fmt.Fprintf(w, "   check:    %s\n", d.Check)
 			}
 			for _, e := range d.Evidence {
-				fmt.Fprintf(w, "    - %s\n", e)
+				fmt.Fprintf(w, "   evidence: %s\n", e)
 			}
 		}
 	}
-	if res.Clean() {
-		fmt.Fprintf(w, "\nclean: no position before P changed beyond the tolerance. One pair tests one change of the input: other inputs or lengths may still leak. %s\n", analysis.Caveat)
+	for _, n := range warnings {
+		fmt.Fprintf(w, "warning: %s\n", n)
 	}
+	if res.Clean() {
+		fmt.Fprintf(w, "\nOne pair tests one change of the input: other inputs or lengths may still leak. %s\n", analysis.Caveat)
+	}
+}
+
+// lookAt is a LOC when the location has a head, else the layer output's
+// coordinates in words (a LOC names a head).
+func lookAt(l analysis.Location) string {
+	if l.Head >= 0 {
+		return l.String()
+	}
+	if l.Block == "logits" {
+		return fmt.Sprintf("logits, batch item %d, position %d", l.Batch, l.Query)
+	}
+	return fmt.Sprintf("%s layer %d output, batch item %d, position %d", l.Block, l.Layer, l.Batch, l.Query)
 }
 
 // positions writes sorted positions compactly ("4-5", "0, 2, 7-9").

@@ -112,7 +112,7 @@ func TestAgainstFixtures(t *testing.T) {
 	}
 
 	text, code := against(t, false, filepath.Join(invDir, "leak_a.npz"), filepath.Join(invDir, "leak_b.npz"), -1)
-	for _, want := range []string{"P = 6 (item 0), 7 (item 1)", "CHANGED before P", "item 0: 4-5; item 1: 5-6", "[reads_future] position 4 of layer 2", "not a verdict"} {
+	for _, want := range []string{"P = 6 for item 0, 7 for item 1", "CHANGED before P", "item 0: 4-5; item 1: 5-6", "1. [reads_future] position 4 of layer 2", "look at:  decoder layer 2 output, batch item 0, position 4", "not verdicts"} {
 		if code != 1 || !strings.Contains(text, want) {
 			t.Errorf("leak text (exit %d) lacks %q:\n%s", code, want, text)
 		}
@@ -240,5 +240,38 @@ func TestAgainstReadmeSnippet(t *testing.T) {
 	f := j.Findings[0]
 	if f.Block != "decoder" || !reflect.DeepEqual(f.Layers, []int{1, 2}) || !reflect.DeepEqual(f.Positions, [][]int{{P - 1}, {P - 1}}) {
 		t.Errorf("snippet, leaky model: finding %+v, want layers [1 2], position %d in both items", f, P-1)
+	}
+}
+
+// TestAgainstThroughCheck runs the real command line: heed check A --against B.
+func TestAgainstThroughCheck(t *testing.T) {
+	for _, c := range []struct {
+		args []string
+		exit int
+		want string
+	}{
+		{[]string{"causal_a.npz", "--against", "causal_b.npz", "--json"}, 0, `"clean": true`},
+		{[]string{"leak_a.npz", "--against", "leak_b.npz", "--json"}, 1, `"rule": "invariance"`},
+		{[]string{"leak_a.npz", "--against", "leak_b.npz", "--tol", "0.5"}, 0, "causal invariance clean"},
+		{[]string{"leak_a.npz", "--against", "leak_b.npz", "--from", "3"}, 0, "P = 3, given by --from"},
+		{[]string{"causal_a.npz", "--against", "mismatch_b.npz"}, 2, ""},
+		{[]string{"causal_a.npz", "--from", "3"}, 2, ""},
+	} {
+		var out bytes.Buffer
+		root := newRootCmd()
+		args := []string{"check"}
+		for _, a := range c.args {
+			if strings.HasSuffix(a, ".npz") {
+				a = filepath.Join(invDir, a)
+			}
+			args = append(args, a)
+		}
+		root.SetArgs(args)
+		root.SetOut(&out)
+		root.SetErr(&bytes.Buffer{})
+		err := root.ExecuteContext(context.Background())
+		if got := exitCodeQuiet(err); got != c.exit || !strings.Contains(out.String(), c.want) {
+			t.Errorf("heed %v: exit %d (%v), want %d with %q in\n%s", c.args, got, err, c.exit, c.want, out.String())
+		}
 	}
 }
