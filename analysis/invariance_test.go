@@ -473,3 +473,78 @@ func TestInvariancePaddingNotJudged(t *testing.T) {
 		t.Errorf("findings with NaN do not encode: %v", err)
 	}
 }
+
+// encDec builds an encoder-decoder-shaped export: encoder/out on side
+// source, decoder/out on side target, both [1, 1, 3, 2] of value v.
+func encDec(t *testing.T, src, tgt string, v float64) *loader.Export {
+	t.Helper()
+	vals := make([]float64, 6)
+	for i := range vals {
+		vals[i] = v
+	}
+	ex, err := loader.Assemble([]loader.Array{
+		loader.NewMemArray("encoder/out", loader.Float32, []int{1, 1, 3, 2}, vals),
+		loader.NewMemArray("decoder/out", loader.Float32, []int{1, 1, 3, 2}, vals),
+		loader.NewMemStrings("tokens/source", []int{3}, strings.Fields(src)),
+		loader.NewMemStrings("tokens/target", []int{3}, strings.Fields(tgt)),
+	}, `{"format":"heed-export/1","blocks":{"encoder":{"kind":"bidirectional","query":"source","key":"source"},"decoder":{"kind":"causal","query":"target","key":"target"}}}`, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	return ex
+}
+
+func TestInvarianceSides(t *testing.T) {
+	// Only the target changed: the decoder is checked from P = 1; the
+	// encoder, on the unchanged source, is skipped with a note.
+	res, err := CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a b c", "x q z", 2), NewInvarianceOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	if res.Side != "target" || !reflect.DeepEqual(res.From, []int{1}) || len(res.Parts) != 1 || res.Parts[0].Block != "decoder" ||
+		len(res.Notes) != 1 || !strings.Contains(res.Notes[0], "encoder/out") {
+		t.Errorf("target changed: side %q from %v parts %d notes %q", res.Side, res.From, len(res.Parts), res.Notes)
+	}
+	if f := findingOf(res, "decoder"); f == nil || !reflect.DeepEqual(f.Positions, [][]int{{0}}) {
+		t.Errorf("decoder finding %+v, want position 0", f)
+	}
+	// Both sides changed: P is ambiguous without --from.
+	_, err = CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), NewInvarianceOptions())
+	if err == nil || !strings.Contains(err.Error(), "more than one side") {
+		t.Errorf("both sides changed: err = %v", err)
+	}
+	opt := NewInvarianceOptions()
+	opt.From = 1
+	res, err = CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), opt)
+	if err != nil || !res.Clean() || len(res.Parts) != 2 {
+		t.Errorf("both sides changed, --from 1: err %v, parts %d", err, len(res.Parts))
+	}
+}
+
+func TestInvarianceRoundingHint(t *testing.T) {
+	// Small differences at scattered positions (1 and 3 of 5 before P), the
+	// signature of reduced-precision rounding rather than a window leak.
+	outA := []float64{1, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1}
+	outB := []float64{1, 1, 1.002, 1, 1, 1, 1, 0.998, 1, 1, 5, 5}
+	a, b := memPair(t, loader.Float32, 6, 5, outA, outB, nil)
+	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	var pats []string
+	for _, d := range res.Diagnoses {
+		pats = append(pats, d.Pattern)
+	}
+	if !reflect.DeepEqual(pats, []string{patReadsFuture, patRounding}) || !strings.Contains(res.Diagnoses[1].Text, "--tol 0.06") {
+		t.Errorf("patterns %v, want reads_future and rounding_level; %+v", pats, res.Diagnoses)
+	}
+	// A leak that ends at P (the last positions before it) gets no hint.
+	outB = []float64{1, 1, 1, 1, 1, 1, 1, 1, 1.002, 1, 5, 5}
+	a, b = memPair(t, loader.Float32, 6, 5, outA, outB, nil)
+	res, _ = CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	for _, d := range res.Diagnoses {
+		if d.Pattern == patRounding {
+			t.Errorf("contiguous change up to P-1 got a rounding hint: %q", d.Text)
+		}
+	}
+}
