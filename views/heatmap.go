@@ -1,0 +1,764 @@
+package views
+
+import (
+	"fmt"
+	"math"
+	"strconv"
+	"strings"
+)
+
+// Agg is how a pixel that covers several cells combines their weights.
+type Agg uint8
+
+// Aggregations of a downsampled pixel.
+const (
+	AggMean Agg = iota
+	AggMax
+)
+
+func (a Agg) String() string {
+	if a == AggMax {
+		return "max"
+	}
+	return "mean"
+}
+
+// Scale maps weights to colours.
+type Scale uint8
+
+// Scales of the heat maps.
+const (
+	Linear Scale = iota
+	Log
+)
+
+func (s Scale) String() string {
+	if s == Log {
+		return "log"
+	}
+	return "linear"
+}
+
+// LogDecades is how many decades below the maximum the log scale spans.
+const LogDecades = 4
+
+// MaxMag is the largest magnification (columns and half-lines per cell).
+const MaxMag = 8
+
+// MapData is one head's query x key matrix and what the Map needs to label
+// it. Weights are not modified.
+type MapData struct {
+	Q, K    int
+	Weights []float32 // row-major Q x K
+	// Rule returns the name of the mask rule that forbids (q, k), "" when
+	// the cell is allowed; nil means every cell is allowed.
+	Rule func(q, k int) string
+	// QueryTokens and KeyTokens label the axes (nil: indices only).
+	QueryTokens, KeyTokens []string
+	// QueryOffset is the absolute position of query row 0.
+	QueryOffset int
+	// Tol: forbidden cells whose weight is <= Tol are not marked.
+	Tol float32
+	// VMax and VMaxNoSink are the largest finite weights with and without key
+	// column 0; they fix the colour scale (NewMapData fills them in).
+	VMax, VMaxNoSink float32
+	// Measure names the value in the readout and legend ("weight" by default).
+	Measure string
+	// Describe, when set, adds text about (q, k) to the cursor readout.
+	Describe func(q, k int) string
+}
+
+// NewMapData wraps a Q x K matrix and computes its scale maxima.
+func NewMapData(q, k int, weights []float32) *MapData {
+	d := &MapData{Q: q, K: k, Weights: weights, Measure: "weight"}
+	d.VMax, d.VMaxNoSink = MatrixMax(q, k, weights)
+	return d
+}
+
+// MatrixMax returns the largest finite value of a q x k matrix, and the
+// largest outside column 0 (the sink column).
+func MatrixMax(q, k int, w []float32) (all, noSink float32) {
+	for i := 0; i < q; i++ {
+		row := w[i*k : (i+1)*k]
+		for j, v := range row {
+			if v != v || math.IsInf(float64(v), 0) {
+				continue
+			}
+			if v > all {
+				all = v
+			}
+			if j > 0 && v > noSink {
+				noSink = v
+			}
+		}
+	}
+	return all, noSink
+}
+
+func (d *MapData) token(toks []string, i int) string {
+	if i < 0 || i >= len(toks) {
+		return ""
+	}
+	return toks[i]
+}
+
+func (d *MapData) rule(q, k int) string {
+	if d.Rule == nil {
+		return ""
+	}
+	return d.Rule(q, k)
+}
+
+// Pixels is a downsampled window of a MapData: each pixel covers a Block x
+// Block square of cells (clipped at the matrix edge).
+type Pixels struct {
+	Rows, Cols int
+	Q0, K0     int
+	Block      int
+	// Weight is the mean or max weight of each pixel; NaN when any of its
+	// cells is NaN, so that a NaN row stays visible when zoomed out.
+	Weight []float32
+	// Forbid is the largest weight on a forbidden cell of the pixel that is
+	// above the tolerance (0 when none): kept as a maximum at every zoom so
+	// that one leaking cell stays visible.
+	Forbid []float32
+	// Rule names the rule of that cell ("" when none).
+	Rule []string
+}
+
+// Downsample aggregates rows x cols pixels of block x block cells starting at
+// cell (q0, k0). It reads only those cells.
+func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
+	if block < 1 {
+		block = 1
+	}
+	if r := ceilDiv(d.Q-q0, block); rows > r {
+		rows = r
+	}
+	if c := ceilDiv(d.K-k0, block); cols > c {
+		cols = c
+	}
+	rows, cols = max(rows, 0), max(cols, 0)
+	p := &Pixels{Rows: rows, Cols: cols, Q0: q0, K0: k0, Block: block,
+		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols)}
+	sum := make([]float64, cols)
+	cnt := make([]int32, cols)
+	for pr := 0; pr < rows; pr++ {
+		clear(sum)
+		clear(cnt)
+		base := pr * cols
+		qa := q0 + pr*block
+		qb := min(qa+block, d.Q)
+		for q := qa; q < qb; q++ {
+			row := d.Weights[q*d.K : (q+1)*d.K]
+			for pc := 0; pc < cols; pc++ {
+				ka := k0 + pc*block
+				kb := min(ka+block, d.K)
+				i := base + pc
+				w := p.Weight[i]
+				if w != w {
+					continue
+				}
+				for k := ka; k < kb; k++ {
+					v := row[k]
+					if v != v {
+						w = v
+						break
+					}
+					if agg == AggMax {
+						if v > w {
+							w = v
+						}
+					} else {
+						sum[pc] += float64(v)
+					}
+					if v > d.Tol && v > p.Forbid[i] && d.Rule != nil {
+						if r := d.Rule(q, k); r != "" {
+							p.Forbid[i] = v
+							p.Rule[i] = r
+						}
+					}
+				}
+				cnt[pc] += int32(kb - ka)
+				p.Weight[i] = w
+			}
+		}
+		if agg == AggMean {
+			for pc := 0; pc < cols; pc++ {
+				i := base + pc
+				if p.Weight[i] == p.Weight[i] && cnt[pc] > 0 {
+					p.Weight[i] = float32(sum[pc] / float64(cnt[pc]))
+				}
+			}
+		}
+	}
+	return p
+}
+
+// At returns pixel (r, c).
+func (p *Pixels) At(r, c int) (w, forbid float32, rule string) {
+	i := r*p.Cols + c
+	return p.Weight[i], p.Forbid[i], p.Rule[i]
+}
+
+// MapOptions is the state of a Map screen that changes how it is drawn.
+type MapOptions struct {
+	CursorQ, CursorK int
+	// Zoom 0 fits the whole matrix; each step halves the block or, at one
+	// cell a pixel, doubles the magnification.
+	Zoom int
+	// Q0, K0 is the requested top-left cell; LayoutMap moves it to keep the
+	// cursor in view and returns the one used.
+	Q0, K0   int
+	Agg      Agg
+	Scale    Scale
+	HideSink bool
+}
+
+// MapLayout is where everything of a Map goes on a w x h canvas; the TUI uses
+// it to map mouse positions to cells.
+type MapLayout struct {
+	W, H                       int
+	LabelW, HeaderH            int
+	GridX, GridY, GridW, GridH int
+	// RowsPerLine is 2 with half blocks, 1 with the glyph ramp.
+	RowsPerLine int
+	// Block cells a pixel side; a pixel takes MagX columns and MagY rows
+	// (half-lines with half blocks).
+	Block, MagX, MagY int
+	Zoom, MaxZoom int
+	Q0, K0        int
+	// PixRows, PixCols are the pixels in view.
+	PixRows, PixCols int
+	// KeyStart is the first key shown (1 when the sink column is hidden).
+	KeyStart int
+	// Vertical is true when key tokens are written downwards, one a column.
+	Vertical bool
+	// TooSmall is true when the canvas cannot hold a map.
+	TooSmall bool
+}
+
+const (
+	mapFooter   = 2
+	maxTokW     = 12
+	maxHeaderH  = 8
+	minGridSide = 4
+)
+
+func digits(n int) int { return len(strconv.Itoa(max(n, 0))) }
+
+func ceilDiv(a, b int) int {
+	if a <= 0 {
+		return 0
+	}
+	return (a + b - 1) / b
+}
+
+func maxTokenWidth(toks []string, limit int) int {
+	w := 0
+	for _, t := range toks {
+		if n := StringWidth(t); n > w {
+			w = n
+			if w >= limit {
+				return limit
+			}
+		}
+	}
+	return w
+}
+
+// LayoutMap computes the layout of d on a w x h canvas.
+func LayoutMap(d *MapData, w, h int, opt MapOptions, st Styles) MapLayout {
+	l := MapLayout{W: w, H: h, RowsPerLine: 1, Block: 1, MagX: 1, MagY: 1}
+	if st.HalfBlocks() {
+		l.RowsPerLine = 2
+	}
+	if opt.HideSink && d.K > 1 {
+		l.KeyStart = 1
+	}
+	kvis := d.K - l.KeyStart
+	tokW := min(maxTokenWidth(d.QueryTokens, maxTokW), max(w/6, 3))
+	l.LabelW = digits(d.Q - 1)
+	if tokW > 0 {
+		l.LabelW += 1 + tokW
+	}
+	l.GridX = l.LabelW + 1
+	l.GridW = w - l.GridX
+	// Vertical key labels when every key can get its own column.
+	keyTokH := maxTokenWidth(d.KeyTokens, maxHeaderH)
+	l.HeaderH = 1
+	if keyTokH > 0 && kvis <= l.GridW {
+		l.HeaderH = min(keyTokH, maxHeaderH, max(1, (h-mapFooter)/5))
+		l.Vertical = true
+	}
+	l.GridY = l.HeaderH
+	l.GridH = h - l.HeaderH - mapFooter
+	if l.GridW < minGridSide || l.GridH < 2 || d.Q <= 0 || kvis <= 0 {
+		l.TooSmall = true
+		return l
+	}
+	dr := l.GridH * l.RowsPerLine
+	// The fit keeps pixels square (one column is as wide as a half-line is
+	// tall) but lets a small matrix take up to twice the width, so that
+	// every key gets room for its label.
+	fitBlock, fitX, fitY := 1, 1, 1
+	if d.Q <= dr && kvis <= l.GridW {
+		fitY = max(1, min(dr/d.Q, MaxMag))
+		fitX = max(1, min(l.GridW/kvis, MaxMag, 2*fitY))
+		fitY = min(fitY, fitX)
+	} else {
+		fitBlock = max(ceilDiv(d.Q, dr), ceilDiv(kvis, l.GridW))
+	}
+	// Steps from the fit to magnification MaxMag.
+	steps := 0
+	for b, m := fitBlock, min(fitX, fitY); b > 1 || m < MaxMag; steps++ {
+		if b > 1 {
+			b = ceilDiv(b, 2)
+		} else {
+			m *= 2
+		}
+	}
+	l.MaxZoom = steps
+	l.Zoom = max(0, min(opt.Zoom, steps))
+	l.Block, l.MagX, l.MagY = fitBlock, fitX, fitY
+	for i := 0; i < l.Zoom; i++ {
+		if l.Block > 1 {
+			l.Block = ceilDiv(l.Block, 2)
+		} else {
+			l.MagX, l.MagY = min(l.MagX*2, MaxMag), min(l.MagY*2, MaxMag)
+		}
+	}
+	if l.Vertical && l.Block > 1 {
+		l.Vertical = false
+	}
+	spanQ := (dr / l.MagY) * l.Block
+	spanK := (l.GridW / l.MagX) * l.Block
+	l.Q0 = follow(opt.Q0, opt.CursorQ, spanQ, l.Block, 0, d.Q)
+	l.K0 = follow(opt.K0, opt.CursorK, spanK, l.Block, l.KeyStart, d.K)
+	l.PixRows = min(dr/l.MagY, ceilDiv(d.Q-l.Q0, l.Block))
+	l.PixCols = min(l.GridW/l.MagX, ceilDiv(d.K-l.K0, l.Block))
+	return l
+}
+
+// follow returns an origin aligned to block (relative to lo) that keeps cur
+// inside [origin, origin+span) and shows as much of [lo, n) as it can.
+func follow(origin, cur, span, block, lo, n int) int {
+	align := func(x int) int { return lo + ((x-lo)/block)*block }
+	cur = max(lo, min(cur, n-1))
+	origin = align(max(lo, origin))
+	if cur < origin {
+		origin = align(cur)
+	}
+	if cur >= origin+span {
+		origin = align(cur - span + block)
+	}
+	if last := n - span; origin > last {
+		origin = max(lo, align(last+block-1))
+		if origin > cur {
+			origin = align(cur)
+		}
+	}
+	return origin
+}
+
+// CellAt maps a canvas position to the cell under it (the upper of the two
+// rows a half-block line holds).
+func (l MapLayout) CellAt(x, y int) (q, k int, ok bool) {
+	if l.TooSmall || x < l.GridX || y < l.GridY || x >= l.GridX+l.PixCols*l.MagX {
+		return 0, 0, false
+	}
+	pr := ((y - l.GridY) * l.RowsPerLine) / l.MagY
+	pc := (x - l.GridX) / l.MagX
+	if pr >= l.PixRows || pc >= l.PixCols || y >= l.GridY+l.GridH {
+		return 0, 0, false
+	}
+	return l.Q0 + pr*l.Block, l.K0 + pc*l.Block, true
+}
+
+// PageRows is how many cells a page move covers vertically.
+func (l MapLayout) PageRows() int { return max(1, (l.GridH*l.RowsPerLine/l.MagY)*l.Block) }
+
+// PageCols is how many cells a page move covers horizontally.
+func (l MapLayout) PageCols() int { return max(1, (l.GridW/l.MagX)*l.Block) }
+
+// ScaleValue maps w to [0, 1] for a colour scale with maximum vmax.
+func ScaleValue(w, vmax float32, s Scale) float64 {
+	if vmax <= 0 {
+		vmax = 1
+	}
+	if !(w > 0) {
+		return 0
+	}
+	if s == Log {
+		t := 1 + math.Log10(float64(w)/float64(vmax))/LogDecades
+		return math.Max(0, math.Min(1, t))
+	}
+	return math.Min(1, float64(w)/float64(vmax))
+}
+
+func (d *MapData) vmax(hideSink bool) float32 {
+	if hideSink {
+		return d.VMaxNoSink
+	}
+	return d.VMax
+}
+
+func pixelColour(st Styles, w, forbid float32, t float64) Colour {
+	switch {
+	case w != w:
+		return st.NaN
+	case forbid > 0:
+		return st.Colormap.Alarm
+	}
+	return st.Colormap.At(t)
+}
+
+// RenderMap lays out, downsamples and draws d in one call.
+func RenderMap(d *MapData, w, h int, opt MapOptions, st Styles) (*Canvas, MapLayout) {
+	l := LayoutMap(d, w, h, opt, st)
+	var px *Pixels
+	if !l.TooSmall {
+		px = Downsample(d, l.Q0, l.K0, l.PixRows, l.PixCols, l.Block, opt.Agg)
+	}
+	return Map(d, px, l, opt, st), l
+}
+
+// Map draws the heat map of d with the pixels px (from Downsample with the
+// layout's window) on a new canvas of the layout's size.
+func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas {
+	c := NewCanvas(l.W, l.H)
+	if l.TooSmall || px == nil {
+		c.Text(0, 0, "window too small for the map", st.Warn, -1)
+		return c
+	}
+	vmax := d.vmax(opt.HideSink)
+	cq, ck := max(0, min(opt.CursorQ, d.Q-1)), max(l.KeyStart, min(opt.CursorK, d.K-1))
+	cpr, cpc := -1, -1
+	if cq >= l.Q0 && ck >= l.K0 {
+		cpr, cpc = (cq-l.Q0)/l.Block, (ck-l.K0)/l.Block
+		if cpr >= px.Rows || cpc >= px.Cols {
+			cpr, cpc = -1, -1
+		}
+	}
+	colourOf := func(pr, pc int) Colour {
+		w, f, _ := px.At(pr, pc)
+		return pixelColour(st, w, f, ScaleValue(w, vmax, opt.Scale))
+	}
+	for y := 0; y < l.GridH; y++ {
+		for x := 0; x < px.Cols*l.MagX && x < l.GridW; x++ {
+			pc := x / l.MagX
+			if l.RowsPerLine == 2 {
+				prT, prB := (2*y)/l.MagY, (2*y+1)/l.MagY
+				if prT >= px.Rows {
+					continue
+				}
+				fg := colourOf(prT, pc)
+				bg := NoColour
+				if prB < px.Rows {
+					bg = colourOf(prB, pc)
+				}
+				cell := Style{FG: fg, BG: bg}
+				ch := GlyphHalf
+				if pc == cpc && (prT == cpr || prB == cpr) {
+					under := fg
+					if prT != cpr {
+						under = bg
+					}
+					ch, cell = '+', Style{FG: contrast(under), BG: under, Attr: Bold}
+				}
+				c.Set(l.GridX+x, l.GridY+y, ch, cell)
+				continue
+			}
+			pr := y / l.MagY
+			if pr >= px.Rows {
+				continue
+			}
+			w, f, _ := px.At(pr, pc)
+			t := ScaleValue(w, vmax, opt.Scale)
+			var ch rune
+			var cell Style
+			switch {
+			case w != w:
+				ch, cell = GlyphNaN, Style{Attr: Bold}
+			case f > 0:
+				ch, cell = GlyphForbidden, Style{Attr: Bold}
+			default:
+				ch = rune(RampGlyph(t))
+			}
+			if st.HasColour() {
+				cell.FG = pixelColour(st, w, f, t)
+			}
+			if pr == cpr && pc == cpc {
+				cell.Attr |= Reverse | Bold
+				if ch == ' ' {
+					ch = '+'
+				}
+			}
+			c.Set(l.GridX+x, l.GridY+y, ch, cell)
+		}
+	}
+	drawKeyHeader(c, d, l, cpc, st)
+	drawQueryLabels(c, d, l, cpr, st)
+	drawReadout(c, d, px, l, cq, ck, cpr, cpc, st)
+	drawMapLegend(c, 0, l.H-1, l.W, d.Measure, vmax, opt, l, st)
+	return c
+}
+
+func drawKeyHeader(c *Canvas, d *MapData, l MapLayout, cpc int, st Styles) {
+	if l.Vertical {
+		for pc := 0; pc < l.PixCols; pc++ {
+			k := l.K0 + pc
+			x := l.GridX + pc*l.MagX
+			style := st.Label
+			if pc == cpc {
+				style = st.LabelHi
+			}
+			// Leading spaces (word-start markers of BPE tokens) would waste the
+			// few rows the header has.
+			tok := strings.TrimLeft(d.token(d.KeyTokens, k), " ")
+			if tok == "" {
+				tok = strconv.Itoa(k)
+			}
+			y := 0
+			for _, r := range tok {
+				if y >= l.HeaderH {
+					break
+				}
+				r = Printable(r)
+				if StringWidth(string(r)) != 1 {
+					r = '·'
+				}
+				c.Set(x, y, r, style)
+				y++
+			}
+			for ; y < l.HeaderH && pc == cpc; y++ {
+				c.Set(x, y, ' ', style)
+			}
+		}
+		return
+	}
+	// Tick labels at round key indices, spaced so that they never touch.
+	y := l.HeaderH - 1
+	step := niceStep(ceilDiv((digits(d.K)+2)*l.Block, l.MagX))
+	next := 0
+	mark := -1
+	if cpc >= 0 {
+		// The cursor's key as a marker above its column.
+		mark = cpc * l.MagX
+		c.Set(l.GridX+mark, y, '▼', st.Accent)
+	}
+	for k := ((l.K0 + step - 1) / step) * step; k < d.K; k += step {
+		pc := (k - l.K0) / l.Block
+		x := pc * l.MagX
+		if pc >= l.PixCols {
+			break
+		}
+		s := strconv.Itoa(k)
+		if x < next || x+len(s) > l.GridW || (mark >= x && mark < x+len(s)) {
+			continue
+		}
+		c.Text(l.GridX+x, y, s, st.Faint, -1)
+		next = x + len(s) + 1
+	}
+}
+
+func drawQueryLabels(c *Canvas, d *MapData, l MapLayout, cpr int, st Styles) {
+	dw := digits(d.Q - 1)
+	tokW := l.LabelW - dw - 1
+	for y := 0; y < l.GridH; y++ {
+		r0 := y * l.RowsPerLine
+		prA, prB := r0/l.MagY, (r0+l.RowsPerLine-1)/l.MagY
+		if prA >= l.PixRows {
+			break
+		}
+		pr, style := prA, st.Label
+		switch {
+		case cpr >= prA && cpr <= prB:
+			pr, style = cpr, st.LabelHi
+		case prA*l.MagY < r0:
+			// prA is labelled on a line above; label the next pixel if it starts here.
+			if prB == prA || prB >= l.PixRows {
+				continue
+			}
+			pr = prB
+		}
+		q := l.Q0 + pr*l.Block
+		idx := strconv.Itoa(q)
+		s := strings.Repeat(" ", dw-len(idx)) + idx
+		if tokW > 0 {
+			s += " " + ellipsize(d.token(d.QueryTokens, q), tokW)
+		}
+		if style == st.LabelHi {
+			s += strings.Repeat(" ", max(0, l.LabelW-StringWidth(s)))
+		}
+		c.Text(0, l.GridY+y, s, style, l.LabelW)
+	}
+}
+
+// ellipsize cuts s to w columns, ending with "…" when cut.
+func ellipsize(s string, w int) string {
+	if w <= 0 {
+		return ""
+	}
+	if StringWidth(s) <= w {
+		return s
+	}
+	var b strings.Builder
+	n := 0
+	for _, r := range s {
+		rw := StringWidth(string(r))
+		if n+rw > w-1 {
+			break
+		}
+		b.WriteRune(r)
+		n += rw
+	}
+	b.WriteString("…")
+	return b.String()
+}
+
+// FormatWeight prints a weight the way every view does: 4 significant digits.
+func FormatWeight(v float32) string {
+	switch {
+	case v != v:
+		return "NaN"
+	case v == 0:
+		return "0"
+	}
+	a := math.Abs(float64(v))
+	if a >= 1e-3 && a < 1e4 {
+		return strconv.FormatFloat(float64(v), 'f', max(0, 3-int(math.Floor(math.Log10(a)))), 32)
+	}
+	return strconv.FormatFloat(float64(v), 'e', 2, 32)
+}
+
+func quoteTok(t string) string {
+	if t == "" {
+		return ""
+	}
+	return " \"" + t + "\""
+}
+
+func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cq, ck, cpr, cpc int, st Styles) {
+	y := l.H - 2
+	x := 0
+	put := func(s string, style Style) {
+		x += c.Text(x, y, s, style, -1)
+	}
+	put(fmt.Sprintf("q %d", cq), st.Title)
+	if d.QueryOffset != 0 {
+		put(fmt.Sprintf(" (pos %d)", cq+d.QueryOffset), st.Faint)
+	}
+	put(ellipsize(quoteTok(d.token(d.QueryTokens, cq)), 16), st.Text)
+	put(" → ", st.Faint)
+	put(fmt.Sprintf("k %d", ck), st.Title)
+	put(ellipsize(quoteTok(d.token(d.KeyTokens, ck)), 16), st.Text)
+	v := d.Weights[cq*d.K+ck]
+	put("  "+FormatWeight(v), Style{Attr: Bold})
+	rule := d.rule(cq, ck)
+	switch {
+	case v != v:
+		put("  NaN", st.Bad)
+	case rule != "" && v > d.Tol:
+		put("  forbidden by "+rule, st.Bad)
+	case rule != "":
+		put("  forbidden by "+rule+", no mass", st.Faint)
+	default:
+		put("  allowed", st.Good)
+	}
+	if d.Describe != nil {
+		if s := d.Describe(cq, ck); s != "" {
+			put("  "+s, st.Text)
+		}
+	}
+	if l.Block > 1 && cpr >= 0 {
+		w, f, r := px.At(cpr, cpc)
+		s := fmt.Sprintf("  pixel %d×%d: %s", l.Block, l.Block, FormatWeight(w))
+		put(s, st.Faint)
+		if f > 0 {
+			put(fmt.Sprintf(", leak %s (%s)", FormatWeight(f), r), st.Bad)
+		}
+	}
+}
+
+// drawMapLegend writes the colour scale, the aggregation, the zoom and the
+// meaning of the special colours or glyphs on line y.
+func drawMapLegend(c *Canvas, x, y, w int, measure string, vmax float32, opt MapOptions, l MapLayout, st Styles) {
+	if measure == "" {
+		measure = "weight"
+	}
+	end := x + w
+	put := func(s string, style Style) {
+		if x < end {
+			x += c.Text(x, y, s, style, end-x)
+		}
+	}
+	put(opt.Scale.String()+" ", st.Faint)
+	lo := "0"
+	if opt.Scale == Log {
+		lo = FormatWeight(vmax * float32(math.Pow(10, -LogDecades)))
+	}
+	put(lo+" ", st.Text)
+	x = drawScaleBar(c, x, y, min(16, max(0, end-x-40)), st)
+	put(" "+FormatWeight(vmax)+" ", st.Text)
+	zoom := fmt.Sprintf("×%d", min(l.MagX, l.MagY))
+	if l.Block > 1 {
+		zoom = fmt.Sprintf("1:%d %s", l.Block, opt.Agg)
+	}
+	put(measure+" · "+zoom, st.Faint)
+	if opt.HideSink {
+		put(" · sink hidden", st.Faint)
+	}
+	put("  ", st.Text)
+	if st.HalfBlocks() || st.HasColour() {
+		put("■", Style{FG: st.Colormap.Alarm})
+	}
+	if !st.HalfBlocks() {
+		put(string(GlyphForbidden), Style{FG: colourIf(st, st.Colormap.Alarm), Attr: Bold})
+	}
+	put(" forbidden with mass ", st.Faint)
+	if st.HalfBlocks() || st.HasColour() {
+		put("■", Style{FG: st.NaN})
+	}
+	if !st.HalfBlocks() {
+		put(string(GlyphNaN), Style{Attr: Bold})
+	}
+	put(" NaN", st.Faint)
+}
+
+func colourIf(st Styles, c Colour) Colour {
+	if st.HasColour() {
+		return c
+	}
+	return NoColour
+}
+
+// drawScaleBar draws n cells from low to high: colours with half blocks,
+// ramp glyphs (coloured when possible) otherwise. It returns the next x.
+func drawScaleBar(c *Canvas, x, y, n int, st Styles) int {
+	if !st.HalfBlocks() {
+		n = len(Ramp) - 1
+	}
+	for i := 0; i < n; i++ {
+		t := (float64(i) + 0.5) / float64(n)
+		if st.HalfBlocks() {
+			col := st.Colormap.At(t)
+			c.Set(x+i, y, GlyphHalf, Style{FG: col, BG: col})
+			continue
+		}
+		ch := Ramp[i+1]
+		c.Set(x+i, y, rune(ch), Style{FG: colourIf(st, st.Colormap.At(t))})
+	}
+	return x + n
+}
+
+// niceStep returns the smallest of 1, 2, 5, 10, 20, 50, ... that is >= n.
+func niceStep(n int) int {
+	for p := 1; ; p *= 10 {
+		for _, m := range []int{1, 2, 5} {
+			if m*p >= n {
+				return m * p
+			}
+		}
+	}
+}
