@@ -28,6 +28,9 @@ type PartialOptions struct {
 	SumTol   float64  `json:"sum_tol"`
 	SumBelow bool     `json:"sum_below"`
 	Rules    []string `json:"rules,omitempty"`
+	// RedundancyRows and MaxLayerBytes decide the rows of the redundancy pass.
+	RedundancyRows int   `json:"redundancy_rows"`
+	MaxLayerBytes  int64 `json:"max_layer_bytes"`
 }
 
 // BlockPartial is the state of one block. Examples of a set share its

@@ -20,6 +20,12 @@ const DefaultTol = 1e-6
 // used (see Options.MaxLayerBytes).
 const DefaultMaxLayerBytes = 64 << 20
 
+// DefaultRedundancyRows is how many evenly spaced query rows per (layer,
+// batch item) the redundancy pass uses by default: comparing every pair of
+// heads costs (heads-1)/2 times the main pass over the same rows, so all rows
+// of long sequences would dominate the run.
+const DefaultRedundancyRows = 128
+
 // Options control an analysis pass. The zero value is not useful: start from
 // DefaultOptions.
 type Options struct {
@@ -41,6 +47,11 @@ type Options struct {
 	// (layer, batch item) of each block, with the heads done and the total
 	// expected (the total is an estimate when examples differ in shape).
 	Progress func(done, total int64)
+	// RedundancyRows: the redundancy (mean Jensen-Shannon divergence to the
+	// other heads) uses every s-th query row, s the smallest stride giving at
+	// most this many rows (0 = DefaultRedundancyRows, -1 = every row). The
+	// rows are the same whatever the sharding, so results stay exact.
+	RedundancyRows int
 	// MaxLayerBytes bounds the float32 copy of one layer's heads kept for the
 	// redundancy pass; when a layer needs more, every s-th query row is kept
 	// (s the smallest stride that fits) and the redundancy is the mean over
@@ -82,7 +93,8 @@ type reader interface {
 
 // NewPartial returns an empty Partial for passes made with opt.
 func NewPartial(opt Options) *Partial {
-	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow}
+	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow,
+		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes}
 	for _, r := range opt.Rules {
 		po.Rules = append(po.Rules, r.String())
 	}
@@ -377,6 +389,7 @@ type layerStore struct {
 	vals               []float32 // [head][row][key]
 	ent                []float64 // [head][row]
 	ok                 []bool    // [head][row]: judged and finite
+	lo, hi             []int32   // [head][row]: first and last nonzero key
 }
 
 func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reader, rules *Rules, example string, opt Options, prog *progress) error {
@@ -390,13 +403,21 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	if limit <= 0 {
 		limit = DefaultMaxLayerBytes
 	}
+	maxRows := opt.RedundancyRows
+	if maxRows == 0 {
+		maxRows = DefaultRedundancyRows
+	}
 	stride := 1
+	if maxRows > 0 {
+		stride = (Q + maxRows - 1) / maxRows
+	}
 	for int64(H)*int64((Q+stride-1)/stride)*int64(K)*4 > limit && stride < Q {
 		stride++
 	}
 	nr := (Q + stride - 1) / stride
 	st := &layerStore{stride: stride, rows: nr, keys: K,
-		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr)}
+		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr),
+		lo: make([]int32, H*nr), hi: make([]int32, H*nr)}
 	sumTol := opt.SumTol
 	if sumTol <= 0 {
 		sumTol = SumTolerance(blk.DType)
@@ -602,12 +623,17 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		mx := math.Inf(-1)
 		var nAllow, zeros, neg int64
 		var hit [numMask]bool
+		nzLo, nzHi := -1, -1
 		for k, x32 := range row {
 			x := float64(x32)
 			if x > mx {
 				mx = x
 			}
 			if x != 0 {
+				if nzLo < 0 {
+					nzLo = k
+				}
+				nzHi = k
 				s += x
 				d := k - p
 				if d < 0 {
@@ -615,7 +641,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 				}
 				dist += x * float64(d)
 				if x > 0 {
-					ent -= x * math.Log(x)
+					ent -= x * fastLog(x)
 				} else {
 					neg++
 					negm -= x
@@ -715,6 +741,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			copy(st.vals[i*K:(i+1)*K], row)
 			st.ent[i] = ent
 			st.ok[i] = true
+			st.lo[i], st.hi[i] = int32(nzLo), int32(nzHi)
 		}
 	}
 	w.commit(acc, cfg)
@@ -808,12 +835,22 @@ func (st *layerStore) js(i, j int) (float64, int64) {
 		if !st.ok[a] || !st.ok[b] {
 			continue
 		}
-		pa, pb := st.vals[a*K:(a+1)*K], st.vals[b*K:(b+1)*K]
+		// only keys where either row is nonzero contribute to H(M)
+		lo, hi := min(st.lo[a], st.lo[b]), max(st.hi[a], st.hi[b])
+		if st.lo[a] < 0 {
+			lo = st.lo[b]
+		} else if st.lo[b] < 0 {
+			lo = st.lo[a]
+		}
 		var hm float64
-		for k, x := range pa {
-			m := 0.5 * (float64(x) + float64(pb[k]))
-			if m > 0 {
-				hm -= m * math.Log(m)
+		if lo >= 0 {
+			pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
+			pb = pb[:len(pa)]
+			for k, x := range pa {
+				m := 0.5 * (float64(x) + float64(pb[k]))
+				if m > 0 {
+					hm -= m * fastLog(m)
+				}
 			}
 		}
 		d := hm - 0.5*(st.ent[a]+st.ent[b])
