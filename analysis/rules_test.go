@@ -1,0 +1,111 @@
+package analysis
+
+import (
+	"os"
+	"os/exec"
+	"path/filepath"
+	"testing"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// TestRulesGeometry checks the mask rules of DESIGN.md's convention on small
+// cases written out by hand: causal k <= p; window W: p-W < k <= p; prefix P:
+// the first P positions see each other both ways; KV-cache offset K-Q.
+func TestRulesGeometry(t *testing.T) {
+	C, W, P, N := RuleCausal, RuleWindow, RulePrefix, RuleNone
+	cases := []struct {
+		name string
+		blk  loader.Block
+		want [][]Rule
+	}{
+		{"causal", loader.Block{Kind: loader.KindCausal, Queries: 3, Keys: 3, Batch: 1},
+			[][]Rule{{N, C, C}, {N, N, C}, {N, N, N}}},
+		{"window 2", loader.Block{Kind: loader.KindCausal, Queries: 4, Keys: 4, Batch: 1, Window: 2},
+			[][]Rule{{N, C, C, C}, {N, N, C, C}, {W, N, N, C}, {W, W, N, N}}},
+		{"prefix 2", loader.Block{Kind: loader.KindCausal, Queries: 4, Keys: 4, Batch: 1, Prefix: 2},
+			[][]Rule{{N, N, P, P}, {N, N, P, P}, {N, N, N, C}, {N, N, N, N}}},
+		{"decode step: last 2 of 4", loader.Block{Kind: loader.KindCausal, Queries: 2, Keys: 4, Batch: 1, QueryOffset: 2},
+			[][]Rule{{N, N, N, C}, {N, N, N, N}}},
+		{"bidirectional", loader.Block{Kind: loader.KindBidirectional, Queries: 2, Keys: 2, Batch: 1},
+			[][]Rule{{N, N}, {N, N}}},
+	}
+	for _, c := range cases {
+		r, err := NewRules(&c.blk, nil, nil, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		row := make([]Rule, c.blk.Keys)
+		for q, want := range c.want {
+			r.Row(0, q, nil, row)
+			for k := range want {
+				cell, err := r.Cell(0, 0, q, k)
+				if err != nil {
+					t.Fatal(err)
+				}
+				if row[k] != want[k] || cell != want[k] {
+					t.Errorf("%s: (q %d, k %d): Row %s, Cell %s, want %s", c.name, q, k, row[k], cell, want[k])
+				}
+			}
+		}
+	}
+}
+
+// TestRulesSides: padding keys and document segments from the sides;
+// padding query rows are not judged; --rule restricts and refuses rules the
+// block cannot support.
+func TestRulesSides(t *testing.T) {
+	blk := &loader.Block{Name: "d", Kind: loader.KindCausal, QuerySide: "t", KeySide: "t", Queries: 4, Keys: 4, Batch: 2}
+	side := &loader.Side{Name: "t", Len: 4,
+		Valid:    [][]bool{{true, true, true, true}, {false, true, true, true}},
+		Segments: [][]int64{{0, 0, 1, 1}, {0, 0, 0, 0}}}
+	r, err := NewRules(blk, side, side, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := r.Active(); len(got) != 3 || got[0] != RuleCausal || got[1] != RuleSegments || got[2] != RulePadding {
+		t.Fatalf("active rules %v", got)
+	}
+	if r.Judged(1, 0) || !r.Judged(1, 1) {
+		t.Error("padding query row judged")
+	}
+	row := make([]Rule, 4)
+	r.Row(0, 3, nil, row)
+	if row[0] != RuleSegments || row[1] != RuleSegments || row[2] != RuleNone || row[3] != RuleNone {
+		t.Errorf("batch 0 row 3: %v", row)
+	}
+	r.Row(1, 2, nil, row)
+	if row[0] != RulePadding || row[1] != RuleNone || row[3] != RuleCausal {
+		t.Errorf("batch 1 row 2: %v", row)
+	}
+	if r.DocStart(0, 3) != 2 || r.DocStart(1, 3) != 0 {
+		t.Errorf("doc starts %d %d", r.DocStart(0, 3), r.DocStart(1, 3))
+	}
+	if _, err := NewRules(blk, side, side, []Rule{RuleWindow}); err == nil {
+		t.Error("--rule window accepted without a window")
+	}
+	only, err := NewRules(blk, side, side, []Rule{RulePadding})
+	if err != nil || len(only.Active()) != 1 {
+		t.Errorf("--rule padding: %v %v", only.Active(), err)
+	}
+	cross := &loader.Block{Name: "c", Kind: loader.KindCross, QuerySide: "t", KeySide: "s", Queries: 4, Keys: 4, Batch: 2}
+	rc, _ := NewRules(cross, side, side, nil)
+	if rc.SelfAttention() || rc.Has(RuleSegments) || rc.Has(RuleCausal) || !rc.Has(RulePadding) {
+		t.Errorf("cross rules %v", rc.Active())
+	}
+}
+
+// TestGeneratorReproducible runs testdata/cases/gen_cases.py --check (a
+// fresh PyTorch run compared with the committed cases) when HEED_PYTHON names
+// an interpreter with numpy, scipy and torch, as `make test` sets it.
+func TestGeneratorReproducible(t *testing.T) {
+	py := os.Getenv("HEED_PYTHON")
+	if py == "" {
+		t.Skip("HEED_PYTHON not set (make test sets it)")
+	}
+	cmd := exec.Command(py, filepath.Join(casesDir, "gen_cases.py"), "--check")
+	out, err := cmd.CombinedOutput()
+	if err != nil {
+		t.Fatalf("gen_cases.py --check: %v\n%s", err, out)
+	}
+}
