@@ -95,6 +95,7 @@ type Framed struct {
 	unsub     func()
 	gotoMsg   func(loc string) tea.Msg
 	following bool
+	applied   string // the last presenter location sent to the inner model
 }
 
 // NewPresenter wraps the presenter's own TUI with a status line (updated
@@ -163,8 +164,11 @@ func (f *Framed) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 	case presenterMoved:
 		// The hub's latest location, not msg.loc: messages of concurrent
 		// Cmds may arrive out of order, and the latest one wins.
+		// A location already applied is not applied again: a late message
+		// must not pull the guest back after they moved while following.
 		var cmd tea.Cmd
-		if loc := f.hub.Location(); f.following && loc != "" {
+		if loc := f.hub.Location(); f.following && loc != "" && loc != f.applied {
+			f.applied = loc
 			cmd = f.forward(f.gotoMsg(loc))
 		}
 		if msg.rearm {
@@ -177,6 +181,7 @@ func (f *Framed) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 			f.following = !f.following
 			if f.following {
 				if loc := f.hub.Location(); loc != "" {
+					f.applied = loc
 					return f, f.forward(f.gotoMsg(loc))
 				}
 			}

@@ -153,6 +153,7 @@ type standIn struct {
 	sizes    []string
 	lastSize string
 	gotos    []string
+	keys     []string
 	term     string
 	colterm  string
 	profile  string
@@ -182,6 +183,9 @@ func (m *standIn) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 		if msg.String() == "q" {
 			return m, tea.Quit
 		}
+		// every other key on a new line: keys are handled in order, so
+		// seeing one proves the keys before it were handled
+		m.keys = append(m.keys, fmt.Sprintf("key#%d %s", len(m.keys)+1, msg.String()))
 	}
 	return m, nil
 }
@@ -194,6 +198,7 @@ func (m *standIn) View() tea.View {
 	}
 	lines = append(lines, m.sizes...)
 	lines = append(lines, m.gotos...)
+	lines = append(lines, m.keys...)
 	v := tea.NewView(strings.Join(lines, "\n"))
 	v.AltScreen = true
 	return v
@@ -896,10 +901,12 @@ func TestFollowOverSSH(t *testing.T) {
 	term.waitFor("following the presenter")
 	hub.Publish("encoder:L3:H0:q5")
 	term.waitFor("goto#2 encoder:L3:H0:q5")
-	term.ptmx.Write([]byte("F"))
-	term.waitFor("F: follow the presenter again")
+	// F is the follower's; z reaches the stand-in after it.
+	term.ptmx.Write([]byte("Fz"))
+	term.waitFor("key#1 z")
 	hub.Publish("cross:L0:H1")
-	term.waitFor("cross:L0:H1)")
+	term.ptmx.Write([]byte("y"))
+	term.waitFor("key#2 y")
 	if strings.Contains(term.output(), "goto#3") {
 		t.Errorf("guest on their own was moved by the presenter: %q", term.output())
 	}
