@@ -21,6 +21,7 @@ type passFlags struct {
 	sumTol   float64
 	sumBelow bool
 	blocks   []string
+	shard    shardFlags // --shard, --partial (shard.go)
 }
 
 func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
@@ -32,6 +33,7 @@ func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 1e-5)")
 	f.BoolVar(&pf.sumBelow, "sum-below", false, "rows may sum below 1 (models with learned sink logits)")
 	f.StringArrayVar(&pf.blocks, "block", nil, "only this block (repeatable)")
+	pf.shard.register(cmd)
 }
 
 func (pf *passFlags) options() (analysis.Options, error) {
@@ -46,6 +48,9 @@ func (pf *passFlags) options() (analysis.Options, error) {
 			if err != nil {
 				return opt, fmt.Errorf("--rule: %w", err)
 			}
+			if rule == analysis.RuleInvariance {
+				return opt, fmt.Errorf("--rule invariance: the causal-invariance check runs with --against B")
+			}
 			opt.Rules = append(opt.Rules, rule)
 		}
 	}
@@ -54,6 +59,9 @@ func (pf *passFlags) options() (analysis.Options, error) {
 
 // runPass opens the examples and runs the analysis pass over all of them.
 func runPass(ctx context.Context, args []string, lf *loadFlags, pf *passFlags) (*analysis.Partial, *loader.Set, error) {
+	if pf.shard.engaged() {
+		return pf.shard.runPass(ctx, args, lf, pf)
+	}
 	opt, err := pf.options()
 	if err != nil {
 		return nil, nil, err
@@ -103,6 +111,9 @@ Exit status: 0 clean, 1 findings, 2 bad input.`,
 			p, set, err := runPass(cmd.Context(), args, lf, pf)
 			if err != nil {
 				return err
+			}
+			if pf.shard.wrotePartial() {
+				return nil
 			}
 			res := p.Result()
 			out := cmd.OutOrStdout()
