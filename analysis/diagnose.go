@@ -116,10 +116,10 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 		if f.Rule.IsMask() {
 			la = f.agg.Leaks[f.Rule]
 		}
-		where := fmt.Sprintf("%s %s, %s, %s", bp.Name, which(f.Layers, bp.Layers, "layer", "layers"),
+		where := fmt.Sprintf("%s (%s, %s, %s)", bp.Name, which(f.Layers, bp.Layers, "layer", "layers"),
 			which(f.Heads, bp.Heads, "head", "heads"), which(f.Batches, bp.Batch, "batch item", "batch items"))
 		if f.Rule.IsMask() {
-			d.Evidence = append(d.Evidence, fmt.Sprintf("%.4g forbidden mass on %d cells in %d of %d judged rows (%s)", f.Mass, f.Cells, f.Rows, f.JudgedRows, where))
+			d.Evidence = append(d.Evidence, fmt.Sprintf("%.4g forbidden mass on %d cells in %d of %d judged rows of %s", f.Mass, f.Cells, f.Rows, f.JudgedRows, where))
 			if la.Forbidden > 0 {
 				d.Evidence = append(d.Evidence, fmt.Sprintf("%.1f%% of the cells the %s rule forbids carry mass", 100*float64(f.Cells)/float64(la.Forbidden), f.Rule))
 			}
@@ -153,7 +153,11 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 			case maxOff >= 1 && maxOff < max(2, (bp.Keys+3)/4) && contiguous(bp, f, 1, maxOff):
 				d.Pattern = "mask_shifted"
 				d.Value = float64(maxOff)
-				d.Text = fmt.Sprintf("Causal mask shifted by +%d in %s: each query also sees the next %d %s.", maxOff, where, maxOff, plural(maxOff, "key", "keys"))
+				next := "the next key"
+				if maxOff > 1 {
+					next = fmt.Sprintf("the next %d keys", maxOff)
+				}
+				d.Text = fmt.Sprintf("Causal mask shifted by +%d in %s: each query also sees %s.", maxOff, where, next)
 				d.Check = fmt.Sprintf("check the diagonal offset of the triu/tril that builds the mask (blocked cells are triu(..., diagonal=1); this looks like diagonal=%d) and any KV-cache offset added to query positions", maxOff+1)
 			default:
 				d.Pattern = "causal_leak"
@@ -299,18 +303,20 @@ func whereDiagnosis(bp *BlockPartial, f *Finding, what Diagnosis) (Diagnosis, bo
 	switch {
 	case !allH:
 		d.Pattern = "only_some_heads"
-		d.Text = fmt.Sprintf("Only %s %s of %s %s leak (%s) in %s: a mask broadcast over the head axis is wrong.",
-			plural(len(f.Heads), "head", "heads"), list(f.Heads), plural(len(f.Layers), "layer", "layers"), list(f.Layers), f.Rule, bp.Name)
+		d.Text = fmt.Sprintf("Only %s %s of %s %s %s (%s) in %s: a mask broadcast over the head axis is wrong.",
+			plural(len(f.Heads), "head", "heads"), list(f.Heads), plural(len(f.Layers), "layer", "layers"), list(f.Layers),
+			plural(len(f.Heads), "leaks", "leak"), f.Rule, bp.Name)
 		d.Check = "check how the mask is expanded to [batch*heads, q, k] or [batch, heads, q, k] (repeat vs repeat_interleave, batch-major order) and any per-head bias"
 	case !allL:
 		d.Pattern = "only_some_layers"
-		d.Text = fmt.Sprintf("Only %s %s of %s leak (%s): %s another code path or get another mask.",
-			plural(len(f.Layers), "layer", "layers"), list(f.Layers), bp.Name, f.Rule, plural(len(f.Layers), "that layer takes", "those layers take"))
+		d.Text = fmt.Sprintf("Only %s %s of %s %s (%s): %s.",
+			plural(len(f.Layers), "layer", "layers"), list(f.Layers), bp.Name, plural(len(f.Layers), "leaks", "leak"), f.Rule,
+			plural(len(f.Layers), "that layer takes another code path or gets another mask", "those layers take another code path or get another mask"))
 		d.Check = "check what differs for these layers: layer type (full vs sliding), a kernel fallback, a mask passed per layer or cached from another layer"
 	case !allB:
 		d.Pattern = "only_some_batch"
-		d.Text = fmt.Sprintf("Only batch %s %s of %s leak (%s): the mask is wrong for some batch items.",
-			plural(len(f.Batches), "item", "items"), list(f.Batches), bp.Name, f.Rule)
+		d.Text = fmt.Sprintf("Only batch %s %s of %s %s (%s): the mask is wrong for some batch items.",
+			plural(len(f.Batches), "item", "items"), list(f.Batches), bp.Name, plural(len(f.Batches), "leaks", "leak"), f.Rule)
 		d.Check = "check how the mask is broadcast over the batch (a [1, q, k] mask vs per-item padding masks, a path taken only for unpadded items)"
 	default:
 		return d, false
