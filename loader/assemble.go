@@ -703,6 +703,9 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 				return nil, ferr(a0, "the %s axis is empty (shape %v)", n, a0.Shape())
 			}
 		}
+		if int64(dims[3])*int64(dims[4]) > maxHead {
+			return nil, ferr(a0, "one head of %d queries x %d keys is larger than heed handles (%d values)", dims[3], dims[4], maxHead)
+		}
 		b.DType = a0.DType()
 		b.Layers, b.Batch, b.Heads, b.Queries, b.Keys = dims[0], dims[1], dims[2], dims[3], dims[4]
 		b.Axes = strings.Join(sp.names, " ")
@@ -857,6 +860,13 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 	return b, nil
 }
 
+// maxHead bounds Queries*Keys: callers allocate one head as a buffer.
+const maxHead = 1 << 30
+
+// maxSide bounds the number of elements of a tokens, valid or segments
+// array, which are read whole (a sparse HDF5 dataset can claim any shape).
+const maxSide = 1 << 24
+
 // sideSrc is where a side's length was first established, for messages.
 type sideSrc struct {
 	arr  Array
@@ -894,7 +904,7 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 		}
 		return nil
 	}
-	rows := func(a Array) (batch, n int, err error) {
+	rows0 := func(a Array) (batch, n int, err error) {
 		sh := a.Shape()
 		switch len(sh) {
 		case 1:
@@ -903,6 +913,13 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 			return sh[0], sh[1], nil
 		}
 		return 0, 0, ferr(a, "must be [seq] or [batch, seq], got shape %v", sh)
+	}
+	rows := func(a Array) (int, int, error) {
+		bt, n, err := rows0(a)
+		if err == nil && int64(bt)*int64(n) > maxSide {
+			return 0, 0, ferr(a, "%d x %d positions is more than heed reads for a side (%d)", bt, n, maxSide)
+		}
+		return bt, n, err
 	}
 	names := make([]string, 0, len(arrs))
 	for n := range arrs {

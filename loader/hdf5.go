@@ -18,6 +18,7 @@ package loader
 
 static hid_t heed_native_float(void) { return H5T_NATIVE_FLOAT; }
 static hid_t heed_native_llong(void) { return H5T_NATIVE_LLONG; }
+static hid_t heed_native_ullong(void) { return H5T_NATIVE_ULLONG; }
 static hid_t heed_native_double(void) { return H5T_NATIVE_DOUBLE; }
 
 static hid_t heed_vlen_str(H5T_cset_t cset) {
@@ -584,7 +585,14 @@ func (a *h5Array) ReadInt64(idx []int, dst []int64) error {
 		}
 		return nil
 	}
-	return a.read(idx, n, C.heed_native_llong(), unsafe.Pointer(&dst[0]))
+	mem := C.heed_native_llong()
+	if a.dtype == Uint64 {
+		// Read u64 as u64 and reinterpret: values above 2^63-1 wrap, as
+		// numpy's astype(int64) and heed's NPY reader do (HDF5's own
+		// conversion to a signed type would saturate instead).
+		mem = C.heed_native_ullong()
+	}
+	return a.read(idx, n, mem, unsafe.Pointer(&dst[0]))
 }
 
 func (a *h5Array) ReadStrings() ([]string, error) {

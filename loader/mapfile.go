@@ -15,6 +15,13 @@ type mappedFile struct {
 	f    *os.File
 	m    mmap.MMap // nil for an empty file
 	life lifetime
+	// borrowed is true when m is caller memory rather than a mapping (tests, fuzzing).
+	borrowed bool
+}
+
+// memFile wraps bytes as if they were a mapped file.
+func memFile(path string, b []byte) *mappedFile {
+	return &mappedFile{path: path, m: b, borrowed: true}
 }
 
 func mapFile(path string) (*mappedFile, error) {
@@ -57,17 +64,23 @@ func (m *mappedFile) size() int64 { return int64(len(m.m)) }
 func (m *mappedFile) readerAt() io.ReaderAt { return bytesReaderAt(m.m) }
 
 func (m *mappedFile) close() error {
-	return m.life.end(func() error {
-		var err error
-		if m.m != nil {
-			err = m.m.Unmap()
-			m.m = nil
-		}
+	return m.life.end(m.release)
+}
+
+// release unmaps and closes; the caller holds the lifetime exclusively.
+func (m *mappedFile) release() error {
+	var err error
+	if m.m != nil && !m.borrowed {
+		err = m.m.Unmap()
+	}
+	m.m = nil
+	if m.f != nil {
 		if cerr := m.f.Close(); err == nil {
 			err = cerr
 		}
-		return err
-	})
+		m.f = nil
+	}
+	return err
 }
 
 // bytesReaderAt is an io.ReaderAt over a byte slice.

@@ -2,6 +2,7 @@ package loader
 
 import (
 	"archive/zip"
+	"bytes"
 	"errors"
 	"fmt"
 	"io"
@@ -43,6 +44,10 @@ func openNPZ(path string) (Container, error) {
 	if err != nil {
 		return nil, err
 	}
+	return newNPZ(path, mf)
+}
+
+func newNPZ(path string, mf *mappedFile) (*npzFile, error) {
 	z := &npzFile{mf: mf}
 	if err := z.read(path); err != nil {
 		z.Close()
@@ -121,6 +126,9 @@ func (z *npzFile) member(path, name string, f *zip.File) (*rawArray, error) {
 			return nil, ferr("cannot inflate the member's header", err)
 		}
 		total := h.dataOff + h.nbytes
+		if f.CompressedSize64 > uint64(z.mf.size()) {
+			return nil, ferr(fmt.Sprintf("compressed size %d is larger than the archive (%d bytes)", f.CompressedSize64, z.mf.size()), nil)
+		}
 		if total > maxDeflateRatio*(int64(f.CompressedSize64)+1) {
 			return nil, ferr(fmt.Sprintf("header claims %d bytes, more than %d compressed bytes can hold", total, f.CompressedSize64), nil)
 		}
@@ -141,15 +149,7 @@ func (z *npzFile) Close() error {
 		for _, t := range z.temps {
 			t.release()
 		}
-		var err error
-		if z.mf.m != nil {
-			err = z.mf.m.Unmap()
-			z.mf.m = nil
-		}
-		if cerr := z.mf.f.Close(); err == nil {
-			err = cerr
-		}
-		return err
+		return z.mf.release()
 	})
 }
 
@@ -185,11 +185,13 @@ func (l *inflated) inflate() {
 	}
 	defer rc.Close()
 	if l.total <= inflateInMemory {
-		buf := make([]byte, l.total)
-		if _, err := io.ReadFull(rc, buf); err != nil {
+		// Grow with the data actually inflated, not with what the header claims.
+		var bb bytes.Buffer
+		if n, err := io.CopyN(&bb, rc, l.total); err != nil || n != l.total {
 			fail("truncated deflated member", err)
 			return
 		}
+		buf := bb.Bytes()
 		if err := drain(rc); err != nil {
 			fail("corrupt deflated member", err)
 			return

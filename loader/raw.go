@@ -285,12 +285,20 @@ func (r *rawArray) ReadStrings() ([]string, error) {
 	return out, nil
 }
 
+// maxZeroSizeElems bounds arrays of zero-byte elements (empty strings).
+const maxZeroSizeElems = 1 << 20
+
 // checkDataSize returns the byte size of an array of shape and element size
 // elem, or an error when it overflows or exceeds avail bytes.
 func checkDataSize(shape []int, elem int, avail int64) (int64, error) {
 	n, ok := numElems(shape, math.MaxInt64/int64(max(elem, 1)))
 	if !ok {
 		return 0, fmt.Errorf("shape %v overflows", shape)
+	}
+	if elem == 0 && n > maxZeroSizeElems {
+		// Elements of zero bytes ('<U0') take no data, so the file size
+		// cannot bound their count; reading them would still allocate.
+		return 0, fmt.Errorf("shape %v of zero-byte elements is too large", shape)
 	}
 	nb := n * int64(elem)
 	if nb > avail {

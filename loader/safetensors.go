@@ -47,6 +47,10 @@ func openSafetensors(path string) (Container, error) {
 	if err != nil {
 		return nil, err
 	}
+	return newSafetensors(path, mf)
+}
+
+func newSafetensors(path string, mf *mappedFile) (*stFile, error) {
 	s := &stFile{mf: mf}
 	if err := s.parse(path, mf.bytes()); err != nil {
 		mf.close()
