@@ -44,7 +44,9 @@ import (
 // shape of a generated export: [layers, heads, seq, seq] float16.
 type shape struct{ layers, heads, seq int }
 
-func (s shape) bytes() int64 { return int64(s.layers) * int64(s.heads) * int64(s.seq) * int64(s.seq) * 2 }
+func (s shape) bytes() int64 {
+	return int64(s.layers) * int64(s.heads) * int64(s.seq) * int64(s.seq) * 2
+}
 
 func (s shape) String() string { return fmt.Sprintf("[%d %d %d %d]", s.layers, s.heads, s.seq, s.seq) }
 

@@ -167,6 +167,9 @@ head saves no compute until the model is rebuilt without it.`,
 			if err != nil {
 				return err
 			}
+			if pf.shard.wrotePartial() {
+				return nil
+			}
 			res := p.Result()
 			rep := rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
 				Warnings: append([]string{}, set.Warnings...), Caveat: analysis.Caveat}
