@@ -1,0 +1,179 @@
+package views
+
+import (
+	"fmt"
+	"math"
+	"sort"
+	"strconv"
+)
+
+// TraceMethod is one explanation method's shares of the input tokens.
+type TraceMethod struct {
+	Name string
+	// Shares per input position (NaN = not available).
+	Shares []float64
+	// Note says what the shares mean or why they are missing.
+	Note string
+}
+
+// TraceData is the explanation of one output position.
+type TraceData struct {
+	Block      string
+	Query      int
+	QueryToken string
+	// Side names the input tokens ("target", or "source" through cross-attention).
+	Side    string
+	Tokens  []string
+	Methods []TraceMethod
+	Note    string
+}
+
+// TraceOptions is the Trace screen's state.
+type TraceOptions struct {
+	// Selected is the highlighted input position.
+	Selected int
+	// ByShare sorts by the first method's share instead of position.
+	ByShare bool
+}
+
+// TraceLayout maps lines to input positions.
+type TraceLayout struct {
+	TableY int
+	Order  []int // positions in display order (visible ones)
+}
+
+// PosAt maps a canvas line to an input position.
+func (l TraceLayout) PosAt(y int) (int, bool) {
+	i := y - l.TableY
+	if i < 0 || i >= len(l.Order) {
+		return 0, false
+	}
+	return l.Order[i], true
+}
+
+// TraceOrder returns the input positions in display order.
+func TraceOrder(d *TraceData, byShare bool) []int {
+	order := make([]int, len(d.Tokens))
+	for i := range order {
+		order[i] = i
+	}
+	if byShare && len(d.Methods) > 0 {
+		s := d.Methods[0].Shares
+		at := func(i int) float64 {
+			if i < len(s) && !math.IsNaN(s[i]) {
+				return s[i]
+			}
+			return math.Inf(-1)
+		}
+		sort.SliceStable(order, func(a, b int) bool { return at(order[a]) > at(order[b]) })
+	}
+	return order
+}
+
+// eighths are the bar glyphs: a bar's length carries its value in any colour profile.
+var eighths = []rune{' ', '▏', '▎', '▍', '▌', '▋', '▊', '▉', '█'}
+
+func drawBar(c *Canvas, x, y, w int, t float64, st Style) {
+	if math.IsNaN(t) || w <= 0 {
+		return
+	}
+	t = math.Max(0, math.Min(1, t))
+	n := int(math.Round(t * float64(w) * 8))
+	for i := 0; i < w; i++ {
+		e := min(8, max(0, n-8*i))
+		if e == 0 {
+			break
+		}
+		c.Set(x+i, y, eighths[e], st)
+	}
+}
+
+// Trace draws the input tokens as bars of their share, one column a method.
+func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceLayout) {
+	c := NewCanvas(w, h)
+	var l TraceLayout
+	x := c.Text(0, 0, fmt.Sprintf("Trace · %s · q %d", d.Block, d.Query), st.Title, -1)
+	x += c.Text(x, 0, quoteTok(d.QueryToken), st.Text, 20)
+	side := d.Side
+	if side == "" {
+		side = "input"
+	}
+	c.Text(x, 0, " · shares of the "+side+" tokens", st.Faint, -1)
+	y := 1
+	for _, m := range d.Methods {
+		if m.Note != "" && y < h-3 {
+			c.Text(0, y, m.Name+": "+m.Note, st.Faint, w)
+			y++
+		}
+	}
+	if d.Note != "" && y < h-3 {
+		c.Text(0, y, d.Note, st.Faint, w)
+		y++
+	}
+	if len(d.Methods) == 0 || len(d.Tokens) == 0 {
+		return c, l
+	}
+	y++
+	posW := digits(len(d.Tokens) - 1)
+	tokW := min(16, max(4, maxTokenWidth(d.Tokens, 16)+2))
+	labelW := posW + 1 + tokW
+	colW := (w - labelW - 1) / len(d.Methods)
+	valW := 6
+	barW := max(1, colW-valW-2)
+	order := TraceOrder(d, opt.ByShare)
+	c.Text(0, y, padLeft("pos", posW)+" "+padRight("token", tokW), st.Faint, -1)
+	maxes := make([]float64, len(d.Methods))
+	for i, m := range d.Methods {
+		c.Text(labelW+1+i*colW, y, ellipsize(m.Name, colW-1), st.Faint, -1)
+		for _, v := range m.Shares {
+			if !math.IsNaN(v) {
+				maxes[i] = math.Max(maxes[i], v)
+			}
+		}
+	}
+	if opt.ByShare {
+		c.Text(max(0, w-18), y, "sorted by "+d.Methods[0].Name, st.Faint, -1)
+	}
+	y++
+	l.TableY = y
+	vis := max(0, h-y)
+	sel := 0
+	for i, p := range order {
+		if p == opt.Selected {
+			sel = i
+		}
+	}
+	start := scrollStart(sel, len(order), vis)
+	end := min(len(order), start+vis)
+	l.Order = order[start:end]
+	for i, p := range l.Order {
+		yy := y + i
+		style := st.Label
+		if p == opt.Selected {
+			style = st.LabelHi
+		}
+		c.Text(0, yy, padLeft(strconv.Itoa(p), posW)+" "+padRight(d.Tokens[p], tokW), style, labelW)
+		for mi, m := range d.Methods {
+			v := math.NaN()
+			if p < len(m.Shares) {
+				v = m.Shares[p]
+			}
+			bx := labelW + 1 + mi*colW
+			t := v / math.Max(maxes[mi], 1e-12)
+			barStyle := Style{FG: colourIf(st, st.Colormap.At(0.35+0.65*t))}
+			if !st.HasColour() {
+				barStyle = st.Text
+			}
+			drawBar(c, bx, yy, barW, t, barStyle)
+			c.Text(bx+barW+1, yy, padLeft(sharePct(v), valW), st.Text, -1)
+		}
+	}
+	return c, l
+}
+
+func sharePct(v float64) string {
+	if math.IsNaN(v) {
+		return "–"
+	}
+	return strconv.FormatFloat(v*100, 'f', 1, 64) + "%"
+}

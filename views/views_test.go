@@ -1,0 +1,360 @@
+package views
+
+import (
+	"math"
+	"strings"
+	"testing"
+
+	"github.com/charmbracelet/colorprofile"
+	"github.com/charmbracelet/x/exp/golden"
+)
+
+// Golden tests: go test ./views -update rewrites testdata/<TestName>/*.golden.
+// Every case pins its colour profile, background and size.
+
+func styles(t testing.TB, p colorprofile.Profile, dark bool, cm string) Styles {
+	t.Helper()
+	c, ok := ColormapByName(cm)
+	if !ok {
+		t.Fatalf("no colormap %q", cm)
+	}
+	return NewStyles(p, dark, c)
+}
+
+type mapCase struct {
+	name    string
+	d       func() *MapData
+	w, h    int
+	opt     MapOptions
+	profile colorprofile.Profile
+	dark    bool
+	cm      string
+}
+
+func TestMap(t *testing.T) {
+	leak16 := func() *MapData { return causalMap(16, 1, demoTokens) }
+	clean16 := func() *MapData { return causalMap(16, 0, demoTokens) }
+	big := func() *MapData {
+		d := causalMap(300, 0, nil)
+		d.Weights[10*300+200] = 0.5 // one leaking cell far above the diagonal
+		return d
+	}
+	nanRow := func() *MapData {
+		d := causalMap(16, 0, demoTokens)
+		for k := 0; k < 16; k++ {
+			d.Weights[5*16+k] = float32(math.NaN())
+		}
+		return d
+	}
+	sink := func() *MapData {
+		d := causalMap(16, 0, demoTokens)
+		for q := 1; q < 16; q++ {
+			d.Weights[q*16] += 2
+		}
+		d.VMax, d.VMaxNoSink = MatrixMax(16, 16, d.Weights)
+		return d
+	}
+	cases := []mapCase{
+		{"leak_truecolor_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.TrueColor, true, "iridescent"},
+		{"leak_ascii_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ASCII, true, "iridescent"},
+		{"leak_notty_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.NoTTY, true, "iridescent"},
+		{"leak_ansi16_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ANSI, true, "iridescent"},
+		{"clean_256_light_80x21", clean16, 80, 21, MapOptions{CursorQ: 15, CursorK: 0}, colorprofile.ANSI256, false, "viridis"},
+		{"clean_magma_log_80x21", clean16, 80, 21, MapOptions{CursorQ: 8, CursorK: 2, Scale: Log}, colorprofile.TrueColor, true, "magma"},
+		{"big_fit_mean_80x21", big, 80, 21, MapOptions{}, colorprofile.TrueColor, true, "cividis"},
+		{"big_fit_max_ascii_80x21", big, 80, 21, MapOptions{Agg: AggMax, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "iridescent"},
+		{"big_zoom3_ascii_80x21", big, 80, 21, MapOptions{Zoom: 3, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "iridescent"},
+		{"big_zoom_max_ascii_200x57", big, 200, 57, MapOptions{Zoom: 20, CursorQ: 299, CursorK: 299}, colorprofile.ASCII, true, "iridescent"},
+		{"nan_row_ascii_80x21", nanRow, 80, 21, MapOptions{CursorQ: 5, CursorK: 1}, colorprofile.ASCII, true, "iridescent"},
+		{"sink_shown_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8}, colorprofile.ASCII, true, "iridescent"},
+		{"sink_hidden_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8, HideSink: true}, colorprofile.ASCII, true, "iridescent"},
+		{"too_small", leak16, 10, 4, MapOptions{}, colorprofile.ASCII, true, "iridescent"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			c, _ := RenderMap(tc.d(), tc.w, tc.h, tc.opt, styles(t, tc.profile, tc.dark, tc.cm))
+			if c.W != tc.w || c.H != tc.h {
+				t.Fatalf("canvas %dx%d, want %dx%d", c.W, c.H, tc.w, tc.h)
+			}
+			golden.RequireEqual(t, c.Render(tc.profile))
+		})
+	}
+}
+
+func TestSurvey(t *testing.T) {
+	vals := make([]float64, 6*12)
+	for l := 0; l < 6; l++ {
+		for h := 0; h < 12; h++ {
+			vals[l*12+h] = float64(l*12+h) / 71 * math.Log(16)
+		}
+	}
+	partial := append([]float64(nil), vals...)
+	for i := 40; i < len(partial); i++ {
+		partial[i] = math.NaN()
+	}
+	wide := make([]float64, 40*32)
+	for i := range wide {
+		wide[i] = float64(i%7) / 6
+	}
+	d := func(v []float64, layers, heads int) *SurveyData {
+		return &SurveyData{Block: "decoder", Layers: layers, Heads: heads, Stat: "entropy", Unit: "nats", Hint: "low = focused",
+			Values: v, Details: []Field{{"entropy", "1.234"}, {"confidence", "0.5123"}, {"sink", "0.1000"}, {"distance", "2.500"}},
+			Note: "statistics of 1 example"}
+	}
+	cases := []struct {
+		name        string
+		d           *SurveyData
+		w, h, l, hd int
+		p           colorprofile.Profile
+	}{
+		{"full_truecolor_80x21", d(vals, 6, 12), 80, 21, 2, 5, colorprofile.TrueColor},
+		{"full_ascii_80x21", d(vals, 6, 12), 80, 21, 2, 5, colorprofile.ASCII},
+		{"partial_ansi256_80x21", d(partial, 6, 12), 80, 21, 0, 0, colorprofile.ANSI256},
+		{"scroll_ascii_80x21", d(wide, 40, 32), 80, 21, 30, 31, colorprofile.ASCII},
+		{"scroll_ascii_200x57", d(wide, 40, 32), 200, 57, 30, 31, colorprofile.ASCII},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			c, _ := Survey(tc.d, tc.w, tc.h, tc.l, tc.hd, styles(t, tc.p, true, "iridescent"))
+			golden.RequireEqual(t, c.Render(tc.p))
+		})
+	}
+}
+
+func findingsFixture() *FindingsData {
+	return &FindingsData{
+		Done: true,
+		Rows: []FindingRow{
+			{Block: "decoder", Rule: "causal", Layers: "0-1", Heads: "all 4", Batches: "0", Mass: 14.2, Max: 0.31, Cells: 120, Rows: 120, Worst: "L1 H2 B0 q3 k4", Offsets: "+1 ×120"},
+			{Block: "decoder", Rule: "nan_rows", Layers: "1", Heads: "0", Batches: "0", Mass: 2, Cells: 0, Rows: 2, Worst: "L1 H0 B0 q0", Offsets: ""},
+		},
+		Diagnosis: []string{"Causal mask shifted by +1: every query also sees the next key, in all 4 heads of layers 0 and 1.",
+			"Real query rows are NaN in layer 1 (fully masked rows)."},
+		Caveat: "This is evidence to confirm by re-evaluating the model, not a verdict.",
+		Notes:  []string{"padding rows of batch item 1 are NaN (benign)"},
+	}
+}
+
+func TestFindings(t *testing.T) {
+	many := findingsFixture()
+	for i := 0; i < 30; i++ {
+		many.Rows = append(many.Rows, FindingRow{Block: "decoder", Rule: "window", Layers: "2", Heads: "1", Batches: "0", Mass: 0.1, Cells: 3, Rows: 3, Worst: "L2 H1 B0 q9 k1"})
+	}
+	cases := []struct {
+		name string
+		d    *FindingsData
+		w, h int
+		sel  int
+		p    colorprofile.Profile
+	}{
+		{"leak_truecolor_80x21", findingsFixture(), 80, 21, 0, colorprofile.TrueColor},
+		{"leak_ascii_80x21", findingsFixture(), 80, 21, 1, colorprofile.ASCII},
+		{"leak_ascii_200x57", findingsFixture(), 200, 57, 0, colorprofile.ASCII},
+		{"clean_ascii_80x21", &FindingsData{Done: true}, 80, 21, 0, colorprofile.ASCII},
+		{"running_ascii_80x21", &FindingsData{Progress: "40%"}, 80, 21, 0, colorprofile.ASCII},
+		{"scroll_ascii_80x21", many, 80, 21, 25, colorprofile.ASCII},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			c, _ := Findings(tc.d, tc.w, tc.h, tc.sel, styles(t, tc.p, true, "iridescent"))
+			golden.RequireEqual(t, c.Render(tc.p))
+		})
+	}
+}
+
+func traceFixture() *TraceData {
+	// Rollout of the worked example in notes/methods.md (Abnar & Zuidema
+	// 2020, eq. 1, derived there): query 1 -> [0.325, 0.675]; flow of the
+	// same example -> [0.35, 0.75].
+	return &TraceData{Block: "decoder", Query: 1, QueryToken: " cat", Side: "target", Tokens: []string{"<s>", " cat"},
+		Methods: []TraceMethod{{Name: "rollout", Shares: []float64{0.325, 0.675}}, {Name: "flow", Shares: []float64{0.35, 0.75}, Note: "flows are not normalised across tokens"}}}
+}
+
+func TestTrace(t *testing.T) {
+	long := &TraceData{Block: "decoder", Query: 15, QueryToken: " slept", Side: "target", Tokens: demoTokens,
+		Methods: []TraceMethod{{Name: "rollout", Shares: make([]float64, 16)}, {Name: "grad", Shares: make([]float64, 16)}}}
+	for i := range long.Tokens {
+		long.Methods[0].Shares[i] = float64(i+1) / 136
+		long.Methods[1].Shares[i] = math.NaN()
+	}
+	long.Methods[1].Note = "needs decoder/grad in the export"
+	cases := []struct {
+		name string
+		d    *TraceData
+		w, h int
+		opt  TraceOptions
+		p    colorprofile.Profile
+	}{
+		{"small_truecolor_80x21", traceFixture(), 80, 21, TraceOptions{Selected: 1}, colorprofile.TrueColor},
+		{"small_ascii_80x21", traceFixture(), 80, 21, TraceOptions{Selected: 1}, colorprofile.ASCII},
+		{"long_byshare_ascii_80x12", long, 80, 12, TraceOptions{Selected: 3, ByShare: true}, colorprofile.ASCII},
+		{"long_ascii_200x57", long, 200, 57, TraceOptions{Selected: 3}, colorprofile.ASCII},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			c, _ := Trace(tc.d, tc.w, tc.h, tc.opt, styles(t, tc.p, true, "iridescent"))
+			golden.RequireEqual(t, c.Render(tc.p))
+		})
+	}
+}
+
+func TestCompare(t *testing.T) {
+	a := causalMap(16, 1, demoTokens)
+	b := causalMap(16, 0, demoTokens)
+	diff := make([]float32, 256)
+	for i := range diff {
+		diff[i] = float32(math.Abs(float64(a.Weights[i] - b.Weights[i])))
+	}
+	d := NewMapData(16, 16, diff)
+	d.Rule = causalRule
+	d.QueryTokens, d.KeyTokens = demoTokens, demoTokens
+	d.Measure = "|A−B|"
+	d.Describe = func(q, k int) string {
+		return "A " + FormatWeight(a.Weights[q*16+k]) + " B " + FormatWeight(b.Weights[q*16+k])
+	}
+	cd := &CompareData{NameA: "before.npz", NameB: "after.npz", Block: "decoder", Layer: 0, Head: 1, Diff: d, Done: true,
+		Heads: []HeadChange{{0, 1, 0.31, 0.45, 0, 1}, {1, 0, 0.2, 0.3, 2, 3}, {0, 0, 0, 0, 0, 0}}}
+	for _, tc := range []struct {
+		name string
+		w, h int
+		p    colorprofile.Profile
+	}{{"narrow_ascii_80x21", 80, 21, colorprofile.ASCII}, {"wide_ascii_200x57", 200, 57, colorprofile.ASCII}, {"wide_truecolor_120x30", 120, 30, colorprofile.TrueColor}} {
+		t.Run(tc.name, func(t *testing.T) {
+			c, _ := Compare(cd, tc.w, tc.h, MapOptions{CursorQ: 0, CursorK: 1}, 0, styles(t, tc.p, true, "iridescent"))
+			golden.RequireEqual(t, c.Render(tc.p))
+		})
+	}
+}
+
+func TestBars(t *testing.T) {
+	for _, p := range []colorprofile.Profile{colorprofile.TrueColor, colorprofile.ASCII} {
+		t.Run(p.String(), func(t *testing.T) {
+			st := styles(t, p, true, "iridescent")
+			tabs := Tabs(80, []string{"Survey", "Map", "Findings"}, 1, "run7.npz", st)
+			bar := Status(80, []Field{{"block", "decoder"}, {"L", "3"}, {"H", "7"}, {"B", "0"}}, "copied decoder:L3:H7:B0:q12", st.Good, st)
+			golden.RequireEqual(t, tabs.Render(p)+"\n"+bar.Render(p))
+		})
+	}
+}
+
+// TestDownsampleKeepsLeak: one leaking cell in a 1024 x 1024 head stays
+// visible at every zoom, with mean or max weights.
+func TestDownsampleKeepsLeak(t *testing.T) {
+	n := 1024
+	d := causalMap(n, 0, nil)
+	d.Weights[100*n+900] = 1e-3
+	st := styles(t, colorprofile.ASCII, true, "iridescent")
+	for _, agg := range []Agg{AggMean, AggMax} {
+		for zoom := 0; zoom < 12; zoom++ {
+			opt := MapOptions{Zoom: zoom, CursorQ: 100, CursorK: 900, Agg: agg}
+			c, l := RenderMap(d, 200, 57, opt, st)
+			if !strings.ContainsRune(c.Plain(), GlyphForbidden) {
+				t.Errorf("agg %v zoom %d (block %d): the leaking cell is not marked", agg, zoom, l.Block)
+			}
+		}
+	}
+}
+
+// TestCellAtRoundTrip: clicking where a cell is drawn selects that cell.
+func TestCellAtRoundTrip(t *testing.T) {
+	d := causalMap(300, 0, nil)
+	for _, p := range []colorprofile.Profile{colorprofile.TrueColor, colorprofile.ASCII} {
+		st := styles(t, p, true, "iridescent")
+		for zoom := 0; zoom < 8; zoom++ {
+			l := LayoutMap(d, 120, 40, MapOptions{Zoom: zoom, CursorQ: 150, CursorK: 140}, st)
+			for pr := 0; pr < l.PixRows; pr += 3 {
+				for pc := 0; pc < l.PixCols; pc += 5 {
+					x := l.GridX + pc*l.MagX
+					y := l.GridY + (pr*l.MagY)/l.RowsPerLine
+					q, k, ok := l.CellAt(x, y)
+					wq, wk := l.Q0+pr*l.Block, l.K0+pc*l.Block
+					if (pr*l.MagY)%l.RowsPerLine != 0 {
+						// the lower half of a line: a click gives the upper pixel
+						wq -= l.Block
+					}
+					if !ok || q != wq || k != wk {
+						t.Fatalf("%v zoom %d: CellAt(%d,%d) = %d,%d,%v, want %d,%d", p, zoom, x, y, q, k, ok, wq, wk)
+					}
+				}
+			}
+			if 150 < l.Q0 || 150 >= l.Q0+l.PageRows() || 140 < l.K0 || 140 >= l.K0+l.PageCols() {
+				t.Fatalf("%v zoom %d: cursor (150, 140) outside the window at (%d, %d) + (%d, %d)", p, zoom, l.Q0, l.K0, l.PageRows(), l.PageCols())
+			}
+		}
+	}
+}
+
+func TestRampGlyph(t *testing.T) {
+	if RampGlyph(0) != ' ' || RampGlyph(math.NaN()) != ' ' || RampGlyph(1) != '@' || RampGlyph(2) != '@' {
+		t.Fatalf("ramp ends: %q %q %q", RampGlyph(0), RampGlyph(1), RampGlyph(2))
+	}
+	prev := strings.IndexByte(Ramp, RampGlyph(1e-9))
+	if prev != 1 {
+		t.Fatalf("smallest positive value gives %q, want %q", RampGlyph(1e-9), Ramp[1])
+	}
+	for i := 1; i <= 1000; i++ {
+		g := strings.IndexByte(Ramp, RampGlyph(float64(i)/1000))
+		if g < prev {
+			t.Fatalf("ramp not monotonic at %v", float64(i)/1000)
+		}
+		prev = g
+	}
+}
+
+// TestLuma checks the relative luminance against WCAG 2's definition: white
+// 1, black 0, and #777777 has contrast 4.48:1 with white (the WCAG
+// technique G18 example value, from memory), so L = 1.05/4.48 - 0.05.
+func TestLuma(t *testing.T) {
+	for _, tc := range []struct {
+		c    string
+		want float64
+	}{{"#ffffff", 1}, {"#000000", 0}, {"#777777", 1.05/4.48 - 0.05}} {
+		if got := MustHex(tc.c).Luma(); math.Abs(got-tc.want) > 2e-3 {
+			t.Errorf("Luma(%s) = %v, want %v", tc.c, got, tc.want)
+		}
+	}
+}
+
+func TestCanvasText(t *testing.T) {
+	c := NewCanvas(8, 1)
+	n := c.Text(0, 0, "a\tb中文x", Style{}, -1)
+	if got := c.Plain(); got != "a→b中文x" || n != 8 {
+		t.Fatalf("Text = %q (%d columns)", got, n)
+	}
+	c = NewCanvas(4, 1)
+	c.Text(0, 0, "ab中", Style{}, -1)
+	c.Text(3, 0, "中", Style{}, -1)
+	if got := c.Plain(); got != "ab中 " && got != "ab  " {
+		t.Logf("clipped wide rune: %q", got)
+	}
+	if w := StringWidth("中\n"); w != 3 {
+		t.Fatalf("StringWidth = %d, want 3", w)
+	}
+}
+
+func BenchmarkMapRender(b *testing.B) {
+	n := 1024
+	d := causalMap(n, 0, nil)
+	st := NewStyles(colorprofile.TrueColor, true, Colormaps()[0])
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		c, _ := RenderMap(d, 200, 60, MapOptions{CursorQ: 500, CursorK: 400}, st)
+		_ = c.String()
+	}
+}
+
+// BenchmarkMapDraw is the Map with its pixels cached (a head seen before).
+func BenchmarkMapDraw(b *testing.B) {
+	n := 1024
+	d := causalMap(n, 0, nil)
+	st := NewStyles(colorprofile.TrueColor, true, Colormaps()[0])
+	opt := MapOptions{CursorQ: 500, CursorK: 400}
+	l := LayoutMap(d, 200, 60, opt, st)
+	px := Downsample(d, l.Q0, l.K0, l.PixRows, l.PixCols, l.Block, opt.Agg)
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		_ = Map(d, px, l, opt, st).String()
+	}
+}
