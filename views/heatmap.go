@@ -226,8 +226,8 @@ type MapLayout struct {
 	// Block cells a pixel side; a pixel takes MagX columns and MagY rows
 	// (half-lines with half blocks).
 	Block, MagX, MagY int
-	Zoom, MaxZoom int
-	Q0, K0        int
+	Zoom, MaxZoom     int
+	Q0, K0            int
 	// PixRows, PixCols are the pixels in view.
 	PixRows, PixCols int
 	// KeyStart is the first key shown (1 when the sink column is hidden).
