@@ -2,14 +2,14 @@
 # Installs what heed's build and tests need on Debian/Ubuntu, when it is missing:
 # libhdf5-dev and pkg-config (HDF5 through cgo), tmux (end-to-end TUI tests),
 # openssh-client (tests of `heed share`), and Debian's python3 with numpy, h5py,
-# scipy and torch (the reference libraries the tests compare against).
+# scipy, torch and matplotlib (the reference libraries the tests compare against).
 # As root (or with passwordless sudo) it installs them with apt-get; otherwise
 # it lists what is missing and exits 1.
 set -euo pipefail
 
 need=()
 have_pkg() { dpkg-query -W -f='${Status}' "$1" 2>/dev/null | grep -q "install ok installed"; }
-for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch; do
+for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib; do
   have_pkg "$p" || need+=("$p")
 done
 if ! command -v go >/dev/null 2>&1; then
