@@ -394,6 +394,7 @@ type layerStore struct {
 
 func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reader, rules *Rules, example string, opt Options, prog *progress) error {
 	Q, K, H := blk.Queries, blk.Keys, blk.Heads
+	initXlogx() // x ln x tables for float16/bfloat16 values (xlogx.go)
 	nw := opt.Workers
 	if nw <= 0 {
 		nw = runtime.GOMAXPROCS(0)
@@ -619,60 +620,10 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			allowRow = w.allow[q*K : (q+1)*K]
 		}
 		rules.Row(b, q, allowRow, w.rr)
-		var s, ent, dist, amass, negm float64
-		mx := math.Inf(-1)
-		var nAllow, zeros, neg int64
-		var hit [numMask]bool
-		nzLo, nzHi := -1, -1
-		for k, x32 := range row {
-			x := float64(x32)
-			if x > mx {
-				mx = x
-			}
-			if x != 0 {
-				if nzLo < 0 {
-					nzLo = k
-				}
-				nzHi = k
-				s += x
-				d := k - p
-				if d < 0 {
-					d = -d
-				}
-				dist += x * float64(d)
-				if x > 0 {
-					ent -= x * fastLog(x)
-				} else {
-					neg++
-					negm -= x
-				}
-			}
-			r := w.rr[k]
-			if r == RuleNone {
-				nAllow++
-				amass += x
-				if x == 0 {
-					zeros++
-				}
-				continue
-			}
-			lu := &u.leak[r]
-			lu.forb++
-			if x > tol {
-				lu.cells++
-				lu.mass += x
-				hit[r] = true
-				if !lu.worst.Set || x > lu.worst.Value {
-					lu.worst = Cell{Set: true, Example: cfg.example, Query: q, Key: k, Value: x}
-				}
-				if hs := w.hist[r]; hs != nil {
-					i := k - p + base
-					hs[i]++
-					w.lo[r] = min(w.lo[r], i)
-					w.hi[r] = max(w.hi[r], i)
-				}
-			}
-		}
+		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1}
+		w.cells(&ra, row, q, p, base, tol, cfg.example) // rowpass.go
+		s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
+		nAllow, zeros, neg, hit, nzLo, nzHi := ra.nAllow, ra.zeros, ra.neg, ra.hit, ra.nzLo, ra.nzHi
 		for r := range hit {
 			if hit[r] {
 				u.leak[r].rows++

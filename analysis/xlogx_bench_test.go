@@ -1,0 +1,36 @@
+package analysis
+
+import (
+	"math/rand/v2"
+	"testing"
+
+	"github.com/x448/float16"
+)
+
+// BenchmarkXlogx compares the table with fastLog on float16 values in [0, 1).
+func BenchmarkXlogx(b *testing.B) {
+	initXlogx()
+	xs := make([]float32, 4096)
+	rng := rand.New(rand.NewPCG(3, 4))
+	for i := range xs {
+		xs[i] = float16.Fromfloat32(float32(rng.Float64())).Float32()
+	}
+	b.Run("table", func(b *testing.B) {
+		var s float64
+		for range b.N {
+			for _, x := range xs {
+				s += xlogx(x)
+			}
+		}
+		_ = s
+	})
+	b.Run("fastLog", func(b *testing.B) {
+		var s float64
+		for range b.N {
+			for _, x := range xs {
+				s += xlogxCompute(x)
+			}
+		}
+		_ = s
+	})
+}
