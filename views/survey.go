@@ -159,7 +159,12 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	y := l.GridY + l.Rows + 1
 	name := d.Stat
 	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), name, lo, hi, st)
-	c.Text(x, y, "   · not computed yet", st.Faint, -1)
+	for _, v := range d.Values {
+		if math.IsNaN(v) {
+			c.Text(x, y, "   · not computed yet", st.Faint, -1)
+			break
+		}
+	}
 	if d.Layers > l.Rows || d.Heads > l.Cols {
 		c.Text(0, y-1, fmt.Sprintf("layers %d–%d of %d, heads %d–%d of %d", l.L0, l.L0+l.Rows-1, d.Layers, l.H0, l.H0+l.Cols-1, d.Heads), st.Faint, -1)
 	}
@@ -167,8 +172,10 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	hd := fmt.Sprintf("L%d H%d", layer, head)
 	x = c.Text(0, y, hd+"  ", st.Title, -1)
 	used := drawFields(c, x, y, w-x, max(1, h-y-1), d.Details, st)
-	if d.Note != "" && y+max(used, 1) < h {
-		c.Text(0, y+max(used, 1), d.Note, st.Faint, -1)
+	for i, ln := range wrap(d.Note, w) {
+		if yy := y + max(used, 1) + i; yy < h {
+			c.Text(0, yy, ln, st.Faint, -1)
+		}
 	}
 	return c, l
 }

@@ -1,0 +1,223 @@
+package tui
+
+import (
+	"container/list"
+	"fmt"
+	"math"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/views"
+)
+
+// headKey names one head's matrix of one example (0 = A, 1 = B).
+type headKey struct {
+	example, block, layer, batch, head int
+}
+
+// pixKey names a downsampled window of a head.
+type pixKey struct {
+	headKey
+	q0, k0, rows, cols, block int
+	agg                       views.Agg
+	diff                      bool
+}
+
+// lru is a small least-recently-used cache with a cost budget.
+type lru[K comparable, V any] struct {
+	budget, used int64
+	order        *list.List // front = most recent
+	items        map[K]*list.Element
+}
+
+type lruEntry[K comparable, V any] struct {
+	k    K
+	v    V
+	cost int64
+}
+
+func newLRU[K comparable, V any](budget int64) *lru[K, V] {
+	return &lru[K, V]{budget: budget, order: list.New(), items: map[K]*list.Element{}}
+}
+
+func (c *lru[K, V]) get(k K) (V, bool) {
+	if e, ok := c.items[k]; ok {
+		c.order.MoveToFront(e)
+		return e.Value.(*lruEntry[K, V]).v, true
+	}
+	var zero V
+	return zero, false
+}
+
+// put adds v; older entries go until the budget holds (the newest always stays).
+func (c *lru[K, V]) put(k K, v V, cost int64) {
+	if e, ok := c.items[k]; ok {
+		c.used -= e.Value.(*lruEntry[K, V]).cost
+		c.order.Remove(e)
+	}
+	c.items[k] = c.order.PushFront(&lruEntry[K, V]{k, v, cost})
+	c.used += cost
+	for c.used > c.budget && c.order.Len() > 1 {
+		e := c.order.Back()
+		en := e.Value.(*lruEntry[K, V])
+		c.order.Remove(e)
+		delete(c.items, en.k)
+		c.used -= en.cost
+	}
+}
+
+// Budgets: raw heads are large (Q*K float32), windows are small.
+const (
+	headBudget = 64 << 20
+	pixBudget  = 8 << 20
+)
+
+// blockInfo is what the TUI keeps about one block of the open export.
+type blockInfo struct {
+	blk             *loader.Block
+	rules           *analysis.Rules
+	rulesErr        error
+	qside, kside    *loader.Side
+	qtoks, ktoks    [][]string // per batch item, nil without tokens
+	compareMismatch string     // why B cannot be compared, "" when it can
+}
+
+func newBlockInfo(ex *loader.Export, blk *loader.Block) *blockInfo {
+	bi := &blockInfo{blk: blk, qside: ex.Side(blk.QuerySide), kside: ex.Side(blk.KeySide)}
+	bi.rules, bi.rulesErr = analysis.NewRules(blk, bi.qside, bi.kside, nil)
+	return bi
+}
+
+func sideTokens(s *loader.Side, batch, from, n int) []string {
+	if s == nil || len(s.Tokens) == 0 {
+		return nil
+	}
+	out := make([]string, n)
+	for i := range out {
+		out[i] = s.Token(batch, from+i)
+	}
+	return out
+}
+
+// tokens returns the query and key tokens of batch item b.
+func (bi *blockInfo) tokens(b int) (q, k []string) {
+	if bi.qtoks == nil {
+		bi.qtoks = make([][]string, bi.blk.Batch)
+		bi.ktoks = make([][]string, bi.blk.Batch)
+	}
+	if bi.qtoks[b] == nil && bi.ktoks[b] == nil {
+		bi.qtoks[b] = sideTokens(bi.qside, b, bi.blk.QueryOffset, bi.blk.Queries)
+		bi.ktoks[b] = sideTokens(bi.kside, b, 0, bi.blk.Keys)
+		if bi.qtoks[b] == nil {
+			bi.qtoks[b] = []string{}
+		}
+		if bi.ktoks[b] == nil {
+			bi.ktoks[b] = []string{}
+		}
+	}
+	q, k = bi.qtoks[b], bi.ktoks[b]
+	if len(q) == 0 {
+		q = nil
+	}
+	if len(k) == 0 {
+		k = nil
+	}
+	return q, k
+}
+
+// ruleFunc returns the Map's rule lookup for (batch, head): the mask rule
+// forbidding a cell, "" for allowed cells and for padding query rows (which
+// are not judged).
+func (bi *blockInfo) ruleFunc(batch, head int) func(q, k int) string {
+	r := bi.rules
+	if r == nil || len(r.Active()) == 0 {
+		return nil
+	}
+	return func(q, k int) string {
+		if !r.Judged(batch, q) {
+			return ""
+		}
+		rule, err := r.Cell(batch, head, q, k)
+		if err != nil || rule == analysis.RuleNone {
+			return ""
+		}
+		return rule.String()
+	}
+}
+
+// data holds the open exports and the caches of heads and windows.
+type data struct {
+	ex, exB *loader.Export
+	blocks  []*blockInfo
+	heads   *lru[headKey, []float32]
+	pix     *lru[pixKey, *views.Pixels]
+}
+
+func newData(ex, exB *loader.Export) *data {
+	d := &data{ex: ex, exB: exB, heads: newLRU[headKey, []float32](headBudget), pix: newLRU[pixKey, *views.Pixels](pixBudget)}
+	for _, b := range ex.Blocks {
+		bi := newBlockInfo(ex, b)
+		if exB != nil {
+			bb := exB.Block(b.Name)
+			switch {
+			case bb == nil:
+				bi.compareMismatch = "B has no block " + b.Name
+			case bb.Layers != b.Layers || bb.Heads != b.Heads || bb.Batch != b.Batch || bb.Queries != b.Queries || bb.Keys != b.Keys:
+				bi.compareMismatch = fmt.Sprintf("B's %s is [%d, %d, %d, %d, %d], A's [%d, %d, %d, %d, %d] (layer batch head query key)",
+					b.Name, bb.Layers, bb.Batch, bb.Heads, bb.Queries, bb.Keys, b.Layers, b.Batch, b.Heads, b.Queries, b.Keys)
+			}
+		}
+		d.blocks = append(d.blocks, bi)
+	}
+	return d
+}
+
+// head returns the weights of a head, reading them on first use.
+func (d *data) head(k headKey) ([]float32, error) {
+	if w, ok := d.heads.get(k); ok {
+		return w, nil
+	}
+	ex := d.ex
+	if k.example == 1 {
+		ex = d.exB
+	}
+	bi := d.blocks[k.block]
+	blk := bi.blk
+	if k.example == 1 {
+		blk = ex.Block(blk.Name)
+	}
+	w := make([]float32, blk.Queries*blk.Keys)
+	if err := blk.ReadAttn(k.layer, k.batch, k.head, w); err != nil {
+		return nil, err
+	}
+	d.heads.put(k, w, int64(len(w))*4)
+	return w, nil
+}
+
+// diff returns |A - B| of a head.
+func (d *data) diff(k headKey) (a, b, diff []float32, err error) {
+	ka, kb := k, k
+	ka.example, kb.example = 0, 1
+	if a, err = d.head(ka); err != nil {
+		return
+	}
+	if b, err = d.head(kb); err != nil {
+		return
+	}
+	diff = make([]float32, len(a))
+	for i := range a {
+		diff[i] = float32(math.Abs(float64(a[i] - b[i])))
+	}
+	return
+}
+
+// window returns the downsampled pixels of md for a layout, cached.
+func (d *data) window(k headKey, md *views.MapData, l views.MapLayout, agg views.Agg, isDiff bool) *views.Pixels {
+	pk := pixKey{headKey: k, q0: l.Q0, k0: l.K0, rows: l.PixRows, cols: l.PixCols, block: l.Block, agg: agg, diff: isDiff}
+	if p, ok := d.pix.get(pk); ok {
+		return p
+	}
+	p := views.Downsample(md, l.Q0, l.K0, l.PixRows, l.PixCols, l.Block, agg)
+	d.pix.put(pk, p, int64(p.Rows*p.Cols)*24+64)
+	return p
+}

@@ -1,0 +1,833 @@
+// Package tui is heed's terminal UI: a bubbletea program over an opened
+// set of exports with five screens (Survey, Map, Findings, Trace, Compare).
+// It draws with package views and computes with package analysis; the
+// statistics and checks run in the background and report progress by
+// messages, so the first frame comes at once.
+//
+// New builds the root model for any tea.Program, including one served over
+// SSH: every location change is reported to Options.OnLocation, and GotoMsg
+// moves the model to a location (to follow a presenter).
+package tui
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"strings"
+
+	"charm.land/bubbles/v2/help"
+	"charm.land/bubbles/v2/key"
+	"charm.land/bubbles/v2/progress"
+	"charm.land/bubbles/v2/textinput"
+	tea "charm.land/bubbletea/v2"
+	"github.com/charmbracelet/colorprofile"
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/views"
+)
+
+// Options configure a Model.
+type Options struct {
+	// At is the start location (BLOCK:L<layer>:H<head>[:B<batch>][:q<query>]);
+	// with a query the TUI opens on the Map.
+	At string
+	// Colormap is a name of views.ColormapNames ("" = the default).
+	Colormap string
+	// Background is "dark", "light", or "" to ask the terminal.
+	Background string
+	// Profile forces a colour profile; 0 takes the program's (which follows
+	// NO_COLOR, TERM and whether the output is a terminal).
+	Profile colorprofile.Profile
+	// OnLocation, when set, is called with the new location string each time
+	// the location changes (from the Update goroutine; keep it quick).
+	OnLocation func(loc string)
+	// Context cancels the background work when done (the program's quit
+	// cancels it too).
+	Context context.Context
+	// Analysis are the options of the statistics pass (zero value: the
+	// defaults of heed check).
+	Analysis *analysis.Options
+	// Name is shown at the right of the tab bar (default: the first file).
+	Name string
+}
+
+// GotoMsg moves the model to a location string (see ParseLoc); an invalid
+// one shows an error in the status line.
+type GotoMsg struct{ Loc string }
+
+// Screen indices, in tab order.
+const (
+	ScreenSurvey = iota
+	ScreenMap
+	ScreenFindings
+	ScreenTrace
+	ScreenCompare
+)
+
+// Model is the root model of the TUI.
+type Model struct {
+	set    *loader.Set
+	opts   Options
+	d      *data
+	ctx    context.Context
+	cancel context.CancelFunc
+	keys   KeyMap
+	help   help.Model
+	prog   progress.Model
+	find   textinput.Model
+
+	w, h      int
+	profile   colorprofile.Profile
+	dark      bool
+	cmIndex   int
+	st        views.Styles
+	screens   []screen
+	active    int
+	showHelp  bool
+	finding   bool
+	query     string
+	matches   []int
+	matchAt   int
+	msg       string
+	msgStyle  views.Style
+	lastLoc   string
+	quitting  bool
+	anaOpt    analysis.Options
+	anaJob    *job
+	anaDone   bool
+	anaErr    error
+	anaFrac   float64
+	res       *analysis.Result
+	cmpJob    *job
+	cmpBlock  int
+	cmpFrac   float64
+	cmp       map[int][]views.HeadChange
+	cmpErr    error
+	traces    map[traceKey]*views.TraceData
+	tracing   map[traceKey]bool
+	statIndex int
+
+	// location
+	block, layer, head, batch int
+	q, k                      int
+	mapOpt                    views.MapOptions
+}
+
+// New opens the first example of set (and the second, for Compare, when the
+// set holds exactly two examples of the same shape) and returns the model.
+// Close releases the files after the program ends.
+func New(set *loader.Set, opts Options) (*Model, error) {
+	if set == nil || set.Len() == 0 {
+		return nil, errors.New("tui: no export to show")
+	}
+	ex, err := set.Open(0)
+	if err != nil {
+		return nil, err
+	}
+	if len(ex.Blocks) == 0 {
+		ex.Close()
+		return nil, fmt.Errorf("tui: %s: no attention block", strings.Join(set.Examples[0], ", "))
+	}
+	var exB *loader.Export
+	if set.Len() == 2 {
+		if exB, err = set.Open(1); err != nil {
+			ex.Close()
+			return nil, err
+		}
+	}
+	parent := opts.Context
+	if parent == nil {
+		parent = context.Background()
+	}
+	m := &Model{set: set, opts: opts, d: newData(ex, exB), keys: DefaultKeyMap(), help: help.New(),
+		w: 80, h: 24, profile: opts.Profile, dark: opts.Background != "light",
+		cmp: map[int][]views.HeadChange{}, traces: map[traceKey]*views.TraceData{}, tracing: map[traceKey]bool{}, cmpBlock: -1}
+	m.ctx, m.cancel = context.WithCancel(parent)
+	if m.profile == 0 {
+		m.profile = colorprofile.TrueColor
+	}
+	if opts.Colormap != "" {
+		found := false
+		for i, n := range views.ColormapNames() {
+			if strings.EqualFold(n, opts.Colormap) {
+				m.cmIndex, found = i, true
+			}
+		}
+		if !found {
+			m.Close()
+			return nil, fmt.Errorf("tui: unknown colormap %q (want one of %s)", opts.Colormap, strings.Join(views.ColormapNames(), ", "))
+		}
+	}
+	if opts.Analysis != nil {
+		m.anaOpt = *opts.Analysis
+	} else {
+		m.anaOpt = analysis.DefaultOptions()
+	}
+	m.find = textinput.New()
+	m.find.Prompt = "find token: "
+	m.find.Placeholder = "text of a token"
+	m.find.SetVirtualCursor(true)
+	m.prog = progress.New(progress.WithDefaultBlend(), progress.WithWidth(30))
+	m.screens = []screen{newSurvey(m), newMapScreen(m), newFindings(m), newTrace(m), newCompare(m)}
+	m.restyle()
+	if opts.At != "" {
+		if err := m.gotoLoc(opts.At, true); err != nil {
+			m.Close()
+			return nil, err
+		}
+	}
+	m.lastLoc = m.Location().String()
+	m.refresh()
+	return m, nil
+}
+
+// Close closes the exports the model opened and stops its background work.
+func (m *Model) Close() error {
+	m.cancel()
+	err := m.d.ex.Close()
+	if m.d.exB != nil {
+		if e := m.d.exB.Close(); err == nil {
+			err = e
+		}
+	}
+	return err
+}
+
+// Location is where the model is: block, layer, head, batch item and the
+// Map's query and key.
+func (m *Model) Location() Loc {
+	return Loc{Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Batch: m.batch, Query: m.q, Key: -1}
+}
+
+// LocationString is the location as it is copied: the batch item is
+// included when the block has more than one.
+func (m *Model) LocationString() string {
+	return m.Location().format(m.bi().blk.Batch > 1)
+}
+
+// Screen returns the index of the focused screen.
+func (m *Model) Screen() int { return m.active }
+
+// Result returns the analysis once it has finished (nil before).
+func (m *Model) Result() *analysis.Result { return m.res }
+
+func (m *Model) bi() *blockInfo { return m.d.blocks[m.block] }
+
+func (m *Model) restyle() {
+	cm := views.Colormaps()[m.cmIndex]
+	m.st = views.NewStyles(m.profile, m.dark, cm)
+	m.help.Styles = help.DefaultStyles(m.dark)
+	m.help.Styles.ShortKey = m.st.Key.Lip()
+	m.help.Styles.FullKey = m.st.Key.Lip()
+	m.find.SetStyles(textinput.DefaultStyles(m.dark))
+}
+
+func (m *Model) hasCompare() bool { return m.d.exB != nil && m.bi().compareMismatch == "" }
+
+// Init starts the background statistics and asks for the background colour.
+func (m *Model) Init() tea.Cmd {
+	m.anaJob = newJob(m.ctx, "statistics")
+	cmds := []tea.Cmd{runAnalysis(m.anaJob, m.set, m.anaOpt), m.anaJob.wait()}
+	if m.opts.Background == "" {
+		cmds = append(cmds, tea.RequestBackgroundColor)
+	}
+	if c := m.ensureWork(); c != nil {
+		cmds = append(cmds, c)
+	}
+	return tea.Batch(cmds...)
+}
+
+func (m *Model) setMsg(s string, st views.Style) { m.msg, m.msgStyle = s, st }
+
+func (m *Model) bodySize() (int, int) { return m.w, max(1, m.h-3) }
+
+// Update handles a message.
+func (m *Model) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
+	cmd := m.update(msg)
+	if m.quitting {
+		return m, cmd
+	}
+	if w := m.ensureWork(); w != nil {
+		cmd = tea.Batch(cmd, w)
+	}
+	m.refresh()
+	if loc := m.Location().String(); loc != m.lastLoc {
+		m.lastLoc = loc
+		if m.opts.OnLocation != nil {
+			m.opts.OnLocation(loc)
+		}
+	}
+	return m, cmd
+}
+
+func (m *Model) update(msg tea.Msg) tea.Cmd {
+	switch msg := msg.(type) {
+	case tea.WindowSizeMsg:
+		m.w, m.h = msg.Width, msg.Height
+		m.help.SetWidth(m.w)
+		m.prog.SetWidth(max(10, min(40, m.w/3)))
+		bw, bh := m.bodySize()
+		for _, s := range m.screens {
+			s.SetSize(bw, bh)
+		}
+		return nil
+	case tea.ColorProfileMsg:
+		if m.opts.Profile == 0 {
+			m.profile = msg.Profile
+			m.restyle()
+		}
+		return nil
+	case tea.BackgroundColorMsg:
+		if m.opts.Background == "" {
+			m.dark = msg.IsDark()
+			m.restyle()
+		}
+		return nil
+	case GotoMsg:
+		if err := m.gotoLoc(msg.Loc, false); err != nil {
+			m.setMsg(err.Error(), m.st.Bad)
+		}
+		return nil
+	case progressMsg:
+		frac := 0.0
+		if msg.total > 0 {
+			frac = float64(msg.done) / float64(msg.total)
+		}
+		switch msg.job {
+		case "statistics":
+			m.anaFrac = frac
+			return m.anaJob.wait()
+		case "compare":
+			m.cmpFrac = frac
+			if m.cmpJob != nil {
+				return m.cmpJob.wait()
+			}
+		}
+		return nil
+	case analysisMsg:
+		m.anaDone, m.anaErr, m.res = true, msg.err, msg.res
+		switch {
+		case msg.err != nil && !errors.Is(msg.err, context.Canceled):
+			m.setMsg("statistics: "+msg.err.Error(), m.st.Bad)
+		case msg.res != nil && len(msg.res.Findings) > 0:
+			n := len(msg.res.Findings)
+			m.setMsg(fmt.Sprintf("%d %s · press 3 for Findings", n, plural(n, "finding", "findings")), m.st.Bad)
+		case msg.res != nil:
+			m.setMsg("checks clean", m.st.Good)
+		}
+		return nil
+	case compareMsg:
+		m.cmpJob = nil
+		if msg.err != nil {
+			m.cmpErr = msg.err
+		} else {
+			m.cmp[msg.block] = msg.heads
+		}
+		return nil
+	case traceMsg:
+		delete(m.tracing, msg.key)
+		if msg.data != nil {
+			m.traces[msg.key] = msg.data
+		}
+		return nil
+	case tea.MouseClickMsg:
+		mouse := msg.Mouse()
+		if m.showHelp || m.finding {
+			return nil
+		}
+		if mouse.Y == 0 {
+			m.clickTab(mouse.X)
+			return nil
+		}
+		if mouse.Y >= 1 && mouse.Y < m.h-2 {
+			mouse.Y--
+			return m.screens[m.active].Update(tea.MouseClickMsg(mouse))
+		}
+		return nil
+	case tea.MouseWheelMsg:
+		mouse := msg.Mouse()
+		if m.showHelp || m.finding || mouse.Y < 1 {
+			return nil
+		}
+		mouse.Y--
+		return m.screens[m.active].Update(tea.MouseWheelMsg(mouse))
+	case tea.KeyPressMsg:
+		return m.key(msg)
+	}
+	if m.finding {
+		var cmd tea.Cmd
+		m.find, cmd = m.find.Update(msg)
+		return cmd
+	}
+	return nil
+}
+
+func (m *Model) quit() tea.Cmd {
+	m.quitting = true
+	m.cancel()
+	return tea.Quit
+}
+
+func (m *Model) key(msg tea.KeyPressMsg) tea.Cmd {
+	m.msg = ""
+	if msg.String() == "ctrl+c" {
+		return m.quit()
+	}
+	if m.finding {
+		switch msg.String() {
+		case "enter":
+			m.finding = false
+			m.find.Blur()
+			m.search(m.find.Value())
+			return nil
+		case "esc":
+			m.finding = false
+			m.find.Blur()
+			return nil
+		}
+		var cmd tea.Cmd
+		m.find, cmd = m.find.Update(msg)
+		return cmd
+	}
+	m.syncKeys()
+	k := m.keys
+	if m.showHelp {
+		switch {
+		case key.Matches(msg, k.Quit):
+			return m.quit()
+		case key.Matches(msg, k.Help), key.Matches(msg, k.Back):
+			m.showHelp = false
+		}
+		return nil
+	}
+	switch {
+	case key.Matches(msg, k.Quit):
+		return m.quit()
+	case key.Matches(msg, k.Help):
+		m.showHelp = true
+		return nil
+	case key.Matches(msg, k.NextScreen):
+		m.switchTo(m.nextScreen(1))
+		return nil
+	case key.Matches(msg, k.PrevScreen):
+		m.switchTo(m.nextScreen(-1))
+		return nil
+	case key.Matches(msg, k.Jump):
+		i := int(msg.String()[0] - '1')
+		if i == ScreenCompare && !m.hasCompare() {
+			m.setMsg(m.compareWhyNot(), m.st.Warn)
+			return nil
+		}
+		m.switchTo(i)
+		return nil
+	case key.Matches(msg, k.Copy):
+		loc := m.LocationString()
+		m.setMsg("copied "+loc, m.st.Good)
+		return tea.SetClipboard(loc)
+	case key.Matches(msg, k.Find):
+		m.finding = true
+		m.find.SetValue("")
+		m.find.SetWidth(max(10, m.w-20))
+		return m.find.Focus()
+	case key.Matches(msg, k.FindNext):
+		m.stepMatch(1)
+		return nil
+	case key.Matches(msg, k.FindPrev):
+		m.stepMatch(-1)
+		return nil
+	case key.Matches(msg, k.Colormap):
+		m.cmIndex = (m.cmIndex + 1) % len(views.Colormaps())
+		m.restyle()
+		m.setMsg("colormap "+m.st.Colormap.Name, m.st.Text)
+		return nil
+	case key.Matches(msg, k.NextLayer):
+		m.moveLayer(1)
+	case key.Matches(msg, k.PrevLayer):
+		m.moveLayer(-1)
+	case key.Matches(msg, k.NextHead):
+		m.moveHead(1)
+	case key.Matches(msg, k.PrevHead):
+		m.moveHead(-1)
+	case key.Matches(msg, k.NextBatch):
+		m.batch = (m.batch + 1) % m.bi().blk.Batch
+	case key.Matches(msg, k.PrevBatch):
+		m.batch = (m.batch + m.bi().blk.Batch - 1) % m.bi().blk.Batch
+	case key.Matches(msg, k.NextBlock):
+		m.setBlock((m.block + 1) % len(m.d.blocks))
+	case key.Matches(msg, k.PrevBlock):
+		m.setBlock((m.block + len(m.d.blocks) - 1) % len(m.d.blocks))
+	default:
+		return m.screens[m.active].Update(msg)
+	}
+	return nil
+}
+
+func (m *Model) compareWhyNot() string {
+	if m.d.exB == nil {
+		return "Compare needs two exports of the same shape: heed A B"
+	}
+	return "cannot compare: " + m.bi().compareMismatch
+}
+
+// nextScreen returns the screen dir steps away, skipping Compare when it
+// does not apply.
+func (m *Model) nextScreen(dir int) int {
+	n := len(m.screens)
+	i := m.active
+	for {
+		i = (i + dir + n) % n
+		if i != ScreenCompare || m.hasCompare() {
+			return i
+		}
+	}
+}
+
+func (m *Model) switchTo(i int) {
+	m.active = i
+	m.showHelp = false
+}
+
+func (m *Model) screenNames() []string {
+	names := []string{}
+	for i, s := range m.screens {
+		if i == ScreenCompare && !m.hasCompare() {
+			continue
+		}
+		names = append(names, fmt.Sprintf("%d %s", i+1, s.Name()))
+	}
+	return names
+}
+
+// clickTab switches to the tab under column x (the layout of views.Tabs).
+func (m *Model) clickTab(x int) {
+	pos := views.StringWidth("heed ")
+	for i, name := range m.screenNames() {
+		w := views.StringWidth(name) + 2
+		if x >= pos && x < pos+w {
+			m.switchTo(i)
+			return
+		}
+		pos += w
+	}
+}
+
+func (m *Model) moveLayer(d int) {
+	n := m.bi().blk.Layers
+	m.layer = (m.layer + d + n) % n
+}
+
+func (m *Model) moveHead(d int) {
+	n := m.bi().blk.Heads
+	m.head = (m.head + d + n) % n
+}
+
+func (m *Model) setBlock(i int) {
+	m.block = i
+	b := m.bi().blk
+	m.layer, m.head, m.batch = min(m.layer, b.Layers-1), min(m.head, b.Heads-1), min(m.batch, b.Batch-1)
+	m.q, m.k = min(m.q, b.Queries-1), min(m.k, b.Keys-1)
+	m.mapOpt.Q0, m.mapOpt.K0, m.mapOpt.Zoom = 0, 0, 0
+	if m.active == ScreenCompare && !m.hasCompare() {
+		m.active = ScreenMap
+	}
+}
+
+// gotoLoc moves to a location string; start is true for --at (which also
+// opens the Map when a query is given).
+func (m *Model) gotoLoc(s string, start bool) error {
+	l, err := ParseLoc(s)
+	if err != nil {
+		return err
+	}
+	bi := -1
+	var names []string
+	for i, b := range m.d.blocks {
+		names = append(names, b.blk.Name)
+		if b.blk.Name == l.Block {
+			bi = i
+		}
+	}
+	if bi < 0 {
+		return fmt.Errorf("tui: location %s: no block %q (the export has %s)", s, l.Block, strings.Join(names, ", "))
+	}
+	b := m.d.blocks[bi].blk
+	if l.Layer >= b.Layers || l.Head >= b.Heads || l.Batch >= b.Batch || l.Query >= b.Queries || l.Key >= b.Keys {
+		return fmt.Errorf("tui: location %s is outside block %s (layers %d, heads %d, batch %d, queries %d, keys %d)",
+			s, b.Name, b.Layers, b.Heads, b.Batch, b.Queries, b.Keys)
+	}
+	if bi != m.block {
+		m.setBlock(bi)
+	}
+	m.layer, m.head, m.batch = l.Layer, l.Head, l.Batch
+	if l.Query >= 0 {
+		m.q = l.Query
+		if l.Key >= 0 {
+			m.k = l.Key
+		} else if b.Kind != loader.KindCross {
+			m.k = min(l.Query+b.QueryOffset, b.Keys-1)
+		}
+		if start {
+			m.active = ScreenMap
+		}
+	}
+	return nil
+}
+
+// search finds tokens containing text (case-insensitive) on the key side
+// and moves to the first match after the cursor.
+func (m *Model) search(text string) {
+	m.query = strings.TrimSpace(text)
+	m.matches = nil
+	if m.query == "" {
+		return
+	}
+	_, ktoks := m.bi().tokens(m.batch)
+	if ktoks == nil {
+		m.setMsg("this export has no tokens", m.st.Warn)
+		return
+	}
+	low := strings.ToLower(m.query)
+	for i, t := range ktoks {
+		if strings.Contains(strings.ToLower(t), low) {
+			m.matches = append(m.matches, i)
+		}
+	}
+	if len(m.matches) == 0 {
+		m.setMsg(fmt.Sprintf("no token contains %q", m.query), m.st.Warn)
+		return
+	}
+	m.matchAt = 0
+	for i, p := range m.matches {
+		if p >= m.k {
+			m.matchAt = i
+			break
+		}
+	}
+	m.showMatch()
+}
+
+func (m *Model) stepMatch(d int) {
+	if len(m.matches) == 0 {
+		m.setMsg("no search: press / to find a token", m.st.Warn)
+		return
+	}
+	m.matchAt = (m.matchAt + d + len(m.matches)) % len(m.matches)
+	m.showMatch()
+}
+
+// showMatch puts the cursor on the matching key; on a self-attention block
+// also on its query row, so the token's row and column cross at the cursor.
+func (m *Model) showMatch() {
+	p := m.matches[m.matchAt]
+	b := m.bi().blk
+	m.k = p
+	if b.Kind != loader.KindCross && b.QuerySide == b.KeySide {
+		if q := p - b.QueryOffset; q >= 0 && q < b.Queries {
+			m.q = q
+		}
+	}
+	if tr, ok := m.screens[ScreenTrace].(*traceScreen); ok {
+		tr.sel = p
+	}
+	_, ktoks := m.bi().tokens(m.batch)
+	m.setMsg(fmt.Sprintf("%q: match %d of %d, position %d %q · n/N for more", m.query, m.matchAt+1, len(m.matches), p, ktoks[p]), m.st.Accent)
+}
+
+// syncKeys enables the bindings that apply to the focused screen and export.
+func (m *Model) syncKeys() {
+	k := &m.keys
+	b := m.bi().blk
+	s := m.active
+	onMap := s == ScreenMap || s == ScreenCompare
+	locKeys := s != ScreenFindings
+	k.NextLayer.SetEnabled(locKeys && b.Layers > 1)
+	k.PrevLayer.SetEnabled(locKeys && b.Layers > 1)
+	k.NextHead.SetEnabled(locKeys && b.Heads > 1)
+	k.PrevHead.SetEnabled(locKeys && b.Heads > 1)
+	k.NextBatch.SetEnabled(locKeys && b.Batch > 1)
+	k.PrevBatch.SetEnabled(locKeys && b.Batch > 1)
+	k.NextBlock.SetEnabled(len(m.d.blocks) > 1)
+	k.PrevBlock.SetEnabled(len(m.d.blocks) > 1)
+	k.ZoomIn.SetEnabled(onMap)
+	k.ZoomOut.SetEnabled(onMap)
+	k.Agg.SetEnabled(onMap)
+	k.Scale.SetEnabled(onMap)
+	k.Sink.SetEnabled(onMap && b.Keys > 1)
+	k.PageUp.SetEnabled(s != ScreenSurvey)
+	k.PageDown.SetEnabled(s != ScreenSurvey)
+	k.Left.SetEnabled(s != ScreenFindings)
+	k.Right.SetEnabled(s != ScreenFindings)
+	k.Enter.SetEnabled(s == ScreenSurvey || s == ScreenFindings || s == ScreenTrace || s == ScreenCompare)
+	k.Stat.SetEnabled(s == ScreenSurvey)
+	k.Order.SetEnabled(s == ScreenTrace)
+	k.FindNext.SetEnabled(len(m.matches) > 0)
+	k.FindPrev.SetEnabled(len(m.matches) > 0)
+	k.Find.SetEnabled(s != ScreenFindings)
+	k.Back.SetEnabled(m.showHelp || m.finding)
+	switch s {
+	case ScreenSurvey:
+		k.Enter.SetHelp("enter", "open the head's map")
+	case ScreenFindings:
+		k.Enter.SetHelp("enter", "map at the worst cell")
+	case ScreenTrace:
+		k.Enter.SetHelp("enter", "map at this key")
+	case ScreenCompare:
+		k.Enter.SetHelp("enter", "next most changed head")
+	}
+}
+
+// ensureWork starts what the focused screen needs and is not running yet.
+func (m *Model) ensureWork() tea.Cmd {
+	switch m.active {
+	case ScreenTrace:
+		b := m.bi().blk
+		tk := traceKey{m.block, m.batch, m.q}
+		if _, ok := m.traces[tk]; ok || m.tracing[tk] {
+			return nil
+		}
+		m.tracing[tk] = true
+		return runTrace(m.ctx, m.set, tk, b.Name, b.HasGrad)
+	case ScreenCompare:
+		if !m.hasCompare() || m.cmpJob != nil {
+			return nil
+		}
+		if _, ok := m.cmp[m.block]; ok {
+			return nil
+		}
+		m.cmpJob = newJob(m.ctx, "compare")
+		m.cmpBlock = m.block
+		m.cmpFrac = 0
+		return tea.Batch(runCompare(m.cmpJob, m.set, m.block, m.bi().blk.Name, m.batch), m.cmpJob.wait())
+	}
+	return nil
+}
+
+// refresh prepares the focused screen's view after a change.
+func (m *Model) refresh() {
+	m.syncKeys()
+	bw, bh := m.bodySize()
+	s := m.screens[m.active]
+	s.SetSize(bw, bh)
+	s.Refresh()
+}
+
+// helpKeys is the focused screen's help with the global keys after it.
+func (m *Model) helpKeys() keyHelp {
+	k := m.keys
+	sk := m.screens[m.active]
+	global := []key.Binding{k.NextScreen, k.PrevScreen, k.Jump, k.Find, k.FindNext, k.FindPrev, k.Copy, k.Colormap, k.Help, k.Quit}
+	loc := []key.Binding{k.PrevLayer, k.NextLayer, k.PrevHead, k.NextHead, k.PrevBatch, k.NextBatch, k.PrevBlock, k.NextBlock}
+	groups := append(sk.FullHelp(), loc, global)
+	short := append(sk.ShortHelp(), k.NextScreen, k.Help, k.Quit)
+	return keyHelp{short: short, groups: groups}
+}
+
+func (m *Model) statusFields() []views.Field {
+	b := m.bi().blk
+	f := []views.Field{{Value: b.Name}, {Value: "L" + itoa(m.layer)}, {Value: "H" + itoa(m.head)}}
+	if b.Batch > 1 {
+		f = append(f, views.Field{Value: "B" + itoa(m.batch)})
+	}
+	if m.active == ScreenMap || m.active == ScreenCompare || m.active == ScreenTrace {
+		f = append(f, views.Field{Value: "q" + itoa(m.q)})
+	}
+	if m.active == ScreenMap || m.active == ScreenCompare {
+		f = append(f, views.Field{Value: "k" + itoa(m.k)})
+		if w, err := m.d.head(m.headKey(0)); err == nil {
+			f = append(f, views.Field{Name: "w", Value: views.FormatWeight(w[m.q*b.Keys+m.k])})
+		}
+	}
+	return f
+}
+
+func (m *Model) headKey(example int) headKey {
+	return headKey{example: example, block: m.block, layer: m.layer, batch: m.batch, head: m.head}
+}
+
+// View draws the tab bar, the focused screen (or the help), the status bar
+// and the key line (or the progress bar, or the find prompt).
+func (m *Model) View() tea.View {
+	var v tea.View
+	v.AltScreen = true
+	v.MouseMode = tea.MouseModeCellMotion
+	v.WindowTitle = "heed · " + m.title()
+	if m.quitting {
+		return v
+	}
+	if m.w < 20 || m.h < 6 {
+		v.SetContent("heed: the terminal is too small (needs 20 x 6)")
+		return v
+	}
+	var b strings.Builder
+	right := m.title()
+	b.WriteString(views.Tabs(m.w, m.screenNames(), m.tabIndex(), right, m.st).String())
+	b.WriteByte('\n')
+	_, bh := m.bodySize()
+	var body string
+	if m.showHelp {
+		hm := m.help
+		hm.ShowAll = true
+		body = "Keys of " + m.screens[m.active].Name() + " (? or esc to close)\n\n" + hm.View(m.helpKeys())
+	} else {
+		body = m.screens[m.active].View()
+	}
+	b.WriteString(fitLines(body, bh))
+	b.WriteByte('\n')
+	b.WriteString(views.Status(m.w, m.statusFields(), m.msg, m.msgStyle, m.st).String())
+	b.WriteByte('\n')
+	switch {
+	case m.finding:
+		b.WriteString(m.find.View())
+	case !m.anaDone:
+		b.WriteString(fmt.Sprintf("statistics %3.0f%% ", 100*m.anaFrac) + m.prog.ViewAs(m.anaFrac) + "  ")
+		hm := m.help
+		hm.SetWidth(max(0, m.w-m.prog.Width()-18))
+		b.WriteString(hm.ShortHelpView([]key.Binding{m.keys.Help, m.keys.Quit}))
+	default:
+		b.WriteString(m.help.ShortHelpView(m.helpKeys().short))
+	}
+	v.SetContent(b.String())
+	return v
+}
+
+// tabIndex is the active screen's position among the shown tabs.
+func (m *Model) tabIndex() int {
+	if m.active == ScreenCompare {
+		return len(m.screenNames()) - 1
+	}
+	return m.active
+}
+
+func (m *Model) title() string {
+	if m.opts.Name != "" {
+		return m.opts.Name
+	}
+	name := strings.Join(m.set.Examples[0], " ")
+	if m.set.Len() == 2 {
+		name += "  vs  " + strings.Join(m.set.Examples[1], " ")
+	} else if m.set.Len() > 2 {
+		name += fmt.Sprintf(" (+%d examples)", m.set.Len()-1)
+	}
+	return name
+}
+
+// fitLines pads or cuts s to exactly h lines.
+func fitLines(s string, h int) string {
+	lines := strings.Split(s, "\n")
+	if len(lines) > h {
+		lines = lines[:h]
+	}
+	for len(lines) < h {
+		lines = append(lines, "")
+	}
+	return strings.Join(lines, "\n")
+}
+
+func itoa(i int) string { return fmt.Sprint(i) }
+
+func plural(n int, one, many string) string {
+	if n == 1 {
+		return one
+	}
+	return many
+}

@@ -1,0 +1,714 @@
+package tui
+
+import (
+	"fmt"
+	"math"
+	"sort"
+	"strconv"
+	"strings"
+
+	"charm.land/bubbles/v2/key"
+	tea "charm.land/bubbletea/v2"
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/views"
+)
+
+// screen is one screen of the TUI. Keys reach only the focused screen,
+// after the global ones; Refresh prepares what View returns from the shared
+// state, so View itself only hands out the prepared frame.
+type screen interface {
+	Name() string
+	Update(msg tea.Msg) tea.Cmd
+	SetSize(w, h int)
+	Refresh()
+	View() string
+	ShortHelp() []key.Binding
+	FullHelp() [][]key.Binding
+}
+
+type base struct {
+	m    *Model
+	w, h int
+	view string
+}
+
+func (b *base) SetSize(w, h int) { b.w, b.h = w, h }
+func (b *base) View() string     { return b.view }
+
+// --- Survey ---------------------------------------------------------------
+
+// stat is one statistic the Survey can colour its grid by.
+type stat struct {
+	name, unit, hint string
+	get              func(*analysis.HeadStats) float64
+}
+
+func surveyStats(hasGrad bool) []stat {
+	imp := stat{"importance", "", "Michel et al. 2019, normalised per layer; low = prunable", func(h *analysis.HeadStats) float64 { return h.ImportanceNorm }}
+	if !hasGrad {
+		imp = stat{analysis.ScoreName, "", "no gradients: confidence × redundancy heuristic; low = prunable", func(h *analysis.HeadStats) float64 { return h.Score }}
+	}
+	return []stat{
+		{"entropy", "nats", "low = focused, high = spread", func(h *analysis.HeadStats) float64 { return h.Entropy }},
+		{"confidence", "", "mean row maximum; high = peaked", func(h *analysis.HeadStats) float64 { return h.Confidence }},
+		imp,
+		{"leak mass", "per row", "forbidden mass; 0 = clean", func(h *analysis.HeadStats) float64 { return h.LeakMass }},
+		{"sink", "", "mass on key 0; > 0.3 = sink head", func(h *analysis.HeadStats) float64 { return h.Sink }},
+		{"distance", "positions", "mean |k - q| weighted by attention", func(h *analysis.HeadStats) float64 { return h.Distance }},
+		{"redundancy", "nats", "mean JS divergence to the layer's heads; low = duplicate", func(h *analysis.HeadStats) float64 { return h.Redundancy }},
+	}
+}
+
+type surveyScreen struct {
+	base
+	layout views.SurveyLayout
+}
+
+func newSurvey(m *Model) *surveyScreen { return &surveyScreen{base: base{m: m}} }
+
+func (s *surveyScreen) Name() string { return "Survey" }
+
+func (s *surveyScreen) ShortHelp() []key.Binding {
+	k := s.m.keys
+	return []key.Binding{k.Up, k.Left, k.Enter, k.Stat}
+}
+
+func (s *surveyScreen) FullHelp() [][]key.Binding {
+	k := s.m.keys
+	return [][]key.Binding{{k.Up, k.Down, k.Left, k.Right, k.Enter, k.Stat}}
+}
+
+func (s *surveyScreen) Update(msg tea.Msg) tea.Cmd {
+	m := s.m
+	k := m.keys
+	switch msg := msg.(type) {
+	case tea.KeyPressMsg:
+		switch {
+		case key.Matches(msg, k.Up):
+			m.moveLayer(-1)
+		case key.Matches(msg, k.Down):
+			m.moveLayer(1)
+		case key.Matches(msg, k.Left):
+			m.moveHead(-1)
+		case key.Matches(msg, k.Right):
+			m.moveHead(1)
+		case key.Matches(msg, k.Stat):
+			n := len(surveyStats(m.bi().blk.HasGrad))
+			m.statIndex = (m.statIndex + 1) % n
+		case key.Matches(msg, k.Enter):
+			m.switchTo(ScreenMap)
+		}
+	case tea.MouseClickMsg:
+		if l, h, ok := s.layout.HeadAt(msg.X, msg.Y); ok {
+			if l == m.layer && h == m.head {
+				m.switchTo(ScreenMap)
+			}
+			m.layer, m.head = l, h
+		}
+	case tea.MouseWheelMsg:
+		if msg.Button == tea.MouseWheelUp {
+			m.moveLayer(-1)
+		} else if msg.Button == tea.MouseWheelDown {
+			m.moveLayer(1)
+		}
+	}
+	return nil
+}
+
+func (s *surveyScreen) Refresh() {
+	m := s.m
+	b := m.bi().blk
+	stats := surveyStats(b.HasGrad)
+	st := stats[m.statIndex%len(stats)]
+	d := &views.SurveyData{Block: b.Name, Layers: b.Layers, Heads: b.Heads, Stat: st.name, Unit: st.unit, Hint: st.hint,
+		Values: make([]float64, b.Layers*b.Heads)}
+	var br *analysis.BlockResult
+	if m.res != nil {
+		br = m.res.Block(b.Name)
+	}
+	for i := range d.Values {
+		d.Values[i] = math.NaN()
+		if br != nil {
+			d.Values[i] = st.get(&br.Stats[i])
+		}
+	}
+	if br != nil {
+		hs := br.Head(m.layer, m.head)
+		for _, x := range stats {
+			d.Details = append(d.Details, views.Field{Name: x.name, Value: views.FormatValue(x.get(hs))})
+		}
+		d.Details = append(d.Details, views.Field{Name: "rows", Value: strconv.FormatInt(hs.Rows, 10)})
+		if hs.NaNRows > 0 {
+			d.Details = append(d.Details, views.Field{Name: "NaN rows", Value: strconv.FormatInt(hs.NaNRows, 10)})
+		}
+		d.Note = fmt.Sprintf("over %d example(s); suggestions are evidence to confirm by re-evaluating the model", m.res.Examples)
+		if b.Heads == 1 {
+			d.Note = "one head: heads were probably averaged at export, so these describe the average"
+		}
+	} else if m.anaErr != nil {
+		d.Note = "statistics failed: " + m.anaErr.Error()
+	} else {
+		d.Note = "computing statistics in the background…"
+	}
+	c, l := views.Survey(d, s.w, s.h, m.layer, m.head, m.st)
+	s.layout = l
+	s.view = c.String()
+}
+
+// --- Map ------------------------------------------------------------------
+
+type mapMemo struct {
+	key  headKey
+	md   *views.MapData
+	err  error
+	made bool
+}
+
+type mapScreen struct {
+	base
+	memo   mapMemo
+	layout views.MapLayout
+}
+
+func newMapScreen(m *Model) *mapScreen { return &mapScreen{base: base{m: m}} }
+
+func (s *mapScreen) Name() string { return "Map" }
+
+func mapShort(k KeyMap) []key.Binding {
+	return []key.Binding{k.Up, k.Left, k.PrevLayer, k.NextLayer, k.PrevHead, k.NextHead, k.ZoomIn, k.ZoomOut}
+}
+
+func mapFull(k KeyMap) []key.Binding {
+	return []key.Binding{k.Up, k.Down, k.Left, k.Right, k.PageUp, k.PageDown, k.ZoomIn, k.ZoomOut, k.Agg, k.Scale, k.Sink}
+}
+
+func (s *mapScreen) ShortHelp() []key.Binding  { return mapShort(s.m.keys) }
+func (s *mapScreen) FullHelp() [][]key.Binding { return [][]key.Binding{mapFull(s.m.keys)} }
+
+// mapUpdate handles the keys and mouse of a heat map (Map and Compare).
+func mapUpdate(m *Model, l views.MapLayout, msg tea.Msg) (handled bool) {
+	b := m.bi().blk
+	k := m.keys
+	step := max(1, l.Block)
+	clampQ := func(q int) int { return max(0, min(q, b.Queries-1)) }
+	clampK := func(x int) int { return max(l.KeyStart, min(x, b.Keys-1)) }
+	zoom := func(d int) {
+		m.mapOpt.Zoom = max(0, min(l.Zoom+d, l.MaxZoom))
+	}
+	switch msg := msg.(type) {
+	case tea.KeyPressMsg:
+		switch {
+		case key.Matches(msg, k.Up):
+			m.q = clampQ(m.q - step)
+		case key.Matches(msg, k.Down):
+			m.q = clampQ(m.q + step)
+		case key.Matches(msg, k.Left):
+			m.k = clampK(m.k - step)
+		case key.Matches(msg, k.Right):
+			m.k = clampK(m.k + step)
+		case key.Matches(msg, k.PageUp):
+			m.q = clampQ(m.q - l.PageRows())
+		case key.Matches(msg, k.PageDown):
+			m.q = clampQ(m.q + l.PageRows())
+		case key.Matches(msg, k.ZoomIn):
+			zoom(1)
+		case key.Matches(msg, k.ZoomOut):
+			zoom(-1)
+		case key.Matches(msg, k.Agg):
+			m.mapOpt.Agg = 1 - m.mapOpt.Agg
+			m.setMsg("zoomed-out pixels show the "+m.mapOpt.Agg.String()+" weight", m.st.Text)
+		case key.Matches(msg, k.Scale):
+			m.mapOpt.Scale = 1 - m.mapOpt.Scale
+			m.setMsg(m.mapOpt.Scale.String()+" colour scale", m.st.Text)
+		case key.Matches(msg, k.Sink):
+			m.mapOpt.HideSink = !m.mapOpt.HideSink
+			if m.mapOpt.HideSink {
+				m.k = max(m.k, 1)
+				m.setMsg("sink column (key 0) hidden; the scale ignores it", m.st.Text)
+			} else {
+				m.setMsg("sink column shown", m.st.Text)
+			}
+		default:
+			return false
+		}
+	case tea.MouseClickMsg:
+		if q, kk, ok := l.CellAt(msg.X, msg.Y); ok {
+			m.q, m.k = q, kk
+		}
+	case tea.MouseWheelMsg:
+		switch msg.Button {
+		case tea.MouseWheelUp:
+			zoom(1)
+		case tea.MouseWheelDown:
+			zoom(-1)
+		}
+	default:
+		return false
+	}
+	return true
+}
+
+func (s *mapScreen) Update(msg tea.Msg) tea.Cmd {
+	mapUpdate(s.m, s.layout, msg)
+	return nil
+}
+
+// mapData returns the MapData of the current head of example 0, memoised.
+func (m *Model) mapData(memo *mapMemo) (*views.MapData, error) {
+	hk := m.headKey(0)
+	if memo.made && memo.key == hk {
+		return memo.md, memo.err
+	}
+	memo.key, memo.made = hk, true
+	w, err := m.d.head(hk)
+	if err != nil {
+		memo.md, memo.err = nil, err
+		return nil, err
+	}
+	bi := m.bi()
+	md := views.NewMapData(bi.blk.Queries, bi.blk.Keys, w)
+	md.QueryTokens, md.KeyTokens = bi.tokens(m.batch)
+	md.QueryOffset = bi.blk.QueryOffset
+	md.Rule = bi.ruleFunc(m.batch, m.head)
+	md.Tol = float32(m.anaOpt.Tol)
+	memo.md, memo.err = md, nil
+	return md, nil
+}
+
+// drawMap lays out md in w x h, syncing the cursor and origin with the
+// layout, and returns the canvas.
+func (m *Model) drawMap(md *views.MapData, hk headKey, isDiff bool, w, h int) (*views.Canvas, views.MapLayout) {
+	m.mapOpt.CursorQ, m.mapOpt.CursorK = m.q, m.k
+	l := views.LayoutMap(md, w, h, m.mapOpt, m.st)
+	m.mapOpt.Zoom, m.mapOpt.Q0, m.mapOpt.K0 = l.Zoom, l.Q0, l.K0
+	if m.k < l.KeyStart {
+		m.k = l.KeyStart
+		m.mapOpt.CursorK = m.k
+	}
+	var px *views.Pixels
+	if !l.TooSmall {
+		px = m.d.window(hk, md, l, m.mapOpt.Agg, isDiff)
+	}
+	return views.Map(md, px, l, m.mapOpt, m.st), l
+}
+
+func (s *mapScreen) Refresh() {
+	m := s.m
+	md, err := m.mapData(&s.memo)
+	if err != nil {
+		s.view = m.st.Bad.Lip().Render("cannot read this head: " + err.Error())
+		return
+	}
+	c, l := m.drawMap(md, m.headKey(0), false, s.w, s.h)
+	s.layout = l
+	s.view = c.String()
+}
+
+// --- Findings -------------------------------------------------------------
+
+type findingsScreen struct {
+	base
+	sel    int
+	layout views.FindingsLayout
+}
+
+func newFindings(m *Model) *findingsScreen { return &findingsScreen{base: base{m: m}} }
+
+func (s *findingsScreen) Name() string { return "Findings" }
+
+func (s *findingsScreen) ShortHelp() []key.Binding {
+	k := s.m.keys
+	return []key.Binding{k.Up, k.Down, k.Enter}
+}
+
+func (s *findingsScreen) FullHelp() [][]key.Binding {
+	k := s.m.keys
+	return [][]key.Binding{{k.Up, k.Down, k.PageUp, k.PageDown, k.Enter}}
+}
+
+func (s *findingsScreen) findings() []analysis.Finding {
+	if s.m.res == nil {
+		return nil
+	}
+	return s.m.res.Findings
+}
+
+func (s *findingsScreen) Update(msg tea.Msg) tea.Cmd {
+	m := s.m
+	k := m.keys
+	n := len(s.findings())
+	switch msg := msg.(type) {
+	case tea.KeyPressMsg:
+		switch {
+		case key.Matches(msg, k.Up):
+			s.sel--
+		case key.Matches(msg, k.Down):
+			s.sel++
+		case key.Matches(msg, k.PageUp):
+			s.sel -= max(1, s.layout.Visible)
+		case key.Matches(msg, k.PageDown):
+			s.sel += max(1, s.layout.Visible)
+		case key.Matches(msg, k.Enter):
+			if n > 0 {
+				s.open(s.findings()[max(0, min(s.sel, n-1))])
+			}
+		}
+	case tea.MouseClickMsg:
+		if i, ok := s.layout.RowAt(msg.Y); ok && i < n {
+			if i == s.sel {
+				s.open(s.findings()[i])
+			}
+			s.sel = i
+		}
+	case tea.MouseWheelMsg:
+		if msg.Button == tea.MouseWheelUp {
+			s.sel--
+		} else if msg.Button == tea.MouseWheelDown {
+			s.sel++
+		}
+	}
+	s.sel = max(0, min(s.sel, n-1))
+	return nil
+}
+
+// open shows the worst cell of f on the Map, zoomed in to single cells.
+func (s *findingsScreen) open(f analysis.Finding) {
+	m := s.m
+	w := f.Worst
+	loc := Loc{Block: w.Block, Layer: w.Layer, Head: w.Head, Batch: w.Batch, Query: w.Query, Key: w.Key}
+	if err := m.gotoLoc(loc.String(), false); err != nil {
+		m.setMsg(err.Error(), m.st.Bad)
+		return
+	}
+	m.switchTo(ScreenMap)
+	if w.Key < 0 {
+		m.k = 0
+	}
+	// Zoom until one pixel is one cell, so the worst cell is drawn alone.
+	md, err := m.mapData(&m.screens[ScreenMap].(*mapScreen).memo)
+	if err == nil {
+		bw, bh := m.bodySize()
+		for z := 0; z < 64; z++ {
+			opt := m.mapOpt
+			opt.Zoom, opt.CursorQ, opt.CursorK = z, m.q, m.k
+			if l := views.LayoutMap(md, bw, bh, opt, m.st); l.Block == 1 || l.TooSmall {
+				m.mapOpt.Zoom = z
+				break
+			}
+		}
+	}
+	m.setMsg(fmt.Sprintf("%s finding: worst cell %s value %s", f.Rule, loc.String(), views.FormatValue(w.Value)), m.st.Bad)
+}
+
+// ranges writes sorted indices compactly: "0-3, 7".
+func ranges(xs []int, total int, what string) string {
+	if len(xs) == total && total > 1 {
+		return fmt.Sprintf("all %d", total)
+	}
+	ys := append([]int(nil), xs...)
+	sort.Ints(ys)
+	var parts []string
+	for i := 0; i < len(ys); {
+		j := i
+		for j+1 < len(ys) && ys[j+1] == ys[j]+1 {
+			j++
+		}
+		if j > i {
+			parts = append(parts, fmt.Sprintf("%d-%d", ys[i], ys[j]))
+		} else {
+			parts = append(parts, strconv.Itoa(ys[i]))
+		}
+		i = j + 1
+	}
+	_ = what
+	return strings.Join(parts, ",")
+}
+
+func offsetsText(os []analysis.OffsetCount) string {
+	var parts []string
+	for i, o := range os {
+		if i == 3 {
+			parts = append(parts, "…")
+			break
+		}
+		parts = append(parts, fmt.Sprintf("%+d ×%d", o.Offset, o.Count))
+	}
+	return strings.Join(parts, ", ")
+}
+
+func (s *findingsScreen) Refresh() {
+	m := s.m
+	d := &views.FindingsData{Done: m.anaDone, Progress: fmt.Sprintf("%.0f%%", 100*m.anaFrac)}
+	if m.anaErr != nil {
+		d.Notes = append(d.Notes, "the checks failed: "+m.anaErr.Error())
+	}
+	if m.res != nil {
+		for _, f := range m.res.Findings {
+			bl := m.res.Block(f.Block)
+			L, H, B := 0, 0, 0
+			if bl != nil {
+				L, H, B = bl.Layers, bl.Heads, bl.Batch
+			}
+			w := f.Worst
+			worst := fmt.Sprintf("L%d H%d B%d q%d", w.Layer, w.Head, w.Batch, w.Query)
+			if w.Key >= 0 {
+				worst += fmt.Sprintf(" k%d", w.Key)
+			}
+			d.Rows = append(d.Rows, views.FindingRow{Block: f.Block, Rule: f.Rule.String(),
+				Layers: ranges(f.Layers, L, "layers"), Heads: ranges(f.Heads, H, "heads"), Batches: ranges(f.Batches, B, "batch"),
+				Mass: f.Mass, Max: f.Max, Cells: f.Cells, Rows: f.Rows, Worst: worst, Offsets: offsetsText(f.Offsets)})
+		}
+		for _, dg := range m.res.Diagnoses {
+			d.Diagnosis = append(d.Diagnosis, strings.TrimSpace(strings.TrimSuffix(dg.Text, analysis.Caveat)))
+		}
+		d.Caveat = analysis.Caveat
+		d.Notes = append(d.Notes, m.res.Notes...)
+	}
+	s.sel = max(0, min(s.sel, len(d.Rows)-1))
+	c, l := views.Findings(d, s.w, s.h, s.sel, m.st)
+	s.layout = l
+	s.view = c.String()
+}
+
+// --- Trace ----------------------------------------------------------------
+
+type traceScreen struct {
+	base
+	sel     int
+	byShare bool
+	layout  views.TraceLayout
+}
+
+func newTrace(m *Model) *traceScreen { return &traceScreen{base: base{m: m}} }
+
+func (s *traceScreen) Name() string { return "Trace" }
+
+func (s *traceScreen) ShortHelp() []key.Binding {
+	k := s.m.keys
+	return []key.Binding{k.Up, k.Left, k.Order, k.Enter}
+}
+
+func (s *traceScreen) FullHelp() [][]key.Binding {
+	k := s.m.keys
+	up, left, right := k.Up, k.Left, k.Right
+	up.SetHelp("↑/↓", "pick an input token")
+	left.SetHelp("←/h", "previous output position")
+	right.SetHelp("→/l", "next output position")
+	return [][]key.Binding{{up, left, right, k.PageUp, k.PageDown, k.Order, k.Enter}}
+}
+
+func (s *traceScreen) data() *views.TraceData {
+	m := s.m
+	return m.traces[traceKey{m.block, m.batch, m.q}]
+}
+
+func (s *traceScreen) Update(msg tea.Msg) tea.Cmd {
+	m := s.m
+	k := m.keys
+	d := s.data()
+	var order []int
+	if d != nil {
+		order = views.TraceOrder(d, s.byShare)
+	}
+	idx := 0
+	for i, p := range order {
+		if p == s.sel {
+			idx = i
+		}
+	}
+	moveSel := func(delta int) {
+		if len(order) > 0 {
+			s.sel = order[max(0, min(idx+delta, len(order)-1))]
+		}
+	}
+	switch msg := msg.(type) {
+	case tea.KeyPressMsg:
+		switch {
+		case key.Matches(msg, k.Up):
+			moveSel(-1)
+		case key.Matches(msg, k.Down):
+			moveSel(1)
+		case key.Matches(msg, k.PageUp):
+			moveSel(-max(1, len(s.layout.Order)))
+		case key.Matches(msg, k.PageDown):
+			moveSel(max(1, len(s.layout.Order)))
+		case key.Matches(msg, k.Left):
+			m.q = max(0, m.q-1)
+		case key.Matches(msg, k.Right):
+			m.q = min(m.bi().blk.Queries-1, m.q+1)
+		case key.Matches(msg, k.Order):
+			s.byShare = !s.byShare
+		case key.Matches(msg, k.Enter):
+			if d != nil && (d.Side == m.bi().blk.KeySide || d.Side == "") && s.sel < m.bi().blk.Keys {
+				m.k = s.sel
+				m.switchTo(ScreenMap)
+			} else if d != nil {
+				m.setMsg("the trace is over "+d.Side+" tokens; the map of "+m.bi().blk.Name+" has other keys", m.st.Warn)
+			}
+		}
+	case tea.MouseClickMsg:
+		if p, ok := s.layout.PosAt(msg.Y); ok {
+			s.sel = p
+		}
+	case tea.MouseWheelMsg:
+		if msg.Button == tea.MouseWheelUp {
+			moveSel(-3)
+		} else if msg.Button == tea.MouseWheelDown {
+			moveSel(3)
+		}
+	}
+	return nil
+}
+
+func (s *traceScreen) Refresh() {
+	m := s.m
+	d := s.data()
+	if d == nil {
+		qt, _ := m.bi().tokens(m.batch)
+		tok := ""
+		if m.q < len(qt) {
+			tok = qt[m.q]
+		}
+		d = &views.TraceData{Block: m.bi().blk.Name, Query: m.q, QueryToken: tok, Note: "tracing… (rollout, flow, gradient relevance)"}
+	} else if d.QueryToken == "" {
+		if qt, _ := m.bi().tokens(m.batch); m.q < len(qt) {
+			d.QueryToken = qt[m.q]
+		}
+	}
+	c, l := views.Trace(d, s.w, s.h, views.TraceOptions{Selected: s.sel, ByShare: s.byShare}, m.st)
+	s.layout = l
+	s.view = c.String()
+}
+
+// --- Compare --------------------------------------------------------------
+
+type compareScreen struct {
+	base
+	memoKey headKey
+	memoMD  *views.MapData
+	memoErr error
+	made    bool
+	layout  views.CompareLayout
+}
+
+func newCompare(m *Model) *compareScreen { return &compareScreen{base: base{m: m}} }
+
+func (s *compareScreen) Name() string { return "Compare" }
+
+func (s *compareScreen) ShortHelp() []key.Binding {
+	k := s.m.keys
+	return []key.Binding{k.Up, k.Left, k.PrevHead, k.NextHead, k.Enter}
+}
+
+func (s *compareScreen) FullHelp() [][]key.Binding {
+	return [][]key.Binding{append(mapFull(s.m.keys), s.m.keys.Enter)}
+}
+
+func (s *compareScreen) Update(msg tea.Msg) tea.Cmd {
+	m := s.m
+	heads := m.cmp[m.block]
+	if km, ok := msg.(tea.KeyPressMsg); ok && key.Matches(km, m.keys.Enter) {
+		if len(heads) == 0 {
+			return nil
+		}
+		next := 0
+		for i, h := range heads {
+			if h.Layer == m.layer && h.Head == m.head {
+				next = (i + 1) % len(heads)
+			}
+		}
+		s.goHead(heads[next])
+		return nil
+	}
+	if cm, ok := msg.(tea.MouseClickMsg); ok {
+		if i, ok := s.layout.HeadAt(cm.X, cm.Y); ok && i < len(heads) {
+			s.goHead(heads[i])
+			return nil
+		}
+		mouse := cm.Mouse()
+		mouse.X -= s.layout.MapX
+		mouse.Y -= s.layout.MapY
+		mapUpdate(m, s.layout.Map, tea.MouseClickMsg(mouse))
+		return nil
+	}
+	mapUpdate(m, s.layout.Map, msg)
+	return nil
+}
+
+func (s *compareScreen) goHead(h views.HeadChange) {
+	m := s.m
+	m.layer, m.head, m.q, m.k = h.Layer, h.Head, h.Q, h.K
+	m.setMsg(fmt.Sprintf("L%d H%d: mean total variation %s, largest |A−B| %s at q%d k%d", h.Layer, h.Head,
+		views.FormatValue(h.TV), views.FormatValue(h.MaxAbs), h.Q, h.K), m.st.Accent)
+}
+
+func (s *compareScreen) Refresh() {
+	m := s.m
+	if !m.hasCompare() {
+		s.view = m.compareWhyNot()
+		return
+	}
+	hk := m.headKey(0)
+	if !s.made || s.memoKey != hk {
+		s.made, s.memoKey = true, hk
+		a, b, diff, err := m.d.diff(hk)
+		s.memoErr = err
+		if err == nil {
+			bi := m.bi()
+			md := views.NewMapData(bi.blk.Queries, bi.blk.Keys, diff)
+			md.QueryTokens, md.KeyTokens = bi.tokens(m.batch)
+			md.QueryOffset = bi.blk.QueryOffset
+			md.Rule = bi.ruleFunc(m.batch, m.head)
+			md.Tol = float32(m.anaOpt.Tol)
+			md.Measure = "|A−B|"
+			K := bi.blk.Keys
+			md.Describe = func(q, k int) string {
+				return "A " + views.FormatWeight(a[q*K+k]) + " → B " + views.FormatWeight(b[q*K+k])
+			}
+			s.memoMD = md
+		}
+	}
+	if s.memoErr != nil {
+		s.view = "cannot read this head: " + s.memoErr.Error()
+		return
+	}
+	cd := &views.CompareData{NameA: strings.Join(m.set.Examples[0], " "), NameB: strings.Join(m.set.Examples[1], " "),
+		Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Diff: s.memoMD}
+	heads, done := m.cmp[m.block]
+	cd.Heads, cd.Done = heads, done
+	switch {
+	case m.cmpErr != nil:
+		cd.Progress = "failed: " + m.cmpErr.Error()
+	case !done:
+		cd.Progress = fmt.Sprintf("measuring %.0f%%", 100*m.cmpFrac)
+	}
+	sel := -1
+	for i, h := range heads {
+		if h.Layer == m.layer && h.Head == m.head {
+			sel = i
+		}
+	}
+	// The difference map uses the shared map state: draw it through drawMap
+	// so that cursor and zoom stay in step with the layout.
+	c, l := views.Compare(cd, s.w, s.h, m.syncedMapOpt(s.memoMD, s.w, s.h), sel, m.st)
+	s.layout = l
+	s.view = c.String()
+}
+
+// syncedMapOpt lays out md the way views.Compare will (its map area) and
+// stores the origin and zoom, so that keys move in step with what is drawn.
+func (m *Model) syncedMapOpt(md *views.MapData, w, h int) views.MapOptions {
+	mw, mh := w, h-1
+	if w >= 100 {
+		mw = w - 38 - 1
+	} else {
+		rows := min(len(m.cmp[m.block]), 5, max(0, h/3-1))
+		mh = h - 1 - rows - 2
+	}
+	m.mapOpt.CursorQ, m.mapOpt.CursorK = m.q, m.k
+	if mh > 0 {
+		l := views.LayoutMap(md, mw, mh, m.mapOpt, m.st)
+		m.mapOpt.Zoom, m.mapOpt.Q0, m.mapOpt.K0 = l.Zoom, l.Q0, l.K0
+	}
+	return m.mapOpt
+}

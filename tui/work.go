@@ -1,0 +1,251 @@
+package tui
+
+import (
+	"context"
+	"errors"
+	"math"
+	"sort"
+	"strconv"
+
+	tea "charm.land/bubbletea/v2"
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/views"
+)
+
+// Messages of the background work. Each job reports progress through a
+// channel that a wait Cmd turns into messages, one at a time.
+
+type progressMsg struct {
+	job         string
+	done, total int64
+}
+
+type analysisMsg struct {
+	res *analysis.Result
+	err error
+}
+
+type compareMsg struct {
+	block int
+	heads []views.HeadChange
+	err   error
+}
+
+type traceKey struct{ block, batch, query int }
+
+type traceMsg struct {
+	key     traceKey
+	data    *views.TraceData
+	results map[analysis.Method]error
+}
+
+// job is one background computation with its progress channel.
+type job struct {
+	name string
+	prog chan progressMsg
+	done chan tea.Msg
+	ctx  context.Context
+}
+
+func newJob(ctx context.Context, name string) *job {
+	return &job{name: name, prog: make(chan progressMsg, 1), done: make(chan tea.Msg, 1), ctx: ctx}
+}
+
+// report keeps only the latest progress value when the UI is behind.
+func (j *job) report(done, total int64) {
+	p := progressMsg{job: j.name, done: done, total: total}
+	select {
+	case <-j.prog:
+	default:
+	}
+	select {
+	case j.prog <- p:
+	default:
+	}
+}
+
+// wait returns the next progress or the final message; nil when canceled.
+func (j *job) wait() tea.Cmd {
+	return func() tea.Msg {
+		select {
+		case p := <-j.prog:
+			return p
+		case m := <-j.done:
+			return m
+		case <-j.ctx.Done():
+			return nil
+		}
+	}
+}
+
+// runAnalysis computes statistics and checks over every example of the set.
+func runAnalysis(j *job, set *loader.Set, opt analysis.Options) tea.Cmd {
+	return func() tea.Msg {
+		opt.Progress = j.report
+		p, err := analysis.AnalyzeSet(j.ctx, set.Len(), func(i int) (*loader.Export, string, error) {
+			ex, err := set.Open(i)
+			name := ""
+			if len(set.Examples[i]) > 0 {
+				name = set.Examples[i][0]
+			}
+			return ex, name, err
+		}, opt)
+		var msg analysisMsg
+		if err != nil {
+			msg.err = err
+		} else {
+			msg.res = p.Result()
+		}
+		j.done <- msg
+		return nil
+	}
+}
+
+// runCompare measures how much every head of one block differs between
+// examples 0 and 1 of the set (batch item batch), with its own exports.
+func runCompare(j *job, set *loader.Set, blockIdx int, blockName string, batch int) tea.Cmd {
+	return func() tea.Msg {
+		msg := compareMsg{block: blockIdx}
+		msg.heads, msg.err = compareHeads(j, set, blockName, batch)
+		j.done <- msg
+		return nil
+	}
+}
+
+func compareHeads(j *job, set *loader.Set, blockName string, batch int) ([]views.HeadChange, error) {
+	a, err := set.Open(0)
+	if err != nil {
+		return nil, err
+	}
+	defer a.Close()
+	b, err := set.Open(1)
+	if err != nil {
+		return nil, err
+	}
+	defer b.Close()
+	ba, bb := a.Block(blockName), b.Block(blockName)
+	if ba == nil || bb == nil {
+		return nil, errors.New("block " + blockName + " missing")
+	}
+	Q, K := ba.Queries, ba.Keys
+	wa, wb := make([]float32, Q*K), make([]float32, Q*K)
+	total := int64(ba.Layers * ba.Heads)
+	var out []views.HeadChange
+	for l := 0; l < ba.Layers; l++ {
+		for h := 0; h < ba.Heads; h++ {
+			if err := j.ctx.Err(); err != nil {
+				return nil, err
+			}
+			if err := ba.ReadAttn(l, batch, h, wa); err != nil {
+				return nil, err
+			}
+			if err := bb.ReadAttn(l, batch, h, wb); err != nil {
+				return nil, err
+			}
+			out = append(out, headChange(l, h, Q, K, wa, wb))
+			j.report(int64(len(out)), total)
+		}
+	}
+	sortChanges(out)
+	return out, nil
+}
+
+// headChange is the mean total variation distance over rows, 0.5 sum_k
+// |A-B| (common practice for comparing distributions), and the largest
+// |A-B|. A NaN cell makes both NaN, which sorts first: NaN is a change.
+func headChange(l, h, Q, K int, a, b []float32) views.HeadChange {
+	hc := views.HeadChange{Layer: l, Head: h}
+	var tv float64
+	for q := 0; q < Q; q++ {
+		var row float64
+		for k := 0; k < K; k++ {
+			d := math.Abs(float64(a[q*K+k]) - float64(b[q*K+k]))
+			row += d
+			if d > hc.MaxAbs || (math.IsNaN(d) && !math.IsNaN(hc.MaxAbs)) {
+				hc.MaxAbs, hc.Q, hc.K = d, q, k
+			}
+		}
+		tv += 0.5 * row
+	}
+	if Q > 0 {
+		hc.TV = tv / float64(Q)
+	}
+	return hc
+}
+
+func sortChanges(hs []views.HeadChange) {
+	key := func(v float64) float64 {
+		if math.IsNaN(v) {
+			return math.Inf(1)
+		}
+		return v
+	}
+	sort.SliceStable(hs, func(i, j int) bool { return key(hs[i].TV) > key(hs[j].TV) })
+}
+
+// traceMethods are the methods the Trace screen shows, in column order.
+var traceMethods = []analysis.Method{analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad}
+
+// runTrace explains one query position with every method, with its own export.
+func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string, hasGrad bool) tea.Cmd {
+	return func() tea.Msg {
+		msg := traceMsg{key: k, results: map[analysis.Method]error{}}
+		td := &views.TraceData{Block: blockName, Query: k.query}
+		ex, err := set.Open(0)
+		if err != nil {
+			td.Note = err.Error()
+			msg.data = td
+			return msg
+		}
+		defer ex.Close()
+		for _, m := range traceMethods {
+			tm := views.TraceMethod{Name: string(m)}
+			if m == analysis.MethodGrad && !hasGrad {
+				tm.Note = "needs " + blockName + "/grad in the export"
+				td.Methods = append(td.Methods, tm)
+				continue
+			}
+			res, err := analysis.Trace(ctx, ex, analysis.TraceOptions{Method: m, Block: blockName, Batch: k.batch, Query: k.query})
+			if err != nil {
+				if ctx.Err() != nil {
+					return nil
+				}
+				tm.Note = err.Error()
+				td.Methods = append(td.Methods, tm)
+				continue
+			}
+			if td.Tokens == nil {
+				td.Side = res.Side
+				n := 0
+				for _, t := range res.Tokens {
+					n = max(n, t.Index+1)
+				}
+				td.Tokens = make([]string, n)
+				for i := range td.Tokens {
+					td.Tokens[i] = "#" + strconv.Itoa(i)
+				}
+				for _, t := range res.Tokens {
+					if t.Token != "" {
+						td.Tokens[t.Index] = t.Token
+					}
+				}
+			}
+			tm.Shares = make([]float64, len(td.Tokens))
+			for i := range tm.Shares {
+				tm.Shares[i] = math.NaN()
+			}
+			for _, t := range res.Tokens {
+				if t.Index >= 0 && t.Index < len(tm.Shares) {
+					tm.Shares[t.Index] = t.Share
+				}
+			}
+			if !res.Normalised && m != analysis.MethodRollout {
+				tm.Note = "shares are not normalised across tokens"
+			}
+			td.Methods = append(td.Methods, tm)
+		}
+		msg.data = td
+		return msg
+	}
+}
