@@ -31,6 +31,7 @@ type PartialOptions struct {
 	// RedundancyRows and MaxLayerBytes decide the rows of the redundancy pass.
 	RedundancyRows int   `json:"redundancy_rows"`
 	MaxLayerBytes  int64 `json:"max_layer_bytes"`
+	NoRedundancy   bool  `json:"no_redundancy,omitempty"`
 }
 
 // BlockPartial is the state of one block. Examples of a set share its

@@ -52,6 +52,10 @@ type Options struct {
 	// most this many rows (0 = DefaultRedundancyRows, -1 = every row). The
 	// rows are the same whatever the sharding, so results stay exact.
 	RedundancyRows int
+	// NoRedundancy leaves the redundancy pass out (heed check prints no
+	// statistics, and the pass over head pairs is a large share of the time):
+	// Stats.Redundancy is then NaN.
+	NoRedundancy bool
 	// MaxLayerBytes bounds the float32 copy of one layer's heads kept for the
 	// redundancy pass; when a layer needs more, every s-th query row is kept
 	// (s the smallest stride that fits) and the redundancy is the mean over
@@ -94,7 +98,7 @@ type reader interface {
 // NewPartial returns an empty Partial for passes made with opt.
 func NewPartial(opt Options) *Partial {
 	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow,
-		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes}
+		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes, NoRedundancy: opt.NoRedundancy}
 	for _, r := range opt.Rules {
 		po.Rules = append(po.Rules, r.String())
 	}
@@ -408,6 +412,9 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	if maxRows == 0 {
 		maxRows = DefaultRedundancyRows
 	}
+	if opt.NoRedundancy {
+		maxRows = 1 // one row kept per head, never compared
+	}
 	stride := 1
 	if maxRows > 0 {
 		stride = (Q + maxRows - 1) / maxRows
@@ -452,6 +459,9 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 			pi[n], pj[n] = i, j
 			n++
 		}
+	}
+	if opt.NoRedundancy {
+		pairs = 0
 	}
 	for l := 0; l < blk.Layers; l++ {
 		for b := 0; b < blk.Batch; b++ {

@@ -92,9 +92,10 @@ var benchSizes = []struct{ layers, heads, seq int }{
 // a mapped float16 safetensors export, every head, all cores; the bytes are
 // the export's stored bytes.
 func BenchmarkAnalyze(b *testing.B) {
+	dir := b.TempDir() // written once, outside the sub-benchmarks' calibration runs
 	for _, sz := range benchSizes {
+		path := benchExport(b, dir, sz.layers, sz.heads, sz.seq, 0)
 		b.Run(fmt.Sprintf("L%dxH%dxS%d", sz.layers, sz.heads, sz.seq), func(b *testing.B) {
-			path := benchExport(b, b.TempDir(), sz.layers, sz.heads, sz.seq, 0)
 			ex, err := loader.Open([]string{path}, loader.NewOptions())
 			if err != nil {
 				b.Fatal(err)
@@ -116,9 +117,10 @@ func BenchmarkAnalyze(b *testing.B) {
 // BenchmarkCheckFindings is the checks end to end on a leaking export: the
 // pass, then Result (findings grouped, diagnoses named).
 func BenchmarkCheckFindings(b *testing.B) {
+	dir := b.TempDir()
 	for _, sz := range benchSizes {
+		path := benchExport(b, dir, sz.layers, sz.heads, sz.seq, 0.01)
 		b.Run(fmt.Sprintf("L%dxH%dxS%d", sz.layers, sz.heads, sz.seq), func(b *testing.B) {
-			path := benchExport(b, b.TempDir(), sz.layers, sz.heads, sz.seq, 0.01)
 			ex, err := loader.Open([]string{path}, loader.NewOptions())
 			if err != nil {
 				b.Fatal(err)
@@ -158,5 +160,34 @@ func BenchmarkResult(b *testing.B) {
 	b.ResetTimer()
 	for range b.N {
 		p.Result()
+	}
+}
+
+// BenchmarkAnalyzeFile runs the pass over the export named by
+// HEED_BENCH_EXPORT (e.g. the 0.3 GB file make bench writes with
+// bench/gen_export.py), to profile the real thing:
+//
+//	HEED_BENCH_EXPORT=/tmp/heed-bench/attn-12x12x1024.safetensors \
+//	  go test -run '^$' -bench AnalyzeFile -cpuprofile cpu.prof ./analysis
+func BenchmarkAnalyzeFile(b *testing.B) {
+	path := os.Getenv("HEED_BENCH_EXPORT")
+	if path == "" {
+		b.Skip("HEED_BENCH_EXPORT not set")
+	}
+	st, err := os.Stat(path)
+	if err != nil {
+		b.Fatal(err)
+	}
+	ex, err := loader.Open([]string{path}, loader.NewOptions())
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer ex.Close()
+	b.SetBytes(st.Size())
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := analysis.Analyze(context.Background(), ex, analysis.DefaultOptions()); err != nil {
+			b.Fatal(err)
+		}
 	}
 }

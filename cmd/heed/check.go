@@ -22,6 +22,8 @@ type passFlags struct {
 	sumBelow bool
 	blocks   []string
 	shard    shardFlags // --shard, --partial (shard.go)
+	// noRedundancy: check prints no statistics, so it skips the pass over head pairs.
+	noRedundancy bool
 }
 
 func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
@@ -39,6 +41,7 @@ func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 func (pf *passFlags) options() (analysis.Options, error) {
 	opt := analysis.DefaultOptions()
 	opt.Tol, opt.SumTol, opt.SumBelow, opt.Blocks = pf.tol, pf.sumTol, pf.sumBelow, pf.blocks
+	opt.NoRedundancy = pf.noRedundancy
 	if pf.tol < 0 || math.IsNaN(pf.tol) || pf.sumTol < 0 || math.IsNaN(pf.sumTol) {
 		return opt, fmt.Errorf("--tol and --sum-tol must not be negative")
 	}
@@ -84,7 +87,7 @@ func runPass(ctx context.Context, args []string, lf *loadFlags, pf *passFlags) (
 // 1 findings, 2 bad input.
 func newCheckCmd() *cobra.Command {
 	lf := &loadFlags{}
-	pf := &passFlags{}
+	pf := &passFlags{noRedundancy: true}
 	af := &againstFlags{}
 	var asJSON bool
 	cmd := &cobra.Command{
