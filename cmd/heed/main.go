@@ -48,6 +48,7 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newCheckCmd())
 	root.AddCommand(newRankCmd())
 	root.AddCommand(newTraceCmd())
+	root.AddCommand(newDemoCmd())
 	root.AddCommand(newMergeCmd())
 	return root
 }
