@@ -3,13 +3,17 @@ package main
 import (
 	"bytes"
 	"errors"
+	"fmt"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/heed-dev/heed/demo"
 	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/tui"
 )
 
 // TestDemoExport writes the embedded exports with "heed demo --export" and
@@ -94,5 +98,80 @@ func TestDemoOpens(t *testing.T) {
 	}
 	if !strings.Contains(out, "shifted by +1") {
 		t.Errorf("demo output lacks the +1 finding:\n%s", out)
+	}
+}
+
+// TestDemoTUI runs the real binary in a real terminal (tmux): heed demo opens
+// the Map on the cell where the +1 leak is strongest, says so in the tab bar,
+// and prints the hint when the user quits.
+func TestDemoTUI(t *testing.T) {
+	if _, err := exec.LookPath("tmux"); err != nil {
+		t.Skip("skipping: tmux is not installed")
+	}
+	if testing.Short() {
+		t.Skip("skipping the terminal test in -short mode")
+	}
+	dir := t.TempDir()
+	bin := filepath.Join(dir, "heed")
+	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
+	res, err := demo.LoadResults()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := demo.Export(dir, false); err != nil {
+		t.Fatal(err)
+	}
+	start, err := demoStart(filepath.Join(dir, res.Demo.Open), res.Demo.At)
+	if err != nil {
+		t.Fatal(err)
+	}
+	loc, err := tui.ParseLoc(start)
+	if err != nil {
+		t.Fatal(err)
+	}
+	session := fmt.Sprintf("heed-demo-test-%d", os.Getpid())
+	done := filepath.Join(dir, "done")
+	script := fmt.Sprintf("%s demo; echo exit=$? > %s; sleep 60", shellQuote(bin), shellQuote(done))
+	tmux := func(args ...string) string {
+		out, err := exec.Command("tmux", args...).CombinedOutput()
+		if err != nil {
+			t.Fatalf("tmux %v: %v\n%s", args, err, out)
+		}
+		return string(out)
+	}
+	tmux("new-session", "-d", "-s", session, "-x", "100", "-y", "30", "env", "TERM=xterm-256color", "sh", "-c", script)
+	defer exec.Command("tmux", "kill-session", "-t", session).Run()
+	// wait for the first frame with the statistics done (no fixed timing is asserted)
+	var screen string
+	for i := 0; i < 200; i++ {
+		screen = tmux("capture-pane", "-t", session, "-p")
+		if strings.Contains(screen, "finding") {
+			break
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	first := strings.SplitN(screen, "\n", 2)[0]
+	if !strings.Contains(first, "[2 Map]") || !strings.Contains(first, "+1 leak: right of the diagonal") {
+		t.Errorf("tab bar %q: want the Map active and the hint", first)
+	}
+	if !strings.Contains(screen, fmt.Sprintf("q%d  k%d", loc.Query, loc.Key)) || !strings.Contains(screen, "forbidden by causal") {
+		t.Errorf("the Map does not start on the leaking cell q%d k%d (forbidden by causal):\n%s", loc.Query, loc.Key, screen)
+	}
+	tmux("send-keys", "-t", session, "q")
+	for i := 0; i < 100; i++ {
+		if _, err := os.Stat(done); err == nil {
+			break
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	b, err := os.ReadFile(done)
+	if err != nil || strings.TrimSpace(string(b)) != "exit=0" {
+		t.Fatalf("heed demo did not exit 0 after q: %q %v", b, err)
+	}
+	screen = strings.Join(strings.Fields(tmux("capture-pane", "-t", session, "-p", "-J")), " ")
+	if !strings.Contains(screen, strings.Join(strings.Fields(res.Demo.Hint), " ")) {
+		t.Errorf("after quitting, the screen lacks the hint %q:\n%s", res.Demo.Hint, screen)
 	}
 }
