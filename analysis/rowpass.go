@@ -1,5 +1,7 @@
 package analysis
 
+import "math"
+
 // The per-cell loop of worker.head, split by runs of keys that share a rule.
 // Rules.Row gives each key of a row the rule that forbids it; the keys form
 // a few runs (for a causal row: allowed 0..p, forbidden p+1..K-1). Allowed
@@ -52,10 +54,14 @@ func allZero(xs []float32) bool {
 	return true
 }
 
-// allowedRun is the loop body of an allowed key, for keys [a, b).
+// allowedRun is the loop body of an allowed key, for keys [a, b). The
+// table lookup of xlogx is written out here so that the loop makes no call
+// (a call spills the accumulators to the stack on every key).
 func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 	s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
+	nzLo, nzHi := ra.nzLo, ra.nzHi
 	var zeros, neg int64
+	tab := xlogxF16
 	for k := a; k < b; k++ {
 		x32 := row[k]
 		x := float64(x32)
@@ -67,10 +73,10 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 			zeros++
 			continue
 		}
-		if ra.nzLo < 0 {
-			ra.nzLo = k
+		if nzLo < 0 {
+			nzLo = k
 		}
-		ra.nzHi = k
+		nzHi = k
 		s += x
 		d := k - p
 		if d < 0 {
@@ -78,13 +84,19 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 		}
 		dist += x * float64(d)
 		if x > 0 {
-			ent -= xlogx(x32)
+			bits := math.Float32bits(x32)
+			if i := int(bits>>13) - xlogxF16Lo; bits&0x1fff == 0 && uint(i) < uint(len(tab)) {
+				ent -= tab[i]
+			} else {
+				ent -= xlogx(x32)
+			}
 		} else {
 			neg++
 			negm -= x
 		}
 	}
 	ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx = s, ent, dist, amass, negm, mx
+	ra.nzLo, ra.nzHi = nzLo, nzHi
 	ra.nAllow += int64(b - a)
 	ra.zeros += zeros
 	ra.neg += neg
