@@ -227,7 +227,9 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 				zf = float64(a.AllowZeros) / float64(a.AllowCells)
 			}
 			d.Evidence = append(d.Evidence, fmt.Sprintf("%d of %d judged rows off by more than the %s tolerance; sums from %.4g to %.4g, mean %.4g", f.Rows, f.JudgedRows, bp.DType, lo, hi, avg))
-			if zf >= 0.01 && hi > 1 {
+			// after dropout p the kept weights are scaled by 1/(1-p): rows that lost
+			// little sum to about 1/(1-p) >= 1+p, so the largest sum must show it
+			if zf >= 0.01 && hi > 1+zf/2 {
 				d.Pattern = "train_mode"
 				d.Value = zf
 				d.Text = fmt.Sprintf("Exported in train mode in %s: rows sum to values around 1 (%.3g to %.3g) and %.1f%% of allowed cells are exactly 0, as after dropout with p about %.2f (kept weights are scaled by 1/(1-p)).", where, lo, hi, 100*zf, zf)

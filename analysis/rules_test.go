@@ -1,6 +1,7 @@
 package analysis
 
 import (
+	"context"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -107,5 +108,61 @@ func TestGeneratorReproducible(t *testing.T) {
 	out, err := cmd.CombinedOutput()
 	if err != nil {
 		t.Fatalf("gen_cases.py --check: %v\n%s", err, out)
+	}
+}
+
+// TestRowChecks: the row checks of issue 3 on rows written out by hand
+// (definitions: DESIGN.md's convention, rows of probabilities summing to 1):
+// a negative value, a row summing to 0.9, and --sum-below accepting it.
+func TestRowChecks(t *testing.T) {
+	meta := `{"format":"heed-export/1","blocks":{"enc":{"kind":"bidirectional","query":"s","key":"s"}}}`
+	rows := []float64{
+		0.5, 0.5, 0, // fine
+		0.9, 0, 0, // sums to 0.9
+		1.2, -0.2, 0, // negative value, sums to 1
+	}
+	ex := memExport(t, meta, loader.NewMemArray("enc/attn", loader.Float32, []int{1, 3, 3}, rows))
+	res := mustAnalyze(t, ex, DefaultOptions())
+	got := map[Rule]Finding{}
+	for _, f := range res.Findings {
+		got[f.Rule] = f
+	}
+	if len(got) != 2 || got[RuleRowSum].Rows != 1 || got[RuleRowSum].Worst.Query != 1 || got[RuleNegative].Cells != 1 {
+		t.Fatalf("findings %+v", res.Findings)
+	}
+	pats := map[string]bool{}
+	for _, d := range res.Diagnoses {
+		pats[d.Pattern] = true
+	}
+	if !pats["rows_not_normalised"] || !pats["negative_values"] {
+		t.Errorf("diagnoses %v", pats)
+	}
+	opt := DefaultOptions()
+	opt.SumBelow = true
+	for _, f := range mustAnalyze(t, ex, opt).Findings {
+		if f.Rule == RuleRowSum {
+			t.Errorf("--sum-below still flags %s", describe(f))
+		}
+	}
+	opt = DefaultOptions()
+	opt.Rules = []Rule{RuleNegative}
+	if fs := mustAnalyze(t, ex, opt).Findings; len(fs) != 1 || fs[0].Rule != RuleNegative {
+		t.Errorf("--rule negative: %v", fs)
+	}
+}
+
+func mustAnalyze(t *testing.T, ex *loader.Export, opt Options) *Result {
+	t.Helper()
+	p, err := Analyze(context.Background(), ex, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return p.Result()
+}
+
+func TestLocationString(t *testing.T) {
+	l := Location{Block: "decoder", Layer: 3, Head: 7, Batch: 1, Query: 12}
+	if got := l.String(); got != "decoder:L3:H7:B1:q12" {
+		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12 (DESIGN.md's LOC form)", got)
 	}
 }

@@ -93,8 +93,9 @@ def leaks(attn, forbidden, judged, rule, block, positional=True, qoff=0):
     """Expected finding: the units and offsets where forbidden cells carry mass.
 
     forbidden: [L, B, H, q, k] bool of the cells the bug let through that the rule forbids.
-    judged: [B, q] bool. Asserts that each such cell carries mass > TOL (else the
-    generator's expectation would be wrong)."""
+    judged: [B, q] bool. Cells at or below TOL are no leak by heed's definition
+    and are left out; at least 90% of the broken cells must carry more than
+    TOL, else the case would not test the bug."""
     L = attn.shape[0]
     units = set()
     offsets = {}
@@ -102,11 +103,11 @@ def leaks(attn, forbidden, judged, rule, block, positional=True, qoff=0):
     for l in range(L):
         for b in range(attn.shape[1]):
             for h in range(attn.shape[2]):
-                m = forbidden[l, b, h] & judged[b][:, None]
-                if not m.any():
+                m0 = forbidden[l, b, h] & judged[b][:, None]
+                if not m0.any():
                     continue
-                vals = attn[l, b, h][m]
-                assert np.all(vals > TOL), (block, rule, l, b, h, vals.min())
+                m = m0 & (attn[l, b, h] > TOL)
+                assert m.sum() >= 0.9 * m0.sum(), (block, rule, l, b, h, int(m.sum()), int(m0.sum()))
                 units.add((l, h, b))
                 cells += int(m.sum())
                 if positional:
@@ -384,6 +385,65 @@ def case_cross_padding(out, seed):
     return cases, [f], [diag("cross_reads_padding", "cross", f)]
 
 
+def case_decode(out, seed):
+    """A KV-cache step: the last Q = 3 of K = 12 positions as queries (query
+    offset K - Q = 9); the bug passes no mask for the step."""
+    Q, off = 3, T - 3
+    torch.manual_seed(seed)
+    m = MHAStack(2).eval()
+    x = inputs(seed + 1)
+    q_idx = torch.arange(Q)[:, None] + off
+    right = torch.arange(T)[None, :] > q_idx  # [Q, K]: keys after the query's position
+    def step(mask):
+        ws = []
+        with torch.no_grad():
+            h = x
+            for l in range(2):
+                y, w = m.att[l](h[:, off:], h, h, attn_mask=mask, need_weights=True, average_attn_weights=False)
+                ws.append(w)
+                # the cache of the next layer: the full sequence through the same layer, causally
+                yy, _ = m.att[l](h, h, h, attn_mask=causal_blocked(T))
+                h = m.norm[l](h + yy)
+        return torch.stack(ws).numpy()
+    a_bad, a_good = step(None), step(right)
+    forb = np.broadcast_to(right.numpy(), a_bad.shape)
+    f = leaks(a_bad, forb, np.ones((B, Q), bool), "causal", "decoder", qoff=off)
+    cases = {n: {"decoder/attn": a, "meta": causal_meta()} for n, a in (("bad", a_bad), ("good", a_good))}
+    return cases, [f], [diag("no_causal_mask", "decoder", f)]
+
+
+def case_prefix(out, seed):
+    """A prefix-LM with P = 4: the prefix sees itself both ways, the suffix is
+    causal; the bug lets prefix rows see the suffix too."""
+    P = 4
+    q = torch.arange(T)[:, None]
+    k = torch.arange(T)[None, :]
+    right = (k > q) & ~((q < P) & (k < P))
+    bug = right & ~(q < P)  # prefix rows unmasked
+    a_bad = run_causal(seed, 2, [bug, bug])
+    a_good = run_causal(seed, 2, [right, right])
+    forb = np.broadcast_to((right & ~bug).numpy(), a_bad.shape)
+    f = leaks(a_bad, forb, np.ones((B, T), bool), "prefix", "decoder")
+    m = causal_meta({"prefix": P})
+    cases = {n: {"decoder/attn": a, "meta": m} for n, a in (("bad", a_bad), ("good", a_good))}
+    return cases, [f], [diag("prefix_sees_suffix", "decoder", f)]
+
+
+def case_explicit(out, seed):
+    """A bidirectional encoder with chunked local attention given as an explicit
+    mask (BLOCK/allow, True = may attend); the bug: the mask never reaches the
+    kernel."""
+    chunk = torch.arange(T) // 4
+    allow = chunk[:, None] == chunk[None, :]
+    a_bad = run_causal(seed, 2, [None, None])
+    a_good = run_causal(seed, 2, [~allow, ~allow])
+    forb = np.broadcast_to((~allow).numpy(), a_bad.shape)
+    f = leaks(a_bad, forb, np.ones((B, T), bool), "explicit", "encoder", positional=False)
+    mb = meta({"encoder": {"kind": "bidirectional", "query": "source", "key": "source", "axes": "layer batch head query key"}})
+    cases = {n: {"encoder/attn": a, "encoder/allow": allow.numpy(), "meta": mb} for n, a in (("bad", a_bad), ("good", a_good))}
+    return cases, [f], [diag("explicit_mask_ignored", "encoder", f)]
+
+
 CASES = [
     ("shift", case_shift),
     ("no_causal", case_no_causal),
@@ -396,6 +456,9 @@ CASES = [
     ("nan_spread", case_nan_spread),
     ("train_mode", case_train_mode),
     ("cross_padding", case_cross_padding),
+    ("decode", case_decode),
+    ("prefix", case_prefix),
+    ("explicit", case_explicit),
 ]
 
 # ---------------------------------------------------------------- statistics references
