@@ -323,3 +323,9 @@ func (r *Rules) Cell(b, h, q, k int) (Rule, error) {
 	}
 	return RuleNone, nil
 }
+
+// BlockRules builds the rules of blk with the sides the export gives it
+// (the usual way to call NewRules).
+func BlockRules(ex *loader.Export, blk *loader.Block, only []Rule) (*Rules, error) {
+	return NewRules(blk, ex.Side(blk.QuerySide), ex.Side(blk.KeySide), only)
+}
