@@ -49,6 +49,13 @@ type Options struct {
 	Analysis *analysis.Options
 	// Name is shown at the right of the tab bar (default: the first file).
 	Name string
+	// Export, when set, is shown instead of opening set's first example,
+	// and Close leaves it open: heed share opens the export once and every
+	// session reads it (loader exports are read-only).
+	Export *loader.Export
+	// Result, when set, is the finished statistics of set: no background
+	// pass runs (heed share computes them once for every session).
+	Result *analysis.Result
 }
 
 // GotoMsg moves the model to a location string (see ParseLoc); an invalid
@@ -120,18 +127,25 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 	if set == nil || set.Len() == 0 {
 		return nil, errors.New("tui: no export to show")
 	}
-	ex, err := set.Open(0)
-	if err != nil {
-		return nil, err
+	ex := opts.Export
+	var err error
+	if ex == nil {
+		if ex, err = set.Open(0); err != nil {
+			return nil, err
+		}
 	}
 	if len(ex.Blocks) == 0 {
-		ex.Close()
+		if opts.Export == nil {
+			ex.Close()
+		}
 		return nil, fmt.Errorf("tui: %s: no attention block", strings.Join(set.Examples[0], ", "))
 	}
 	var exB *loader.Export
 	if set.Len() == 2 {
 		if exB, err = set.Open(1); err != nil {
-			ex.Close()
+			if opts.Export == nil {
+				ex.Close()
+			}
 			return nil, err
 		}
 	}
@@ -184,7 +198,10 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 // Close closes the exports the model opened and stops its background work.
 func (m *Model) Close() error {
 	m.cancel()
-	err := m.d.ex.Close()
+	var err error
+	if m.opts.Export == nil {
+		err = m.d.ex.Close()
+	}
 	if m.d.exB != nil {
 		if e := m.d.exB.Close(); err == nil {
 			err = e
@@ -204,6 +221,12 @@ func (m *Model) Location() Loc {
 func (m *Model) LocationString() string {
 	return m.Location().format(m.bi().blk.Batch > 1)
 }
+
+// Canvas returns the cells of the focused screen's body as last drawn (the
+// area between the tab bar and the status line, after a WindowSizeMsg or
+// any Update), for pictures (heed render); nil when the screen shows only a
+// message.
+func (m *Model) Canvas() *views.Canvas { return m.screens[m.active].Canvas() }
 
 // Screen returns the index of the focused screen.
 func (m *Model) Screen() int { return m.active }
@@ -226,8 +249,13 @@ func (m *Model) hasCompare() bool { return m.d.exB != nil && m.bi().compareMisma
 
 // Init starts the background statistics and asks for the background colour.
 func (m *Model) Init() tea.Cmd {
-	m.anaJob = newJob(m.ctx, "statistics")
-	cmds := []tea.Cmd{runAnalysis(m.anaJob, m.set, m.anaOpt), m.anaJob.wait()}
+	var cmds []tea.Cmd
+	if res := m.opts.Result; res != nil {
+		cmds = append(cmds, func() tea.Msg { return analysisMsg{res: res} })
+	} else {
+		m.anaJob = newJob(m.ctx, "statistics")
+		cmds = append(cmds, runAnalysis(m.anaJob, m.set, m.anaOpt), m.anaJob.wait())
+	}
 	if m.opts.Background == "" {
 		cmds = append(cmds, tea.RequestBackgroundColor)
 	}

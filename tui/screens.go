@@ -22,18 +22,23 @@ type screen interface {
 	SetSize(w, h int)
 	Refresh()
 	View() string
+	// Canvas is the cells View was drawn from (nil for a plain message).
+	Canvas() *views.Canvas
 	ShortHelp() []key.Binding
 	FullHelp() [][]key.Binding
 }
 
 type base struct {
-	m    *Model
-	w, h int
-	view string
+	m      *Model
+	w, h   int
+	view   string
+	canvas *views.Canvas // what view was drawn from; nil for a plain message
 }
 
-func (b *base) SetSize(w, h int) { b.w, b.h = w, h }
-func (b *base) View() string     { return b.view }
+func (b *base) SetSize(w, h int)      { b.w, b.h = w, h }
+func (b *base) View() string          { return b.view }
+func (b *base) Canvas() *views.Canvas { return b.canvas }
+func (b *base) show(c *views.Canvas)  { b.canvas, b.view = c, c.String() }
 
 // --- Survey ---------------------------------------------------------------
 
@@ -152,7 +157,7 @@ func (s *surveyScreen) Refresh() {
 	}
 	c, l := views.Survey(d, s.w, s.h, m.layer, m.head, m.st)
 	s.layout = l
-	s.view = c.String()
+	s.show(c)
 }
 
 // --- Map ------------------------------------------------------------------
@@ -296,12 +301,12 @@ func (s *mapScreen) Refresh() {
 	m := s.m
 	md, err := m.mapData(&s.memo)
 	if err != nil {
-		s.view = m.st.Bad.Lip().Render("cannot read this head: " + err.Error())
+		s.canvas, s.view = nil, m.st.Bad.Lip().Render("cannot read this head: "+err.Error())
 		return
 	}
 	c, l := m.drawMap(md, m.headKey(0), false, s.w, s.h)
 	s.layout = l
-	s.view = c.String()
+	s.show(c)
 }
 
 // --- Findings -------------------------------------------------------------
@@ -467,7 +472,7 @@ func (s *findingsScreen) Refresh() {
 	s.sel = max(0, min(s.sel, len(d.Rows)-1))
 	c, l := views.Findings(d, s.w, s.h, s.sel, m.st)
 	s.layout = l
-	s.view = c.String()
+	s.show(c)
 }
 
 // --- Trace ----------------------------------------------------------------
@@ -577,7 +582,7 @@ func (s *traceScreen) Refresh() {
 	}
 	c, l := views.Trace(d, s.w, s.h, views.TraceOptions{Selected: s.sel, ByShare: s.byShare}, m.st)
 	s.layout = l
-	s.view = c.String()
+	s.show(c)
 }
 
 // --- Compare --------------------------------------------------------------
@@ -645,7 +650,7 @@ func (s *compareScreen) goHead(h views.HeadChange) {
 func (s *compareScreen) Refresh() {
 	m := s.m
 	if !m.hasCompare() {
-		s.view = m.compareWhyNot()
+		s.canvas, s.view = nil, m.compareWhyNot()
 		return
 	}
 	hk := m.headKey(0)
@@ -669,7 +674,7 @@ func (s *compareScreen) Refresh() {
 		}
 	}
 	if s.memoErr != nil {
-		s.view = "cannot read this head: " + s.memoErr.Error()
+		s.canvas, s.view = nil, "cannot read this head: "+s.memoErr.Error()
 		return
 	}
 	cd := &views.CompareData{NameA: strings.Join(m.set.Examples[0], " "), NameB: strings.Join(m.set.Examples[1], " "),
@@ -692,7 +697,7 @@ func (s *compareScreen) Refresh() {
 	// so that cursor and zoom stay in step with the layout.
 	c, l := views.Compare(cd, s.w, s.h, m.syncedMapOpt(s.memoMD, s.w, s.h), sel, m.st)
 	s.layout = l
-	s.view = c.String()
+	s.show(c)
 }
 
 // syncedMapOpt lays out md the way views.Compare will (its map area) and
