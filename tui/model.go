@@ -20,6 +20,7 @@ import (
 	"charm.land/bubbles/v2/progress"
 	"charm.land/bubbles/v2/textinput"
 	tea "charm.land/bubbletea/v2"
+	"charm.land/lipgloss/v2"
 	"github.com/charmbracelet/colorprofile"
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
@@ -313,7 +314,7 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 		return nil
 	case GotoMsg:
 		if err := m.gotoLoc(msg.Loc, false); err != nil {
-			m.setMsg(err.Error(), m.st.Bad)
+			m.setMsg(strings.TrimPrefix(err.Error(), "tui: "), m.st.Bad)
 		}
 		return nil
 	case progressMsg:
@@ -335,6 +336,8 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 	case analysisMsg:
 		m.anaDone, m.anaErr, m.res = true, msg.err, msg.res
 		switch {
+		case m.msg != "":
+			// keep the notice the user is reading
 		case msg.err != nil && !errors.Is(msg.err, context.Canceled):
 			m.setMsg("statistics: "+msg.err.Error(), m.st.Bad)
 		case msg.res != nil && len(msg.res.Findings) > 0:
@@ -700,7 +703,7 @@ func (m *Model) syncKeys() {
 	case ScreenTrace:
 		k.Enter.SetHelp("enter", "map at this key")
 	case ScreenCompare:
-		k.Enter.SetHelp("enter", "next most changed head")
+		k.Enter.SetHelp("enter", "most changed head, then the next")
 	}
 }
 
@@ -793,15 +796,19 @@ func (m *Model) View() tea.View {
 	_, bh := m.bodySize()
 	var body string
 	if m.showHelp {
-		hm := m.help
-		hm.ShowAll = true
-		body = "Keys of " + m.screens[m.active].Name() + " (? or esc to close)\n\n" + hm.View(m.helpKeys())
+		body = "Keys of " + m.screens[m.active].Name() + " (? or esc to close)\n\n" + m.fullHelp()
 	} else {
 		body = m.screens[m.active].View()
 	}
 	b.WriteString(fitLines(body, bh))
 	b.WriteByte('\n')
-	b.WriteString(views.Status(m.w, m.statusFields(), m.msg, m.msgStyle, m.st).String())
+	// Short notices fit in the status bar; longer ones take the key line
+	// until the next key.
+	status, bottom := m.msg, ""
+	if views.StringWidth(m.msg) > m.w/2 {
+		status, bottom = "", m.msg
+	}
+	b.WriteString(views.Status(m.w, m.statusFields(), status, m.msgStyle, m.st).String())
 	b.WriteByte('\n')
 	switch {
 	case m.finding:
@@ -811,11 +818,37 @@ func (m *Model) View() tea.View {
 		hm := m.help
 		hm.SetWidth(max(0, m.w-m.prog.Width()-18))
 		b.WriteString(hm.ShortHelpView([]key.Binding{m.keys.Help, m.keys.Quit}))
+	case bottom != "":
+		c := views.NewCanvas(m.w, 1)
+		c.Text(0, 0, bottom, m.msgStyle, -1)
+		b.WriteString(c.String())
 	default:
 		b.WriteString(m.help.ShortHelpView(m.helpKeys().short))
 	}
 	v.SetContent(b.String())
 	return v
+}
+
+// fullHelp lays the help groups out in as many rows of columns as the
+// width needs, so that no key is cut off.
+func (m *Model) fullHelp() string {
+	hm := help.New()
+	hm.Styles = m.help.Styles
+	var rows []string
+	var cur [][]key.Binding
+	for _, g := range m.helpKeys().groups {
+		try := append(append([][]key.Binding(nil), cur...), g)
+		if len(cur) > 0 && lipgloss.Width(hm.FullHelpView(try)) > m.w {
+			rows = append(rows, hm.FullHelpView(cur))
+			cur = [][]key.Binding{g}
+			continue
+		}
+		cur = try
+	}
+	if len(cur) > 0 {
+		rows = append(rows, hm.FullHelpView(cur))
+	}
+	return strings.Join(rows, "\n\n")
 }
 
 // tabIndex is the active screen's position among the shown tabs.

@@ -594,9 +594,10 @@ type compareScreen struct {
 	memoErr error
 	made    bool
 	layout  views.CompareLayout
+	next    int // table row the last enter went to
 }
 
-func newCompare(m *Model) *compareScreen { return &compareScreen{base: base{m: m}} }
+func newCompare(m *Model) *compareScreen { return &compareScreen{base: base{m: m}, next: -1} }
 
 func (s *compareScreen) Name() string { return "Compare" }
 
@@ -616,17 +617,14 @@ func (s *compareScreen) Update(msg tea.Msg) tea.Cmd {
 		if len(heads) == 0 {
 			return nil
 		}
-		next := 0
-		for i, h := range heads {
-			if h.Layer == m.layer && h.Head == m.head {
-				next = (i + 1) % len(heads)
-			}
-		}
-		s.goHead(heads[next])
+		// The first enter goes to the most changed head, each next one down the table.
+		s.next = (s.next + 1) % len(heads)
+		s.goHead(heads[s.next])
 		return nil
 	}
 	if cm, ok := msg.(tea.MouseClickMsg); ok {
 		if i, ok := s.layout.HeadAt(cm.X, cm.Y); ok && i < len(heads) {
+			s.next = i
 			s.goHead(heads[i])
 			return nil
 		}

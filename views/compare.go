@@ -61,7 +61,7 @@ func Compare(d *CompareData, w, h int, opt MapOptions, sel int, st Styles) (*Can
 	side := w >= 100
 	if side {
 		mapW = w - compareTableW - 1
-		l.TableX, l.TableY = mapW+1, 2
+		l.TableX, l.TableY = mapW+1, 3
 		l.TableH = max(0, h-l.TableY)
 	} else {
 		rows := min(len(d.Heads), 5, max(0, h/3-1))
@@ -80,13 +80,9 @@ func Compare(d *CompareData, w, h int, opt MapOptions, sel int, st Styles) (*Can
 	if !d.Done {
 		head += " · " + d.Progress
 	}
-	c.Text(l.TableX, ty-boolInt(!side), head, st.Title, -1)
+	c.Text(l.TableX, ty-1, head, st.Title, -1)
 	cols := []column{{"head", 9, false}, {"TV", 7, true}, {"max|Δ|", 7, true}, {"at", 11, false}}
 	drawRow(c, l.TableX, ty, cols, func(col column) string { return col.title }, st.Faint)
-	if !side {
-		// The title takes the line above the header.
-		l.TableY = ty + 1
-	}
 	l.TableH = min(l.TableH, max(0, h-l.TableY))
 	vis := min(len(d.Heads), l.TableH)
 	l.Start = scrollStart(sel, len(d.Heads), vis)
@@ -111,11 +107,4 @@ func Compare(d *CompareData, w, h int, opt MapOptions, sel int, st Styles) (*Can
 		}, style)
 	}
 	return c, l
-}
-
-func boolInt(b bool) int {
-	if b {
-		return 1
-	}
-	return 0
 }

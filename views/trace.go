@@ -121,7 +121,7 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	valW := 6
 	barW := max(1, colW-valW-2)
 	order := TraceOrder(d, opt.ByShare)
-	c.Text(0, y, padLeft("pos", posW)+" "+padRight("token", tokW), st.Faint, -1)
+	c.Text(0, y, padLeft("#", posW)+" "+padRight("token", tokW), st.Faint, -1)
 	maxes := make([]float64, len(d.Methods))
 	for i, m := range d.Methods {
 		c.Text(labelW+1+i*colW, y, ellipsize(m.Name, colW-1), st.Faint, -1)

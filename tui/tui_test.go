@@ -1,0 +1,396 @@
+package tui
+
+import (
+	"bytes"
+	"context"
+	"encoding/base64"
+	"encoding/json"
+	"fmt"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	tea "charm.land/bubbletea/v2"
+	"github.com/charmbracelet/colorprofile"
+	"github.com/charmbracelet/x/ansi"
+	"github.com/charmbracelet/x/exp/teatest/v2"
+	"github.com/heed-dev/heed/loader"
+)
+
+// The fixtures are written by testdata/make_export.py with numpy; the
+// reference values the flows check (worst leaking cell, most changed head)
+// are computed by numpy from the same files, not by heed.
+
+func python(t *testing.T) {
+	t.Helper()
+	if err := exec.Command("/usr/bin/python3", "-c", "import numpy").Run(); err != nil {
+		t.Skipf("these tests need /usr/bin/python3 with numpy to write their fixtures: %v", err)
+	}
+}
+
+func makeExport(t *testing.T, name string, args ...string) string {
+	t.Helper()
+	python(t)
+	out := filepath.Join(t.TempDir(), name)
+	cmd := exec.Command("/usr/bin/python3", append([]string{"testdata/make_export.py", out}, args...)...)
+	if b, err := cmd.CombinedOutput(); err != nil {
+		t.Fatalf("make_export.py: %v\n%s", err, b)
+	}
+	return out
+}
+
+// numpyRef runs a numpy script on the files and decodes its JSON output.
+func numpyRef(t *testing.T, script string, v any, files ...string) {
+	t.Helper()
+	cmd := exec.Command("/usr/bin/python3", append([]string{"-c", script}, files...)...)
+	b, err := cmd.Output()
+	if err != nil {
+		t.Fatalf("numpy reference: %v", err)
+	}
+	if err := json.Unmarshal(b, v); err != nil {
+		t.Fatalf("numpy reference: %v: %s", err, b)
+	}
+}
+
+// worstLeakScript finds the largest value strictly above the diagonal (the
+// cells a causal mask forbids) of decoder/attn [layer, batch, head, q, k].
+const worstLeakScript = `
+import json, sys
+import numpy as np
+a = np.load(sys.argv[1])["decoder/attn"]
+n = a.shape[-1]
+up = np.triu(np.ones((n, n), dtype=bool), k=1)
+m = np.where(up, a, -1.0)
+l, b, h, q, k = np.unravel_index(np.argmax(m), m.shape)
+print(json.dumps({"layer": int(l), "batch": int(b), "head": int(h), "q": int(q), "k": int(k)}))
+`
+
+// changeScript ranks heads by the mean over rows of the total variation
+// distance 0.5 * sum_k |A - B| (batch item 0).
+const changeScript = `
+import json, sys
+import numpy as np
+a = np.load(sys.argv[1])["decoder/attn"][:, 0]
+b = np.load(sys.argv[2])["decoder/attn"][:, 0]
+tv = 0.5 * np.abs(a - b).sum(axis=-1).mean(axis=-1)
+l, h = np.unravel_index(np.argmax(tv), tv.shape)
+print(json.dumps({"layer": int(l), "head": int(h), "tv": float(tv[l, h])}))
+`
+
+type flow struct {
+	t    *testing.T
+	tm   *teatest.TestModel
+	m    *Model
+	rec  *recorder
+	locs chan string
+}
+
+// recorder keeps the latest frame the model drew, without escape
+// sequences, so that tests read the screen as a person sees it.
+type recorder struct {
+	m     *Model
+	mu    sync.Mutex
+	frame string
+}
+
+func (r *recorder) Init() tea.Cmd { return r.m.Init() }
+
+func (r *recorder) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
+	_, cmd := r.m.Update(msg)
+	return r, cmd
+}
+
+func (r *recorder) View() tea.View {
+	v := r.m.View()
+	r.mu.Lock()
+	r.frame = ansi.Strip(v.Content)
+	r.mu.Unlock()
+	return v
+}
+
+func (r *recorder) latest() string {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	return r.frame
+}
+
+func start(t *testing.T, w, h int, opts Options, files ...string) *flow {
+	t.Helper()
+	set, err := loader.OpenSet(files, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	locs := make(chan string, 100)
+	opts.OnLocation = func(loc string) { locs <- loc }
+	if opts.Background == "" {
+		opts.Background = "dark"
+	}
+	m, err := New(set, opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { m.Close() })
+	rec := &recorder{m: m}
+	tm := teatest.NewTestModel(t, rec, teatest.WithInitialTermSize(w, h),
+		teatest.WithProgramOptions(tea.WithColorProfile(colorprofile.TrueColor), tea.WithEnvironment([]string{"TERM=xterm-256color"})))
+	return &flow{t: t, tm: tm, m: m, rec: rec, locs: locs}
+}
+
+// see waits until the latest frame has every string.
+func (f *flow) see(strs ...string) {
+	f.t.Helper()
+	deadline := time.Now().Add(10 * time.Second)
+	for {
+		frame := f.rec.latest()
+		ok := true
+		for _, s := range strs {
+			if !strings.Contains(frame, s) {
+				ok = false
+			}
+		}
+		if ok {
+			return
+		}
+		if time.Now().After(deadline) {
+			f.t.Fatalf("the screen never showed %q; last frame (%d lines):\n%q", strs, strings.Count(frame, "\n")+1, frame)
+		}
+		time.Sleep(10 * time.Millisecond)
+	}
+}
+
+// until waits until the latest frame satisfies ok.
+func (f *flow) until(what string, ok func(frame string) bool) {
+	f.t.Helper()
+	deadline := time.Now().Add(10 * time.Second)
+	for !ok(f.rec.latest()) {
+		if time.Now().After(deadline) {
+			f.t.Fatalf("the screen never showed %s; last frame:\n%s", what, f.rec.latest())
+		}
+		time.Sleep(10 * time.Millisecond)
+	}
+}
+
+// output waits until the terminal output has s (escape sequences included).
+func (f *flow) output(s string) {
+	f.t.Helper()
+	var seen []byte
+	teatest.WaitFor(f.t, f.tm.Output(), func(b []byte) bool {
+		seen = append(seen, b...)
+		return bytes.Contains(seen, []byte(s))
+	}, teatest.WithDuration(10*time.Second), teatest.WithCheckInterval(10*time.Millisecond))
+}
+
+// loc waits for the location to become want.
+func (f *flow) loc(want string) {
+	f.t.Helper()
+	deadline := time.After(10 * time.Second)
+	for {
+		select {
+		case got := <-f.locs:
+			if got == want {
+				return
+			}
+		case <-deadline:
+			f.t.Fatalf("location never became %s", want)
+		}
+	}
+}
+
+func (f *flow) key(s string) {
+	switch s {
+	case "enter":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyEnter})
+	case "tab":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyTab})
+	case "shift+tab":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyTab, Mod: tea.ModShift})
+	case "esc":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyEscape})
+	case "right":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyRight})
+	case "down":
+		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyDown})
+	default:
+		f.tm.Type(s)
+	}
+}
+
+func (f *flow) quit() *Model {
+	f.t.Helper()
+	f.key("q")
+	fm := f.tm.FinalModel(f.t, teatest.WithFinalTimeout(10*time.Second))
+	m := fm.(*recorder).m
+	if m.ctx.Err() == nil {
+		f.t.Error("quitting did not cancel the background work")
+	}
+	return m
+}
+
+func TestFlowLeakToWorstCell(t *testing.T) {
+	file := makeExport(t, "leak.npz", "--leak")
+	var want struct{ Layer, Batch, Head, Q, K int }
+	numpyRef(t, worstLeakScript, &want, file)
+	f := start(t, 80, 24, Options{}, file)
+	f.see("Survey · decoder")
+	f.see("1 finding") // the background checks finished
+	f.key("3")
+	f.see("Findings · 1, worst first", "causal", "shifted by +1")
+	f.key("enter")
+	// numpy's worst forbidden cell is where Findings' enter lands.
+	f.loc(Loc{Block: "decoder", Layer: want.Layer, Head: want.Head, Query: want.Q, Key: -1}.String())
+	f.see("forbidden by causal")
+	m := f.quit()
+	if m.Screen() != ScreenMap || m.k != want.K || m.batch != want.Batch {
+		t.Errorf("after enter: screen %d, k %d, batch %d; want Map at k %d batch %d", m.Screen(), m.k, m.batch, want.K, want.Batch)
+	}
+}
+
+func TestFlowMoveZoomFindCopy(t *testing.T) {
+	file := makeExport(t, "clean.npz", "--layers", "3", "--heads", "3", "--seq", "60")
+	f := start(t, 80, 24, Options{}, file)
+	f.see("Survey · decoder")
+	f.key("]")
+	f.loc("decoder:L1:H0:q0")
+	f.key("]")
+	f.key("}")
+	f.loc("decoder:L2:H1:q0")
+	f.key("[")
+	f.key("{")
+	f.key("{")
+	f.loc("decoder:L1:H2:q0") // head wraps around
+	f.key("2")
+	// 60 tokens do not fit in 21 lines at 1:1: the map starts zoomed out.
+	f.see("1:2 mean")
+	f.key("+")
+	f.see("×1")
+	f.key("+")
+	f.see("×2")
+	f.key("m")
+	f.see("max weight")
+	f.key("-")
+	f.key("-")
+	f.see("1:2 max")
+	// find the 4th token, " river"
+	f.key("/")
+	f.see("find token")
+	f.key("river")
+	f.key("enter")
+	f.loc("decoder:L1:H2:q3")
+	f.see("match 1 of 3")
+	f.key("n")
+	f.loc("decoder:L1:H2:q23")
+	f.key("y")
+	loc := "decoder:L1:H2:q23"
+	// OSC 52 puts the location on the clipboard, also over SSH.
+	f.output("\x1b]52;c;" + base64.StdEncoding.EncodeToString([]byte(loc)))
+	f.see("copied " + loc)
+	f.key("?")
+	f.see("Keys of Map", "zoom in", "hide/show sink column")
+	f.key("esc")
+	f.tm.Send(tea.WindowSizeMsg{Width: 200, Height: 60})
+	f.see("forbidden with mass")
+	m := f.quit()
+	if m.w != 200 || m.h != 60 {
+		t.Errorf("size after resize %dx%d", m.w, m.h)
+	}
+}
+
+func TestFlowAtGotoAndMouse(t *testing.T) {
+	file := makeExport(t, "clean.npz")
+	f := start(t, 80, 24, Options{At: "decoder:L1:H3:q5"}, file)
+	f.see("[2 Map]", "q 5 \" past\"")
+	f.tm.Send(GotoMsg{Loc: "decoder:L0:H1:q9"})
+	f.loc("decoder:L0:H1:q9")
+	f.tm.Send(GotoMsg{Loc: "encoder:L0:H0"})
+	f.see("no block")
+	// A click on the map moves the cursor to the cell under it: row 0 of
+	// the grid is on screen line 1 (tab bar) + 3 (key labels) + 0.
+	f.tm.Send(tea.MouseClickMsg{X: 11, Y: 4, Button: tea.MouseLeft})
+	f.loc("decoder:L0:H1:q0")
+	f.tm.Send(tea.MouseClickMsg{X: 7, Y: 0, Button: tea.MouseLeft}) // the " 1 Survey " tab, columns 5-14
+	f.see("Survey ·")
+	m := f.quit()
+	if m.Screen() != ScreenSurvey {
+		t.Errorf("tab click: screen %d", m.Screen())
+	}
+}
+
+func TestFlowCompare(t *testing.T) {
+	a := makeExport(t, "before.npz", "--leak")
+	b := makeExport(t, "after.npz")
+	var want struct {
+		Layer, Head int
+		TV          float64
+	}
+	numpyRef(t, changeScript, &want, a, b)
+	f := start(t, 120, 30, Options{}, a, b)
+	f.see("5 Compare")
+	f.key("5")
+	f.until("the table of most changed heads", func(s string) bool {
+		return strings.Contains(s, "most changed heads") && !strings.Contains(s, "measuring")
+	})
+	f.key("enter") // jumps to the most changed head
+	f.see(fmt.Sprintf("L%d H%d: mean total variation", want.Layer, want.Head))
+	m := f.quit()
+	heads := m.cmp[0]
+	if len(heads) == 0 || heads[0].Layer != want.Layer || heads[0].Head != want.Head {
+		t.Fatalf("most changed head %+v, numpy says L%d H%d", heads, want.Layer, want.Head)
+	}
+	if d := heads[0].TV - want.TV; d > 1e-5 || d < -1e-5 {
+		t.Errorf("TV %v, numpy %v", heads[0].TV, want.TV)
+	}
+}
+
+func TestParseLoc(t *testing.T) {
+	for _, tc := range []struct {
+		in   string
+		want Loc
+		err  bool
+	}{
+		{"decoder:L3:H7:q12", Loc{"decoder", 3, 7, 0, 12, -1}, false},
+		{"layers.3.self_attn:L0:H1:B2", Loc{"layers.3.self_attn", 0, 1, 2, -1, -1}, false},
+		{"a:b:L1:H2:B0:q4:k5", Loc{"a:b", 1, 2, 0, 4, 5}, false},
+		{"decoder:L3", Loc{}, true},
+		{"L3:H7", Loc{}, true},
+		{"decoder:L-1:H2", Loc{}, true},
+	} {
+		got, err := ParseLoc(tc.in)
+		if (err != nil) != tc.err || (!tc.err && got != tc.want) {
+			t.Errorf("ParseLoc(%q) = %+v, %v; want %+v, error %v", tc.in, got, err, tc.want, tc.err)
+		}
+		if !tc.err {
+			if back, _ := ParseLoc(got.String()); back != got {
+				t.Errorf("round trip of %q: %q", tc.in, got.String())
+			}
+		}
+	}
+}
+
+func TestNewErrors(t *testing.T) {
+	file := makeExport(t, "clean.npz")
+	set, err := loader.OpenSet([]string{file}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, o := range []Options{{At: "nosuch:L0:H0"}, {At: "decoder:L9:H0"}, {Colormap: "rainbow"}} {
+		if m, err := New(set, o); err == nil {
+			m.Close()
+			t.Errorf("New(%+v) accepted", o)
+		} else if !strings.Contains(err.Error(), "tui:") {
+			t.Errorf("New(%+v): %v", o, err)
+		}
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	m, err := New(set, Options{Context: ctx})
+	if err != nil {
+		t.Fatal(err)
+	}
+	cancel()
+	if m.ctx.Err() == nil {
+		t.Error("the parent context does not cancel the model's work")
+	}
+	m.Close()
+}
