@@ -46,7 +46,8 @@ func FormatOf(path string) (Format, error) {
 
 // Text renders the canvas as text: the marker line, then the canvas's lines,
 // each ending in "\n". With colour, cells carry true-colour SGR sequences
-// (views.Canvas.String); without, none at all (views.Canvas.Plain), and the
+// (views.Canvas.String); without, none at all (views.Canvas.Plain, trailing
+// spaces dropped), and the
 // canvas should have been drawn for a profile without colour so that its
 // glyph ramp carries the values.
 func Text(c *views.Canvas, colour bool, opt Options) []byte {
@@ -59,7 +60,12 @@ func Text(c *views.Canvas, colour bool, opt Options) []byte {
 	if colour {
 		b.WriteString(c.Render(colorprofile.TrueColor))
 	} else {
-		b.WriteString(c.Plain())
+		// Lines end at their last glyph: a canvas is as wide as its widest line.
+		lines := strings.Split(c.Plain(), "\n")
+		for i, l := range lines {
+			lines[i] = strings.TrimRight(l, " ")
+		}
+		b.WriteString(strings.Join(lines, "\n"))
 	}
 	b.WriteString("\n")
 	return b.Bytes()

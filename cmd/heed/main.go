@@ -50,6 +50,8 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newTraceCmd())
 	root.AddCommand(newDemoCmd())
 	root.AddCommand(newMergeCmd())
+	root.AddCommand(newRenderCmd())
+	root.AddCommand(newShareCmd())
 	return root
 }
 

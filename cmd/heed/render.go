@@ -1,0 +1,307 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"os"
+	"strings"
+	"sync"
+
+	tea "charm.land/bubbletea/v2"
+	"github.com/charmbracelet/colorprofile"
+	"github.com/charmbracelet/x/ansi"
+	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/picture"
+	"github.com/heed-dev/heed/tui"
+	"github.com/heed-dev/heed/views"
+	"github.com/spf13/cobra"
+)
+
+// renderFlags are heed render's own flags.
+type renderFlags struct {
+	at, out, screen, colormap, background string
+	colour, force                         bool
+	width, height                         int
+}
+
+// renderScreens maps --screen to the TUI's screen and its jump key.
+var renderScreens = map[string]struct {
+	index int
+	key   rune
+	what  string
+}{
+	"map":      {tui.ScreenMap, '2', "attention weight"},
+	"survey":   {tui.ScreenSurvey, '1', "per-head statistics, layers × heads"},
+	"findings": {tui.ScreenFindings, '3', "mask and row checks"},
+	"trace":    {tui.ScreenTrace, '4', "input tokens' share of the query"},
+	"compare":  {tui.ScreenCompare, '5', "|A−B| between the two exports"},
+}
+
+func newRenderCmd() *cobra.Command {
+	lf := &loadFlags{}
+	rf := &renderFlags{}
+	cmd := &cobra.Command{
+		Use:   "render FILE... --at LOC -o OUT.{png,svg,txt}",
+		Short: "Write a picture of one screen (PNG, SVG or text) for a chat or a report",
+		Long: `render draws one screen of the terminal UI at a location and writes it to a
+file: PNG or SVG (drawn with the Go Mono font built into heed, so the picture is
+the same on every machine) or text (plain, or with ANSI colours with --color),
+chosen by the extension of -o.
+
+The Map (default) shows one head's query x key weights with token labels on
+both axes, forbidden cells that carry mass marked as in the TUI, the colour
+scale and the cursor readout; --screen picks the Survey, Findings, Trace or
+(with two exports) Compare instead. Findings are evidence to confirm by
+re-evaluating the model, not verdicts.
+
+The file is written atomically. An existing file is replaced only when it is
+a previous heed render, or with --force.`,
+		Example: `  heed render run.npz --at decoder:L3:H7:q12 -o leak.png
+  heed render run.npz --at decoder:L3:H7 --screen survey -o survey.svg
+  heed render run.npz --at decoder:L0:H0 --screen findings -o findings.txt`,
+		Args: cobra.MinimumNArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			return runRender(cmd.Context(), args, lf, rf)
+		},
+	}
+	f := cmd.Flags()
+	f.StringVar(&rf.at, "at", "", "location BLOCK:L<layer>:H<head>[:B<batch>][:q<query>] (required)")
+	f.StringVarP(&rf.out, "output", "o", "", "output file: .png, .svg or .txt (required)")
+	f.StringVar(&rf.screen, "screen", "map", "screen: map, survey, findings, trace or compare")
+	f.BoolVar(&rf.colour, "color", false, "text output with ANSI (true-colour) escapes instead of plain text")
+	f.BoolVar(&rf.force, "force", false, "replace OUT even when it is not a previous heed render")
+	f.StringVar(&rf.colormap, "colormap", views.DefaultColormap, "colormap: "+strings.Join(views.ColormapNames(), ", "))
+	f.StringVar(&rf.background, "background", "light", "page background of PNG and SVG: light or dark")
+	f.IntVar(&rf.width, "width", 0, "width in terminal columns (0: enough for the screen, up to 320)")
+	f.IntVar(&rf.height, "height", 0, "height in terminal lines (0: enough for the screen, up to 200)")
+	lf.register(cmd)
+	return cmd
+}
+
+func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlags) error {
+	if rf.at == "" {
+		return errors.New("render: --at LOC is required, e.g. --at decoder:L3:H7:q12")
+	}
+	if rf.out == "" {
+		return errors.New("render: -o OUT.png, OUT.svg or OUT.txt is required")
+	}
+	format, err := picture.FormatOf(rf.out)
+	if err != nil {
+		return err
+	}
+	if rf.colour && format != picture.FormatTXT {
+		return fmt.Errorf("render: --color is for text output; %s is %s", rf.out, format)
+	}
+	scr, ok := renderScreens[rf.screen]
+	if !ok {
+		return fmt.Errorf("render: --screen %q: want map, survey, findings, trace or compare", rf.screen)
+	}
+	if rf.background != "light" && rf.background != "dark" {
+		return fmt.Errorf("render: --background %q: want light or dark", rf.background)
+	}
+	cm, ok := views.ColormapByName(rf.colormap)
+	if !ok {
+		return fmt.Errorf("render: unknown colormap %q (want one of %s)", rf.colormap, strings.Join(views.ColormapNames(), ", "))
+	}
+	if rf.width < 0 || rf.height < 0 || (rf.width > 0 && rf.width < 40) || (rf.height > 0 && rf.height < 12) || rf.width > 2000 || rf.height > 2000 {
+		return fmt.Errorf("render: --width %d --height %d: want 0 (automatic) or 40..2000 columns and 12..2000 lines", rf.width, rf.height)
+	}
+	// Refuse early, before any work, to replace a file that is not ours.
+	if !rf.force {
+		if _, err := os.Lstat(rf.out); err == nil {
+			if ok, err := picture.IsRender(rf.out); err != nil || !ok {
+				return fmt.Errorf("%s %w (use --force to replace it)", rf.out, picture.ErrExists)
+			}
+		}
+	}
+
+	set, err := openSet(args, lf)
+	if err != nil {
+		return err
+	}
+	// Plain text has no colour: draw for a profile without it, so that the
+	// glyph ramp carries the values (as the TUI does under NO_COLOR).
+	profile := colorprofile.TrueColor
+	if format == picture.FormatTXT && !rf.colour {
+		profile = colorprofile.Ascii
+	}
+	dark := rf.background == "dark"
+	m, err := tui.New(set, tui.Options{At: rf.at, Colormap: cm.Name, Background: rf.background, Profile: profile, Context: ctx})
+	if err != nil {
+		return err
+	}
+	defer m.Close()
+	if scr.index == tui.ScreenCompare && set.Len() != 2 {
+		return errors.New("render: --screen compare needs two exports of the same shape: heed render A B ...")
+	}
+	ex, err := set.Open(0)
+	if err != nil {
+		return err
+	}
+	loc := m.Location()
+	blk := ex.Block(loc.Block)
+	w, h := rf.width, rf.height
+	if blk != nil && (w == 0 || h == 0) {
+		aw, ah := autoSize(blk, rf.screen)
+		if w == 0 {
+			w = aw
+		}
+		if h == 0 {
+			h = ah
+		}
+	}
+	ex.Close()
+	if w == 0 {
+		w = 100
+	}
+	if h == 0 {
+		h = 40
+	}
+
+	body, err := drawScreen(ctx, m, scr.index, scr.key, w, h)
+	if err != nil {
+		return err
+	}
+	st := views.NewStyles(profile, dark, cm)
+	locStr := m.LocationString()
+	if scr.index == tui.ScreenSurvey || scr.index == tui.ScreenFindings {
+		l := m.Location() // these screens show a head, not a query
+		l.Query, l.Key = -1, -1
+		locStr = l.String()
+	}
+	title := fmt.Sprintf("heed · %s · %s · %s", rf.screen, locStr, scr.what)
+	body = crop(body)
+	c := views.NewCanvas(max(body.W, views.StringWidth(title)), body.H+2)
+	c.Text(0, 0, title, st.Title, -1)
+	c.Blit(0, 2, body)
+	name := strings.Join(set.Examples[0], " ")
+	opt := picture.Options{
+		Dark:        dark,
+		Title:       title,
+		Description: "heed " + versionString() + " render of " + name,
+		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, locStr, rf.screen, versionString()),
+	}
+	data, err := picture.Encode(c, format, rf.colour, opt)
+	if err != nil {
+		return err
+	}
+	return picture.WriteFile(rf.out, data, rf.force)
+}
+
+// blank reports whether a cell shows nothing: a space in the default colours.
+func blank(c views.Cell) bool {
+	return (c.Ch == ' ' || c.Ch == 0) && !c.BG.IsSet() && c.Attr&(views.Reverse|views.Underline) == 0
+}
+
+// crop drops the blank columns at the right and the blank lines at the
+// bottom, which a screen sized for the largest case leaves.
+func crop(c *views.Canvas) *views.Canvas {
+	w, h := 1, 1
+	for y := 0; y < c.H; y++ {
+		for x := 0; x < c.W; x++ {
+			if !blank(c.At(x, y)) {
+				w, h = max(w, x+1), max(h, y+1)
+			}
+		}
+	}
+	if w == c.W && h == c.H {
+		return c
+	}
+	out := views.NewCanvas(w, h)
+	for y := 0; y < h; y++ {
+		copy(out.Cells[y*w:(y+1)*w], c.Cells[y*c.W:y*c.W+w])
+	}
+	// a wide rune cut in half at the new edge becomes a space
+	for y := 0; y < h; y++ {
+		if x := w - 1; out.Cells[y*w+x].Ch != 0 && x+1 < c.W && c.At(x+1, y).Ch == 0 {
+			out.Cells[y*w+x].Ch = ' '
+		}
+	}
+	return out
+}
+
+// autoSize is a canvas large enough to show a block's matrices without
+// downsampling, within 320 x 200 cells: one column a key (plus the query
+// labels), two queries a line with half blocks (plus the key labels and the
+// legend).
+func autoSize(b *loader.Block, screen string) (w, h int) {
+	switch screen {
+	case "map", "compare":
+		w = b.Keys + 20
+		h = (b.Queries+1)/2 + 14
+	case "survey":
+		w = 2*b.Heads + 40
+		h = b.Layers + 16
+	case "trace":
+		w = 100
+		h = min(b.Keys, 60) + 10
+	default:
+		w, h = 110, 40
+	}
+	return max(80, min(w, 320)), max(24, min(h, 200))
+}
+
+// drawScreen drives the TUI's model without a terminal: it gives it a size,
+// switches to the screen with its jump key and runs the model's commands
+// (statistics, trace) as a tea.Program would, each in its own goroutine,
+// until none is left, then returns the screen's cells.
+func drawScreen(ctx context.Context, m *tui.Model, screen int, jump rune, w, h int) (*views.Canvas, error) {
+	msgs := make(chan tea.Msg)
+	var wg sync.WaitGroup
+	pending := 0
+	run := func(cmd tea.Cmd) {
+		if cmd == nil {
+			return
+		}
+		pending++
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			select {
+			case msgs <- cmd():
+			case <-ctx.Done():
+			}
+		}()
+	}
+	update := func(msg tea.Msg) {
+		_, cmd := m.Update(msg)
+		run(cmd)
+	}
+	// The statistics are only needed by the screens that show them.
+	if screen == tui.ScreenSurvey || screen == tui.ScreenFindings {
+		run(m.Init())
+	}
+	// The TUI's body is its height less the tab bar, status and key lines.
+	update(tea.WindowSizeMsg{Width: w, Height: h + 3})
+	if m.Screen() != screen {
+		update(tea.KeyPressMsg{Code: jump, Text: string(jump)})
+		if m.Screen() != screen {
+			return nil, fmt.Errorf("render: the %s screen is not available here", strings.ToLower([]string{"Survey", "Map", "Findings", "Trace", "Compare"}[screen]))
+		}
+	}
+	for pending > 0 {
+		select {
+		case msg := <-msgs:
+			pending--
+			switch msg := msg.(type) {
+			case nil, tea.QuitMsg:
+			case tea.BatchMsg:
+				for _, c := range msg {
+					run(c)
+				}
+			default:
+				update(msg)
+			}
+		case <-ctx.Done():
+			wg.Wait()
+			return nil, ctx.Err()
+		}
+	}
+	wg.Wait()
+	c := m.Canvas()
+	if c == nil {
+		return nil, fmt.Errorf("render: nothing to draw at %s: %s", m.LocationString(), strings.TrimSpace(ansi.Strip(m.View().Content)))
+	}
+	return c, nil
+}
