@@ -379,6 +379,8 @@ func (s *Server) onClose(conn net.Conn) {
 // the default session handler sees them: agent forwarding, X11 forwarding,
 // exec and subsystem requests are answered "no".
 func (s *Server) sessionChannel(srv *ssh.Server, conn *gossh.ServerConn, newChan gossh.NewChannel, ctx ssh.Context) {
+	// The connection is authenticated: its key is known for the disconnect log.
+	s.fps.Store(ctx.RemoteAddr().String(), ctxFingerprint(ctx))
 	ssh.DefaultSessionHandler(srv, conn, &filteredChannel{NewChannel: newChan, s: s, ctx: ctx}, ctx)
 }
 

@@ -135,8 +135,9 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	prevSlog := slog.Default()
 	slog.SetDefault(logger)
 	defer slog.SetDefault(prevSlog)
-	charmlog.SetOutput(logOut)
-	defer charmlog.SetOutput(os.Stderr)
+	prevCharm := charmlog.Default()
+	charmlog.SetDefault(charmlog.NewWithOptions(logOut, charmlog.Options{ReportTimestamp: true, Formatter: charmlog.LogfmtFormatter}))
+	defer charmlog.SetDefault(prevCharm)
 
 	// The export, opened once and only read by every session.
 	set, err := openSet(args, lf)
@@ -182,7 +183,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 		defer statusMu.Unlock()
 		s := fmt.Sprintf("%s · %d %s", listenLine, n, plural(n, "guest", "guests"))
 		if sf.follow {
-			s += " follow you"
+			s += plural(n, " follows you", " follow you")
 		}
 		if event != "" {
 			s += " · " + event
@@ -275,7 +276,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	if err := srv.Shutdown(5 * time.Second); err != nil && runErr == nil {
 		runErr = err
 	}
-	fmt.Fprintf(os.Stdout, "heed share: stopped (%d %s were open)\n", n, plural(n, "session", "sessions"))
+	fmt.Fprintf(os.Stdout, "heed share: stopped (%d %s open)\n", n, plural(n, "session was", "sessions were"))
 	return runErr
 }
 

@@ -1,0 +1,161 @@
+package main
+
+import (
+	"fmt"
+	"net"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+)
+
+// TestShareJourney is the journey of issue 6 as a new user would take it,
+// with the real binary in real terminals (tmux) and Debian's OpenSSH client:
+// the presenter runs heed share with --follow in one terminal, a colleague
+// with an authorised key runs ssh in another and sees the TUI following the
+// presenter, a wrong key is refused, and quitting the presenter's TUI ends
+// the colleague's session. HOME is a fresh directory, so the defaults
+// (~/.ssh/authorized_keys, the host key under ~/.config/heed, the log under
+// ~/.cache/heed) are a new user's.
+func TestShareJourney(t *testing.T) {
+	for _, tool := range []string{"tmux", "/usr/bin/ssh", "ssh-keygen"} {
+		if _, err := exec.LookPath(tool); err != nil {
+			t.Skipf("skipping: %s is not installed (scripts/install-deps.sh installs tmux and openssh-client)", tool)
+		}
+	}
+	dir := t.TempDir()
+	home := filepath.Join(dir, "home")
+	sshDir := filepath.Join(home, ".ssh")
+	if err := os.MkdirAll(sshDir, 0o700); err != nil {
+		t.Fatal(err)
+	}
+	key, wrong := filepath.Join(sshDir, "id_ed25519"), filepath.Join(dir, "wrong_key")
+	for _, k := range []string{key, wrong} {
+		if out, err := exec.Command("ssh-keygen", "-q", "-t", "ed25519", "-N", "", "-f", k).CombinedOutput(); err != nil {
+			t.Fatalf("ssh-keygen: %v: %s", err, out)
+		}
+	}
+	pub, _ := os.ReadFile(key + ".pub")
+	os.WriteFile(filepath.Join(sshDir, "authorized_keys"), pub, 0o600)
+	fp, err := exec.Command("ssh-keygen", "-l", "-f", key+".pub").Output()
+	if err != nil {
+		t.Fatal(err)
+	}
+	fingerprint := strings.Fields(string(fp))[1]
+
+	bin := filepath.Join(dir, "heed")
+	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	port := fmt.Sprint(ln.Addr().(*net.TCPAddr).Port)
+	ln.Close()
+
+	sock := filepath.Join(dir, "tmux.sock") // a tmux server of our own
+	tmux := func(args ...string) string {
+		t.Helper()
+		out, err := exec.Command("tmux", append([]string{"-S", sock}, args...)...).CombinedOutput()
+		if err != nil {
+			t.Fatalf("tmux %v: %v\n%s", args, err, out)
+		}
+		return string(out)
+	}
+	defer exec.Command("tmux", "-S", sock, "kill-server").Run()
+	wait := func(pane, want string) string {
+		t.Helper()
+		deadline := time.Now().Add(60 * time.Second) // only against a hang
+		var screen string
+		for time.Now().Before(deadline) {
+			screen = tmux("capture-pane", "-t", pane, "-p")
+			if strings.Contains(screen, want) {
+				return screen
+			}
+			time.Sleep(50 * time.Millisecond)
+		}
+		t.Fatalf("%s never showed %q; screen:\n%s", pane, want, screen)
+		return ""
+	}
+	env := []string{"env", "HOME=" + home, "XDG_CONFIG_HOME=", "XDG_CACHE_HOME=", "TERM=xterm-256color"}
+	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
+	presenter := strings.Join(append(env, bin, "share", file, "--follow", "--listen", "127.0.0.1:"+port,
+		"--at", "decoder:L1:H2:q5", "--background", "dark", ";", "sleep", "600"), " ")
+	tmux("new-session", "-d", "-s", "presenter", "-x", "120", "-y", "36", "sh", "-c", presenter)
+	wait("presenter", "sharing on 127.0.0.1:"+port)
+
+	sshOpts := []string{"/usr/bin/ssh", "-F", "/dev/null", "-p", port, "-o", "IdentitiesOnly=yes", "-o", "IdentityAgent=none",
+		"-o", "StrictHostKeyChecking=accept-new", "-o", "UserKnownHostsFile=" + filepath.Join(dir, "known_hosts")}
+	guest := strings.Join(append(append([]string{"env", "TERM=xterm-256color"}, sshOpts...), "-i", key, "localhost", ";", "echo", "SSH-EXIT=$?", ";", "sleep", "600"), " ")
+	tmux("new-session", "-d", "-s", "guest", "-x", "100", "-y", "30", "sh", "-c", guest)
+	screen := wait("guest", "following the presenter (decoder:L1:H2:q5)")
+	for _, w := range []string{"Map", "forbidden with mass"} {
+		if !strings.Contains(screen, w) {
+			t.Errorf("the guest's TUI lacks %q:\n%s", w, screen)
+		}
+	}
+	wait("presenter", "1 guest follows you")
+	// The presenter moves a layer down: the guest follows.
+	tmux("send-keys", "-t", "presenter", "[")
+	wait("guest", "following the presenter (decoder:L0:H2:q5)")
+	// The guest looks around alone, the presenter moves on, the guest rejoins.
+	tmux("send-keys", "-t", "guest", "F")
+	wait("guest", "on your own  ·") // the status of a guest on their own
+	tmux("send-keys", "-t", "presenter", ">")
+	screen = wait("guest", "F: follow the presenter again (at decoder:L0:H3:q5)")
+	if !strings.Contains(screen, " decoder  L0  H2 ") {
+		t.Errorf("a guest on their own was moved:\n%s", screen)
+	}
+	tmux("send-keys", "-t", "guest", "F")
+	wait("guest", "following the presenter (decoder:L0:H3:q5)")
+
+	// A wrong key is refused.
+	out, err := exec.Command(sshOpts[0], append(append(sshOpts[1:], "-o", "BatchMode=yes", "-i", wrong), "localhost", "true")...).CombinedOutput()
+	if err == nil || !strings.Contains(string(out), "Permission denied (publickey)") {
+		t.Errorf("wrong key: %v: %s", err, out)
+	}
+
+	// Quitting the presenter's TUI ends the guest's session cleanly.
+	tmux("send-keys", "-t", "presenter", "q")
+	wait("guest", "the presenter stopped sharing")
+	wait("guest", "SSH-EXIT=0")
+	wait("presenter", "heed share: stopped (1 session was open)")
+
+	// A new user's defaults: host key 0600 under ~/.config/heed, the log
+	// under ~/.cache/heed with the guest's key fingerprint.
+	st, err := os.Stat(filepath.Join(home, ".config", "heed", "ssh_host_ed25519_key"))
+	if err != nil || st.Mode().Perm() != 0o600 {
+		t.Errorf("host key: %v %v", st, err)
+	}
+	log, err := os.ReadFile(filepath.Join(home, ".cache", "heed", "share.log"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, w := range []string{"msg=\"session start\"", "key=" + fingerprint, "msg=refused", "msg=disconnect", "msg=stopped"} {
+		if !strings.Contains(string(log), w) {
+			t.Errorf("log lacks %q:\n%s", w, log)
+		}
+	}
+}
+
+func TestShareRefusesWithoutKeys(t *testing.T) {
+	home := t.TempDir()
+	t.Setenv("HOME", home)
+	file := filepath.Join(casesDir, "shift_bad.npz")
+	// no ~/.ssh/authorized_keys: refused before anything listens
+	if msg, code := run(t, "share", file, "--headless", "--listen", "127.0.0.1:0"); code != 2 {
+		t.Errorf("no authorized_keys: exit %d: %s", code, msg)
+	}
+	empty := filepath.Join(home, "keys")
+	os.WriteFile(empty, []byte("# nobody\n"), 0o600)
+	if msg, code := run(t, "share", file, "--headless", "--authorized-keys", empty, "--listen", "127.0.0.1:0"); code != 2 {
+		t.Errorf("empty authorized_keys: exit %d: %s", code, msg)
+	}
+	// --follow needs the presenter's terminal
+	if msg, code := run(t, "share", file, "--headless", "--follow", "--authorized-keys", empty); code != 2 {
+		t.Errorf("--follow --headless: exit %d: %s", code, msg)
+	}
+}
