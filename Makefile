@@ -45,6 +45,7 @@ fuzz:
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:
 	$(PYTHON) testdata/gen_fixtures.py --check
+	$(PYTHON) testdata/demo/generate.py --check
 
 # Whole-process timing and memory figures (bench/main.go says what is measured).
 # Exports are written once with numpy into HEED_BENCH_DIR or /tmp/heed-bench

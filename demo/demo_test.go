@@ -164,8 +164,7 @@ func figuresTable(r *Results) string {
 	return b.String()
 }
 
-// TestQuotedFigures checks that the figures the README (or, until the
-// README carries the section, docs/demo.md) quotes are those in results.json.
+// TestQuotedFigures checks that the figures the README quotes are those in results.json.
 func TestQuotedFigures(t *testing.T) {
 	r, err := LoadResults()
 	if err != nil {
@@ -173,7 +172,7 @@ func TestQuotedFigures(t *testing.T) {
 	}
 	const open, end = "<!-- demo-figures -->\n", "<!-- /demo-figures -->"
 	want := figuresTable(r)
-	for _, p := range []string{"../README.md", "../docs/demo.md"} {
+	for _, p := range []string{"../README.md"} {
 		raw, err := os.ReadFile(p)
 		if err != nil {
 			continue
@@ -188,5 +187,5 @@ func TestQuotedFigures(t *testing.T) {
 		}
 		return
 	}
-	t.Fatalf("no %q markers in README.md or docs/demo.md", strings.TrimSpace(open))
+	t.Fatalf("no %q markers in README.md", strings.TrimSpace(open))
 }

@@ -138,11 +138,10 @@ func TestAgainstFixtures(t *testing.T) {
 	}
 }
 
-// snippet returns the README's PyTorch snippet (between the markers), or
-// docs/invariance.md's while the README does not carry it yet.
+// snippet returns the README's PyTorch snippet (between the markers).
 func snippet(t *testing.T) (code, from string) {
 	t.Helper()
-	for _, p := range []string{"../../README.md", "../../docs/invariance.md"} {
+	for _, p := range []string{"../../README.md"} {
 		raw, err := os.ReadFile(p)
 		if err != nil {
 			continue
@@ -163,7 +162,7 @@ func snippet(t *testing.T) (code, from string) {
 		}
 		return strings.Join(lines, "\n"), p
 	}
-	t.Fatal("no <!-- invariance-snippet --> markers in README.md or docs/invariance.md")
+	t.Fatal("no <!-- invariance-snippet --> markers in README.md")
 	return "", ""
 }
 

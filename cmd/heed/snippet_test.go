@@ -14,12 +14,11 @@ import (
 )
 
 // exportSnippet returns the README's "export from your model" snippet
-// (between the <!-- export-snippet --> markers, code fences dropped), or
-// docs/export-snippet.md's while the README does not carry it yet.
+// (between the <!-- export-snippet --> markers, code fences dropped).
 func exportSnippet(t *testing.T) (code, from string) {
 	t.Helper()
 	const open, end = "<!-- export-snippet -->", "<!-- /export-snippet -->"
-	for _, p := range []string{"../../README.md", "../../docs/export-snippet.md"} {
+	for _, p := range []string{"../../README.md"} {
 		raw, err := os.ReadFile(p)
 		if err != nil {
 			continue
@@ -37,7 +36,7 @@ func exportSnippet(t *testing.T) (code, from string) {
 		}
 		return strings.Join(lines, "\n"), p
 	}
-	t.Fatal("no " + open + " markers in README.md or docs/export-snippet.md")
+	t.Fatal("no " + open + " markers in README.md")
 	return "", ""
 }
 
