@@ -22,7 +22,12 @@
 // 0.3 GB export and on a 4 GiB one, to show the ceiling and that it does
 // not grow with the file.
 //
-// Usage: go run ./bench [-heed ./heed] [-dir /tmp/heed-bench] [-rounds 7] [-big=false]
+// Last, the TUI: in a detached tmux window of 200x60, the time from starting
+// heed on an export (opening on the Map of the first head) to its first
+// frame, and from a key press (next head) to the frame that shows it (see
+// tui.go).
+//
+// Usage: go run ./bench [-heed ./heed] [-dir /tmp/heed-bench] [-rounds 7] [-big=false] [-tui 5]
 package main
 
 import (
@@ -53,6 +58,10 @@ func (s shape) String() string { return fmt.Sprintf("[%d %d %d %d]", s.layers, s
 var (
 	small = shape{12, 12, 1024} // 0.3 GB: the design's timing target
 	big   = shape{32, 16, 2048} // 4 GiB: the memory target
+	// mid has big's heads and sequence length with an eighth of its layers:
+	// the same per-head buffers, an eighth of the file, to show that memory
+	// does not grow with the file.
+	mid = shape{4, 16, 2048}
 )
 
 type config struct {
@@ -60,6 +69,7 @@ type config struct {
 	rounds                    int
 	big                       bool
 	sample                    time.Duration
+	tuiRounds                 int
 }
 
 func main() {
@@ -83,6 +93,7 @@ func main() {
 	flag.IntVar(&c.rounds, "rounds", 7, "timed rounds (after one warm-up round)")
 	flag.BoolVar(&c.big, "big", true, "also measure memory on a 4 GiB export (written once, about 4.3 GB of disk)")
 	flag.DurationVar(&c.sample, "sample", time.Millisecond, "interval between /proc samples of the memory runs")
+	flag.IntVar(&c.tuiRounds, "tui", 3, "TUI timing rounds in tmux at 200x60 (0 = none)")
 	flag.Parse()
 	if err := bench(c); err != nil {
 		fmt.Fprintln(os.Stderr, "bench:", err)
@@ -127,19 +138,19 @@ func bench(c config) error {
 		return err
 	}
 
-	sizes := []struct {
+	type sized struct {
 		file string
 		s    shape
-	}{{file, small}}
+	}
+	sizes := []sized{{file, small}}
 	if c.big {
-		bf, err := ensureExport(c, big)
-		if err != nil {
-			return err
+		for _, s := range []shape{mid, big} {
+			f, err := ensureExport(c, s)
+			if err != nil {
+				return err
+			}
+			sizes = append(sizes, sized{f, s})
 		}
-		sizes = append(sizes, struct {
-			file string
-			s    shape
-		}{bf, big})
 	}
 	fmt.Printf("\nmemory: peak RssAnon (anonymous resident memory; mapped file pages are RssFile and do not count), /proc sampled every %v\n", c.sample)
 	fmt.Printf("  %-10s %-22s %10s %10s %10s %9s\n", "command", "export", "RssAnon", "RssFile", "wall", "samples")
@@ -166,13 +177,20 @@ func bench(c config) error {
 	for _, p := range peaks {
 		top = max(top, p)
 	}
-	fmt.Printf("  largest RssAnon %.1f MB (target < 100 MB: %s)", float64(top)/1e6, verdict(top < 100e6))
-	if len(peaks) == 4 {
-		fmt.Printf("; %.2f GB -> %.2f GB export: check %+.1f MB, rank %+.1f MB",
-			float64(small.bytes())/1e9, float64(big.bytes())/1e9,
-			float64(peaks[2]-peaks[0])/1e6, float64(peaks[3]-peaks[1])/1e6)
+	fmt.Printf("  largest RssAnon %.1f MB (target < 100 MB: %s)\n", float64(top)/1e6, verdict(top < 100e6))
+	if len(peaks) == 6 {
+		fmt.Printf("  same heads, %.2f GB -> %.2f GB file (8x): check %+.1f MB, rank %+.1f MB of RssAnon\n",
+			float64(mid.bytes())/1e9, float64(big.bytes())/1e9,
+			float64(peaks[4]-peaks[2])/1e6, float64(peaks[5]-peaks[3])/1e6)
 	}
-	fmt.Println()
+	if c.tuiRounds > 0 {
+		fmt.Printf("\nTUI in tmux at 200x60, %d rounds: start -> first frame (Map of L0 H0), key } -> frame of the next head\n", c.tuiRounds)
+		for _, sz := range sizes {
+			if err := tuiTiming(c, sz.file, sz.s); err != nil {
+				fmt.Println("  TUI timing:", err)
+			}
+		}
+	}
 	return nil
 }
 
