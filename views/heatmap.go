@@ -285,7 +285,10 @@ func LayoutMap(d *MapData, w, h int, opt MapOptions, st Styles) MapLayout {
 	l.GridX = l.LabelW + 1
 	l.GridW = w - l.GridX
 	// Vertical key labels when every key can get its own column.
-	keyTokH := maxTokenWidth(d.KeyTokens, maxHeaderH)
+	keyTokH := 0
+	for _, t := range d.KeyTokens {
+		keyTokH = max(keyTokH, min(StringWidth(strings.TrimLeft(t, " ")), maxHeaderH))
+	}
 	l.HeaderH = 1
 	if keyTokH > 0 && kvis <= l.GridW {
 		l.HeaderH = min(keyTokH, maxHeaderH, max(1, (h-mapFooter)/5))
