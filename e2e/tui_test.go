@@ -93,7 +93,9 @@ func (tm *term) tmux(args ...string) string {
 	return string(out)
 }
 
-func (tm *term) keys(keys ...string) { tm.tmux(append([]string{"send-keys", "-t", "heed"}, keys...)...) }
+func (tm *term) keys(keys ...string) {
+	tm.tmux(append([]string{"send-keys", "-t", "heed"}, keys...)...)
+}
 
 // literal types text as it is (no key names).
 func (tm *term) literal(s string) { tm.tmux("send-keys", "-t", "heed", "-l", s) }
