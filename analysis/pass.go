@@ -806,13 +806,7 @@ func (st *layerStore) js(i, j int) (float64, int64) {
 		var hm float64
 		if lo >= 0 {
 			pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
-			pb = pb[:len(pa)]
-			for k, x := range pa {
-				m := 0.5 * (float64(x) + float64(pb[k]))
-				if m > 0 {
-					hm -= m * fastLog(m)
-				}
-			}
+			hm = mlogmSum(pa, pb) // jsrow.go
 		}
 		d := hm - 0.5*(st.ent[a]+st.ent[b])
 		if d < 0 {
