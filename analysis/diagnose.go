@@ -89,6 +89,25 @@ func possible(bp *BlockPartial, f *Finding, r Rule, o int) int64 {
 	return n * int64(len(f.Layers)*len(f.Heads))
 }
 
+// couldLeak returns how many cells rule r forbids over the finding's units
+// that could carry mass: the pass counts the forbidden cells of judged finite
+// rows (padding keys included), the geometry of a positional rule those of
+// judged rows at real keys (NaN rows included); both are upper bounds, so
+// the smaller one is used.
+func couldLeak(bp *BlockPartial, f *Finding, r Rule) int64 {
+	n := f.agg.Leaks[r].Forbidden
+	if !r.Positional() {
+		return n
+	}
+	var g int64
+	for _, b := range f.Batches {
+		for _, c := range bp.Geometry[b].Forbidden[r] {
+			g += c
+		}
+	}
+	return min(n, g*int64(len(f.Layers)*len(f.Heads)))
+}
+
 // contiguous reports whether the offsets are exactly lo..hi (each with at
 // least 90% of its possible cells leaking).
 func contiguous(bp *BlockPartial, f *Finding, lo, hi int) bool {
@@ -112,16 +131,16 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 	for i := range fs {
 		f := &fs[i]
 		d := Diagnosis{Block: bp.Name, Rule: f.Rule, Layers: f.Layers, Heads: f.Heads, Batches: f.Batches, At: f.Worst}
-		var la LeakAcc
+		var could int64 // cells the rule forbids that could have leaked
 		if f.Rule.IsMask() {
-			la = f.agg.Leaks[f.Rule]
+			could = couldLeak(bp, f, f.Rule)
 		}
 		where := fmt.Sprintf("%s (%s, %s, %s)", bp.Name, which(f.Layers, bp.Layers, "layer", "layers"),
 			which(f.Heads, bp.Heads, "head", "heads"), which(f.Batches, bp.Batch, "batch item", "batch items"))
 		if f.Rule.IsMask() {
 			d.Evidence = append(d.Evidence, fmt.Sprintf("%.4g forbidden mass on %d cells in %d of %d judged rows of %s", f.Mass, f.Cells, f.Rows, f.JudgedRows, where))
-			if la.Forbidden > 0 {
-				d.Evidence = append(d.Evidence, fmt.Sprintf("%.1f%% of the cells the %s rule forbids carry mass", 100*float64(f.Cells)/float64(la.Forbidden), f.Rule))
+			if could > 0 {
+				d.Evidence = append(d.Evidence, fmt.Sprintf("%.1f%% of the cells the %s rule forbids at real keys carry mass", 100*min(1, float64(f.Cells)/float64(could)), f.Rule))
 			}
 			if len(f.Offsets) > 0 {
 				d.Evidence = append(d.Evidence, "offsets k-q: "+offsetSummary(f.Offsets))
@@ -129,8 +148,8 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 			d.Evidence = append(d.Evidence, fmt.Sprintf("largest leak %.4g at %s key %d", f.Max, f.Worst, f.Worst.Key))
 		}
 		coverage := 0.0
-		if la.Forbidden > 0 {
-			coverage = float64(f.Cells) / float64(la.Forbidden)
+		if could > 0 {
+			coverage = float64(f.Cells) / float64(could)
 		}
 		switch f.Rule {
 		case RuleCausal:

@@ -297,20 +297,37 @@ func newBlockPartial(blk *loader.Block, rules *Rules) *BlockPartial {
 }
 
 // geometry counts the cells each positional rule forbids in the judged rows
-// of batch item b, by offset k - p.
+// of batch item b, by offset k - p: the cells that could leak at that
+// offset. Padding keys are left out (whether or not the padding rule is
+// checked): a padded key is blocked by the padding mask, so a mask shifted
+// by +n cannot show at the last real query of a padded item.
 func geometry(r *Rules, b int) GeometryAcc {
 	var g GeometryAcc
 	base := r.QueryOffset + r.Queries - 1
 	diff := make([][]int64, numMask)
-	add := func(rule Rule, lo, hi int) { // offsets [lo, hi)
-		if lo >= hi {
-			return
+	var valid []bool // nil = every key is real
+	if r.validK != nil {
+		valid = r.validK[b]
+	}
+	add := func(rule Rule, p, lo, hi int) { // keys [lo, hi) of position p
+		for lo < hi {
+			for valid != nil && lo < hi && !valid[lo] {
+				lo++
+			}
+			e := lo
+			for e < hi && (valid == nil || valid[e]) {
+				e++
+			}
+			if lo >= e {
+				return
+			}
+			if diff[rule] == nil {
+				diff[rule] = make([]int64, base+r.Keys+1)
+			}
+			diff[rule][lo-p+base]++
+			diff[rule][e-p+base]--
+			lo = e
 		}
-		if diff[rule] == nil {
-			diff[rule] = make([]int64, base+r.Keys+1)
-		}
-		diff[rule][lo+base]++
-		diff[rule][hi+base]--
 	}
 	for q := 0; q < r.Queries; q++ {
 		if !r.Judged(b, q) {
@@ -320,13 +337,13 @@ func geometry(r *Rules, b int) GeometryAcc {
 		p := r.Pos(q)
 		if r.active[RuleCausal] {
 			if r.active[RulePrefix] && p < r.Prefix {
-				add(RulePrefix, max(r.Prefix, p+1)-p, r.Keys-p)
+				add(RulePrefix, p, max(r.Prefix, p+1), r.Keys)
 			} else {
-				add(RuleCausal, 1, r.Keys-p)
+				add(RuleCausal, p, p+1, r.Keys)
 			}
 		}
 		if r.active[RuleWindow] && p-r.Window >= 0 {
-			add(RuleWindow, -p, min(p-r.Window, r.Keys-1)-p+1)
+			add(RuleWindow, p, 0, min(p-r.Window, r.Keys-1)+1)
 		}
 	}
 	for rule, d := range diff {

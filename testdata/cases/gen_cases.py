@@ -174,6 +174,31 @@ def case_shift(out, seed):
     return cases, [f], [diag("mask_shifted", "decoder", f, 1)]
 
 
+def case_shift_padded(out, seed):
+    """The +1 shift on a short right-padded batch (lengths 12, 3, 5) with the
+    key padding mask applied: the +1 key of each padded item's last real query
+    is a padding key, blocked anyway, so it cannot show the shift."""
+    b = 3
+    lengths = [T, 3, 5]
+    valid = np.arange(T)[None, :] < np.array(lengths)[:, None]
+    kpm = torch.from_numpy(~valid)
+    right = causal_blocked(T)
+    bug = torch.triu(torch.ones(T, T, dtype=torch.bool), diagonal=2)
+    cases = {}
+    tokens = np.stack([np.where(valid[i], toks(T, i), "<pad>") for i in range(b)])
+    for name, mask in (("bad", bug), ("good", right)):
+        a = run_causal(seed, 2, [mask, mask], kpm=kpm, b=b)
+        assert not np.isnan(a).any()
+        cases[name] = {"decoder/attn": a.astype(np.float32), "valid/target": valid.astype(np.uint8),
+                       "tokens/target": tokens, "meta": causal_meta()}
+    a = cases["bad"]["decoder/attn"]
+    # what the bug let through: k = q+1 at real keys (padding keys stay blocked)
+    shifted = (right & ~bug).numpy()[None, :, :] & valid[:, None, :]  # [batch, q, k]
+    forb = np.broadcast_to(shifted[None, :, None], a.shape)
+    f = leaks(a, forb, valid, "causal", "decoder")
+    return cases, [f], [diag("mask_shifted", "decoder", f, 1)]
+
+
 def case_no_causal(out, seed):
     right = causal_blocked(T)
     a_bad = run_causal(seed, 2, [None, None])
@@ -459,6 +484,7 @@ CASES = [
     ("decode", case_decode),
     ("prefix", case_prefix),
     ("explicit", case_explicit),
+    ("shift_padded", case_shift_padded),
 ]
 
 # ---------------------------------------------------------------- statistics references
