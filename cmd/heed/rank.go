@@ -188,7 +188,7 @@ head saves no compute until the model is rebuilt without it.`,
 			rep.Metric = "importance_norm"
 			if !grad {
 				rep.Metric = analysis.ScoreName
-				rep.Warnings = append(rep.Warnings, "no gradients in the export: no importance; "+analysis.ScoreDoc)
+				rep.Warnings = append(rep.Warnings, noGradients+": no importance; "+analysis.ScoreDoc)
 			}
 			if !res.Clean() {
 				rep.Warnings = append(rep.Warnings, fmt.Sprintf("heed check finds %d problems in these exports (leaks or bad rows): statistics of a buggy export describe the bug too; run heed check", len(res.Findings)))
@@ -231,6 +231,10 @@ head saves no compute until the model is rebuilt without it.`,
 	f.Float64Var(&pruneFrac, "prune-frac", 0, "plan pruning this fraction of all heads (e.g. 0.2)")
 	return cmd
 }
+
+// noGradients starts the warning heed rank gives without gradients; a
+// pruning plan made without them starts its own warning the same way.
+const noGradients = "no gradients in the export"
 
 func validColumn(c string) bool {
 	for _, x := range rankColumns {
@@ -303,6 +307,7 @@ func writeRankText(w io.Writer, rep *rankReport) {
 		fmt.Fprintln(tw, strings.Join(row, "\t")+"\t")
 	}
 	tw.Flush()
+	planNoGrad := false // the plan's warnings already say there are no gradients
 	if p := rep.Plan; p != nil {
 		js, _ := json.Marshal(p.Heads)
 		fmt.Fprintf(w, "\npruning plan (%d of %d heads, lowest %s first):\n%s\n", p.Pruned, p.Total, p.Metric, js)
@@ -316,9 +321,13 @@ func writeRankText(w io.Writer, rep *rankReport) {
 		}
 		for _, x := range p.Warnings {
 			fmt.Fprintf(w, "warning: %s\n", x)
+			planNoGrad = planNoGrad || strings.HasPrefix(x, noGradients)
 		}
 	}
 	for _, x := range rep.Warnings {
+		if planNoGrad && strings.HasPrefix(x, noGradients) {
+			continue // said once, under the plan
+		}
 		fmt.Fprintf(w, "warning: %s\n", x)
 	}
 	fmt.Fprintln(w, analysis.Caveat)
