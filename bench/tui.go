@@ -29,7 +29,8 @@ func tuiTiming(c config, file string, s shape) error {
 	if _, err := exec.LookPath("tmux"); err != nil {
 		return fmt.Errorf("no tmux: %w", err)
 	}
-	sock := fmt.Sprintf("heedbench-%d", os.Getpid())
+	// A private server per call: the previous one may still be shutting down.
+	sock := fmt.Sprintf("heedbench-%d-%d", os.Getpid(), s.layers)
 	tm := func(args ...string) ([]byte, error) {
 		return exec.Command("tmux", append([]string{"-L", sock}, args...)...).Output()
 	}
