@@ -24,7 +24,7 @@ import (
 // reference values the flows check (worst leaking cell, most changed head)
 // are computed by numpy from the same files, not by heed.
 
-func python(t *testing.T) {
+func python(t testing.TB) {
 	t.Helper()
 	if err := exec.Command("/usr/bin/python3", "-c", "import numpy").Run(); err != nil {
 		t.Skipf("these tests need /usr/bin/python3 with numpy to write their fixtures: %v", err)
@@ -32,6 +32,10 @@ func python(t *testing.T) {
 }
 
 func makeExport(t *testing.T, name string, args ...string) string {
+	return makeExportB(t, name, args...)
+}
+
+func makeExportB(t testing.TB, name string, args ...string) string {
 	t.Helper()
 	python(t)
 	out := filepath.Join(t.TempDir(), name)
