@@ -406,7 +406,7 @@ func (s *findingsScreen) open(f analysis.Finding) {
 }
 
 // ranges writes sorted indices compactly: "0-3, 7".
-func ranges(xs []int, total int, what string) string {
+func ranges(xs []int, total int) string {
 	if len(xs) == total && total > 1 {
 		return fmt.Sprintf("all %d", total)
 	}
@@ -425,7 +425,6 @@ func ranges(xs []int, total int, what string) string {
 		}
 		i = j + 1
 	}
-	_ = what
 	return strings.Join(parts, ",")
 }
 
@@ -460,7 +459,7 @@ func (s *findingsScreen) Refresh() {
 				worst += fmt.Sprintf(" k%d", w.Key)
 			}
 			d.Rows = append(d.Rows, views.FindingRow{Block: f.Block, Rule: f.Rule.String(),
-				Layers: ranges(f.Layers, L, "layers"), Heads: ranges(f.Heads, H, "heads"), Batches: ranges(f.Batches, B, "batch"),
+				Layers: ranges(f.Layers, L), Heads: ranges(f.Heads, H), Batches: ranges(f.Batches, B),
 				Mass: f.Mass, Max: f.Max, Cells: f.Cells, Rows: f.Rows, Worst: worst, Offsets: offsetsText(f.Offsets)})
 		}
 		for _, dg := range m.res.Diagnoses {
