@@ -372,6 +372,7 @@ type worker struct {
 	lo    [numMask]int
 	hi    [numMask]int
 	u     unitAcc
+	r16   []uint16 // the head's 16-bit patterns on the pattern path (rawpass.go)
 }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
@@ -581,8 +582,14 @@ func finite32(row []float32) (int, bool) {
 // pass needs into st.
 func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st *layerStore, l, b, h int) error {
 	Q, K := rules.Queries, rules.Keys
-	if err := rd.ReadAttn(l, b, h, w.a); err != nil {
+	rt, err := w.readRaw16(rd, cfg, l, b, h) // float16/bfloat16 patterns (rawpass.go)
+	if err != nil {
 		return err
+	}
+	if rt == nil {
+		if err := rd.ReadAttn(l, b, h, w.a); err != nil {
+			return err
+		}
 	}
 	if cfg.grad {
 		if err := rd.ReadGrad(l, b, h, w.g); err != nil {
@@ -606,10 +613,25 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	}
 	self := rules.SelfAttention()
 	tol := cfg.tol
+	var row []float32
+	var row16 []uint16
+	at := func(k int) float64 { // float64(row[k]) on either path
+		if rt != nil {
+			return float64(rt.val[row16[k]])
+		}
+		return float64(row[k])
+	}
 	for q := 0; q < Q; q++ {
-		row := w.a[q*K : (q+1)*K]
 		p := q + rules.QueryOffset
-		badK, fin := finite32(row)
+		var badK int
+		var fin bool
+		if rt != nil {
+			row16 = w.r16[q*K : (q+1)*K]
+			badK, fin = finite16(row16, rt.exp)
+		} else {
+			row = w.a[q*K : (q+1)*K]
+			badK, fin = finite32(row)
+		}
 		if cfg.grad {
 			grow := w.g[q*K : (q+1)*K]
 			if _, gfin := finite32(grow); fin && gfin {
@@ -648,7 +670,11 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		}
 		rules.Row(b, q, allowRow, w.rr)
 		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1}
-		w.cells(&ra, row, q, p, base, tol, cfg.example) // rowpass.go
+		if rt != nil {
+			w.cells16(&ra, rt, row16, q, p, base, tol, cfg.example) // rawpass.go
+		} else {
+			w.cells(&ra, row, q, p, base, tol, cfg.example) // rowpass.go
+		}
 		s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
 		nAllow, zeros, neg, hit, nzLo, nzHi := ra.nAllow, ra.zeros, ra.neg, ra.hit, ra.nzLo, ra.nzHi
 		for r := range hit {
@@ -669,25 +695,25 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		u.dist += dist
 		if self {
 			if p-1 >= 0 && p-1 < K {
-				u.prev += float64(row[p-1])
+				u.prev += at(p - 1)
 				u.posRows++
 			}
 			if p < K {
-				u.self += float64(row[p])
+				u.self += at(p)
 				u.selfRows++
 			}
 			if p != 0 {
-				u.sink += float64(row[0])
+				u.sink += at(0)
 				u.sinkRows++
 			}
 			if ds := rules.DocStart(b, p); ds != p {
-				u.doc += float64(row[ds])
+				u.doc += at(ds)
 				u.docRows++
 			}
 		} else {
-			u.sink += float64(row[0])
+			u.sink += at(0)
 			u.sinkRows++
-			u.doc += float64(row[0])
+			u.doc += at(0)
 			u.docRows++
 		}
 		u.allowCells += nAllow
@@ -716,7 +742,14 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		}
 		if keep {
 			i := h*st.rows + sr
-			copy(st.vals[i*K:(i+1)*K], row)
+			if rt != nil {
+				dst := st.vals[i*K : (i+1)*K]
+				for k, hb := range row16 {
+					dst[k] = rt.val[hb]
+				}
+			} else {
+				copy(st.vals[i*K:(i+1)*K], row)
+			}
 			st.ent[i] = ent
 			st.ok[i] = true
 			st.lo[i], st.hi[i] = int32(nzLo), int32(nzHi)

@@ -1,0 +1,117 @@
+package analysis
+
+import (
+	"context"
+	"encoding/binary"
+	"encoding/json"
+	"math/rand"
+	"os"
+	"path/filepath"
+	"reflect"
+	"testing"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// writeST16 writes a causal [L, H, S, S] export of 16-bit patterns in the
+// safetensors layout (its specification: u64 little-endian header size, the
+// JSON header, then the little-endian C-order data).
+func writeST16(t *testing.T, path, dtype string, shape []int, data []uint16) {
+	t.Helper()
+	meta := `{"format":"heed-export/1","blocks":{"decoder":{"kind":"causal","query":"target","key":"target","axes":"layer head query key"}}}`
+	hdr, err := json.Marshal(map[string]any{
+		"__metadata__": map[string]string{"meta": meta},
+		"decoder/attn": map[string]any{"dtype": dtype, "shape": shape, "data_offsets": []int{0, 2 * len(data)}},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	for len(hdr)%8 != 0 {
+		hdr = append(hdr, ' ')
+	}
+	buf := binary.LittleEndian.AppendUint64(nil, uint64(len(hdr)))
+	buf = append(buf, hdr...)
+	for _, v := range data {
+		buf = binary.LittleEndian.AppendUint16(buf, v)
+	}
+	if err := os.WriteFile(path, buf, 0o644); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// randomHead16 fills a causal matrix of patterns: allowed keys with random
+// small positive values, a few negative ones, +0/-0, subnormals (f16:
+// exponent bits 0 with a mantissa; bf16 likewise), NaN and Inf rows, and
+// forbidden keys mostly +0/-0 with some mass.
+func randomHead16(rng *rand.Rand, S int, bf bool, data []uint16) {
+	one := uint16(0x3c00) // 1.0 in float16 (IEEE 754 binary16)
+	exp, mant := uint16(0x7c00), uint16(0x03ff)
+	if bf {
+		one, exp, mant = 0x3f80, 0x7f80, 0x007f
+	}
+	for q := 0; q < S; q++ {
+		for k := 0; k < S; k++ {
+			var v uint16
+			switch c := rng.Intn(100); {
+			case k > q && c < 85:
+				v = uint16(rng.Intn(2)) << 15 // +0 or -0
+			case c < 5:
+				v = uint16(rng.Intn(2)) << 15
+			case c < 10:
+				v = uint16(rng.Intn(int(mant))+1) | uint16(rng.Intn(2))<<15 // subnormal
+			case c < 13:
+				v = uint16(rng.Intn(int(one))) | 0x8000 // negative
+			default:
+				v = uint16(rng.Intn(int(one) + 1)) // in [0, 1]
+			}
+			data[q*S+k] = v
+		}
+		switch rng.Intn(30) {
+		case 0:
+			data[q*S+rng.Intn(S)] = exp | 1 // NaN
+		case 1:
+			data[q*S+rng.Intn(S)] = exp | 0x8000 // -Inf
+		}
+	}
+}
+
+func TestRaw16SameAsFloat32(t *testing.T) {
+	defer func() { noRaw16 = false }()
+	for _, c := range []struct {
+		dtype string
+		bf    bool
+		s     int
+	}{{"F16", false, 37}, {"BF16", true, 37}, {"F16", false, 64}, {"BF16", true, 9}} {
+		rng := rand.New(rand.NewSource(int64(c.s)))
+		L, H, S := 2, 3, c.s
+		data := make([]uint16, L*H*S*S)
+		for i := 0; i < L*H; i++ {
+			randomHead16(rng, S, c.bf, data[i*S*S:(i+1)*S*S])
+		}
+		path := filepath.Join(t.TempDir(), "x.safetensors")
+		writeST16(t, path, c.dtype, []int{L, H, S, S}, data)
+		ex, err := loader.Open([]string{path}, loader.NewOptions())
+		if err != nil {
+			t.Fatal(err)
+		}
+		blk := ex.Blocks[0]
+		if d, err := blk.ReadRaw16(0, 0, 0, make([]uint16, S*S)); err != nil || d == loader.Invalid {
+			t.Fatalf("%s: ReadRaw16 = %v, %v: the pattern path is not taken", c.dtype, d, err)
+		}
+		for _, opt := range []Options{DefaultOptions(), {Tol: DefaultTol, RedundancyRows: -1}} {
+			var got [2]*Partial
+			for i, off := range []bool{true, false} {
+				noRaw16 = off
+				p, err := Analyze(context.Background(), ex, opt)
+				if err != nil {
+					t.Fatal(err)
+				}
+				got[i] = p
+			}
+			if !reflect.DeepEqual(got[0], got[1]) {
+				t.Fatalf("%s S=%d: pattern path differs from the float32 path", c.dtype, S)
+			}
+		}
+		ex.Close()
+	}
+}
