@@ -661,8 +661,19 @@ func TestShutdownEndsSessions(t *testing.T) {
 }
 
 // TestLoad opens N sessions at once, reports the memory each one costs and
-// checks that every goroutine they started is gone after they close.
-func TestLoad(t *testing.T) {
+// checks that every goroutine they started is gone after they close; with
+// heed's TUI (TestLoadTUI) and with the stand-in model.
+func TestLoad(t *testing.T) { testLoad(t, nil) }
+
+// loadApp is a session model for testLoad: the App, the text of its first
+// screen, and whether n sessions have moved to decoder:L1:H1.
+type loadApp struct {
+	app   func(Guest) tea.Model
+	ready string
+	moved func(n int) bool
+}
+
+func testLoad(t *testing.T, real func(*Hub) loadApp) {
 	requireSSH(t)
 	n := 8
 	if testing.Short() {
@@ -670,11 +681,18 @@ func TestLoad(t *testing.T) {
 	}
 	hub := NewHub()
 	hub.Publish("decoder:L0:H0")
+	app := func(g Guest) tea.Model {
+		return NewFollower(g.Ctx, hub, &standIn{guest: g}, func(loc string) tea.Msg { return gotoLoc(loc) })
+	}
+	ready := "stand-in ready"
+	var moved func(int) bool
+	if real != nil {
+		la := real(hub)
+		app, ready, moved = la.app, la.ready, la.moved
+	}
 	ts := startServer(t, func(c *Config) {
 		c.MaxSessions = n
-		c.App = func(g Guest) tea.Model {
-			return NewFollower(g.Ctx, hub, &standIn{guest: g}, func(loc string) tea.Msg { return gotoLoc(loc) })
-		}
+		c.App = app
 	})
 	settle := func() (runtime.MemStats, int) {
 		runtime.GC()
@@ -688,12 +706,16 @@ func TestLoad(t *testing.T) {
 		terms = append(terms, ts.open(t, ts.auth.priv, 120, 40))
 	}
 	for _, term := range terms {
-		term.waitFor("stand-in ready")
+		term.waitFor(ready)
 	}
 	waitUntil(t, "every session open", func() bool { return ts.Sessions() == n })
 	hub.Publish("decoder:L1:H1")
-	for _, term := range terms {
-		term.waitFor("goto#2 decoder:L1:H1")
+	if moved != nil {
+		waitUntil(t, "every session at the presenter's location", func() bool { return moved(n) })
+	} else {
+		for _, term := range terms {
+			term.waitFor("goto#2 decoder:L1:H1")
+		}
 	}
 	during, g1 := settle()
 	perSession := (int64(during.HeapAlloc) - int64(before.HeapAlloc)) / int64(n)
