@@ -951,3 +951,36 @@ func TestFingerprintMatchesSSHKeygen(t *testing.T) {
 		t.Errorf("fingerprint %s, ssh-keygen -l says %s", got, k.fingerprint)
 	}
 }
+
+// TestTimeouts: a connection without traffic is closed after IdleTimeout,
+// and a busy one after MaxTimeout. (The durations only make the test short;
+// nothing is measured.)
+func TestTimeouts(t *testing.T) {
+	idle := startServer(t, func(c *Config) { c.IdleTimeout = 500 * time.Millisecond })
+	quiet := idle.open(t, idle.auth.priv, 80, 24)
+	quiet.waitFor("stand-in ready")
+	quiet.wait() // returns only because the server closed the connection
+	waitUntil(t, "the idle session to end", func() bool { return idle.Sessions() == 0 })
+
+	abs := startServer(t, func(c *Config) { c.MaxTimeout = 1500 * time.Millisecond })
+	busy := abs.open(t, abs.auth.priv, 80, 24)
+	busy.waitFor("stand-in ready")
+	stop := make(chan struct{})
+	go func() {
+		for {
+			select {
+			case <-busy.done:
+				return
+			case <-stop:
+				return
+			case <-time.After(100 * time.Millisecond):
+				busy.ptmx.Write([]byte("x")) // traffic: the idle timeout never fires
+			}
+		}
+	}()
+	busy.wait()
+	close(stop)
+	if !strings.Contains(busy.output(), "key#2 x") {
+		t.Errorf("the busy session saw no traffic before it was closed: %q", busy.output())
+	}
+}
