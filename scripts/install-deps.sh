@@ -9,7 +9,7 @@ set -euo pipefail
 
 need=()
 have_pkg() { dpkg-query -W -f='${Status}' "$1" 2>/dev/null | grep -q "install ok installed"; }
-for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib; do
+for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib python3-pil; do
   have_pkg "$p" || need+=("$p")
 done
 if ! command -v go >/dev/null 2>&1; then
