@@ -26,7 +26,9 @@ const Caveat = "This is evidence to confirm by re-evaluating the model, not a ve
 //	window_too_wide [n]    the sliding window lets W+n keys through
 //	no_window              the sliding window is not applied
 //	window_leak            other mass beyond the window
-//	prefix_sees_suffix     prefix positions attend to the suffix
+//	prefix_sees_suffix     prefix positions attend to the suffix (the prefix sees the suffix)
+//	prefix_causal [c]      the prefix block is causal: prefix rows stop at k = q+c (an under-allowing mask)
+//	cross_causal [c]       cross-attention made causal: target rows stop at source k = q+c
 //	cross_reads_padding    cross-attention reads encoder (source) padding
 //	padding_keys           self-attention reads padding keys
 //	explicit_mask_ignored  mass where the exported allow mask blocks
@@ -207,7 +209,7 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 			}
 		case RulePrefix:
 			d.Pattern = "prefix_sees_suffix"
-			d.Text = fmt.Sprintf("Prefix positions (the first %d) attend to the suffix in %s.", bp.Prefix, where)
+			d.Text = fmt.Sprintf("The prefix sees the suffix in %s: prefix positions (the first %d) attend to suffix keys, which a prefix-LM hides from them.", where, bp.Prefix)
 			d.Check = "check the prefix-LM mask: the prefix block is bidirectional, but prefix rows must not see suffix keys"
 		case RuleSegments:
 			d.Pattern = "crosses_documents"
@@ -259,6 +261,8 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 				d.Text = fmt.Sprintf("Rows do not sum to 1 in %s (mean %.4g).", where, avg)
 				d.Check = "check that the export takes the softmax output of each head (not scores, not heads summed); models with learned sink logits legitimately sum below 1: pass --sum-below"
 			}
+		case RuleCut:
+			diagnoseCut(bp, f, &d, where) // cut.go
 		case RuleNegative:
 			d.Pattern = "negative_values"
 			d.Text = fmt.Sprintf("Negative values in %s: these are not probabilities.", where)

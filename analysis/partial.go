@@ -141,6 +141,8 @@ type HeadAcc struct {
 	SumWorst   Cell    `json:"sum_worst"`
 
 	Leaks [numMask]LeakAcc `json:"leaks"` // indexed by Rule; [0] unused
+
+	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (cut.go)
 }
 
 // LeakAcc accumulates the forbidden mass of one mask rule.
@@ -208,6 +210,9 @@ func (c Cell) first(w Cell) bool {
 type GeometryAcc struct {
 	Rows      int64                  `json:"rows"`
 	Forbidden [numMask]map[int]int64 `json:"forbidden"`
+	// Reach counts the judged rows the cut check reads (cross blocks, prefix
+	// rows) by the offset d = last allowed key - p (cut.go).
+	Reach map[int]int64 `json:"reach,omitempty"`
 }
 
 // Merge adds o into a.
@@ -260,6 +265,7 @@ func (a *HeadAcc) Merge(o *HeadAcc) {
 	for r := range a.Leaks {
 		a.Leaks[r].merge(&o.Leaks[r])
 	}
+	a.Cut.merge(&o.Cut)
 }
 
 func (l *LeakAcc) merge(o *LeakAcc) {
@@ -291,6 +297,7 @@ func (g *GeometryAcc) merge(o *GeometryAcc) {
 	for r := range g.Forbidden {
 		g.Forbidden[r] = mergeCounts(g.Forbidden[r], o.Forbidden[r])
 	}
+	g.Reach = mergeCounts(g.Reach, o.Reach)
 }
 
 // sameShape reports why two block partials cannot be merged ("" when they can).

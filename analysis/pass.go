@@ -360,6 +360,7 @@ func geometry(r *Rules, b int) GeometryAcc {
 		}
 		g.Forbidden[rule] = m
 	}
+	g.Reach = reach(r, b) // cut.go
 	return g
 }
 
@@ -373,6 +374,7 @@ type worker struct {
 	hi    [numMask]int
 	u     unitAcc
 	r16   []uint16 // the head's 16-bit patterns on the pattern path (rawpass.go)
+	cut   CutAcc   // the unit's rows cut off before allowed keys (cut.go)
 }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
@@ -451,6 +453,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	doNaN, doSum, doNeg := rowChecks(opt.Rules)
 	cfg := passConfig{tol: opt.Tol, sumTol: sumTol, sumBelow: opt.SumBelow, doNaN: doNaN, doSum: doSum, doNeg: doNeg,
 		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example}
+	cfg.doCut = cutCheck(opt.Rules) && cutBlock(rules)
 	workers := make([]*worker, nw)
 	base := blk.QueryOffset + Q - 1
 	for i := range workers {
@@ -565,6 +568,7 @@ type passConfig struct {
 	tol, sumTol                   float64
 	sumBelow, doNaN, doSum, doNeg bool
 	grad, allow                   bool
+	doCut                         bool // the cut check reads this block's rows (cut.go)
 	example                       string
 }
 
@@ -675,6 +679,9 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		} else {
 			w.cells(&ra, row, q, p, base, tol, cfg.example) // rowpass.go
 		}
+		if cfg.doCut && cutRow(rules, p) {
+			w.cut.row(w.rr, p, q, ra.nzHi, cfg.example)
+		}
 		s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
 		nAllow, zeros, neg, hit, nzLo, nzHi := ra.nAllow, ra.zeros, ra.neg, ra.hit, ra.nzLo, ra.nzHi
 		for r := range hit {
@@ -762,6 +769,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 // commit adds the unit's sums to acc (exactly) and clears the histograms.
 func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
 	u := &w.u
+	w.cut.commitTo(&acc.Cut)
 	acc.Rows += u.rows
 	acc.PadRows += u.padRows
 	acc.PadNaNRows += u.padNaN

@@ -271,9 +271,12 @@ type OffsetCount struct {
 //
 // Mass is the total forbidden mass for mask rules, the number of NaN rows for
 // nan_rows, the total |row sum - 1| for row_sum and the total negative mass
-// for negative. Cells counts leaking cells (negative cells for negative, 0
-// for row rules); Max is the largest leaking value (largest |sum - 1| for
-// row_sum); Rows the rows concerned; JudgedRows the judged rows of the group.
+// for negative, 0 for cut (an under-allowing mask has no forbidden mass).
+// Cells counts leaking cells (negative cells for negative, allowed cells left
+// without mass for cut, 0 for the other row rules); Max is the largest
+// leaking value (largest |sum - 1| for row_sum); Rows the rows concerned;
+// JudgedRows the judged rows of the group. Offsets, for cut, count the cut
+// rows by the offset k - p of their last nonzero key.
 type Finding struct {
 	Block      string        `json:"block"`
 	Rule       Rule          `json:"rule"`
@@ -317,7 +320,7 @@ func findings(bp *BlockPartial) []Finding {
 		for l := 0; l < bp.Layers; l++ {
 			for h := 0; h < bp.Heads; h++ {
 				for b := 0; b < bp.Batch; b++ {
-					if hasProblem(bp.Unit(l, h, b), r) {
+					if problem(bp, b, bp.Unit(l, h, b), r) { // cut.go
 						byLayer[l] = append(byLayer[l], triple{l, h, b})
 					}
 				}
@@ -392,9 +395,12 @@ func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding
 				f.JudgedRows += u.Rows + u.NaNRows
 				var c Cell
 				switch {
-				case r == RuleNaNRows:
+				case r == RuleNaNRows || r == RuleCut:
 					c = u.NaNWorst
-					// the first NaN row in layer order: lowest layer wins
+					if r == RuleCut {
+						c = u.Cut.First
+					}
+					// the first NaN (cut) row in layer order: lowest layer wins
 					if c.Set && !first.Set {
 						first, wl, wh, wb = c, l, h, b
 					}
@@ -412,7 +418,7 @@ func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding
 			}
 		}
 	}
-	if r == RuleNaNRows {
+	if r == RuleNaNRows || r == RuleCut {
 		worst = first
 	}
 	a := &f.agg
@@ -423,6 +429,10 @@ func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding
 		f.Mass, f.Rows, f.Max = a.SumBadDev.Float64(), a.SumBadRows, worst.Value
 	case RuleNegative:
 		f.Mass, f.Rows, f.Cells = a.NegMass.Float64(), a.NegRows, a.NegCells
+	case RuleCut:
+		// no forbidden mass: the mask took mass away from allowed keys,
+		// and how much the export cannot tell
+		f.Rows, f.Cells, f.Offsets = a.Cut.Rows, a.Cut.Cells, stopsList(a.Cut.Stops)
 	default:
 		la := &a.Leaks[r]
 		f.Mass, f.Cells, f.Rows, f.Max = la.Mass.Float64(), la.Cells, la.Rows, worst.Value

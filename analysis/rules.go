@@ -10,7 +10,10 @@ import (
 
 // Rule names a check. The mask rules (RuleCausal .. RuleExplicit) say which
 // cells a query may not attend to; the row rules (RuleNaNRows, RuleRowSum,
-// RuleNegative) judge whole rows. RuleNone (0) means "allowed".
+// RuleNegative, RuleCut) judge whole rows. RuleCut is the one check of an
+// under-allowing mask: rows of a cross block, and prefix rows of a prefix-LM,
+// whose mass stops before the last key the mask rules allow (cut.go).
+// RuleNone (0) means "allowed".
 type Rule uint8
 
 // The rules, in the priority order used when several mask rules forbid the
@@ -26,6 +29,7 @@ const (
 	RuleNaNRows
 	RuleRowSum
 	RuleNegative
+	RuleCut
 	numRules
 )
 
@@ -40,7 +44,7 @@ const numMask = RuleNaNRows
 var ruleNames = [...]string{
 	RuleNone: "none", RuleCausal: "causal", RulePrefix: "prefix", RuleWindow: "window",
 	RuleSegments: "segments", RulePadding: "padding", RuleExplicit: "explicit",
-	RuleNaNRows: "nan_rows", RuleRowSum: "row_sum", RuleNegative: "negative",
+	RuleNaNRows: "nan_rows", RuleRowSum: "row_sum", RuleNegative: "negative", RuleCut: "cut",
 	RuleInvariance: "invariance",
 }
 

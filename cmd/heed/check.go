@@ -29,7 +29,7 @@ type passFlags struct {
 func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 	f := cmd.Flags()
 	if withRules {
-		f.StringArrayVar(&pf.rules, "rule", nil, "run only this check (repeatable): causal, window, prefix, padding, segments, explicit, nan_rows, row_sum, negative")
+		f.StringArrayVar(&pf.rules, "rule", nil, "run only this check (repeatable): causal, window, prefix, padding, segments, explicit, nan_rows, row_sum, negative, cut (give cut with the mask rules that say what is allowed)")
 	}
 	f.Float64Var(&pf.tol, "tol", analysis.DefaultTol, "a forbidden cell holding more than this mass is a leak")
 	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 1e-5)")
@@ -95,8 +95,10 @@ func newCheckCmd() *cobra.Command {
 		Short: "Check masks and rows: leaks, NaN rows, un-normalised rows; name the likely bug",
 		Long: `check runs every mask rule that follows from each block's kind and metadata
 (causal, sliding window, prefix, padding, packed-document segments, explicit
-allow mask) and every row check (NaN rows, rows not summing to 1, negative
-values) over all examples given, groups what it finds so that one bug is a
+allow mask), every row check (NaN rows, rows not summing to 1, negative
+values) and the cut check (an under-allowing mask: cross-attention rows, or
+prefix rows of a prefix-LM, whose mass stops at k = q although later keys
+are allowed) over all examples given, groups what it finds so that one bug is a
 few findings, and names the likely bug with what to look at in the model
 code. Its diagnoses are evidence to confirm by re-evaluating the model, not
 verdicts.
@@ -197,7 +199,7 @@ func rulesLine(res *analysis.Result) string {
 func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 	ex := fmt.Sprintf("%d %s", res.Examples, plural(int(res.Examples), "example", "examples"))
 	if res.Clean() {
-		fmt.Fprintf(w, "heed check: clean: no mask leaks, NaN rows or un-normalised rows in %s.\n", ex)
+		fmt.Fprintf(w, "heed check: clean: no mask leaks, cut-off rows, NaN rows or un-normalised rows in %s.\n", ex)
 		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
 	} else {
 		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), plural(len(res.Diagnoses), "likely bug", "likely bugs"),
@@ -206,7 +208,10 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 			text := strings.TrimSuffix(d.Text, " "+analysis.Caveat)
 			fmt.Fprintf(w, "%d. [%s] %s\n", i+1, d.Pattern, text)
 			loc := d.At.String()
-			if d.At.Key >= 0 && d.Rule != analysis.RuleNaNRows {
+			switch {
+			case d.Rule == analysis.RuleCut:
+				loc += fmt.Sprintf(" keys from %d allowed but exactly 0", d.At.Key)
+			case d.At.Key >= 0 && d.Rule != analysis.RuleNaNRows:
 				loc += fmt.Sprintf(" key %d (%.3g)", d.At.Key, d.At.Value)
 			}
 			fmt.Fprintf(w, "   look at:  %s\n", loc)

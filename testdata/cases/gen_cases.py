@@ -357,7 +357,7 @@ class EncDec(torch.nn.Module):
         self.enc, self.dec, self.crs = mk(), mk(), mk()
         self.ln = torch.nn.ModuleList(torch.nn.LayerNorm(E) for _ in range(3 * layers))
 
-    def forward(self, src, tgt, src_kpm, tgt_kpm, memory_kpm):
+    def forward(self, src, tgt, src_kpm, tgt_kpm, memory_kpm, cross_mask=None):
         L = len(self.enc)
         ws = {"encoder": [], "decoder": [], "cross": []}
         kw = dict(need_weights=True, average_attn_weights=False)
@@ -373,7 +373,7 @@ class EncDec(torch.nn.Module):
             y, w = self.dec[l](t, t, t, attn_mask=causal, key_padding_mask=tgt_kpm, **kw)
             t = self.ln[L + l](t + y)
             ws["decoder"].append(w)
-            y, w = self.crs[l](t, mem, mem, key_padding_mask=memory_kpm, **kw)
+            y, w = self.crs[l](t, mem, mem, attn_mask=cross_mask, key_padding_mask=memory_kpm, **kw)
             t = self.ln[2 * L + l](t + y)
             ws["cross"].append(w)
         return {k: torch.stack(v).detach().numpy() for k, v in ws.items()}
@@ -408,6 +408,91 @@ def case_cross_padding(out, seed):
                     "tokens/source": toks(S, 5), "tokens/target": toks(Tt), "meta": mb})
         cases[n] = arr
     return cases, [f], [diag("cross_reads_padding", "cross", f)]
+
+
+def cut_finding(a, allowed, judged, block, qoff=0):
+    """Expected cut finding (an under-allowing mask): the units whose rows stop
+    early, the rows (their last nonzero key is before their last allowed key;
+    every allowed key after it is exactly 0), the allowed cells left without
+    mass and the stop offsets k - p. allowed: [L, B, H, q, k] bool, what the
+    rules allow."""
+    units, offsets = set(), {}
+    cells = 0
+    for l in range(a.shape[0]):
+        for b in range(a.shape[1]):
+            for h in range(a.shape[2]):
+                for q in range(a.shape[3]):
+                    al = np.nonzero(allowed[l, b, h, q])[0]
+                    nz = np.nonzero(a[l, b, h, q])[0]
+                    if not judged[b, q] or len(al) == 0 or len(nz) == 0 or nz[-1] >= al[-1]:
+                        continue
+                    units.add((l, h, b))
+                    cells += int((al > nz[-1]).sum())
+                    o = int(nz[-1] - (q + qoff))
+                    offsets[o] = offsets.get(o, 0) + 1
+    f = finding(block, "cut", units, cells, offsets)
+    f["rows"] = sum(offsets.values())
+    return f
+
+
+def case_cross_causal(out, seed):
+    """Cross-attention made causal: the decoder's triangular mask is passed to
+    the cross-attention call too, on a rectangular [8 target, 10 source] map
+    with source padding (item 1 has 7 real source tokens, 6 real targets)."""
+    S, Tt = 10, 8
+    sv = np.ones((B, S), bool)
+    sv[1, -3:] = False
+    tv = np.ones((B, Tt), bool)
+    tv[1, -2:] = False
+    torch.manual_seed(seed)
+    m = EncDec(2).eval()
+    g = torch.Generator().manual_seed(seed + 1)
+    src, tgt = 1.5 * torch.randn(B, S, E, generator=g), 1.5 * torch.randn(B, Tt, E, generator=g)
+    skpm, tkpm = torch.from_numpy(~sv), torch.from_numpy(~tv)
+    tri = torch.triu(torch.ones(Tt, S, dtype=torch.bool), diagonal=1)  # source k > target q blocked
+    with torch.no_grad():
+        bad = m(src, tgt, skpm, tkpm, skpm, cross_mask=tri)
+        good = m(src, tgt, skpm, tkpm, skpm)
+    a = bad["cross"]
+    # the rules allow every real source key to every target query
+    allowed = np.broadcast_to(sv[None, :, None, None, :], a.shape)
+    f = cut_finding(a, allowed, tv, "cross")
+    assert f["offsets"] == [[0, f["rows"]]], f["offsets"]  # every cut row stops at k = q
+    mb = meta({
+        "encoder": {"kind": "bidirectional", "query": "source", "key": "source", "axes": "layer batch head query key"},
+        "decoder": {"kind": "causal", "query": "target", "key": "target", "axes": "layer batch head query key"},
+        "cross": {"kind": "cross", "query": "target", "key": "source", "axes": "layer batch head query key"},
+    })
+    cases = {}
+    for n, ws in (("bad", bad), ("good", good)):
+        arr = {f"{k}/attn": v for k, v in ws.items()}
+        arr.update({"valid/source": sv.astype(np.uint8), "valid/target": tv.astype(np.uint8),
+                    "tokens/source": toks(S, 5), "tokens/target": toks(Tt), "meta": mb})
+        cases[n] = arr
+    # the good twin has no cut row at all
+    assert not cut_finding(good["cross"], allowed, tv, "cross")["layer"]
+    return cases, [f], [diag("cross_causal", "cross", f, 0)]
+
+
+def case_prefix_causal(out, seed):
+    """A prefix-LM with P = 4 run with a plain causal mask: the prefix block is
+    a triangle (prefix positions do not see later prefix positions). No
+    forbidden mass: an under-allowing mask."""
+    P = 4
+    q = torch.arange(T)[:, None]
+    k = torch.arange(T)[None, :]
+    right = (k > q) & ~((q < P) & (k < P))
+    bug = causal_blocked(T)
+    a_bad = run_causal(seed, 2, [bug, bug])
+    a_good = run_causal(seed, 2, [right, right])
+    allowed = np.broadcast_to((~right).numpy(), a_bad.shape)
+    judged = np.ones((B, T), bool)
+    f = cut_finding(a_bad, allowed, judged, "decoder")
+    assert f["offsets"] == [[0, 2 * H * B * (P - 1)]], f["offsets"]
+    assert not cut_finding(a_good, allowed, judged, "decoder")["layer"]
+    m = causal_meta({"prefix": P})
+    cases = {n: {"decoder/attn": a, "meta": m} for n, a in (("bad", a_bad), ("good", a_good))}
+    return cases, [f], [diag("prefix_causal", "decoder", f, 0)]
 
 
 def case_decode(out, seed):
@@ -485,6 +570,8 @@ CASES = [
     ("prefix", case_prefix),
     ("explicit", case_explicit),
     ("shift_padded", case_shift_padded),
+    ("cross_causal", case_cross_causal),
+    ("prefix_causal", case_prefix_causal),
 ]
 
 # ---------------------------------------------------------------- statistics references

@@ -1,0 +1,228 @@
+package analysis
+
+import (
+	"fmt"
+	"sort"
+
+	"github.com/heed-dev/heed/loader"
+)
+
+// The cut check (RuleCut): an under-allowing mask, one that blocks keys the
+// rules allow. It has no forbidden mass to measure, so it looks at where each
+// row's mass stops: a softmax over allowed keys is never exactly 0 (outside
+// underflow), so a row whose allowed keys after some key k are all exactly
+// 0 had them masked. One row proves little; the same stop offset k - p in
+// (nearly) every row that could show it does. Two places where a mask must
+// allow keys after the query's position are read:
+//   - every row of a cross block (kind cross: queries of one sequence over
+//     keys of another, from the metadata, never guessed from a square map):
+//     a causal mask passed to cross-attention cuts the [target, source] map
+//     into a triangle (users' pattern 4);
+//   - the prefix rows of a causal block with a prefix P: a plain causal mask
+//     instead of the prefix-LM one keeps prefix positions from later prefix
+//     positions (pattern 16).
+// A unit (layer, head, batch item) is cut when at least minCutRows rows stop
+// at the same offset c and they are at least cutShare of the rows that have
+// allowed keys after p + c.
+
+const (
+	minCutRows = 2
+	cutShare   = 0.9
+)
+
+// CutAcc accumulates, for one (layer, head, batch item), the judged finite
+// rows the cut check reads whose mass stops before the last key the mask
+// rules allow them (every allowed key after the stop is exactly 0).
+type CutAcc struct {
+	Rows  int64 `json:"rows"`  // rows that stop early
+	Cells int64 `json:"cells"` // allowed keys after the stop, left without mass
+	// Stops counts those rows by the offset of their last nonzero key, k - p.
+	Stops map[int]int64 `json:"stops,omitempty"`
+	// First is the first such row (example, query order); Key is the first
+	// allowed key left without mass, Value 0.
+	First Cell `json:"first"`
+}
+
+func (c *CutAcc) merge(o *CutAcc) {
+	c.Rows += o.Rows
+	c.Cells += o.Cells
+	c.Stops = mergeCounts(c.Stops, o.Stops)
+	if o.First.first(c.First) {
+		c.First = o.First
+	}
+}
+
+// commitTo adds c into acc and clears c (keeping its map for the next unit).
+func (c *CutAcc) commitTo(acc *CutAcc) {
+	acc.merge(c)
+	c.Rows, c.Cells, c.First = 0, 0, Cell{}
+	clear(c.Stops)
+}
+
+// cutCheck reports whether the cut check runs with the --rule selection rs.
+func cutCheck(rs []Rule) bool {
+	if len(rs) == 0 {
+		return true
+	}
+	for _, r := range rs {
+		if r == RuleCut {
+			return true
+		}
+	}
+	return false
+}
+
+// cutBlock reports whether the cut check reads any row of a block with rules r.
+func cutBlock(r *Rules) bool { return r.Kind == loader.KindCross || r.active[RulePrefix] }
+
+// cutRow reports whether the cut check reads the row at position p.
+func cutRow(r *Rules, p int) bool {
+	return r.Kind == loader.KindCross || (r.active[RulePrefix] && p < r.Prefix)
+}
+
+// lastAllowed returns the last key rr allows, -1 when none.
+func lastAllowed(rr []Rule) int {
+	k := len(rr) - 1
+	for k >= 0 && rr[k] != RuleNone {
+		k--
+	}
+	return k
+}
+
+// row adds one judged finite row (query row q at position p, keys' rules
+// rr, last nonzero key nzHi) when its mass stops before its last allowed key.
+func (c *CutAcc) row(rr []Rule, p, q, nzHi int, example string) {
+	last := lastAllowed(rr)
+	if nzHi < 0 || nzHi >= last {
+		return
+	}
+	var n int64
+	first := -1
+	for k := nzHi + 1; k <= last; k++ {
+		if rr[k] == RuleNone {
+			n++
+			if first < 0 {
+				first = k
+			}
+		}
+	}
+	c.Rows++
+	c.Cells += n
+	if c.Stops == nil {
+		c.Stops = map[int]int64{}
+	}
+	c.Stops[nzHi-p]++
+	if cell := (Cell{Set: true, Example: example, Query: q, Key: first}); cell.first(c.First) {
+		c.First = cell
+	}
+}
+
+// reach counts the judged rows of batch item b the cut check reads, by the
+// offset of their last allowed key (the mask rules without the explicit
+// mask, which can differ per head), nil when it reads none.
+func reach(r *Rules, b int) map[int]int64 {
+	if !cutBlock(r) {
+		return nil
+	}
+	var m map[int]int64
+	dst := make([]Rule, r.Keys)
+	for q := 0; q < r.Queries; q++ {
+		p := r.Pos(q)
+		if !r.Judged(b, q) || !cutRow(r, p) {
+			continue
+		}
+		r.Row(b, q, nil, dst)
+		last := lastAllowed(dst)
+		if last < 0 {
+			continue
+		}
+		if m == nil {
+			m = map[int]int64{}
+		}
+		m[last-p]++
+	}
+	return m
+}
+
+// cutOffset returns the offset most rows stop at (the smallest on ties) and
+// how many do.
+func cutOffset(stops map[int]int64) (int, int64) {
+	best, n := 0, int64(0)
+	for c, m := range stops {
+		if m > n || (m == n && c < best) {
+			best, n = c, m
+		}
+	}
+	return best, n
+}
+
+// couldStop counts the rows of the batch items (per layer and head) that
+// have an allowed key after p + c.
+func couldStop(bp *BlockPartial, batches []int, c int) int64 {
+	var n int64
+	for _, b := range batches {
+		for d, m := range bp.Geometry[b].Reach {
+			if d > c {
+				n += m
+			}
+		}
+	}
+	return n
+}
+
+// cutProblem reports whether unit a of batch item b is cut (see the top of
+// this file).
+func cutProblem(bp *BlockPartial, b int, a *HeadAcc) bool {
+	c, n := cutOffset(a.Cut.Stops)
+	return n >= minCutRows && float64(n) >= cutShare*float64(couldStop(bp, []int{b}, c))
+}
+
+// problem reports whether unit a (batch item b) has a problem of rule r.
+func problem(bp *BlockPartial, b int, a *HeadAcc, r Rule) bool {
+	if r == RuleCut {
+		return cutProblem(bp, b, a)
+	}
+	return hasProblem(a, r)
+}
+
+func stopsList(stops map[int]int64) []OffsetCount {
+	var out []OffsetCount
+	for o, n := range stops {
+		out = append(out, OffsetCount{o, n})
+	}
+	sort.Slice(out, func(i, j int) bool { return out[i].Offset < out[j].Offset })
+	return out
+}
+
+// diagnoseCut names a cut finding: cross_causal on a cross block,
+// prefix_causal on the prefix rows of a prefix-LM.
+func diagnoseCut(bp *BlockPartial, f *Finding, d *Diagnosis, where string) {
+	c, n := cutOffset(f.agg.Cut.Stops)
+	could := couldStop(bp, f.Batches, c) * int64(len(f.Layers)*len(f.Heads))
+	at := "k = q"
+	if c != 0 {
+		at = fmt.Sprintf("k = q%+d", c)
+	}
+	share := 0.0
+	if could > 0 {
+		share = 100 * min(1, float64(n)/float64(could))
+	}
+	d.Value = float64(c)
+	if bp.Kind == string(loader.KindCross) {
+		d.Pattern = "cross_causal"
+		d.Text = fmt.Sprintf("Cross-attention made causal in %s: target query q reads source keys only up to %s, though later source keys are allowed (a triangular cut in the [target, source] map).", where, at)
+		d.Check = "check which mask reaches the cross-attention call: the decoder's causal mask (tgt_mask, is_causal=True, the causal flag of an attention function shared by self- and cross-attention) must not; cross-attention takes only the source padding mask (memory_key_padding_mask / encoder attention mask)"
+		d.Evidence = append(d.Evidence,
+			fmt.Sprintf("%d of %d rows (%.1f%%) that have allowed source keys after %s carry no mass after it (a cross block of %d target x %d source positions)", n, could, share, at, bp.Queries, bp.Keys),
+			fmt.Sprintf("%d allowed source cells left without mass in %d rows of %s; stops by offset k-q: %s", f.Cells, f.Rows, where, offsetSummary(f.Offsets)),
+			fmt.Sprintf("first cut row at %s: key %d and later allowed keys are exactly 0", f.Worst, f.Worst.Key))
+		return
+	}
+	d.Pattern = "prefix_causal"
+	d.Text = fmt.Sprintf("The prefix block is causal in %s: prefix positions (the first %d) do not see later prefix positions (their mass stops at %s), though a prefix-LM lets the prefix see itself both ways.", where, bp.Prefix, at)
+	d.Check = "check that the prefix-LM mask (bidirectional over the first P positions, causal after them) reaches the kernel rather than a plain causal mask or is_causal=True, and that P is each example's prefix length"
+	d.Evidence = append(d.Evidence,
+		fmt.Sprintf("%d of %d prefix rows (%.1f%%) that have later prefix keys carry no mass after %s", n, could, share, at),
+		fmt.Sprintf("%d allowed prefix cells left without mass in %d rows of %s; stops by offset k-q: %s", f.Cells, f.Rows, where, offsetSummary(f.Offsets)),
+		fmt.Sprintf("first cut row at %s: key %d and later prefix keys are exactly 0", f.Worst, f.Worst.Key))
+}
