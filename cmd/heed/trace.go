@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
+	"strconv"
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
@@ -33,7 +34,10 @@ func newTraceCmd() *cobra.Command {
            BLOCK/grad, the gradient of the loss at the traced position
 For an encoder-decoder export the default block is the cross block: a target
 position is explained by source tokens through cross-attention (rollout and
-grad). An explanation is evidence to confirm by re-evaluating the model.`,
+grad). Shares that are not normalised (flow, grad, rollout through
+cross-attention) print with 4 significant digits and as a percentage of
+their total: the grad relevance of a dL/dA exported for a whole loss is
+tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			if !cmd.Flags().Changed("query") {
@@ -81,17 +85,21 @@ grad). An explanation is evidence to confirm by re-evaluating the model.`,
 }
 
 func writeTraceText(w io.Writer, r *analysis.TraceResult) {
-	norm := "shares sum to 1"
-	if !r.Normalised {
-		norm = "shares are not normalised"
-	}
-	fmt.Fprintf(w, "heed trace: %s query %d (batch %d) by %s tokens, method %s (%s)\n", r.Block, r.Query, r.Batch, r.Side, r.Method, norm)
-	var top float64
+	var top, total float64
 	width := 5
 	for _, t := range r.Tokens {
 		top = max(top, t.Share)
+		total += t.Share
 		width = max(width, len([]rune(t.Token)))
 	}
+	// Unnormalised shares (grad relevance from an exported dL/dA of a whole
+	// loss, flow, cross rollout) can be tiny or above 1: print them with
+	// significant digits and as a percentage of their total.
+	norm := "shares sum to 1"
+	if !r.Normalised {
+		norm = fmt.Sprintf("shares are not normalised: they sum to %.4g; %% is of that total", total)
+	}
+	fmt.Fprintf(w, "heed trace: %s query %d (batch %d) by %s tokens, method %s (%s)\n", r.Block, r.Query, r.Batch, r.Side, r.Method, norm)
 	const bar = 40
 	for _, t := range r.Tokens {
 		n := 0
@@ -102,7 +110,15 @@ func writeTraceText(w io.Writer, r *analysis.TraceResult) {
 		if tok == "" {
 			tok = "-"
 		}
-		fmt.Fprintf(w, "%5d  %-*s  %-*s  %.4f\n", t.Index, width, tok, bar, strings.Repeat("█", n), t.Share)
+		if r.Normalised {
+			fmt.Fprintf(w, "%5d  %-*s  %-*s  %.4f\n", t.Index, width, tok, bar, strings.Repeat("█", n), t.Share)
+			continue
+		}
+		pct := "-"
+		if total > 0 {
+			pct = fmt.Sprintf("%.1f%%", 100*t.Share/total)
+		}
+		fmt.Fprintf(w, "%5d  %-*s  %-*s  %10s  %6s\n", t.Index, width, tok, bar, strings.Repeat("█", n), strconv.FormatFloat(t.Share, 'g', 4, 64), pct)
 	}
 	fmt.Fprintln(w, analysis.Caveat)
 }

@@ -1,0 +1,82 @@
+package main
+
+import (
+	"encoding/json"
+	"math"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"testing"
+)
+
+// TestTraceTextUnnormalised: the demo's gradient relevance comes from the
+// dL/dA of the whole teacher-forced loss (testdata/demo/generate.py, with
+// PyTorch autograd), so its shares are tiny; the text output must still tell
+// them apart: each share printed to 4 significant digits (read back within
+// rounding of the JSON value) and as a percentage of their total, with the
+// header saying the shares are not normalised.
+func TestTraceTextUnnormalised(t *testing.T) {
+	dir := t.TempDir()
+	if out, code := run(t, "demo", "--export", dir); code != 0 {
+		t.Fatalf("demo --export: exit %d\n%s", code, out)
+	}
+	clean := filepath.Join(dir, "clean.npz")
+	js, code := run(t, "trace", "--json", "--query", "5", "--method", "grad", clean)
+	if code != 0 {
+		t.Fatalf("trace --json: exit %d\n%s", code, js)
+	}
+	var res struct {
+		Normalised bool `json:"normalised"`
+		Tokens     []struct {
+			Share float64 `json:"share"`
+		} `json:"tokens"`
+	}
+	if err := json.Unmarshal([]byte(js), &res); err != nil {
+		t.Fatal(err)
+	}
+	var total, top float64
+	for _, tk := range res.Tokens {
+		total += tk.Share
+		top = max(top, tk.Share)
+	}
+	if res.Normalised || top >= 1e-3 {
+		t.Fatalf("want unnormalised shares below 1e-3 (the case this test is about), got normalised=%v, largest %g", res.Normalised, top)
+	}
+	out, code := run(t, "trace", "--query", "5", "--method", "grad", clean)
+	if code != 0 {
+		t.Fatalf("trace: exit %d\n%s", code, out)
+	}
+	lines := strings.Split(strings.TrimSpace(out), "\n")
+	if !strings.Contains(lines[0], "not normalised") {
+		t.Errorf("header does not say the shares are not normalised: %s", lines[0])
+	}
+	rows := lines[1 : len(lines)-1]
+	if len(rows) != len(res.Tokens) {
+		t.Fatalf("%d token lines, JSON has %d tokens\n%s", len(rows), len(res.Tokens), out)
+	}
+	var pctSum float64
+	for i, l := range rows {
+		f := strings.Fields(l)
+		share, err1 := strconv.ParseFloat(f[len(f)-2], 64)
+		pct, err2 := strconv.ParseFloat(strings.TrimSuffix(f[len(f)-1], "%"), 64)
+		if err1 != nil || err2 != nil {
+			t.Fatalf("line %q: share and percent not readable", l)
+		}
+		want := res.Tokens[i].Share
+		if math.Abs(share-want) > 5e-4*math.Abs(want) {
+			t.Errorf("line %q: share %g, JSON %g (want 4 significant digits)", l, share, want)
+		}
+		if math.Abs(pct-100*want/total) > 0.051 {
+			t.Errorf("line %q: %g%%, want %.2f%% of the total", l, pct, 100*want/total)
+		}
+		pctSum += pct
+	}
+	if math.Abs(pctSum-100) > 0.1*float64(len(rows)) {
+		t.Errorf("percentages sum to %g, want 100", pctSum)
+	}
+	// normalised shares keep their plain form
+	out, _ = run(t, "trace", "--query", "5", filepath.Join(casesDir, "stats.npz"))
+	if !strings.Contains(strings.SplitN(out, "\n", 2)[0], "shares sum to 1") || strings.Contains(out, "%") {
+		t.Errorf("rollout on self-attention: want \"shares sum to 1\" and no percentages\n%s", out)
+	}
+}
