@@ -240,9 +240,9 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 					tm.Shares[t.Index] = t.Share
 				}
 			}
-			if !res.Normalised && m != analysis.MethodRollout {
-				tm.Note = "shares are not normalised across tokens"
-			}
+			// unnormalised shares (flow, grad, rollout through
+			// cross-attention) show as % of their total (views.TraceMethod)
+			tm.Normalised = res.Normalised
 			td.Methods = append(td.Methods, tm)
 		}
 		msg.data = td

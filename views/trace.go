@@ -5,6 +5,7 @@ import (
 	"math"
 	"sort"
 	"strconv"
+	"strings"
 )
 
 // TraceMethod is one explanation method's shares of the input tokens.
@@ -12,8 +13,43 @@ type TraceMethod struct {
 	Name string
 	// Shares per input position (NaN = not available).
 	Shares []float64
+	// Normalised says the shares sum to 1 (rollout on self-attention): they
+	// are shown as percentages as they are. Otherwise (flow, gradient
+	// relevance, rollout through cross-attention: values that can be tiny,
+	// as the relevance from a dL/dA of a whole loss, or above 1) each is
+	// shown as a percentage of the method's total, and the note line states
+	// that total.
+	Normalised bool
 	// Note says what the shares mean or why they are missing.
 	Note string
+}
+
+// shareSums returns the largest and the total of the shares that are not
+// NaN, and how many there are.
+func shareSums(s []float64) (top, total float64, n int) {
+	for _, v := range s {
+		if !math.IsNaN(v) {
+			top = math.Max(top, v)
+			total += v
+			n++
+		}
+	}
+	return top, total, n
+}
+
+// note is the method's note line: its own note, then for unnormalised
+// shares their total (the wording of heed trace's header).
+func (m TraceMethod) note() string {
+	n := m.Note
+	_, total, count := shareSums(m.Shares)
+	if m.Normalised || count == 0 {
+		return n
+	}
+	s := "shares are not normalised: they sum to " + strconv.FormatFloat(total, 'g', 4, 64) + "; % is of that total"
+	if n != "" {
+		return n + "; " + s
+	}
+	return s
 }
 
 // TraceData is the explanation of one output position.
@@ -101,8 +137,8 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	c.Text(x, 0, " · shares of the "+side+" tokens", st.Faint, -1)
 	y := 1
 	for _, m := range d.Methods {
-		if m.Note != "" && y < h-3 {
-			c.Text(0, y, m.Name+": "+m.Note, st.Faint, w)
+		if n := m.note(); n != "" && y < h-3 {
+			c.Text(0, y, m.Name+": "+n, st.Faint, w)
 			y++
 		}
 	}
@@ -113,6 +149,12 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	if len(d.Methods) == 0 || len(d.Tokens) == 0 {
 		return c, l
 	}
+	// the selected token's shares as values, 4 significant digits (as heed
+	// trace prints them): the percentages of a share far below its total,
+	// as gradient relevance beside the identity term of R, read 0.0%
+	if p := opt.Selected; p >= 0 && p < len(d.Tokens) {
+		c.Text(0, y, shareValues(d, p), st.Faint, w)
+	}
 	y++
 	posW := digits(len(d.Tokens) - 1)
 	tokW := min(16, max(4, maxTokenWidth(d.Tokens, 16)+2))
@@ -122,14 +164,13 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	barW := max(1, colW-valW-2)
 	order := TraceOrder(d, opt.ByShare)
 	c.Text(0, y, padLeft("#", posW)+" "+padRight("token", tokW), st.Faint, -1)
+	// bars are scaled to each method's largest share; percentages of
+	// unnormalised shares are of their total
 	maxes := make([]float64, len(d.Methods))
+	totals := make([]float64, len(d.Methods))
 	for i, m := range d.Methods {
 		c.Text(labelW+1+i*colW, y, ellipsize(m.Name, colW-1), st.Faint, -1)
-		for _, v := range m.Shares {
-			if !math.IsNaN(v) {
-				maxes[i] = math.Max(maxes[i], v)
-			}
-		}
+		maxes[i], totals[i], _ = shareSums(m.Shares)
 	}
 	if opt.ByShare {
 		c.Text(max(0, w-18), y, "sorted by "+d.Methods[0].Name, st.Faint, -1)
@@ -159,18 +200,46 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 				v = m.Shares[p]
 			}
 			bx := labelW + 1 + mi*colW
-			t := v / math.Max(maxes[mi], 1e-12)
+			t := 0.0
+			if maxes[mi] > 0 {
+				t = v / maxes[mi] // NaN stays NaN: no bar
+			}
 			barStyle := Style{FG: colourIf(st, st.Colormap.At(0.35+0.65*t))}
 			if !st.HasColour() {
 				barStyle = st.Text
 			}
 			drawBar(c, bx, yy, barW, t, barStyle)
-			c.Text(bx+barW+1, yy, padLeft(sharePct(v), valW), st.Text, -1)
+			pct := v
+			if !m.Normalised {
+				pct = math.NaN()
+				if totals[mi] > 0 {
+					pct = v / totals[mi]
+				}
+			}
+			c.Text(bx+barW+1, yy, padLeft(sharePct(pct), valW), st.Text, -1)
 		}
 	}
 	return c, l
 }
 
+// shareValues is the readout of input position p: each method's share.
+func shareValues(d *TraceData, p int) string {
+	var b strings.Builder
+	b.WriteString(strconv.Itoa(p) + quoteTok(d.Tokens[p]) + ":")
+	for i, m := range d.Methods {
+		v := "–"
+		if p < len(m.Shares) && !math.IsNaN(m.Shares[p]) {
+			v = strconv.FormatFloat(m.Shares[p], 'g', 4, 64)
+		}
+		if i > 0 {
+			b.WriteString(" ·")
+		}
+		b.WriteString(" " + m.Name + " " + v)
+	}
+	return b.String()
+}
+
+// sharePct writes a fraction as a percentage with one decimal, "–" for NaN.
 func sharePct(v float64) string {
 	if math.IsNaN(v) {
 		return "–"

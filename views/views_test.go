@@ -165,14 +165,102 @@ func TestFindings(t *testing.T) {
 func traceFixture() *TraceData {
 	// Rollout of the worked example in notes/methods.md (Abnar & Zuidema
 	// 2020, eq. 1, derived there): query 1 -> [0.325, 0.675]; flow of the
-	// same example -> [0.35, 0.75].
+	// same example -> [0.35, 0.75], not normalised: they sum to 1.1, so the
+	// view shows 0.35/1.1 = 31.8% and 0.75/1.1 = 68.2%.
 	return &TraceData{Block: "decoder", Query: 1, QueryToken: " cat", Side: "target", Tokens: []string{"<s>", " cat"},
-		Methods: []TraceMethod{{Name: "rollout", Shares: []float64{0.325, 0.675}}, {Name: "flow", Shares: []float64{0.35, 0.75}, Note: "flows are not normalised across tokens"}}}
+		Methods: []TraceMethod{{Name: "rollout", Shares: []float64{0.325, 0.675}, Normalised: true}, {Name: "flow", Shares: []float64{0.35, 0.75}}}}
+}
+
+// traceUnnormalised is a target position explained by source tokens
+// through cross-attention, where no method's shares sum to 1 (the demo's
+// case: its gradient relevance, from the dL/dA of a whole loss, is of the
+// order of 1e-5, and rollout through cross-attention sums above 1).
+// Percentages of each method's total, worked by hand:
+//
+//	rollout [1.5, 3, 0.5, 1]     sum 6:     1.5/6 = 25.0%, 3/6 = 50.0%, 0.5/6 = 8.3%, 1/6 = 16.7%
+//	grad    [2e-6, 5e-6, 1e-6, 0] sum 8e-6: 25.0%, 62.5%, 12.5%, 0.0%
+//
+// Bars are scaled to each method's largest share: rollout 1/2, 1, 1/6, 1/3
+// of the bar; grad 2/5, 1, 1/5, 0.
+func traceUnnormalised() *TraceData {
+	return &TraceData{Block: "cross", Query: 5, QueryToken: "-", Side: "source", Tokens: []string{"the", "fourth", "of", "july"},
+		Methods: []TraceMethod{
+			{Name: "rollout", Shares: []float64{1.5, 3, 0.5, 1}},
+			{Name: "flow", Note: "defined for self-attention stacks only"},
+			{Name: "grad", Shares: []float64{2e-6, 5e-6, 1e-6, 0}},
+		}}
+}
+
+// TestTraceUnnormalisedPercent reads the percentages and note lines of the
+// rendered unnormalised case back and compares them with the hand-worked
+// values above (and the flow example's 31.8% / 68.2%).
+func TestTraceUnnormalisedPercent(t *testing.T) {
+	st := styles(t, colorprofile.ASCII, true, "iridescent")
+	c, l := Trace(traceUnnormalised(), 80, 21, TraceOptions{}, st)
+	lines := strings.Split(c.Plain(), "\n")
+	for _, want := range []string{
+		"rollout: shares are not normalised: they sum to 6; % is of that total",
+		"grad: shares are not normalised: they sum to 8e-06; % is of that total",
+		"flow: defined for self-attention stacks only",
+		`0 "the": rollout 1.5 · flow – · grad 2e-06`, // the selected token's values, 4 significant digits
+	} {
+		if !strings.Contains(c.Plain(), want) {
+			t.Errorf("no line %q:\n%s", want, c.Plain())
+		}
+	}
+	want := [][]string{{"25.0%", "–", "25.0%"}, {"50.0%", "–", "62.5%"}, {"8.3%", "–", "12.5%"}, {"16.7%", "–", "0.0%"}}
+	if len(l.Order) != 4 {
+		t.Fatalf("%d rows shown, want 4", len(l.Order))
+	}
+	for i, p := range l.Order {
+		var got []string
+		for _, f := range strings.Fields(lines[l.TableY+i]) {
+			if strings.HasSuffix(f, "%") || f == "–" {
+				got = append(got, f)
+			}
+		}
+		if strings.Join(got, " ") != strings.Join(want[p], " ") {
+			t.Errorf("position %d: %v, want %v\n%s", p, got, want[p], lines[l.TableY+i])
+		}
+	}
+	// Bars scaled to the largest share: with grad alone on the screen, each
+	// row's bar (in eighths of a cell) over the longest is 2/5, 1, 1/5, 0,
+	// within the rounding of a bar to eighths.
+	g := traceUnnormalised()
+	g.Methods = g.Methods[2:]
+	c, l = Trace(g, 80, 21, TraceOptions{}, st)
+	lines = strings.Split(c.Plain(), "\n")
+	full := barEighths(lines[l.TableY+1])
+	for p, ratio := range []float64{0.4, 1, 0.2, 0} {
+		got := barEighths(lines[l.TableY+p])
+		if full == 0 || math.Abs(float64(got)-ratio*float64(full)) > 1 {
+			t.Errorf("position %d: bar of %d eighths, want %.2f of %d\n%s", p, got, ratio, full, c.Plain())
+		}
+	}
+	small, _ := Trace(traceFixture(), 80, 21, TraceOptions{}, st)
+	for _, w := range []string{"31.8%", "68.2%", "32.5%", "67.5%", "flow: shares are not normalised: they sum to 1.1"} {
+		if !strings.Contains(small.Plain(), w) {
+			t.Errorf("worked example: no %q\n%s", w, small.Plain())
+		}
+	}
+}
+
+// barEighths is the length of the bar glyphs in a line, in eighths of a cell.
+func barEighths(line string) int {
+	n := 0
+	for _, r := range line {
+		for i, e := range eighths {
+			if i > 0 && r == e {
+				n += i
+			}
+		}
+	}
+	return n
 }
 
 func TestTrace(t *testing.T) {
 	long := &TraceData{Block: "decoder", Query: 15, QueryToken: " slept", Side: "target", Tokens: demoTokens,
-		Methods: []TraceMethod{{Name: "rollout", Shares: make([]float64, 16)}, {Name: "grad", Shares: make([]float64, 16)}}}
+		Methods: []TraceMethod{{Name: "rollout", Shares: make([]float64, 16), Normalised: true}, {Name: "grad", Shares: make([]float64, 16)}}}
 	for i := range long.Tokens {
 		long.Methods[0].Shares[i] = float64(i+1) / 136
 		long.Methods[1].Shares[i] = math.NaN()
@@ -189,6 +277,8 @@ func TestTrace(t *testing.T) {
 		{"small_ascii_80x21", traceFixture(), 80, 21, TraceOptions{Selected: 1}, colorprofile.ASCII},
 		{"long_byshare_ascii_80x12", long, 80, 12, TraceOptions{Selected: 3, ByShare: true}, colorprofile.ASCII},
 		{"long_ascii_200x57", long, 200, 57, TraceOptions{Selected: 3}, colorprofile.ASCII},
+		{"unnormalised_ascii_80x21", traceUnnormalised(), 80, 21, TraceOptions{Selected: 1}, colorprofile.ASCII},
+		{"unnormalised_byshare_truecolor_80x21", traceUnnormalised(), 80, 21, TraceOptions{Selected: 1, ByShare: true}, colorprofile.TrueColor},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
