@@ -436,7 +436,7 @@ def gen_exports(out):
     expects["encdec.h5"] = info_expect(
         [{"name": "cross", "kind": "cross", "dtype": "f16", "layers": 2, "batch": 1, "heads": 2, "queries": 3, "keys": 4,
           "query_offset": 0, "grad": False, "allow": False, "valid": True, "segments": False, "out": False,
-          "query_side": "target", "key_side": "source", "rules": ["padding", "nan_rows", "row_sum"]},
+          "query_side": "target", "key_side": "source", "rules": ["padding", "nan_rows", "row_sum", "cut"]},
          {"name": "decoder", "kind": "causal", "dtype": "f16", "layers": 2, "batch": 1, "heads": 2, "queries": 3, "keys": 3,
           "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
           "query_side": "target", "key_side": "target", "rules": ["causal", "nan_rows", "row_sum"]},
@@ -502,7 +502,7 @@ def gen_exports(out):
     expects["attrs.h5"] = info_expect(
         [{"name": "dec", "kind": "causal", "dtype": "f32", "layers": 2, "batch": 1, "heads": 3, "queries": 5, "keys": 5,
           "prefix": 2, "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
-          "query_side": "", "key_side": "", "rules": ["causal", "prefix", "nan_rows", "row_sum"]}], [])
+          "query_side": "", "key_side": "", "rules": ["causal", "prefix", "nan_rows", "row_sum", "cut"]}], [])
 
     # 7. zip64-forced, deflated (same export as 1)
     shutil.copy(os.path.join(out, "npz", "zip64.npz"), os.path.join(d, "causal_zip64.npz"))

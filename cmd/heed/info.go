@@ -7,6 +7,7 @@ import (
 	"strconv"
 	"strings"
 
+	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
@@ -127,6 +128,9 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	for _, b := range ex.Blocks {
 		qs, ks := ex.Side(b.QuerySide), ex.Side(b.KeySide)
 		rules := ex.Rules(b)
+		if cutApplies(b, qs, ks) {
+			rules = append(rules, analysis.RuleCut.String())
+		}
 		if rules == nil {
 			rules = []string{}
 		}
@@ -172,6 +176,23 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	}
 	r.Warnings = append([]string{}, ex.Warnings...)
 	return r
+}
+
+// cutApplies reports whether heed check runs the cut check (rule cut,
+// analysis/cut.go: a mask that blocks allowed keys, diagnosed cross_causal
+// or prefix_causal) on block b: every row of a cross block, and the prefix
+// rows of a causal block with a prefix P. It asks the block's mask rules as
+// check builds them (no --rule selection), so a prefix counts only where
+// the prefix rule applies.
+func cutApplies(b *loader.Block, qs, ks *loader.Side) bool {
+	if b.Layers == 0 {
+		return false
+	}
+	r, err := analysis.NewRules(b, qs, ks, nil)
+	if err != nil {
+		return false
+	}
+	return r.Kind == loader.KindCross || r.Has(analysis.RulePrefix)
 }
 
 func sortedSides(ex *loader.Export) []string {

@@ -153,3 +153,101 @@ func TestInfoBadInputs(t *testing.T) {
 		t.Errorf("missing file: exit %d, %v", code, err)
 	}
 }
+
+// infoBlockRules runs "heed info --json" and returns each block's rules.
+func infoBlockRules(t *testing.T, args ...string) map[string][]string {
+	t.Helper()
+	out, err, code := infoRun(t, append([]string{"--json"}, args...)...)
+	if code != 0 {
+		t.Fatalf("info %v: exit %d: %v", args, code, err)
+	}
+	var rep infoReport
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	rules := map[string][]string{}
+	for _, b := range rep.Blocks {
+		rules[b.Name] = b.Rules
+	}
+	return rules
+}
+
+func hasRule(rules []string, r string) bool {
+	for _, x := range rules {
+		if x == r {
+			return true
+		}
+	}
+	return false
+}
+
+// TestInfoCutRule: info lists rule cut where heed check reads rows for it
+// (docs/json.md, "Under-allowing masks"): every block of kind cross, and a
+// causal block with a prefix; not a causal block without one, nor a
+// bidirectional one, whose prefix check does not apply either. The torch
+// cases of testdata/cases/gen_cases.py (a decoder's causal mask passed to
+// cross-attention; a prefix-LM given a plain causal mask) are where check
+// reports its cut finding (TestCheckCut): info must list cut on that block,
+// in the JSON and in the text. The fixture generator's expectations for a
+// cross block (encdec.h5) and a causal block with prefix 2 (attrs.h5) are
+// checked by TestInfoJSONFixtures.
+func TestInfoCutRule(t *testing.T) {
+	for _, c := range []struct {
+		file, cutBlock string
+		others         []string
+	}{
+		{"cross_causal_bad.npz", "cross", []string{"decoder", "encoder"}},
+		{"cross_causal_good.npz", "cross", []string{"decoder", "encoder"}},
+		{"prefix_causal_bad.npz", "decoder", nil},
+	} {
+		path := filepath.Join(casesDir, c.file)
+		rules := infoBlockRules(t, path)
+		if !hasRule(rules[c.cutBlock], "cut") {
+			t.Errorf("%s: block %s rules %v, want cut", c.file, c.cutBlock, rules[c.cutBlock])
+		}
+		for _, o := range c.others {
+			if r, ok := rules[o]; !ok || hasRule(r, "cut") {
+				t.Errorf("%s: block %s rules %v (present %v), want no cut", c.file, o, r, ok)
+			}
+		}
+		if len(rules) != 1+len(c.others) {
+			t.Errorf("%s: blocks %v", c.file, rules)
+		}
+		out, _, _ := infoRun(t, path)
+		sec := out[strings.Index(out, "block "+c.cutBlock+" "):]
+		if line := sec[strings.Index(sec, "  rules"):]; !strings.HasSuffix(strings.SplitN(line, "\n", 2)[0], ", cut") {
+			t.Errorf("%s: text rules of block %s: %q, want cut last", c.file, c.cutBlock, strings.SplitN(line, "\n", 2)[0])
+		}
+		if strings.HasSuffix(c.file, "_bad.npz") {
+			// check's finding of rule cut is on the block info names
+			js, code := run(t, "check", "--json", path)
+			var rep struct {
+				Findings []struct{ Block, Rule string } `json:"findings"`
+			}
+			if err := json.Unmarshal([]byte(js), &rep); err != nil || code != 1 || len(rep.Findings) == 0 {
+				t.Fatalf("check %s: exit %d, %v\n%s", c.file, code, err, js)
+			}
+			for _, f := range rep.Findings {
+				if f.Rule == "cut" && f.Block != c.cutBlock {
+					t.Errorf("%s: check found rule cut in %s, info lists it for %s", c.file, f.Block, c.cutBlock)
+				}
+			}
+		}
+	}
+	// flags on a metadata-less square array: the kind and prefix decide
+	lone := filepath.Join(fixturesDir, "exports", "lone.npy")
+	for _, c := range []struct {
+		args []string
+		cut  bool
+	}{
+		{[]string{"--kind", "causal", "--prefix", "2"}, true},
+		{[]string{"--kind", "causal"}, false},
+		{[]string{"--kind", "bidirectional", "--prefix", "2"}, false},
+		{nil, false},
+	} {
+		rules := infoBlockRules(t, append(c.args, lone)...)
+		if got := hasRule(rules["lone"], "cut"); got != c.cut {
+			t.Errorf("lone.npy %v: rules %v, cut %v, want %v", c.args, rules["lone"], got, c.cut)
+		}
+	}
+}
