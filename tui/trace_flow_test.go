@@ -117,7 +117,7 @@ func TestFlowTraceEncoderDecoder(t *testing.T) {
 		t.Fatal(err)
 	}
 	file := filepath.Join(dir, res.Demo.Open) // the export heed demo opens
-	const q = 5                               // the month's "-" of "2070-11-19" (heed demo's trace hint)
+	const q = 5                               // "-" of "<bos>2070-11-19", which predicts the month (heed demo's trace hint)
 	var ref struct {
 		Tokens        []string
 		Rollout, Grad []float64
