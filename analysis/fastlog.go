@@ -2,11 +2,12 @@ package analysis
 
 import "math"
 
-// logTable holds ln(1 + i/256) and 1/(1 + i/256) for the reduction of fastLog.
-var logTable = func() (t [256][2]float64) {
+// logTable holds ln(1 + i/256), 1/(1 + i/256) and 1 + i/256 for the
+// reduction of fastLog.
+var logTable = func() (t [256][3]float64) {
 	for i := range t {
 		c := 1 + float64(i)/256
-		t[i] = [2]float64{math.Log(c), 1 / c}
+		t[i] = [3]float64{math.Log(c), 1 / c, c}
 	}
 	return
 }()
@@ -26,7 +27,7 @@ func fastLog(x float64) float64 {
 	m := b & (1<<52 - 1)
 	t := &logTable[m>>44]
 	f := math.Float64frombits(m | 0x3ff<<52)
-	r := (f - (1 + float64(m>>44)/256)) * t[1]
+	r := (f - t[2]) * t[1]
 	p := r * (1 + r*(-0.5+r*(1.0/3+r*(-0.25+r*0.2))))
 	e := float64(ex - 1023)
 	// ln 2 split as in fdlibm's log: e*ln2Hi is exact for |e| < 2^11

@@ -10,11 +10,19 @@ import (
 	"github.com/heed-dev/heed/loader"
 )
 
-// NoRedundancy (what heed check uses) leaves out only the redundancy: the
-// findings, diagnoses and every other statistic are the same, to the bit,
-// as with it, and the redundancy (and the score built on it) is NaN.
+// NoRedundancy leaves out only the redundancy, and NoStats with it (what
+// heed check uses) the row statistics too: the findings, diagnoses and every
+// other statistic are the same, to the bit, as with them, and what was left
+// out (and the score built on it) is NaN.
 func TestNoRedundancyChangesNothingElse(t *testing.T) {
-	for _, name := range []string{"shift_bad.npz", "documents_bad.npz", "nan_spread_bad.npz", "stats.npz"} {
+	for _, noStats := range []bool{false, true} {
+		testNoRedundancy(t, noStats)
+	}
+}
+
+func testNoRedundancy(t *testing.T, noStats bool) {
+	for _, name := range []string{"shift_bad.npz", "documents_bad.npz", "nan_spread_bad.npz", "stats.npz",
+		"cross_causal_bad.npz", "cross_padding_bad.npz", "shift_padded_bad.npz", "prefix_causal_bad.npz", "inverted_bad.npz"} {
 		ex, err := loader.Open([]string{filepath.Join(casesDir, name)}, loader.NewOptions())
 		if err != nil {
 			t.Fatal(err)
@@ -24,7 +32,7 @@ func TestNoRedundancyChangesNothingElse(t *testing.T) {
 			t.Fatal(err)
 		}
 		opt := DefaultOptions()
-		opt.NoRedundancy = true
+		opt.NoRedundancy, opt.NoStats = true, noStats
 		without, err := Analyze(context.Background(), ex, opt)
 		ex.Close()
 		if err != nil {
@@ -43,6 +51,15 @@ func TestNoRedundancyChangesNothingElse(t *testing.T) {
 				}
 				a, o := hs.Stats, ho.Stats
 				a.Redundancy, o.Redundancy = 0, 0
+				if noStats {
+					for _, v := range []*[2]float64{{o.Entropy, a.Entropy}, {o.EntropyNorm, a.EntropyNorm}, {o.Confidence, a.Confidence}, {o.Distance, a.Distance}} {
+						if !math.IsNaN(v[0]) {
+							t.Errorf("%s: %s L%d H%d: a row statistic is %v without stats, want NaN", name, b.Name, hs.Layer, hs.Head, v[0])
+						}
+					}
+					a.Entropy, a.EntropyNorm, a.Confidence, a.Distance = 0, 0, 0, 0
+					o.Entropy, o.EntropyNorm, o.Confidence, o.Distance = 0, 0, 0, 0
+				}
 				if jf(a) != jf(o) {
 					t.Errorf("%s: %s L%d H%d: statistics differ without redundancy:\n%+v\n%+v", name, b.Name, hs.Layer, hs.Head, a, o)
 				}

@@ -6,7 +6,8 @@ import (
 )
 
 // PartialVersion is written in every Partial; Merge refuses other versions.
-const PartialVersion = "heed-partial/1"
+// 2: padding keys left out of the forbidden-cell counts, options no_stats.
+const PartialVersion = "heed-partial/2"
 
 // Partial is the exact state of an analysis: per block, per (layer, head,
 // batch item) sums and counts over every example seen. It is what a shard of
@@ -32,6 +33,7 @@ type PartialOptions struct {
 	RedundancyRows int   `json:"redundancy_rows"`
 	MaxLayerBytes  int64 `json:"max_layer_bytes"`
 	NoRedundancy   bool  `json:"no_redundancy,omitempty"`
+	NoStats        bool  `json:"no_stats,omitempty"`
 }
 
 // BlockPartial is the state of one block. Examples of a set share its

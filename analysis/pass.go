@@ -56,6 +56,11 @@ type Options struct {
 	// statistics, and the pass over head pairs is a large share of the time):
 	// Stats.Redundancy is then NaN.
 	NoRedundancy bool
+	// NoStats leaves out the row statistics only a report of heads prints
+	// (entropy, normalised entropy, confidence, distance: heed check prints
+	// none of them): they are NaN in the result. The sums the checks and
+	// diagnoses read (row sums, zeros, sink and document-sink mass) stay.
+	NoStats bool
 	// MaxLayerBytes bounds the float32 copy of one layer's heads kept for the
 	// redundancy pass; when a layer needs more, every s-th query row is kept
 	// (s the smallest stride that fits) and the redundancy is the mean over
@@ -98,7 +103,8 @@ type reader interface {
 // NewPartial returns an empty Partial for passes made with opt.
 func NewPartial(opt Options) *Partial {
 	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow,
-		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes, NoRedundancy: opt.NoRedundancy}
+		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes, NoRedundancy: opt.NoRedundancy,
+		NoStats: opt.NoStats}
 	for _, r := range opt.Rules {
 		po.Rules = append(po.Rules, r.String())
 	}
@@ -375,6 +381,9 @@ type worker struct {
 	u     unitAcc
 	r16   []uint16 // the head's 16-bit patterns on the pattern path (rawpass.go)
 	cut   CutAcc   // the unit's rows cut off before allowed keys (cut.go)
+	runs  ruleRuns // the rule runs of every row of one batch item (rowpass.go)
+	one   ruleRuns // the rule runs of one row, with an explicit mask
+	stats bool     // compute the row statistics (not Options.NoStats)
 }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
@@ -413,6 +422,7 @@ type layerStore struct {
 	vals               []float32 // [head][row][key]
 	ent                []float64 // [head][row]
 	ok                 []bool    // [head][row]: judged and finite
+	neg                []bool    // [head][row]: holds a negative value
 	lo, hi             []int32   // [head][row]: first and last nonzero key
 }
 
@@ -444,7 +454,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	}
 	nr := (Q + stride - 1) / stride
 	st := &layerStore{stride: stride, rows: nr, keys: K,
-		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr),
+		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr), neg: make([]bool, H*nr),
 		lo: make([]int32, H*nr), hi: make([]int32, H*nr)}
 	sumTol := opt.SumTol
 	if sumTol <= 0 {
@@ -457,7 +467,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	workers := make([]*worker, nw)
 	base := blk.QueryOffset + Q - 1
 	for i := range workers {
-		w := &worker{a: make([]float32, Q*K), rr: make([]Rule, K)}
+		w := &worker{a: make([]float32, Q*K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats}
 		if cfg.grad {
 			w.g = make([]float32, Q*K)
 		}
@@ -572,13 +582,17 @@ type passConfig struct {
 	example                       string
 }
 
-func finite32(row []float32) (int, bool) {
+// finite32 returns the first non-finite key of row, or -1, true, and
+// whether the row holds a negative value.
+func finite32(row []float32) (int, bool, bool) {
+	neg := false
 	for k, x := range row {
 		if math.Float32bits(x)&0x7f800000 == 0x7f800000 {
-			return k, false
+			return k, false, false
 		}
+		neg = neg || x < 0
 	}
-	return -1, true
+	return -1, true, neg
 }
 
 // head computes everything about one (layer, batch item, head) in one pass
@@ -586,15 +600,8 @@ func finite32(row []float32) (int, bool) {
 // pass needs into st.
 func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st *layerStore, l, b, h int) error {
 	Q, K := rules.Queries, rules.Keys
-	rt, err := w.readRaw16(rd, cfg, l, b, h) // float16/bfloat16 patterns (rawpass.go)
-	if err != nil {
-		return err
-	}
-	if rt == nil {
-		if err := rd.ReadAttn(l, b, h, w.a); err != nil {
-			return err
-		}
-	}
+	// the gradient and the explicit mask first: a view of the patterns holds
+	// the file open, and no other read may wait behind a pending Close then
 	if cfg.grad {
 		if err := rd.ReadGrad(l, b, h, w.g); err != nil {
 			return err
@@ -602,6 +609,18 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	}
 	if cfg.allow {
 		if err := rd.ReadAllow(b, h, w.allow); err != nil {
+			return err
+		}
+	}
+	rt, r16, release, err := w.readRaw16(rd, cfg, l, b, h) // float16/bfloat16 patterns (rawpass.go)
+	if err != nil {
+		return err
+	}
+	if release != nil {
+		defer release()
+	}
+	if rt == nil {
+		if err := rd.ReadAttn(l, b, h, w.a); err != nil {
 			return err
 		}
 	}
@@ -628,17 +647,17 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	for q := 0; q < Q; q++ {
 		p := q + rules.QueryOffset
 		var badK int
-		var fin bool
+		var fin, negRow bool
 		if rt != nil {
-			row16 = w.r16[q*K : (q+1)*K]
-			badK, fin = finite16(row16, rt.exp)
+			row16 = r16[q*K : (q+1)*K]
+			badK, fin, negRow = finite16(row16, rt.exp)
 		} else {
 			row = w.a[q*K : (q+1)*K]
-			badK, fin = finite32(row)
+			badK, fin, negRow = finite32(row)
 		}
 		if cfg.grad {
 			grow := w.g[q*K : (q+1)*K]
-			if _, gfin := finite32(grow); fin && gfin {
+			if _, gfin, _ := finite32(grow); fin && gfin {
 				var s float64
 				for k, x := range row {
 					s += float64(x) * float64(grow[k])
@@ -672,14 +691,15 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		if cfg.allow {
 			allowRow = w.allow[q*K : (q+1)*K]
 		}
-		rules.Row(b, q, allowRow, w.rr)
-		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1}
+		cut := cfg.doCut && cutRow(rules, p)
+		ends, rrs := w.rowRuns(rules, b, q, allowRow, cut)
+		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1, negRow: negRow}
 		if rt != nil {
-			w.cells16(&ra, rt, row16, q, p, base, tol, cfg.example) // rawpass.go
+			w.cells16(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) // rawpass.go
 		} else {
-			w.cells(&ra, row, q, p, base, tol, cfg.example) // rowpass.go
+			w.cells(&ra, row, ends, rrs, q, p, base, tol, cfg.example) // rowpass.go
 		}
-		if cfg.doCut && cutRow(rules, p) {
+		if cut {
 			w.cut.row(w.rr, p, q, ra.nzHi, cfg.example)
 		}
 		s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
@@ -759,6 +779,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			}
 			st.ent[i] = ent
 			st.ok[i] = true
+			st.neg[i] = negRow
 			st.lo[i], st.hi[i] = int32(nzLo), int32(nzHi)
 		}
 	}
@@ -773,10 +794,12 @@ func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
 	acc.Rows += u.rows
 	acc.PadRows += u.padRows
 	acc.PadNaNRows += u.padNaN
-	acc.Entropy.Add(u.ent)
-	acc.EntropyNorm.Add(u.entN)
-	acc.Confidence.Add(u.conf)
-	acc.Distance.Add(u.dist)
+	if w.stats {
+		acc.Entropy.Add(u.ent)
+		acc.EntropyNorm.Add(u.entN)
+		acc.Confidence.Add(u.conf)
+		acc.Distance.Add(u.dist)
+	}
 	acc.PosRows += u.posRows
 	acc.Prev.Add(u.prev)
 	acc.SelfRows += u.selfRows
@@ -864,7 +887,11 @@ func (st *layerStore) js(i, j int) (float64, int64) {
 		var hm float64
 		if lo >= 0 {
 			pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
-			hm = mlogmSum(pa, pb) // jsrow.go
+			if st.neg[a] || st.neg[b] {
+				hm = mlogmSumSlow(pa, pb)
+			} else {
+				hm = mlogmSum(pa, pb) // jsrow.go
+			}
 		}
 		d := hm - 0.5*(st.ent[a]+st.ent[b])
 		if d < 0 {

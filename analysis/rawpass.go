@@ -22,6 +22,7 @@ import (
 // raw16Reader is implemented by *loader.Block.
 type raw16Reader interface {
 	ReadRaw16(layer, batch, head int, dst []uint16) (loader.DType, error)
+	ViewRaw16(layer, batch, head int) ([]uint16, loader.DType, func(), error)
 }
 
 // rawTables are the tables of one 16-bit dtype.
@@ -65,29 +66,42 @@ func xlTable(v *[65536]float32, exp uint16) *[65536]float64 {
 	return t
 }
 
-// finite16 is finite32 on patterns: the first non-finite key, or -1, true.
-// Four patterns at a time (the pattern path runs on little-endian hosts only): a lane whose exponent bits are all set carries
-// into its top bit when the exponent's lowest bit is added.
-func finite16(row []uint16, exp uint16) (int, bool) {
+// finite16 is finite32 on patterns: the first non-finite key, or -1, true,
+// and whether the row holds a negative nonzero value. Four patterns at a
+// time (the pattern path runs on little-endian hosts only): a lane whose
+// exponent bits are all set carries into its top bit when the exponent's
+// lowest bit is added; a lane whose magnitude is nonzero carries into its
+// top bit when 0x7fff is added to the magnitude, and it is negative when
+// its sign bit is set too.
+func finite16(row []uint16, exp uint16) (int, bool, bool) {
 	e := uint64(exp) * 0x0001000100010001
 	low := uint64(exp&-exp) * 0x0001000100010001
-	n := len(row) &^ 3
-	start := n
+	const mag, top = 0x7fff7fff7fff7fff, 0x8000800080008000
+	n := len(row) &^ 7
+	var bad, neg uint64
 	if n > 0 {
+		// eight patterns a step, the flags gathered over the row and looked
+		// at once at its end (a non-finite row is rare)
 		bs := unsafe.Slice((*byte)(unsafe.Pointer(&row[0])), 2*n)
-		for i := 0; i+8 <= len(bs); i += 8 {
-			if ((binary.LittleEndian.Uint64(bs[i:])&e)+low)&0x8000800080008000 != 0 {
-				start = i / 2
-				break
-			}
+		for i := 0; i+16 <= len(bs); i += 16 {
+			v, u := binary.LittleEndian.Uint64(bs[i:]), binary.LittleEndian.Uint64(bs[i+8:])
+			bad |= ((v & e) + low) | ((u & e) + low)
+			neg |= ((v&mag)+mag)&v | ((u&mag)+mag)&u
 		}
+	}
+	start := n
+	if bad&top != 0 {
+		start = 0
 	}
 	for k := start; k < len(row); k++ {
 		if row[k]&exp == exp {
-			return k, false
+			return k, false, false
+		}
+		if row[k]&0x7fff != 0 && row[k]&0x8000 != 0 {
+			neg = top
 		}
 	}
-	return -1, true
+	return -1, true, neg&top != 0
 }
 
 // allZero16 reports whether every pattern of xs is +0 or -0.
@@ -110,15 +124,13 @@ func allZero16(xs []uint16) bool {
 }
 
 // cells16 is cells (rowpass.go) over a row of patterns.
-func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, q, p, base int, tol float64, example string) {
-	rr := w.rr[:len(row)]
-	for a := 0; a < len(row); {
-		r := rr[a]
-		b := a + 1
-		for b < len(row) && rr[b] == r {
-			b++
-		}
+func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, ends []int32, rules []Rule, q, p, base int, tol float64, example string) {
+	a := 0
+	for i, e := range ends {
+		b, r := int(e), rules[i]
 		switch {
+		case r == RuleNone && !ra.negRow:
+			allowedFast16(ra, t, row, a, b, p, w.stats)
 		case r == RuleNone:
 			w.allowedRun16(ra, t, row, a, b, p)
 		case allZero16(row[a:b]):
@@ -131,6 +143,107 @@ func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, q, p, base int,
 		}
 		a = b
 	}
+}
+
+// allowedFast16 is allowedFast (rowpass.go) over patterns.
+func allowedFast16(ra *rowAcc, t *rawTables, row []uint16, a, b, p int, stats bool) {
+	var rs runSums
+	switch {
+	case !stats:
+		rs.sum16(t, row[a:b])
+	default:
+		if a < p {
+			rs.add16(t, row[a:min(b, p)], float64(p-a), -1)
+		}
+		if b > p {
+			a0 := max(a, p)
+			rs.add16(t, row[a0:b], float64(a0-p), 1)
+		}
+	}
+	lo, hi := -1, -1
+	for k := a; k < b; k++ {
+		if row[k]&0x7fff != 0 {
+			lo = k
+			break
+		}
+	}
+	if lo >= 0 {
+		for k := b - 1; k >= lo; k-- {
+			if row[k]&0x7fff != 0 {
+				hi = k
+				break
+			}
+		}
+	}
+	ra.addRun(&rs, float64(t.val[rs.mx16]), int64(b-a), lo, hi)
+}
+
+// add16 adds the sums of an allowed run of patterns without negative
+// values, whose keys lie at distances d, d+step, ... from the query.
+func (rs *runSums) add16(t *rawTables, run []uint16, d, step float64) {
+	val, xl := t.val, t.xl
+	var s0, s1, s2, s3, e0, e1, e2, e3, t0, t1, t2, t3 float64
+	var m0, m1, m2, m3 uint16
+	var nz int64
+	n := len(run) &^ 3
+	for i := 0; i < n; i += 4 {
+		h0, h1, h2, h3 := run[i], run[i+1], run[i+2], run[i+3]
+		x0, x1, x2, x3 := float64(val[h0]), float64(val[h1]), float64(val[h2]), float64(val[h3])
+		s0 += x0
+		s1 += x1
+		s2 += x2
+		s3 += x3
+		e0 += xl[h0]
+		e1 += xl[h1]
+		e2 += xl[h2]
+		e3 += xl[h3]
+		t0 += x0 * d
+		t1 += x1 * (d + step)
+		t2 += x2 * (d + 2*step)
+		t3 += x3 * (d + 3*step)
+		d += 4 * step
+		h0, h1, h2, h3 = h0&0x7fff, h1&0x7fff, h2&0x7fff, h3&0x7fff
+		m0, m1, m2, m3 = max(m0, h0), max(m1, h1), max(m2, h2), max(m3, h3)
+		nz += int64((uint32(h0)+0x7fff)>>15 + (uint32(h1)+0x7fff)>>15 + (uint32(h2)+0x7fff)>>15 + (uint32(h3)+0x7fff)>>15)
+	}
+	for _, h := range run[n:] {
+		x := float64(val[h])
+		s0 += x
+		e0 += xl[h]
+		t0 += x * d
+		d += step
+		h &= 0x7fff
+		m0 = max(m0, h)
+		nz += int64((uint32(h) + 0x7fff) >> 15)
+	}
+	rs.s += (s0 + s1) + (s2 + s3)
+	rs.ent += (e0 + e1) + (e2 + e3)
+	rs.dist += (t0 + t1) + (t2 + t3)
+	rs.mx16 = max(rs.mx16, m0, m1, m2, m3)
+	rs.nz += nz
+}
+
+// sum16 is add16 for the sum and the count of nonzero values only (the
+// pass without row statistics: Options.NoStats), in the same lanes.
+func (rs *runSums) sum16(t *rawTables, run []uint16) {
+	val := t.val
+	var s0, s1, s2, s3 float64
+	var nz int64
+	n := len(run) &^ 3
+	for i := 0; i < n; i += 4 {
+		h0, h1, h2, h3 := run[i], run[i+1], run[i+2], run[i+3]
+		s0 += float64(val[h0])
+		s1 += float64(val[h1])
+		s2 += float64(val[h2])
+		s3 += float64(val[h3])
+		nz += int64((uint32(h0&0x7fff)+0x7fff)>>15 + (uint32(h1&0x7fff)+0x7fff)>>15 + (uint32(h2&0x7fff)+0x7fff)>>15 + (uint32(h3&0x7fff)+0x7fff)>>15)
+	}
+	for _, h := range run[n:] {
+		s0 += float64(val[h])
+		nz += int64((uint32(h&0x7fff) + 0x7fff) >> 15)
+	}
+	rs.s += (s0 + s1) + (s2 + s3)
+	rs.nz += nz
 }
 
 // allowedRun16 is allowedRun over patterns: x == 0 is a pattern of +0 or
@@ -222,23 +335,35 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q,
 	}
 }
 
-// readRaw16 reads head (l, b, h) as patterns into w.r16 when rd can and the
-// pass needs no float32 matrix (gradients are read as float32), and returns
-// the tables to read them with; nil = use ReadAttn.
-func (w *worker) readRaw16(rd reader, cfg passConfig, l, b, h int) (*rawTables, error) {
+// readRaw16 gives head (l, b, h) as patterns when rd can and the pass needs
+// no float32 matrix (gradients are read as float32): the tables to read them
+// with, the patterns (a view of the file's bytes where the loader can give
+// one, else a copy in w.r16) and a function to call when done with them
+// (nil when there is nothing to release). nil tables = use ReadAttn.
+func (w *worker) readRaw16(rd reader, cfg passConfig, l, b, h int) (*rawTables, []uint16, func(), error) {
 	rr, ok := rd.(raw16Reader)
 	if !ok || cfg.grad || noRaw16 {
-		return nil, nil
+		return nil, nil, nil, nil
+	}
+	if !noView16 {
+		v, d, release, err := rr.ViewRaw16(l, b, h)
+		if err != nil {
+			return nil, nil, nil, err
+		}
+		if d != loader.Invalid {
+			return rawTablesFor(d), v, release, nil
+		}
 	}
 	if len(w.r16) != len(w.a) {
 		w.r16 = make([]uint16, len(w.a))
 	}
 	d, err := rr.ReadRaw16(l, b, h, w.r16)
 	if err != nil || d == loader.Invalid {
-		return nil, err
+		return nil, nil, nil, err
 	}
-	return rawTablesFor(d), nil
+	return rawTablesFor(d), w.r16, nil, nil
 }
 
-// noRaw16 turns the pattern path off (tests compare both paths).
-var noRaw16 bool
+// noRaw16 turns the pattern path off, noView16 its views of the file's
+// bytes (tests compare the paths).
+var noRaw16, noView16 bool

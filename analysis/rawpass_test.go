@@ -76,7 +76,7 @@ func randomHead16(rng *rand.Rand, S int, bf bool, data []uint16) {
 }
 
 func TestRaw16SameAsFloat32(t *testing.T) {
-	defer func() { noRaw16 = false }()
+	defer func() { noRaw16, noView16 = false, false }()
 	for _, c := range []struct {
 		dtype string
 		bf    bool
@@ -98,18 +98,23 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 		if d, err := blk.ReadRaw16(0, 0, 0, make([]uint16, S*S)); err != nil || d == loader.Invalid {
 			t.Fatalf("%s: ReadRaw16 = %v, %v: the pattern path is not taken", c.dtype, d, err)
 		}
-		for _, opt := range []Options{DefaultOptions(), {Tol: DefaultTol, RedundancyRows: -1}} {
-			var got [2]*Partial
-			for i, off := range []bool{true, false} {
-				noRaw16 = off
+		for _, opt := range []Options{DefaultOptions(), {Tol: DefaultTol, RedundancyRows: -1}, {Tol: DefaultTol, NoRedundancy: true, NoStats: true}} {
+			// the float32 path, the patterns copied, the patterns viewed in place
+			var got [3]*Partial
+			for i, mode := range [][2]bool{{true, false}, {false, true}, {false, false}} {
+				noRaw16, noView16 = mode[0], mode[1]
 				p, err := Analyze(context.Background(), ex, opt)
 				if err != nil {
 					t.Fatal(err)
 				}
 				got[i] = p
 			}
+			noView16 = false
 			if !reflect.DeepEqual(got[0], got[1]) {
-				t.Fatalf("%s S=%d: pattern path differs from the float32 path", c.dtype, S)
+				t.Fatalf("%s S=%d: pattern path (copied) differs from the float32 path", c.dtype, S)
+			}
+			if !reflect.DeepEqual(got[0], got[2]) {
+				t.Fatalf("%s S=%d: pattern path (viewed) differs from the float32 path", c.dtype, S)
 			}
 		}
 		ex.Close()

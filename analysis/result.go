@@ -132,7 +132,7 @@ func mean(s Sum, n int64) float64 {
 	return s.Float64() / float64(n)
 }
 
-func statsOf(a *HeadAcc, grad bool, self bool) Stats {
+func statsOf(a *HeadAcc, grad, self, rowStats bool) Stats {
 	s := Stats{
 		Rows: a.Rows, NaNRows: a.NaNRows, PadNaNRows: a.PadNaNRows,
 		Entropy: mean(a.Entropy, a.Rows), EntropyNorm: mean(a.EntropyNorm, a.Rows),
@@ -143,6 +143,9 @@ func statsOf(a *HeadAcc, grad bool, self bool) Stats {
 	}
 	if !self {
 		s.PrevShare, s.SelfShare = math.NaN(), math.NaN()
+	}
+	if !rowStats { // Options.NoStats
+		s.Entropy, s.EntropyNorm, s.Confidence, s.Distance = math.NaN(), math.NaN(), math.NaN(), math.NaN()
 	}
 	if grad && a.GradExamples > 0 {
 		s.Importance = a.Importance.Float64() / float64(a.GradExamples)
@@ -181,10 +184,10 @@ func (p *Partial) Result() *Result {
 				hs.Batch = make([]Stats, bp.Batch)
 				for b := 0; b < bp.Batch; b++ {
 					u := bp.Unit(l, h, b)
-					hs.Batch[b] = statsOf(u, bp.HasGrad, bp.SelfAttn)
+					hs.Batch[b] = statsOf(u, bp.HasGrad, bp.SelfAttn, !p.Options.NoStats)
 					all.Merge(u)
 				}
-				hs.Stats = statsOf(&all, bp.HasGrad, bp.SelfAttn)
+				hs.Stats = statsOf(&all, bp.HasGrad, bp.SelfAttn, !p.Options.NoStats)
 				hs.Score = hs.Confidence * hs.Redundancy / math.Ln2
 				if bp.Heads == 1 {
 					hs.Score = hs.Confidence

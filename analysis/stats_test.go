@@ -195,7 +195,7 @@ func TestJSDocExamples(t *testing.T) {
 	for _, c := range cases {
 		K := len(c.p)
 		st := &layerStore{stride: 1, rows: 1, keys: K, vals: append(append([]float32{}, c.p...), c.q...),
-			ent: []float64{entropy32(c.p), entropy32(c.q)}, ok: []bool{true, true},
+			ent: []float64{entropy32(c.p), entropy32(c.q)}, ok: []bool{true, true}, neg: []bool{false, false},
 			lo: []int32{0, 0}, hi: []int32{int32(K - 1), int32(K - 1)}}
 		got, n := st.js(0, 1)
 		if n != 1 || !near(got, c.want, 1e-12) {

@@ -2,6 +2,7 @@ package loader
 
 import (
 	"fmt"
+	"sync"
 	"unsafe"
 )
 
@@ -15,24 +16,11 @@ import (
 // F16ToF32Table()[dst[i]] (float16) or math.Float32frombits(uint32(dst[i])<<16)
 // (bfloat16) is exactly what ReadAttn gives.
 func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
-	if err := b.check(layer, batch, head, len(dst)); err != nil {
+	r, off, err := b.raw16(layer, batch, head, len(dst))
+	if r == nil || err != nil {
 		return Invalid, err
 	}
-	s := &b.attn[layer]
-	r, ok := s.flat.(*rawArray)
-	if !ok || s.transposed || r.big || !hostLittle || r.elem != 2 || (r.dtype != Float16 && r.dtype != BFloat16) {
-		return Invalid, nil
-	}
-	if s.batchAt < 0 {
-		batch = 0
-	}
-	if s.headAt < 0 {
-		head = 0
-	}
-	off, n := s.base+batch*s.batchStride+head*s.headStride, len(dst)
-	if off < 0 || off+n > prod(r.shape) {
-		return Invalid, fmt.Errorf("loader: %s: elements [%d, %d) out of range", r.label(), off, off+n)
-	}
+	n := len(dst)
 	data, err := r.bytes()
 	if err != nil {
 		return Invalid, err
@@ -44,6 +32,60 @@ func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
 	return r.dtype, nil
 }
 
+// raw16 returns the array holding (layer, batch, head) as 16-bit patterns
+// and the head's first element, nil when it is not held that way.
+func (b *Block) raw16(layer, batch, head, n int) (*rawArray, int, error) {
+	if err := b.check(layer, batch, head, n); err != nil {
+		return nil, 0, err
+	}
+	s := &b.attn[layer]
+	r, ok := s.flat.(*rawArray)
+	if !ok || s.transposed || r.big || !hostLittle || r.elem != 2 || (r.dtype != Float16 && r.dtype != BFloat16) {
+		return nil, 0, nil
+	}
+	if s.batchAt < 0 {
+		batch = 0
+	}
+	if s.headAt < 0 {
+		head = 0
+	}
+	off := s.base + batch*s.batchStride + head*s.headStride
+	if off < 0 || off+n > prod(r.shape) {
+		return nil, 0, fmt.Errorf("loader: %s: elements [%d, %d) out of range", r.label(), off, off+n)
+	}
+	return r, off, nil
+}
+
 // F16ToF32Table returns the float16 -> float32 table ReadAttn converts with
 // (index: the 16-bit pattern). The caller must not modify it.
 func F16ToF32Table() *[65536]float32 { return f16ToF32() }
+
+// ViewRaw16 is ReadRaw16 without the copy: it returns the stored patterns of
+// (layer, batch, head) as a slice of the file's mapped (or inflated) bytes,
+// and a release function the caller must call once done with them; Close
+// waits until every view is released. It returns nil, Invalid and no error
+// where ReadRaw16 would return Invalid, and where the head's bytes are not
+// 2-byte aligned (a container may place an array at an odd offset): the
+// caller then copies with ReadRaw16 or converts with ReadAttn.
+func (b *Block) ViewRaw16(layer, batch, head int) ([]uint16, DType, func(), error) {
+	n := b.Queries * b.Keys
+	r, off, err := b.raw16(layer, batch, head, n)
+	if r == nil || err != nil {
+		return nil, Invalid, nil, err
+	}
+	data, err := r.bytes()
+	if err != nil {
+		return nil, Invalid, nil, err
+	}
+	if n == 0 {
+		r.life.leave()
+		return []uint16{}, r.dtype, func() {}, nil
+	}
+	p := unsafe.Pointer(&data[2*off])
+	if uintptr(p)%2 != 0 {
+		r.life.leave()
+		return nil, Invalid, nil, nil
+	}
+	var once sync.Once
+	return unsafe.Slice((*uint16)(p), n), r.dtype, func() { once.Do(r.life.leave) }, nil
+}

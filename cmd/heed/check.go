@@ -22,7 +22,8 @@ type passFlags struct {
 	sumBelow bool
 	blocks   []string
 	shard    shardFlags // --shard, --partial (shard.go)
-	// noRedundancy: check prints no statistics, so it skips the pass over head pairs.
+	// noRedundancy: check prints no statistics, so it skips the pass over
+	// head pairs and the row statistics (analysis.Options.NoStats).
 	noRedundancy bool
 }
 
@@ -41,7 +42,7 @@ func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 func (pf *passFlags) options() (analysis.Options, error) {
 	opt := analysis.DefaultOptions()
 	opt.Tol, opt.SumTol, opt.SumBelow, opt.Blocks = pf.tol, pf.sumTol, pf.sumBelow, pf.blocks
-	opt.NoRedundancy = pf.noRedundancy
+	opt.NoRedundancy, opt.NoStats = pf.noRedundancy, pf.noRedundancy
 	if pf.tol < 0 || math.IsNaN(pf.tol) || pf.sumTol < 0 || math.IsNaN(pf.sumTol) {
 		return opt, fmt.Errorf("--tol and --sum-tol must not be negative")
 	}
