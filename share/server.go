@@ -175,7 +175,11 @@ func New(cfg Config) (*Server, error) {
 	}
 	s.appCtx, s.appCancel = context.WithCancel(context.Background())
 
+	// The host key goes in as an option: wish.NewServer writes a key of its
+	// own to ./id_ed25519, in whatever directory heed runs in, when no host
+	// key is among its options.
 	srv, err := wish.NewServer(
+		func(srv *ssh.Server) error { srv.AddHostKey(signer); return nil },
 		wish.WithAddress(cfg.Listen),
 		wish.WithVersion("heed"),
 		wish.WithIdleTimeout(cfg.IdleTimeout),
@@ -194,7 +198,6 @@ func New(cfg Config) (*Server, error) {
 	if err != nil {
 		return nil, fmt.Errorf("share: %w", err)
 	}
-	srv.AddHostKey(signer)
 	srv.HandshakeTimeout = handshakeTimeout
 	// Only interactive sessions: a "shell" request with a pty. exec and
 	// subsystem requests are refused here (and the request filter below).
@@ -269,7 +272,9 @@ func (s *Server) HostKeyCreated() bool { return s.created }
 // Sessions is the number of open sessions.
 func (s *Server) Sessions() int { return int(s.sessions.Load()) }
 
-// Start listens on Config.Listen and serves in the background.
+// Start listens on Config.Listen and serves in the background. It returns
+// once the server accepts connections, so a Shutdown right after it stops
+// the server.
 func (s *Server) Start() error {
 	ln, err := net.Listen("tcp", s.cfg.Listen)
 	if err != nil {
@@ -280,8 +285,9 @@ func (s *Server) Start() error {
 	s.mu.Unlock()
 	s.log.Info("listening", "addr", ln.Addr().String(), "host_key", s.HostKeyFingerprint(),
 		"authorized_keys", s.keysPath, "max_sessions", s.cfg.MaxSessions)
+	al := &acceptSignal{Listener: ln, ready: make(chan struct{})}
 	go func() {
-		err := s.srv.Serve(ln)
+		err := s.srv.Serve(al)
 		if errors.Is(err, ssh.ErrServerClosed) {
 			err = nil
 		}
@@ -290,7 +296,30 @@ func (s *Server) Start() error {
 		s.mu.Unlock()
 		close(s.done)
 	}()
-	return nil
+	// ssh.Server.Shutdown only closes the listeners Serve has registered, and
+	// Serve registers its listener before its first Accept: until then a
+	// Shutdown would leave the server serving.
+	select {
+	case <-al.ready:
+		return nil
+	case <-s.done:
+		if err := s.Err(); err != nil {
+			return fmt.Errorf("share: %w", err)
+		}
+		return errors.New("share: the server stopped before serving")
+	}
+}
+
+// acceptSignal closes ready when Serve first calls Accept.
+type acceptSignal struct {
+	net.Listener
+	once  sync.Once
+	ready chan struct{}
+}
+
+func (l *acceptSignal) Accept() (net.Conn, error) {
+	l.once.Do(func() { close(l.ready) })
+	return l.Listener.Accept()
 }
 
 // Addr is the address the server listens on (after Start), or nil.

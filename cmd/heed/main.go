@@ -57,14 +57,28 @@ Run "heed demo" to try it on an export embedded in the binary.`
 
 func main() {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt)
-	err := newRootCmd().ExecuteContext(ctx)
-	interrupted := ctx.Err() != nil
+	cmd, err := newRootCmd().ExecuteContextC(ctx)
+	interrupted := ctx.Err() != nil && !stoppedByInterrupt(cmd, err)
 	stop()
 	os.Exit(exitCode(err, interrupted))
 }
 
+// servesUntilInterrupted is the annotation of a command whose work is to run
+// until the operator interrupts it (heed share): for it, an interrupt is the
+// normal way to stop.
+const servesUntilInterrupted = "heed/serves-until-interrupted"
+
+// stoppedByInterrupt reports whether an interrupt ended cmd's normal work
+// rather than cutting it short: cmd serves until interrupted and returned no
+// error (it shut down cleanly). Such a run exits 0; any other interrupted
+// run exits 130.
+func stoppedByInterrupt(cmd *cobra.Command, err error) bool {
+	return err == nil && cmd != nil && cmd.Annotations[servesUntilInterrupted] == "true"
+}
+
 // exitCode maps an error to the command contract's exit codes: 0 success,
-// 1 findings, 2 bad input (any other error), 130 interrupted.
+// 1 findings, 2 bad input (any other error), 130 interrupted (but see
+// stoppedByInterrupt).
 func exitCode(err error, interrupted bool) int {
 	if interrupted {
 		if err != nil {

@@ -46,13 +46,21 @@ The terminal that runs share keeps its own TUI (the presenter's); quitting it
 ends every session and stops the server. With --follow, guests follow the
 presenter's location; a guest presses F to look around alone and F again to
 rejoin. Without a terminal, or with --headless, share serves until
-interrupted.
+interrupted (ctrl-c), then ends every session and exits 0.
+
+The host key is created on first use (ed25519, mode 0600) in
+<config dir>/heed/ssh_host_ed25519_key, or the file --host-key names, and
+reused after, so guests' known_hosts stays valid. Nothing is written in the
+current directory.
 
 Guests connect with: ssh -p 2222 localhost`,
 		Example: `  heed share run.npz --at decoder:L3:H7
   heed share run.npz --follow --authorized-keys team_keys
   heed share run.npz --headless --listen 0.0.0.0:2222 --log share.log`,
 		Args: cobra.MinimumNArgs(1),
+		// ctrl-c (SIGINT) is how a headless share is stopped: after a clean
+		// shutdown it exits 0, not 130.
+		Annotations: map[string]string{servesUntilInterrupted: "true"},
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runShare(cmd.Context(), args, lf, tf, sf)
 		},

@@ -1,6 +1,11 @@
 package main
 
 import (
+	"bufio"
+	"bytes"
+	"crypto/ed25519"
+	"crypto/rand"
+	"errors"
 	"fmt"
 	"net"
 	"os"
@@ -9,6 +14,9 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/spf13/cobra"
+	gossh "golang.org/x/crypto/ssh"
 )
 
 // TestShareJourney is the journey of issue 6 as a new user would take it,
@@ -18,7 +26,8 @@ import (
 // presenter, a wrong key is refused, and quitting the presenter's TUI ends
 // the colleague's session. HOME is a fresh directory, so the defaults
 // (~/.ssh/authorized_keys, the host key under ~/.config/heed, the log under
-// ~/.cache/heed) are a new user's.
+// ~/.cache/heed) are a new user's; the presenter's working directory stays
+// empty.
 func TestShareJourney(t *testing.T) {
 	for _, tool := range []string{"tmux", "/usr/bin/ssh", "ssh-keygen"} {
 		if _, err := exec.LookPath(tool); err != nil {
@@ -84,7 +93,11 @@ func TestShareJourney(t *testing.T) {
 	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
 	presenter := strings.Join(append(env, bin, "share", file, "--follow", "--listen", "127.0.0.1:"+port,
 		"--at", "decoder:L1:H2:q5", "--background", "dark", ";", "sleep", "600"), " ")
-	tmux("new-session", "-d", "-s", "presenter", "-x", "120", "-y", "36", "sh", "-c", presenter)
+	cwd := filepath.Join(dir, "cwd") // the presenter's working directory: heed writes nothing there
+	if err := os.Mkdir(cwd, 0o700); err != nil {
+		t.Fatal(err)
+	}
+	tmux("new-session", "-d", "-s", "presenter", "-c", cwd, "-x", "120", "-y", "36", "sh", "-c", presenter)
 	wait("presenter", "sharing on 127.0.0.1:"+port)
 
 	sshOpts := []string{"/usr/bin/ssh", "-F", "/dev/null", "-p", port, "-o", "IdentitiesOnly=yes", "-o", "IdentityAgent=none",
@@ -130,6 +143,9 @@ func TestShareJourney(t *testing.T) {
 	if err != nil || st.Mode().Perm() != 0o600 {
 		t.Errorf("host key: %v %v", st, err)
 	}
+	if ents, err := os.ReadDir(cwd); err != nil || len(ents) > 0 {
+		t.Errorf("files in the presenter's working directory: %v %v", ents, err)
+	}
 	log, err := os.ReadFile(filepath.Join(home, ".cache", "heed", "share.log"))
 	if err != nil {
 		t.Fatal(err)
@@ -157,5 +173,161 @@ func TestShareRefusesWithoutKeys(t *testing.T) {
 	// --follow needs the presenter's terminal
 	if msg, code := run(t, "share", file, "--headless", "--follow", "--authorized-keys", empty); code != 2 {
 		t.Errorf("--follow --headless: exit %d: %s", code, msg)
+	}
+}
+
+// TestShareHeadlessInterrupt runs the real binary headless, as under nohup,
+// in an empty working directory with a fresh HOME and XDG directories:
+// ctrl-c (SIGINT) stops it with exit status 0 (DESIGN.md's contract for
+// share: 0, or 2 on bad input) after its shutdown line; the host key is
+// created 0600 under $XDG_CONFIG_HOME/heed and reused by a second run; and no
+// file appears in the working directory.
+func TestShareHeadlessInterrupt(t *testing.T) {
+	dir := t.TempDir()
+	home, config, cache, cwd := filepath.Join(dir, "home"), filepath.Join(dir, "config"), filepath.Join(dir, "cache"), filepath.Join(dir, "cwd")
+	for _, d := range []string{filepath.Join(home, ".ssh"), cwd} {
+		if err := os.MkdirAll(d, 0o700); err != nil {
+			t.Fatal(err)
+		}
+	}
+	// One authorised key, in OpenSSH's format as x/crypto/ssh writes it.
+	pub, _, err := ed25519.GenerateKey(rand.Reader)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sshPub, err := gossh.NewPublicKey(pub)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(filepath.Join(home, ".ssh", "authorized_keys"), gossh.MarshalAuthorizedKey(sshPub), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	bin := filepath.Join(dir, "heed")
+	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
+	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
+	hostKey := filepath.Join(config, "heed", "ssh_host_ed25519_key")
+
+	// serve runs heed share headless until it has printed its guests: line,
+	// interrupts it and returns its stdout and exit status.
+	serve := func() (string, int) {
+		t.Helper()
+		cmd := exec.Command(bin, "share", file, "--headless", "--listen", "127.0.0.1:0")
+		cmd.Dir = cwd
+		cmd.Env = append(os.Environ(), "HOME="+home, "XDG_CONFIG_HOME="+config, "XDG_CACHE_HOME="+cache)
+		var stderr bytes.Buffer
+		cmd.Stderr = &stderr
+		pipe, err := cmd.StdoutPipe()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := cmd.Start(); err != nil {
+			t.Fatal(err)
+		}
+		var out strings.Builder
+		sc := bufio.NewScanner(pipe)
+		for sc.Scan() {
+			out.WriteString(sc.Text() + "\n")
+			if strings.Contains(sc.Text(), "guests: ssh -p") {
+				break
+			}
+		}
+		// The server listens before the intro is printed: interrupt it now.
+		if err := cmd.Process.Signal(os.Interrupt); err != nil {
+			t.Fatal(err)
+		}
+		for sc.Scan() {
+			out.WriteString(sc.Text() + "\n")
+		}
+		err = cmd.Wait()
+		var ee *exec.ExitError
+		if err != nil && !errors.As(err, &ee) {
+			t.Fatal(err)
+		}
+		if code := cmd.ProcessState.ExitCode(); code != 0 {
+			t.Logf("stderr:\n%s", stderr.String())
+		}
+		return out.String(), cmd.ProcessState.ExitCode()
+	}
+
+	out1, code := serve()
+	if code != 0 {
+		t.Errorf("interrupted headless share: exit %d, want 0; stdout:\n%s", code, out1)
+	}
+	if !strings.Contains(out1, "heed share: stopped (0 sessions were open)") {
+		t.Errorf("no shutdown line:\n%s", out1)
+	}
+	if !strings.Contains(out1, "(new, saved in "+hostKey+")") {
+		t.Errorf("first run does not say it created %s:\n%s", hostKey, out1)
+	}
+	st, err := os.Stat(hostKey)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if st.Mode().Perm() != 0o600 {
+		t.Errorf("host key mode %04o, want 0600", st.Mode().Perm())
+	}
+	// The fingerprint printed is the key in the file (x/crypto/ssh's
+	// SHA256 fingerprint, the string ssh-keygen -l prints).
+	data, err := os.ReadFile(hostKey)
+	if err != nil {
+		t.Fatal(err)
+	}
+	signer, err := gossh.ParsePrivateKey(data)
+	if err != nil {
+		t.Fatal(err)
+	}
+	fp := gossh.FingerprintSHA256(signer.PublicKey())
+	if !strings.Contains(out1, "host key "+fp) {
+		t.Errorf("stdout does not show the host key %s:\n%s", fp, out1)
+	}
+
+	// A second run reuses the key: guests' known_hosts stays valid.
+	out2, code := serve()
+	if code != 0 {
+		t.Errorf("second run: exit %d, want 0; stdout:\n%s", code, out2)
+	}
+	if !strings.Contains(out2, "host key "+fp) || strings.Contains(out2, "(new, saved in") {
+		t.Errorf("second run did not reuse the host key %s:\n%s", fp, out2)
+	}
+	ents, err := os.ReadDir(cwd)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, e := range ents {
+		t.Errorf("heed share wrote %s in the working directory", e.Name())
+	}
+}
+
+// TestShareInterruptExitCode: only a command that serves until interrupted
+// and shut down cleanly turns an interrupt into exit 0; an interrupted share
+// that failed (e.g. interrupted during its statistics pass) and any other
+// interrupted command keep 130.
+func TestShareInterruptExitCode(t *testing.T) {
+	root := newRootCmd()
+	find := func(name string) *cobra.Command {
+		c, _, err := root.Find([]string{name})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return c
+	}
+	share, check := find("share"), find("check")
+	cases := []struct {
+		cmd  *cobra.Command
+		err  error
+		want int
+	}{
+		{share, nil, 0},
+		{share, errors.New("context canceled"), 130},
+		{check, nil, 130},
+		{root, nil, 130},
+	}
+	for _, c := range cases {
+		interrupted := !stoppedByInterrupt(c.cmd, c.err)
+		if got := exitCode(c.err, interrupted); got != c.want {
+			t.Errorf("%s interrupted, err %v: exit %d, want %d", c.cmd.Name(), c.err, got, c.want)
+		}
 	}
 }
