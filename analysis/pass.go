@@ -582,6 +582,21 @@ type passConfig struct {
 	example                       string
 }
 
+// lnN returns ln n for n >= 1, from a table up to 4096 keys.
+func lnN(n int64) float64 {
+	if n < int64(len(lnTable)) {
+		return lnTable[n]
+	}
+	return math.Log(float64(n))
+}
+
+var lnTable = func() (t [4097]float64) {
+	for n := 1; n < len(t); n++ {
+		t[n] = math.Log(float64(n))
+	}
+	return
+}()
+
 // finite32 returns the first non-finite key of row, or -1, true, and
 // whether the row holds a negative value.
 func finite32(row []float32) (int, bool, bool) {
@@ -715,8 +730,8 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		if masked {
 			n = nAllow
 		}
-		if n > 1 {
-			u.entN += ent / math.Log(float64(n))
+		if n > 1 && w.stats {
+			u.entN += ent / lnN(n)
 		}
 		u.conf += mx
 		u.dist += dist

@@ -13,6 +13,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"runtime"
 	"strings"
 
 	"charm.land/bubbles/v2/help"
@@ -177,6 +178,11 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 		m.anaOpt = *opts.Analysis
 	} else {
 		m.anaOpt = analysis.DefaultOptions()
+	}
+	if m.anaOpt.Workers <= 0 {
+		// one core left to the screen, so that moving between heads stays
+		// quick while the statistics fill in
+		m.anaOpt.Workers = max(1, runtime.GOMAXPROCS(0)-1)
 	}
 	m.find = textinput.New()
 	m.find.Prompt = "find token: "
