@@ -328,6 +328,33 @@ func (r *Rules) Cell(b, h, q, k int) (Rule, error) {
 	return RuleNone, nil
 }
 
+// CellRow is Cell for every key of query row q of (batch b, head h) at
+// once: dst (length Keys) gets the rule forbidding each key, RuleNone where
+// it is allowed. Not safe for concurrent use (the explicit mask's cache).
+func (r *Rules) CellRow(b, h, q int, dst []Rule) error {
+	if q < 0 || q >= r.Queries || b < 0 || b >= r.batch || len(dst) != r.Keys {
+		return fmt.Errorf("analysis: row (batch %d, query %d) out of range", b, q)
+	}
+	var allowRow []bool
+	if r.active[RuleExplicit] {
+		r.mu.Lock()
+		defer r.mu.Unlock()
+		if r.cacheB != b || r.cacheH != h {
+			if r.cache == nil {
+				r.cache = make([]bool, r.Queries*r.Keys)
+			}
+			if err := r.allow(b, h, r.cache); err != nil {
+				r.cacheB = -1
+				return err
+			}
+			r.cacheB, r.cacheH = b, h
+		}
+		allowRow = r.cache[q*r.Keys : (q+1)*r.Keys]
+	}
+	r.Row(b, q, allowRow, dst)
+	return nil
+}
+
 // BlockRules builds the rules of blk with the sides the export gives it
 // (the usual way to call NewRules).
 func BlockRules(ex *loader.Export, blk *loader.Block, only []Rule) (*Rules, error) {

@@ -36,16 +36,19 @@ func TestRulesGeometry(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		row := make([]Rule, c.blk.Keys)
+		row, cr := make([]Rule, c.blk.Keys), make([]Rule, c.blk.Keys)
 		for q, want := range c.want {
 			r.Row(0, q, nil, row)
+			if err := r.CellRow(0, 0, q, cr); err != nil {
+				t.Fatal(err)
+			}
 			for k := range want {
 				cell, err := r.Cell(0, 0, q, k)
 				if err != nil {
 					t.Fatal(err)
 				}
-				if row[k] != want[k] || cell != want[k] {
-					t.Errorf("%s: (q %d, k %d): Row %s, Cell %s, want %s", c.name, q, k, row[k], cell, want[k])
+				if row[k] != want[k] || cell != want[k] || cr[k] != want[k] {
+					t.Errorf("%s: (q %d, k %d): Row %s, Cell %s, CellRow %s, want %s", c.name, q, k, row[k], cell, cr[k], want[k])
 				}
 			}
 		}
@@ -164,5 +167,38 @@ func TestLocationString(t *testing.T) {
 	l := Location{Block: "decoder", Layer: 3, Head: 7, Batch: 1, Query: 12}
 	if got := l.String(); got != "decoder:L3:H7:B1:q12" {
 		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12 (DESIGN.md's LOC form)", got)
+	}
+}
+
+// TestCellRowMatchesCell: CellRow gives, row by row, what Cell gives cell by
+// cell, on the PyTorch cases with an explicit mask, padding and documents.
+func TestCellRowMatchesCell(t *testing.T) {
+	for _, name := range []string{"explicit_bad.npz", "documents_bad.npz", "cross_padding_bad.npz", "shift_padded_bad.npz"} {
+		ex, err := loader.Open([]string{filepath.Join(casesDir, name)}, loader.NewOptions())
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, blk := range ex.Blocks {
+			r, err := BlockRules(ex, blk, nil)
+			if err != nil {
+				t.Fatal(err)
+			}
+			row := make([]Rule, blk.Keys)
+			for b := 0; b < blk.Batch; b++ {
+				for h := 0; h < blk.Heads; h++ {
+					for q := 0; q < blk.Queries; q++ {
+						if err := r.CellRow(b, h, q, row); err != nil {
+							t.Fatal(err)
+						}
+						for k := range row {
+							if c, err := r.Cell(b, h, q, k); err != nil || c != row[k] {
+								t.Fatalf("%s %s B%d H%d (q %d, k %d): CellRow %s, Cell %s (%v)", name, blk.Name, b, h, q, k, row[k], c, err)
+							}
+						}
+					}
+				}
+			}
+		}
+		ex.Close()
 	}
 }

@@ -11,6 +11,9 @@
 //	(b) the plain numpy script bench/reference_stats.py computing row entropy,
 //	    confidence, causal leak mass and mean distance per head;
 //	(c) heed check followed by heed rank on the same file;
+//	(d) a fresh process of this program mapping the file and looking at
+//	    every 8 bytes of it once on all cores: the floor of any pass that
+//	    reads every value through a mapping, as heed's passes do;
 //
 // and prints the medians and the ratios against the targets of the design
 // (c at least 4x faster than b, within 4x of a). Before timing it compares
@@ -73,6 +76,14 @@ type config struct {
 }
 
 func main() {
+	if len(os.Args) == 3 && os.Args[1] == "-touch" {
+		// (d): the child process that looks at every byte of the mapped file.
+		if _, err := touchFile(os.Args[2]); err != nil {
+			fmt.Fprintln(os.Stderr, "bench:", err)
+			os.Exit(2)
+		}
+		return
+	}
 	if len(os.Args) == 3 && os.Args[1] == "-read" {
 		// (a): the child process that reads the file once.
 		if _, err := readFile(os.Args[2]); err != nil {
@@ -204,6 +215,7 @@ func timing(c config, self, file string) error {
 		{"(a) read the file once (read(2), 1 MiB buffer)", [][]string{{self, "-read", file}}},
 		{"(b) numpy script bench/reference_stats.py", [][]string{{c.python, filepath.Join(c.script, "reference_stats.py"), file}}},
 		{"(c) heed check + heed rank", [][]string{{c.heed, "check", "--json", file}, {c.heed, "rank", "--json", file}}},
+		{"(d) touch every byte of the mapped file, all cores", [][]string{{self, "-touch", file}}},
 	}
 	wall := make([][]time.Duration, len(items))
 	cpu := make([][]time.Duration, len(items))
@@ -241,12 +253,20 @@ func timing(c config, self, file string) error {
 	}
 	fmt.Printf("  %-48s %9s\n", "    of which heed check", ms(median(parts[0])))
 	fmt.Printf("  %-48s %9s\n", "    of which heed rank", ms(median(parts[1])))
-	var speedup, overRead []float64
+	var speedup, overRead, touchRead, overTouch []float64
 	for r := range wall[0] {
 		speedup = append(speedup, wall[1][r].Seconds()/wall[2][r].Seconds())
 		overRead = append(overRead, wall[2][r].Seconds()/wall[0][r].Seconds())
+		touchRead = append(touchRead, wall[3][r].Seconds()/wall[0][r].Seconds())
+		overTouch = append(overTouch, wall[2][r].Seconds()/wall[3][r].Seconds())
 	}
 	s, o := medianF(speedup), medianF(overRead)
+	defer func() {
+		// (d) is the least any process spends that looks at every value once
+		// through a mapping; heed check and heed rank are two such processes.
+		fmt.Printf("  touch / read = %5.1fx   (the floor of one pass over the mapped values, against (a))\n", medianF(touchRead))
+		fmt.Printf("  heed  / touch = %4.1fx   (two passes, check and rank, against one touch)\n", medianF(overTouch))
+	}()
 	fmt.Println("ratios (median of the per-round ratios):")
 	fmt.Printf("  numpy / heed = %5.1fx   (target >= 4x: %s)\n", s, verdict(s >= 4))
 	fmt.Printf("  heed  / read = %5.1fx   (target <= 4x: %s)\n", o, verdict(o <= 4))

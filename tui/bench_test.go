@@ -57,3 +57,27 @@ func BenchmarkFirstFrame(b *testing.B) {
 		m.Close()
 	}
 }
+
+// BenchmarkHeadSwitchRead is "next head" on the Map at 200x60 of 2048 x 2048
+// heads that are not in the cache (8 heads of 16 MB cycle through a 64 MB
+// cache): reading the head, its colour scale, the rules of every row and
+// the downsampled window, drawing included.
+func BenchmarkHeadSwitchRead(b *testing.B) {
+	file := makeExportB(b, "big2048.npz", "--seq", "2048", "--layers", "1", "--heads", "8")
+	set, err := loader.OpenSet([]string{file}, loader.NewOptions())
+	if err != nil {
+		b.Fatal(err)
+	}
+	m, err := New(set, Options{At: "decoder:L0:H0:q1024", Background: "dark", Profile: colorprofile.TrueColor})
+	if err != nil {
+		b.Fatal(err)
+	}
+	b.Cleanup(func() { m.Close() })
+	m.Update(tea.WindowSizeMsg{Width: 200, Height: 60})
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		m.Update(tea.KeyPressMsg{Code: '}', Text: "}"})
+		_ = m.View()
+	}
+}

@@ -4,6 +4,7 @@ import (
 	"container/list"
 	"fmt"
 	"math"
+	"strings"
 
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
@@ -142,6 +143,31 @@ func (bi *blockInfo) ruleFunc(batch, head int) func(q, k int) string {
 			return ""
 		}
 		return rule.String()
+	}
+}
+
+// rowRuleFunc is ruleFunc for a whole row at once (views.MapData.RowRule).
+func (bi *blockInfo) rowRuleFunc(batch, head int) func(q int, dst []string) {
+	r := bi.rules
+	if r == nil || len(r.Active()) == 0 {
+		return nil
+	}
+	rr := make([]analysis.Rule, bi.blk.Keys)
+	var names [256]string // by rule, "" for RuleNone
+	for i := 1; i < len(names); i++ {
+		if names[i] = analysis.Rule(i).String(); strings.HasPrefix(names[i], "rule(") {
+			names[i] = "" // past the last rule
+			break
+		}
+	}
+	return func(q int, dst []string) {
+		if !r.Judged(batch, q) || r.CellRow(batch, head, q, rr) != nil {
+			clear(dst)
+			return
+		}
+		for k, rule := range rr {
+			dst[k] = names[rule]
+		}
 	}
 }
 

@@ -53,6 +53,9 @@ type MapData struct {
 	// Rule returns the name of the mask rule that forbids (q, k), "" when
 	// the cell is allowed; nil means every cell is allowed.
 	Rule func(q, k int) string
+	// RowRule, when set, fills dst (length K) with Rule of every key of row
+	// q at once; Downsample uses it instead of a call per cell.
+	RowRule func(q int, dst []string)
 	// QueryTokens and KeyTokens label the axes (nil: indices only).
 	QueryTokens, KeyTokens []string
 	// QueryOffset is the absolute position of query row 0.
@@ -81,14 +84,16 @@ func MatrixMax(q, k int, w []float32) (all, noSink float32) {
 	for i := 0; i < q; i++ {
 		row := w[i*k : (i+1)*k]
 		for j, v := range row {
-			if v != v || math.IsInf(float64(v), 0) {
+			// skip non-finite values (exponent bits all set) and, as
+			// all >= noSink, values that can change neither maximum
+			if math.Float32bits(v)&0x7f800000 == 0x7f800000 || v <= noSink {
 				continue
+			}
+			if j > 0 {
+				noSink = v
 			}
 			if v > all {
 				all = v
-			}
-			if j > 0 && v > noSink {
-				noSink = v
 			}
 		}
 	}
@@ -143,6 +148,10 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols)}
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
+	var rowRule []string // the rules of row q, from d.RowRule
+	if d.RowRule != nil {
+		rowRule = make([]string, d.K)
+	}
 	for pr := 0; pr < rows; pr++ {
 		clear(sum)
 		clear(cnt)
@@ -151,6 +160,9 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		qb := min(qa+block, d.Q)
 		for q := qa; q < qb; q++ {
 			row := d.Weights[q*d.K : (q+1)*d.K]
+			if rowRule != nil {
+				d.RowRule(q, rowRule)
+			}
 			for pc := 0; pc < cols; pc++ {
 				ka := k0 + pc*block
 				kb := min(ka+block, d.K)
@@ -159,23 +171,41 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 				if w != w {
 					continue
 				}
-				for k := ka; k < kb; k++ {
-					v := row[k]
-					if v != v {
-						w = v
-						break
-					}
-					if agg == AggMax {
-						if v > w {
+				cells := row[ka:kb]
+				if agg == AggMax {
+					for _, v := range cells {
+						if v > w || v != v {
 							w = v
+							if v != v {
+								break
+							}
 						}
-					} else {
-						sum[pc] += float64(v)
 					}
-					if v > d.Tol && v > p.Forbid[i] && d.Rule != nil {
-						if r := d.Rule(q, k); r != "" {
+				} else {
+					var s float64
+					for _, v := range cells {
+						if v != v {
+							w = v
+							break
+						}
+						s += float64(v)
+					}
+					sum[pc] += s
+				}
+				if rowRule != nil && w == w {
+					for j, r := range rowRule[ka:kb] {
+						if v := cells[j]; r != "" && v > d.Tol && v > p.Forbid[i] {
 							p.Forbid[i] = v
 							p.Rule[i] = r
+						}
+					}
+				} else if d.Rule != nil && w == w {
+					for j, v := range cells {
+						if v > d.Tol && v > p.Forbid[i] {
+							if r := d.Rule(q, ka+j); r != "" {
+								p.Forbid[i] = v
+								p.Rule[i] = r
+							}
 						}
 					}
 				}

@@ -1,7 +1,10 @@
 package views
 
 import (
+	"fmt"
 	"math"
+	"reflect"
+	"slices"
 	"strings"
 	"testing"
 
@@ -446,5 +449,34 @@ func BenchmarkMapDraw(b *testing.B) {
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
 		_ = Map(d, px, l, opt, st).String()
+	}
+}
+
+// Downsample reads the rules a row at a time when RowRule is set: the
+// pixels are the same as with Rule cell by cell, for max and mean, at
+// several blocks, on a map that leaks one diagonal (so forbidden cells
+// carry mass) with a NaN row.
+func TestDownsampleRowRule(t *testing.T) {
+	d := causalMap(37, 1, nil)
+	d.Weights[5*37+3] = float32(math.NaN())
+	byRow := *d
+	byRow.RowRule = func(q int, dst []string) {
+		for k := range dst {
+			dst[k] = d.Rule(q, k)
+		}
+	}
+	for _, agg := range []Agg{AggMax, AggMean} {
+		for _, block := range []int{1, 2, 5, 37} {
+			n := (37 + block - 1) / block
+			a := Downsample(d, 0, 0, n, n, block, agg)
+			b := Downsample(&byRow, 0, 0, n, n, block, agg)
+			if !reflect.DeepEqual(a.Rule, b.Rule) || !slices.Equal(a.Forbid, b.Forbid) ||
+				fmt.Sprint(a.Weight) != fmt.Sprint(b.Weight) {
+				t.Errorf("agg %v block %d: RowRule pixels differ from Rule's", agg, block)
+			}
+			if block == 1 && a.Forbid[0*37+1] == 0 {
+				t.Errorf("block 1: the leaking cell (0, 1) is not marked")
+			}
+		}
 	}
 }
