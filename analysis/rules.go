@@ -311,15 +311,8 @@ func (r *Rules) Cell(b, h, q, k int) (Rule, error) {
 	if r.active[RuleExplicit] {
 		r.mu.Lock()
 		defer r.mu.Unlock()
-		if r.cacheB != b || r.cacheH != h {
-			if r.cache == nil {
-				r.cache = make([]bool, r.Queries*r.Keys)
-			}
-			if err := r.allow(b, h, r.cache); err != nil {
-				r.cacheB = -1
-				return RuleNone, err
-			}
-			r.cacheB, r.cacheH = b, h
+		if err := r.loadAllow(b, h); err != nil {
+			return RuleNone, err
 		}
 		if !r.cache[q*r.Keys+k] {
 			return RuleExplicit, nil
@@ -339,19 +332,29 @@ func (r *Rules) CellRow(b, h, q int, dst []Rule) error {
 	if r.active[RuleExplicit] {
 		r.mu.Lock()
 		defer r.mu.Unlock()
-		if r.cacheB != b || r.cacheH != h {
-			if r.cache == nil {
-				r.cache = make([]bool, r.Queries*r.Keys)
-			}
-			if err := r.allow(b, h, r.cache); err != nil {
-				r.cacheB = -1
-				return err
-			}
-			r.cacheB, r.cacheH = b, h
+		if err := r.loadAllow(b, h); err != nil {
+			return err
 		}
 		allowRow = r.cache[q*r.Keys : (q+1)*r.Keys]
 	}
 	r.Row(b, q, allowRow, dst)
+	return nil
+}
+
+// loadAllow reads the explicit mask of (b, h) into the cache unless it is
+// there; the caller holds r.mu.
+func (r *Rules) loadAllow(b, h int) error {
+	if r.cacheB == b && r.cacheH == h {
+		return nil
+	}
+	if r.cache == nil {
+		r.cache = make([]bool, r.Queries*r.Keys)
+	}
+	if err := r.allow(b, h, r.cache); err != nil {
+		r.cacheB = -1
+		return err
+	}
+	r.cacheB, r.cacheH = b, h
 	return nil
 }
 
