@@ -44,6 +44,24 @@ const (
 // returns an error saying so (use rollout).
 const FlowLimit = 1 << 27
 
+// ErrFlowCross (test with errors.Is) is the error of the flow method asked
+// to trace through a cross block: attention flow is defined for
+// self-attention stacks. Callers say what to use instead in their own terms
+// (heed trace's --method, the Trace screen's other columns).
+var ErrFlowCross = errors.New("analysis: attention flow is defined for self-attention stacks")
+
+// FlowTooLargeError is the error of attention flow refused beyond
+// FlowLimit. As ErrFlowCross, it leaves the alternative (rollout) to the
+// caller's wording.
+type FlowTooLargeError struct {
+	Layers, Positions int
+	Work              int64 // layers * positions^3
+}
+
+func (e *FlowTooLargeError) Error() string {
+	return fmt.Sprintf("analysis: attention flow over %d layers x %d positions is too large (layers*n^3 = %d > %d)", e.Layers, e.Positions, e.Work, FlowLimit)
+}
+
 // RelevanceLimit bounds the sequence length of encoder-decoder relevance,
 // which multiplies full n x n matrices per layer.
 const RelevanceLimit = 2048
@@ -134,11 +152,11 @@ func vecMat(dst, v, m []float64, r, c int) {
 // Flow returns, for each input position j, the maximum flow from node
 // (top, q) to node (0, j) in the layered graph with edges (l+1, i) -> (l, j)
 // of capacity layers[l][i*n+j] (Abnar & Zuidema 2020's attention flow). It
-// refuses graphs beyond FlowLimit.
+// refuses graphs beyond FlowLimit with a *FlowTooLargeError.
 func Flow(ctx context.Context, layers [][]float64, n, q int) ([]float64, error) {
 	L := len(layers)
 	if w := int64(L) * int64(n) * int64(n) * int64(n); w > FlowLimit {
-		return nil, fmt.Errorf("analysis: attention flow over %d layers x %d positions is too large (layers*n^3 = %d > %d): use --method rollout", L, n, w, FlowLimit)
+		return nil, &FlowTooLargeError{Layers: L, Positions: n, Work: w}
 	}
 	g := newFlowGraph(layers, n)
 	out := make([]float64, n)
@@ -562,7 +580,7 @@ func traceSelf(ctx context.Context, blk *loader.Block, batch, q int, method Meth
 
 func traceCross(ex *loader.Export, cross *loader.Block, batch, q int, method Method) ([]float64, error) {
 	if method == MethodFlow {
-		return nil, errors.New("analysis: attention flow is defined for self-attention stacks; through cross-attention use --method rollout or grad")
+		return nil, ErrFlowCross
 	}
 	if method != MethodRollout && method != MethodGrad {
 		return nil, fmt.Errorf("analysis: unknown method %q (want rollout, flow or grad)", method)

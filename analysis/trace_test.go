@@ -2,10 +2,10 @@ package analysis
 
 import (
 	"context"
+	"errors"
 	"math"
 	"path/filepath"
 	"strconv"
-	"strings"
 	"testing"
 
 	"github.com/heed-dev/heed/loader"
@@ -105,8 +105,9 @@ func TestFlowLimit(t *testing.T) {
 	n := 600
 	layers := [][]float64{make([]float64, n*n)}
 	_, err := Flow(context.Background(), layers, n, 0)
-	if err == nil || !strings.Contains(err.Error(), "rollout") {
-		t.Fatalf("flow beyond the limit: err = %v, want a message pointing to rollout", err)
+	var big *FlowTooLargeError
+	if !errors.As(err, &big) || big.Layers != 1 || big.Positions != n || big.Work != int64(n)*int64(n)*int64(n) {
+		t.Fatalf("flow beyond the limit: err = %v, want a *FlowTooLargeError of 1 layer x %d positions", err, n)
 	}
 }
 
@@ -147,8 +148,8 @@ func TestRelevanceEncoderDecoder(t *testing.T) {
 	set, _ := loader.OpenSet([]string{path}, loader.NewOptions())
 	ex, _ := set.Open(0)
 	defer ex.Close()
-	if _, err := Trace(context.Background(), ex, TraceOptions{Method: MethodFlow, Query: 0}); err == nil {
-		t.Error("flow through cross-attention: no error")
+	if _, err := Trace(context.Background(), ex, TraceOptions{Method: MethodFlow, Query: 0}); !errors.Is(err, ErrFlowCross) {
+		t.Errorf("flow through cross-attention: err = %v, want ErrFlowCross", err)
 	}
 	if _, err := Trace(context.Background(), ex, TraceOptions{Query: 99}); err == nil {
 		t.Error("query out of range: no error")

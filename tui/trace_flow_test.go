@@ -103,7 +103,9 @@ func traceRows(frame string) []traceRow {
 // explains a target position by the source tokens through cross-attention
 // with every method: rollout and grad as percentages of their totals that
 // match numpy's Chefer et al. (2021) relevance (encDecTraceScript), flow
-// refused (it is defined for self-attention stacks). The source tokens are
+// refused (Abnar & Zuidema 2020 define it over self-attention stacks) with a
+// note that points to the screen's other columns, not to heed trace's
+// --method flag. The source tokens are
 // those of the generator's record (results.json) and of the export as numpy
 // reads it.
 func TestFlowTraceEncoderDecoder(t *testing.T) {
@@ -144,10 +146,13 @@ func TestFlowTraceEncoderDecoder(t *testing.T) {
 	})
 	for _, want := range []string{"rollout: shares are not normalised: they sum to " + strconv.FormatFloat(sum(ref.Rollout), 'g', 4, 64),
 		"grad: shares are not normalised: they sum to " + strconv.FormatFloat(sum(ref.Grad), 'g', 4, 64),
-		"flow: analysis: attention flow is defined for self-attention"} {
+		"flow: defined for self-attention stacks only; see the rollout and grad columns"} {
 		if !strings.Contains(frame, want) {
 			t.Errorf("no line %q (totals by numpy):\n%s", want, frame)
 		}
+	}
+	if strings.Contains(frame, "--method") {
+		t.Errorf("the Trace screen gives heed trace's flag as advice:\n%s", frame)
 	}
 	rows := traceRows(frame)
 	if len(rows) != len(ref.Tokens) {

@@ -3,6 +3,7 @@ package tui
 import (
 	"context"
 	"errors"
+	"fmt"
 	"math"
 	"sort"
 	"strconv"
@@ -187,6 +188,20 @@ func sortChanges(hs []views.HeadChange) {
 // traceMethods are the methods the Trace screen shows, in column order.
 var traceMethods = []analysis.Method{analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad}
 
+// traceNote words a method's error for the Trace screen, which shows every
+// method side by side: where analysis refuses attention flow (heed trace
+// suggests another --method) it points to the other columns.
+func traceNote(err error) string {
+	var big *analysis.FlowTooLargeError
+	switch {
+	case errors.Is(err, analysis.ErrFlowCross):
+		return "defined for self-attention stacks only; see the rollout and grad columns"
+	case errors.As(err, &big):
+		return fmt.Sprintf("too large here (layers*n^3 = %d > %d); see the rollout column", big.Work, analysis.FlowLimit)
+	}
+	return err.Error()
+}
+
 // runTrace explains one query position with every method, with its own export.
 func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string, hasGrad bool) tea.Cmd {
 	return func() tea.Msg {
@@ -211,7 +226,7 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 				if ctx.Err() != nil {
 					return nil
 				}
-				tm.Note = err.Error()
+				tm.Note = traceNote(err)
 				td.Methods = append(td.Methods, tm)
 				continue
 			}

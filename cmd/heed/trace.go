@@ -2,6 +2,7 @@ package main
 
 import (
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"strconv"
@@ -62,7 +63,7 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 			defer ex.Close()
 			res, err := analysis.Trace(cmd.Context(), ex, analysis.TraceOptions{Method: analysis.Method(method), Block: block, Batch: batch, Query: query})
 			if err != nil {
-				return err
+				return traceAdvice(err)
 			}
 			if asJSON {
 				enc := json.NewEncoder(cmd.OutOrStdout())
@@ -82,6 +83,19 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 	f.IntVar(&query, "query", 0, "query position to explain (row of the block)")
 	f.IntVar(&example, "example", 0, "which example when several are given")
 	return cmd
+}
+
+// traceAdvice adds to analysis's refusals of the flow method the --method
+// to use instead (the Trace screen words them for its columns).
+func traceAdvice(err error) error {
+	var big *analysis.FlowTooLargeError
+	switch {
+	case errors.Is(err, analysis.ErrFlowCross):
+		return fmt.Errorf("%w; through cross-attention use --method rollout or grad", err)
+	case errors.As(err, &big):
+		return fmt.Errorf("%w: use --method rollout", err)
+	}
+	return err
 }
 
 func writeTraceText(w io.Writer, r *analysis.TraceResult) {

@@ -1,12 +1,17 @@
 package main
 
 import (
+	"bytes"
+	"context"
 	"encoding/json"
+	"errors"
 	"math"
 	"path/filepath"
 	"strconv"
 	"strings"
 	"testing"
+
+	"github.com/heed-dev/heed/analysis"
 )
 
 // TestTraceTextUnnormalised: the demo's gradient relevance comes from the
@@ -78,5 +83,39 @@ func TestTraceTextUnnormalised(t *testing.T) {
 	out, _ = run(t, "trace", "--query", "5", filepath.Join(casesDir, "stats.npz"))
 	if !strings.Contains(strings.SplitN(out, "\n", 2)[0], "shares sum to 1") || strings.Contains(out, "%") {
 		t.Errorf("rollout on self-attention: want \"shares sum to 1\" and no percentages\n%s", out)
+	}
+}
+
+// TestTraceFlowAdvice: heed trace words analysis's refusals of attention
+// flow (defined by Abnar & Zuidema 2020 over a stack of self-attention
+// layers, so not through cross-attention; bounded by analysis.FlowLimit) with
+// the --method to use instead; analysis's own error names no flag (the Trace
+// screen words it for its columns).
+func TestTraceFlowAdvice(t *testing.T) {
+	cmd := newRootCmd()
+	var out bytes.Buffer
+	cmd.SetOut(&out)
+	cmd.SetErr(&out)
+	cmd.SetArgs([]string{"trace", "--query", "4", "--method", "flow", filepath.Join(casesDir, "encdec_grad.npz")})
+	err := cmd.ExecuteContext(context.Background())
+	const want = "analysis: attention flow is defined for self-attention stacks; through cross-attention use --method rollout or grad"
+	if !errors.Is(err, analysis.ErrFlowCross) || err.Error() != want || exitCode(err, false) != 2 {
+		t.Errorf("flow on a cross block: err %v (exit %d), want %q (exit 2)", err, exitCode(err, false), want)
+	}
+	if strings.Contains(analysis.ErrFlowCross.Error(), "--method") {
+		t.Errorf("analysis's error names a flag: %v", analysis.ErrFlowCross)
+	}
+	// 1 layer x 600 positions: 600^3 > FlowLimit = 2^27
+	n := 600
+	_, err = analysis.Flow(context.Background(), [][]float64{make([]float64, n*n)}, n, 0)
+	var big *analysis.FlowTooLargeError
+	if !errors.As(err, &big) || big.Layers != 1 || big.Positions != n || big.Work != int64(n*n*n) {
+		t.Fatalf("flow beyond the limit: err %v, want a *FlowTooLargeError of 1 layer x %d positions", err, n)
+	}
+	if strings.Contains(err.Error(), "--method") {
+		t.Errorf("analysis's error names a flag: %v", err)
+	}
+	if got := traceAdvice(err).Error(); got != err.Error()+": use --method rollout" {
+		t.Errorf("heed trace beyond the flow limit: %q", got)
 	}
 }
