@@ -10,6 +10,8 @@ import (
 	"os"
 	"os/signal"
 	"runtime/debug"
+	"sync/atomic"
+	"syscall"
 
 	"github.com/spf13/cobra"
 )
@@ -56,11 +58,27 @@ Run "heed demo" to try it on an export embedded in the binary.`
 }
 
 func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt)
+	// ctrl-c (SIGINT) and SIGTERM (what a service manager or a batch
+	// scheduler sends to stop a task) both cancel the work
+	ctx, cancel := context.WithCancel(context.Background())
+	sigs := make(chan os.Signal, 1)
+	signal.Notify(sigs, os.Interrupt, syscall.SIGTERM)
+	var got atomic.Value // the signal received
+	go func() {
+		if sig, ok := <-sigs; ok {
+			got.Store(sig)
+			cancel()
+		}
+	}()
 	cmd, err := newRootCmd().ExecuteContextC(ctx)
 	interrupted := ctx.Err() != nil && !stoppedByInterrupt(cmd, err)
-	stop()
-	os.Exit(exitCode(err, interrupted))
+	signal.Stop(sigs)
+	code := exitCode(err, interrupted)
+	if sig, _ := got.Load().(os.Signal); code == 130 && sig == syscall.SIGTERM {
+		code = 143 // 128 + SIGTERM, the shell's convention
+	}
+	cancel()
+	os.Exit(code)
 }
 
 // servesUntilInterrupted is the annotation of a command whose work is to run
@@ -77,8 +95,8 @@ func stoppedByInterrupt(cmd *cobra.Command, err error) bool {
 }
 
 // exitCode maps an error to the command contract's exit codes: 0 success,
-// 1 findings, 2 bad input (any other error), 130 interrupted (but see
-// stoppedByInterrupt).
+// 1 findings, 2 bad input (any other error), 130 interrupted (143 when by
+// SIGTERM, set by main; but see stoppedByInterrupt).
 func exitCode(err error, interrupted bool) int {
 	if interrupted {
 		if err != nil {

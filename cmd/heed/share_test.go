@@ -12,6 +12,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"testing"
 	"time"
 
@@ -210,8 +211,8 @@ func TestShareHeadlessInterrupt(t *testing.T) {
 	hostKey := filepath.Join(config, "heed", "ssh_host_ed25519_key")
 
 	// serve runs heed share headless until it has printed its guests: line,
-	// interrupts it and returns its stdout and exit status.
-	serve := func() (string, int) {
+	// stops it with sig and returns its stdout and exit status.
+	serve := func(sig os.Signal) (string, int) {
 		t.Helper()
 		cmd := exec.Command(bin, "share", file, "--headless", "--listen", "127.0.0.1:0")
 		cmd.Dir = cwd
@@ -234,7 +235,7 @@ func TestShareHeadlessInterrupt(t *testing.T) {
 			}
 		}
 		// The server listens before the intro is printed: interrupt it now.
-		if err := cmd.Process.Signal(os.Interrupt); err != nil {
+		if err := cmd.Process.Signal(sig); err != nil {
 			t.Fatal(err)
 		}
 		for sc.Scan() {
@@ -251,7 +252,7 @@ func TestShareHeadlessInterrupt(t *testing.T) {
 		return out.String(), cmd.ProcessState.ExitCode()
 	}
 
-	out1, code := serve()
+	out1, code := serve(os.Interrupt)
 	if code != 0 {
 		t.Errorf("interrupted headless share: exit %d, want 0; stdout:\n%s", code, out1)
 	}
@@ -283,10 +284,14 @@ func TestShareHeadlessInterrupt(t *testing.T) {
 		t.Errorf("stdout does not show the host key %s:\n%s", fp, out1)
 	}
 
-	// A second run reuses the key: guests' known_hosts stays valid.
-	out2, code := serve()
+	// A second run reuses the key: guests' known_hosts stays valid. It is
+	// stopped by SIGTERM, as a service manager stops it: a clean exit 0 too.
+	out2, code := serve(syscall.SIGTERM)
 	if code != 0 {
-		t.Errorf("second run: exit %d, want 0; stdout:\n%s", code, out2)
+		t.Errorf("second run stopped by SIGTERM: exit %d, want 0; stdout:\n%s", code, out2)
+	}
+	if !strings.Contains(out2, "heed share: stopped (0 sessions were open)") {
+		t.Errorf("no shutdown line after SIGTERM:\n%s", out2)
 	}
 	if !strings.Contains(out2, "host key "+fp) || strings.Contains(out2, "(new, saved in") {
 		t.Errorf("second run did not reuse the host key %s:\n%s", fp, out2)
