@@ -4,6 +4,8 @@ import (
 	"context"
 	"encoding/binary"
 	"encoding/json"
+	"fmt"
+	"math"
 	"math/rand"
 	"os"
 	"path/filepath"
@@ -17,8 +19,13 @@ import (
 // safetensors layout (its specification: u64 little-endian header size, the
 // JSON header, then the little-endian C-order data).
 func writeST16(t *testing.T, path, dtype string, shape []int, data []uint16) {
+	writeST16Kind(t, path, dtype, "causal", shape, data)
+}
+
+// writeST16Kind is writeST16 for a block of the given kind.
+func writeST16Kind(t *testing.T, path, dtype, kind string, shape []int, data []uint16) {
 	t.Helper()
-	meta := `{"format":"heed-export/1","blocks":{"decoder":{"kind":"causal","query":"target","key":"target","axes":"layer head query key"}}}`
+	meta := `{"format":"heed-export/1","blocks":{"decoder":{"kind":"` + kind + `","query":"target","key":"target","axes":"layer head query key"}}}`
 	hdr, err := json.Marshal(map[string]any{
 		"__metadata__": map[string]string{"meta": meta},
 		"decoder/attn": map[string]any{"dtype": dtype, "shape": shape, "data_offsets": []int{0, 2 * len(data)}},
@@ -118,5 +125,70 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 			}
 		}
 		ex.Close()
+	}
+}
+
+// TestBidirectionalStatsByDefinition: on a bidirectional float16 export
+// (keys on both sides of every query, so the distance sums run leftwards
+// and rightwards of it) the pass's mean entropy, confidence and distance
+// are their definitions (docs/methods.md: -sum_k A ln A with 0 ln 0 = 0;
+// max_k A; sum_k A |k - q|) computed here key by key in float64 with
+// math.Log, to 1e-12, and the float32 path gives the same bits.
+func TestBidirectionalStatsByDefinition(t *testing.T) {
+	defer func() { noRaw16 = false }()
+	rng := rand.New(rand.NewSource(11))
+	L, H, S := 1, 2, 45
+	data := make([]uint16, L*H*S*S)
+	tab := loader.F16ToF32Table()
+	for i := range data {
+		data[i] = uint16(rng.Intn(0x3c00)) // float16 in [0, 1)
+		if rng.Intn(7) == 0 {
+			data[i] = 0
+		}
+	}
+	path := filepath.Join(t.TempDir(), "bi.safetensors")
+	writeST16Kind(t, path, "F16", "bidirectional", []int{L, H, S, S}, data)
+	ex, err := loader.Open([]string{path}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	opt := DefaultOptions()
+	opt.SumBelow, opt.SumTol = true, 1e9 // rows are not normalised here
+	var res [2]*Result
+	for i, off := range []bool{false, true} {
+		noRaw16 = off
+		p, err := Analyze(context.Background(), ex, opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		res[i] = p.Result()
+	}
+	for h := 0; h < H; h++ {
+		var ent, conf, dist float64
+		for q := 0; q < S; q++ {
+			var e, mx, d float64
+			for k := 0; k < S; k++ {
+				x := float64(tab[data[(h*S+q)*S+k]])
+				if x > 0 {
+					e -= x * math.Log(x)
+				}
+				mx = math.Max(mx, x)
+				d += x * math.Abs(float64(k-q))
+			}
+			ent, conf, dist = ent+e, conf+mx, dist+d
+		}
+		got := res[0].Block("decoder").Head(0, h).Stats
+		for _, c := range []struct {
+			name      string
+			got, want float64
+		}{{"entropy", got.Entropy, ent / float64(S)}, {"confidence", got.Confidence, conf / float64(S)}, {"distance", got.Distance, dist / float64(S)}} {
+			if !near(c.got, c.want, 1e-12) {
+				t.Errorf("H%d %s = %.15g, want %.15g (by definition)", h, c.name, c.got, c.want)
+			}
+		}
+		if f32 := res[1].Block("decoder").Head(0, h).Stats; fmt.Sprintf("%v", f32) != fmt.Sprintf("%v", got) {
+			t.Errorf("H%d: float32 path %+v, pattern path %+v", h, f32, got)
+		}
 	}
 }
