@@ -4,6 +4,7 @@ import (
 	"container/list"
 	"fmt"
 	"math"
+	"slices"
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
@@ -77,6 +78,7 @@ const (
 type blockInfo struct {
 	blk             *loader.Block
 	rules           *analysis.Rules
+	runs            []*rowRuns // by batch item, without an explicit mask (rowRunsFunc)
 	rulesErr        error
 	qside, kside    *loader.Side
 	qtoks, ktoks    [][]string // per batch item, nil without tokens
@@ -146,13 +148,45 @@ func (bi *blockInfo) ruleFunc(batch, head int) func(q, k int) string {
 	}
 }
 
-// rowRuleFunc is ruleFunc for a whole row at once (views.MapData.RowRule).
-func (bi *blockInfo) rowRuleFunc(batch, head int) func(q int, dst []string) {
+// rowRuns are the rule runs of every row of one (batch item, head), in the
+// form views.MapData.RowRuns gives them.
+type rowRuns struct {
+	start []int32 // row q's runs are ends[start[q]:start[q+1]]
+	ends  []int32
+	names []string
+}
+
+// rowRunsFunc is ruleFunc for a whole row at once (views.MapData.RowRuns).
+// The runs of all rows are computed on first use; without an explicit mask
+// they are the same for every head, so they are kept per batch item.
+func (bi *blockInfo) rowRunsFunc(batch, head int) func(q int) ([]int32, []string) {
 	r := bi.rules
 	if r == nil || len(r.Active()) == 0 {
 		return nil
 	}
-	rr := make([]analysis.Rule, bi.blk.Keys)
+	explicit := slices.Contains(r.Active(), analysis.RuleExplicit)
+	var rs *rowRuns
+	if !explicit && bi.runs != nil {
+		rs = bi.runs[batch]
+	}
+	return func(q int) ([]int32, []string) {
+		if rs == nil {
+			rs = bi.makeRuns(batch, head)
+			if !explicit {
+				if bi.runs == nil {
+					bi.runs = make([]*rowRuns, bi.blk.Batch)
+				}
+				bi.runs[batch] = rs
+			}
+		}
+		return rs.ends[rs.start[q]:rs.start[q+1]], rs.names[rs.start[q]:rs.start[q+1]]
+	}
+}
+
+// makeRuns computes the rule runs of every row of (batch, head); a row that
+// is not judged, or whose rules cannot be read, is one allowed run.
+func (bi *blockInfo) makeRuns(batch, head int) *rowRuns {
+	r := bi.rules
 	var names [256]string // by rule, "" for RuleNone
 	for i := 1; i < len(names); i++ {
 		if names[i] = analysis.Rule(i).String(); strings.HasPrefix(names[i], "rule(") {
@@ -160,15 +194,24 @@ func (bi *blockInfo) rowRuleFunc(batch, head int) func(q int, dst []string) {
 			break
 		}
 	}
-	return func(q int, dst []string) {
+	K := bi.blk.Keys
+	rr := make([]analysis.Rule, K)
+	rs := &rowRuns{start: []int32{0}}
+	for q := 0; q < bi.blk.Queries; q++ {
 		if !r.Judged(batch, q) || r.CellRow(batch, head, q, rr) != nil {
-			clear(dst)
-			return
+			clear(rr)
 		}
-		for k, rule := range rr {
-			dst[k] = names[rule]
+		for a := 0; a < K; {
+			b := a + 1
+			for b < K && rr[b] == rr[a] {
+				b++
+			}
+			rs.ends, rs.names = append(rs.ends, int32(b)), append(rs.names, names[rr[a]])
+			a = b
 		}
+		rs.start = append(rs.start, int32(len(rs.ends)))
 	}
+	return rs
 }
 
 // data holds the open exports and the caches of heads and windows.

@@ -275,7 +275,7 @@ func (m *Model) mapData(memo *mapMemo) (*views.MapData, error) {
 	md.QueryTokens, md.KeyTokens = bi.tokens(m.batch)
 	md.QueryOffset = bi.blk.QueryOffset
 	md.Rule = bi.ruleFunc(m.batch, m.head)
-	md.RowRule = bi.rowRuleFunc(m.batch, m.head)
+	md.RowRuns = bi.rowRunsFunc(m.batch, m.head)
 	md.Tol = float32(m.anaOpt.Tol)
 	memo.md, memo.err = md, nil
 	return md, nil
@@ -662,7 +662,7 @@ func (s *compareScreen) Refresh() {
 			md.QueryTokens, md.KeyTokens = bi.tokens(m.batch)
 			md.QueryOffset = bi.blk.QueryOffset
 			md.Rule = bi.ruleFunc(m.batch, m.head)
-			md.RowRule = bi.rowRuleFunc(m.batch, m.head)
+			md.RowRuns = bi.rowRunsFunc(m.batch, m.head)
 			md.Tol = float32(m.anaOpt.Tol)
 			md.Measure = "|A−B|"
 			K := bi.blk.Keys

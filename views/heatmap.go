@@ -53,9 +53,11 @@ type MapData struct {
 	// Rule returns the name of the mask rule that forbids (q, k), "" when
 	// the cell is allowed; nil means every cell is allowed.
 	Rule func(q, k int) string
-	// RowRule, when set, fills dst (length K) with Rule of every key of row
-	// q at once; Downsample uses it instead of a call per cell.
-	RowRule func(q int, dst []string)
+	// RowRuns, when set, gives Rule for a whole row q at once, as runs of
+	// keys sharing a rule: keys [ends[i-1], ends[i]) (ends[-1] = 0) have
+	// rule rules[i], "" = allowed. Downsample uses it instead of a call per
+	// cell and looks only at the forbidden runs for marks.
+	RowRuns func(q int) (ends []int32, rules []string)
 	// QueryTokens and KeyTokens label the axes (nil: indices only).
 	QueryTokens, KeyTokens []string
 	// QueryOffset is the absolute position of query row 0.
@@ -148,10 +150,7 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols)}
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
-	var rowRule []string // the rules of row q, from d.RowRule
-	if d.RowRule != nil {
-		rowRule = make([]string, d.K)
-	}
+	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
 	for pr := 0; pr < rows; pr++ {
 		clear(sum)
 		clear(cnt)
@@ -160,9 +159,6 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		qb := min(qa+block, d.Q)
 		for q := qa; q < qb; q++ {
 			row := d.Weights[q*d.K : (q+1)*d.K]
-			if rowRule != nil {
-				d.RowRule(q, rowRule)
-			}
 			for pc := 0; pc < cols; pc++ {
 				ka := k0 + pc*block
 				kb := min(ka+block, d.K)
@@ -192,14 +188,7 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 					}
 					sum[pc] += s
 				}
-				if rowRule != nil && w == w {
-					for j, r := range rowRule[ka:kb] {
-						if v := cells[j]; r != "" && v > d.Tol && v > p.Forbid[i] {
-							p.Forbid[i] = v
-							p.Rule[i] = r
-						}
-					}
-				} else if d.Rule != nil && w == w {
+				if d.RowRuns == nil && d.Rule != nil && w == w {
 					for j, v := range cells {
 						if v > d.Tol && v > p.Forbid[i] {
 							if r := d.Rule(q, ka+j); r != "" {
@@ -212,6 +201,9 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 				cnt[pc] += int32(kb - ka)
 				p.Weight[i] = w
 			}
+			if d.RowRuns != nil {
+				markRuns(d, p, row, q, base, k0, kEnd, block)
+			}
 		}
 		if agg == AggMean {
 			for pc := 0; pc < cols; pc++ {
@@ -223,6 +215,30 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		}
 	}
 	return p
+}
+
+// markRuns marks the pixels of row q (pixel row starting at base) that hold
+// a forbidden cell above the tolerance, from the row's runs (MapData.RowRuns).
+func markRuns(d *MapData, p *Pixels, row []float32, q, base, k0, kEnd, block int) {
+	ends, rules := d.RowRuns(q)
+	a := 0
+	for j, e := range ends {
+		b, r := int(e), rules[j]
+		if r != "" && b > k0 && a < kEnd {
+			for k := max(a, k0); k < min(b, kEnd); k++ {
+				v := row[k]
+				if !(v > d.Tol) {
+					continue
+				}
+				i := base + (k-k0)/block
+				if v > p.Forbid[i] && p.Weight[i] == p.Weight[i] {
+					p.Forbid[i] = v
+					p.Rule[i] = r
+				}
+			}
+		}
+		a = b
+	}
 }
 
 // At returns pixel (r, c).

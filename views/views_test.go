@@ -452,7 +452,7 @@ func BenchmarkMapDraw(b *testing.B) {
 	}
 }
 
-// Downsample reads the rules a row at a time when RowRule is set: the
+// Downsample reads the rules a row at a time when RowRuns is set: the
 // pixels are the same as with Rule cell by cell, for max and mean, at
 // several blocks, on a map that leaks one diagonal (so forbidden cells
 // carry mass) with a NaN row.
@@ -460,10 +460,16 @@ func TestDownsampleRowRule(t *testing.T) {
 	d := causalMap(37, 1, nil)
 	d.Weights[5*37+3] = float32(math.NaN())
 	byRow := *d
-	byRow.RowRule = func(q int, dst []string) {
-		for k := range dst {
-			dst[k] = d.Rule(q, k)
+	byRow.RowRuns = func(q int) (ends []int32, rules []string) {
+		for k := 0; k < d.K; k++ {
+			r := d.Rule(q, k)
+			if n := len(rules); n > 0 && rules[n-1] == r {
+				ends[n-1] = int32(k + 1)
+				continue
+			}
+			ends, rules = append(ends, int32(k+1)), append(rules, r)
 		}
+		return
 	}
 	for _, agg := range []Agg{AggMax, AggMean} {
 		for _, block := range []int{1, 2, 5, 37} {
@@ -472,7 +478,7 @@ func TestDownsampleRowRule(t *testing.T) {
 			b := Downsample(&byRow, 0, 0, n, n, block, agg)
 			if !reflect.DeepEqual(a.Rule, b.Rule) || !slices.Equal(a.Forbid, b.Forbid) ||
 				fmt.Sprint(a.Weight) != fmt.Sprint(b.Weight) {
-				t.Errorf("agg %v block %d: RowRule pixels differ from Rule's", agg, block)
+				t.Errorf("agg %v block %d: RowRuns pixels differ from Rule's", agg, block)
 			}
 			if block == 1 && a.Forbid[0*37+1] == 0 {
 				t.Errorf("block 1: the leaking cell (0, 1) is not marked")
