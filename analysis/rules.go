@@ -200,6 +200,24 @@ func (r *Rules) Active() []Rule {
 // Has reports whether mask rule x applies.
 func (r *Rules) Has(x Rule) bool { return x.IsMask() && r.active[x] }
 
+// RowChecks lists the row rules the attention pass runs on the block of r
+// when no --rule selects rules, as the pass decides them: nan_rows, row_sum
+// and negative on every block (rowChecks), then cut where it reads rows
+// (cutBlock: a cross block, or the prefix rule applies).
+func (r *Rules) RowChecks() []Rule {
+	var out []Rule
+	nan, sum, neg := rowChecks(nil)
+	for _, c := range []struct {
+		on bool
+		r  Rule
+	}{{nan, RuleNaNRows}, {sum, RuleRowSum}, {neg, RuleNegative}, {cutCheck(nil) && cutBlock(r), RuleCut}} {
+		if c.on {
+			out = append(out, c.r)
+		}
+	}
+	return out
+}
+
 // SelfAttention reports whether queries and keys are positions of the same
 // sequence (so k - q offsets, positional shares and sinks are meaningful).
 func (r *Rules) SelfAttention() bool { return r.sameSide }

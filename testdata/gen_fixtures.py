@@ -397,6 +397,16 @@ def gen_hdf5(out):
 
 # ---------------------------------------------------------------- exports (heed info)
 
+# heed info's "rules" are a block's mask rules, those heed check lists as
+# "rules checked:" (analysis.NewRules): causal on a causal block, prefix with
+# it when P > 0, window when W > 0, segments for document ids on a
+# self-attention block, padding for a valid mask on the key side, explicit
+# for BLOCK/allow. Its "row_checks" are the rules judging whole rows, run on
+# every block (analysis rowChecks), then cut on a cross block and where the
+# prefix rule applies (analysis/cut.go).
+ROW_CHECKS = ["nan_rows", "row_sum", "negative"]
+
+
 def info_expect(blocks, sides):
     return {"blocks": blocks, "sides": sides}
 
@@ -412,7 +422,7 @@ def gen_exports(out):
     expects["causal.npz"] = info_expect(
         [{"name": "decoder", "kind": "causal", "dtype": "f16", "layers": 2, "batch": 2, "heads": 2, "queries": 5, "keys": 5,
           "query_offset": 0, "grad": True, "allow": False, "valid": True, "segments": False, "out": False,
-          "query_side": "target", "key_side": "target", "rules": ["causal", "padding", "nan_rows", "row_sum"]}],
+          "query_side": "target", "key_side": "target", "rules": ["causal", "padding"], "row_checks": ROW_CHECKS}],
         [{"name": "target", "len": 5, "first_tokens": ["The", " cat", " sat", " on", "<pad>"],
           "padding": int((~ex["valid/target"]).sum())}])
 
@@ -436,13 +446,13 @@ def gen_exports(out):
     expects["encdec.h5"] = info_expect(
         [{"name": "cross", "kind": "cross", "dtype": "f16", "layers": 2, "batch": 1, "heads": 2, "queries": 3, "keys": 4,
           "query_offset": 0, "grad": False, "allow": False, "valid": True, "segments": False, "out": False,
-          "query_side": "target", "key_side": "source", "rules": ["padding", "nan_rows", "row_sum", "cut"]},
+          "query_side": "target", "key_side": "source", "rules": ["padding"], "row_checks": ROW_CHECKS + ["cut"]},
          {"name": "decoder", "kind": "causal", "dtype": "f16", "layers": 2, "batch": 1, "heads": 2, "queries": 3, "keys": 3,
           "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
-          "query_side": "target", "key_side": "target", "rules": ["causal", "nan_rows", "row_sum"]},
+          "query_side": "target", "key_side": "target", "rules": ["causal"], "row_checks": ROW_CHECKS},
          {"name": "encoder", "kind": "bidirectional", "dtype": "f16", "layers": 2, "batch": 1, "heads": 2, "queries": 4,
           "keys": 4, "query_offset": 0, "grad": False, "allow": False, "valid": True, "segments": False, "out": False,
-          "query_side": "source", "key_side": "source", "rules": ["padding", "nan_rows", "row_sum"]}],
+          "query_side": "source", "key_side": "source", "rules": ["padding"], "row_checks": ROW_CHECKS}],
         [{"name": "source", "len": 4, "first_tokens": ["Der", " Käse", " ist", "<pad>"], "padding": int((~src_valid).sum())},
          {"name": "target", "len": 3, "first_tokens": ["The", " che", "ese"], "padding": 0}])
 
@@ -466,7 +476,7 @@ def gen_exports(out):
           "window": 3, "queries": 6, "keys": 6, "query_offset": 0, "grad": False, "allow": True, "valid": False,
           "segments": True, "out": True, "out_layers": 3, "positions": 6, "features": 8,
           "query_side": "target", "key_side": "target",
-          "rules": ["causal", "window", "segments", "explicit", "nan_rows", "row_sum"]}],
+          "rules": ["causal", "window", "segments", "explicit"], "row_checks": ROW_CHECKS}],
         [{"name": "target", "len": 6, "first_tokens": [], "padding": 0}])
 
     # 4. a directory of NPY files, one per layer: a KV-cache decode step (1 query over 7 keys)
@@ -482,7 +492,7 @@ def gen_exports(out):
     expects["decode_step"] = info_expect(
         [{"name": "decoder", "kind": "causal", "dtype": "f32", "layers": 3, "batch": 1, "heads": 2, "queries": 1,
           "keys": 7, "query_offset": 6, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
-          "query_side": "target", "key_side": "target", "rules": ["causal", "nan_rows", "row_sum"]}],
+          "query_side": "target", "key_side": "target", "rules": ["causal"], "row_checks": ROW_CHECKS}],
         [{"name": "target", "len": 7, "first_tokens": ["a", "b", "c", "d", "e", "f", "g"], "padding": 0}])
 
     # 5. a lone .npy without metadata: block named after the file, kind unknown
@@ -490,7 +500,7 @@ def gen_exports(out):
     expects["lone.npy"] = info_expect(
         [{"name": "lone", "kind": "unknown", "dtype": "f64", "layers": 1, "batch": 1, "heads": 3, "queries": 4, "keys": 4,
           "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
-          "query_side": "", "key_side": "", "rules": ["nan_rows", "row_sum"]}], [])
+          "query_side": "", "key_side": "", "rules": [], "row_checks": ROW_CHECKS}], [])
 
     # 6. HDF5 without meta: block settings from dataset attributes, key-major axes
     a = softmax_rows(grid((2, 3, 5, 5)), causal(5, 5)).astype("<f4")
@@ -502,7 +512,7 @@ def gen_exports(out):
     expects["attrs.h5"] = info_expect(
         [{"name": "dec", "kind": "causal", "dtype": "f32", "layers": 2, "batch": 1, "heads": 3, "queries": 5, "keys": 5,
           "prefix": 2, "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
-          "query_side": "", "key_side": "", "rules": ["causal", "prefix", "nan_rows", "row_sum", "cut"]}], [])
+          "query_side": "", "key_side": "", "rules": ["causal", "prefix"], "row_checks": ROW_CHECKS + ["cut"]}], [])
 
     # 7. zip64-forced, deflated (same export as 1)
     shutil.copy(os.path.join(out, "npz", "zip64.npz"), os.path.join(d, "causal_zip64.npz"))

@@ -190,7 +190,10 @@ func rulesLine(res *analysis.Result) string {
 			rs[i] = r.String()
 		}
 		if len(rs) == 0 {
-			rs = []string{"row checks only (kind unknown: pass --kind)"}
+			rs = []string{"row checks only"}
+			if b.Kind == string(loader.KindUnknown) {
+				rs[0] += " (kind unknown: pass --kind)"
+			}
 		}
 		parts = append(parts, b.Name+": "+strings.Join(rs, ", "))
 	}

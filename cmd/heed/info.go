@@ -22,8 +22,10 @@ func newInfoCmd() *cobra.Command {
 		Short: "Show blocks, shapes, dtypes, tokens and the rules that will apply",
 		Long: `info lists each block of the export (name, kind, dtype, layers, batch, heads,
 queries, keys), its token sides with their first tokens, which optional
-arrays are present (grad, allow, valid, segments, out) and the rules
-"heed check" will apply. Several files, a directory or @LIST open as one set
+arrays are present (grad, allow, valid, segments, out) and what "heed check"
+will run on it: the mask rules (the list of check's "rules checked:") and
+the row checks (nan_rows, row_sum, negative on every block; cut on a cross
+block and on a causal block with a prefix). Several files, a directory or @LIST open as one set
 of examples; info describes the first and checks that the others match it.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
@@ -92,7 +94,8 @@ type infoBlock struct {
 	OutLayers   int      `json:"out_layers"`
 	Positions   int      `json:"positions"`
 	Features    int      `json:"features"`
-	Rules       []string `json:"rules"`
+	Rules       []string `json:"rules"`      // mask rules, as heed check's "rules"
+	RowChecks   []string `json:"row_checks"` // row rules: nan_rows, row_sum, negative, cut where it applies
 }
 
 type infoSide struct {
@@ -127,13 +130,7 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	}
 	for _, b := range ex.Blocks {
 		qs, ks := ex.Side(b.QuerySide), ex.Side(b.KeySide)
-		rules := ex.Rules(b)
-		if cutApplies(b, qs, ks) {
-			rules = append(rules, analysis.RuleCut.String())
-		}
-		if rules == nil {
-			rules = []string{}
-		}
+		rules, rows := blockChecks(b, qs, ks)
 		r.Blocks = append(r.Blocks, infoBlock{
 			Name: b.Name, Kind: kindName(b.Kind), DType: b.DType.String(),
 			Layers: b.Layers, Batch: b.Batch, Heads: b.Heads, KVHeads: b.KVHeads,
@@ -144,7 +141,7 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 			Valid:    qs != nil && qs.Valid != nil || ks != nil && ks.Valid != nil,
 			Segments: qs != nil && qs.Segments != nil || ks != nil && ks.Segments != nil,
 			Out:      b.OutLayers > 0, OutLayers: b.OutLayers, Positions: b.Positions, Features: b.Features,
-			Rules: rules,
+			Rules: rules, RowChecks: rows,
 		})
 	}
 	for _, name := range sortedSides(ex) {
@@ -178,21 +175,28 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	return r
 }
 
-// cutApplies reports whether heed check runs the cut check (rule cut,
-// analysis/cut.go: a mask that blocks allowed keys, diagnosed cross_causal
-// or prefix_causal) on block b: every row of a cross block, and the prefix
-// rows of a causal block with a prefix P. It asks the block's mask rules as
-// check builds them (no --rule selection), so a prefix counts only where
-// the prefix rule applies.
-func cutApplies(b *loader.Block, qs, ks *loader.Side) bool {
+// blockChecks returns what heed check (no --rule) runs on block b, as
+// analysis builds it: the mask rules (NewRules; the block's entry in
+// check's "rules" and "rules checked:") and the row checks (Rules.RowChecks:
+// nan_rows, row_sum, negative, and cut, the check of a mask that blocks
+// allowed keys, on a cross block and where the prefix rule applies). A block
+// of activations only has neither.
+func blockChecks(b *loader.Block, qs, ks *loader.Side) (rules, rows []string) {
+	rules, rows = []string{}, []string{}
 	if b.Layers == 0 {
-		return false
+		return rules, rows
 	}
 	r, err := analysis.NewRules(b, qs, ks, nil)
-	if err != nil {
-		return false
+	if err != nil { // not without a --rule selection; check would fail the same way
+		return rules, rows
 	}
-	return r.Kind == loader.KindCross || r.Has(analysis.RulePrefix)
+	for _, x := range r.Active() {
+		rules = append(rules, x.String())
+	}
+	for _, x := range r.RowChecks() {
+		rows = append(rows, x.String())
+	}
+	return rules, rows
 }
 
 func sortedSides(ex *loader.Export) []string {
@@ -252,8 +256,16 @@ func (r *infoReport) writeText(w io.Writer) {
 		if b.Out {
 			fmt.Fprintf(w, "  activations %d layers x batch %d x %d positions x %d features\n", b.OutLayers, b.Batch, b.Positions, b.Features)
 		}
-		if len(b.Rules) > 0 {
-			fmt.Fprintf(w, "  rules       %s\n", strings.Join(b.Rules, ", "))
+		if b.Layers > 0 {
+			rules := strings.Join(b.Rules, ", ")
+			if len(b.Rules) == 0 {
+				rules = "none"
+				if b.Kind == kindName(loader.KindUnknown) {
+					rules += " (kind unknown: pass --kind)"
+				}
+			}
+			fmt.Fprintf(w, "  rules       %s\n", rules)
+			fmt.Fprintf(w, "  row checks  %s\n", strings.Join(b.RowChecks, ", "))
 		}
 	}
 	for _, s := range r.Sides {

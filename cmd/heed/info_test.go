@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"reflect"
 	"strings"
@@ -103,7 +104,7 @@ func TestInfoText(t *testing.T) {
 		t.Fatal(err)
 	}
 	for _, want := range []string{"block decoder  (causal, f16)", "2 layers x batch 2 x 2 heads x 5 queries x 5 keys",
-		"rules       causal, padding, nan_rows, row_sum", `"The" " cat" " sat" " on" "<pad>"`, "2 padding positions", "not verdicts"} {
+		"rules       causal, padding\n", "row checks  nan_rows, row_sum, negative\n", `"The" " cat" " sat" " on" "<pad>"`, "2 padding positions", "not verdicts"} {
 		if !strings.Contains(out, want) {
 			t.Errorf("text output lacks %q:\n%s", want, out)
 		}
@@ -123,7 +124,8 @@ func TestInfoFlags(t *testing.T) {
 		t.Fatal(err)
 	}
 	b := got.Blocks[0]
-	if b.Kind != "causal" || b.QuerySide != "target" || !reflect.DeepEqual(b.Rules, []string{"causal", "nan_rows", "row_sum"}) ||
+	if b.Kind != "causal" || b.QuerySide != "target" || !reflect.DeepEqual(b.Rules, []string{"causal"}) ||
+		!reflect.DeepEqual(b.RowChecks, []string{"nan_rows", "row_sum", "negative"}) ||
 		len(got.Sides) != 1 || !reflect.DeepEqual(got.Sides[0].FirstTokens, []string{"w", "x", "y", "z"}) {
 		t.Errorf("info = %+v", got)
 	}
@@ -154,8 +156,9 @@ func TestInfoBadInputs(t *testing.T) {
 	}
 }
 
-// infoBlockRules runs "heed info --json" and returns each block's rules.
-func infoBlockRules(t *testing.T, args ...string) map[string][]string {
+// infoBlockRules runs "heed info --json" and returns each block's mask
+// rules and row checks.
+func infoBlockRules(t *testing.T, args ...string) (rules, rows map[string][]string) {
 	t.Helper()
 	out, err, code := infoRun(t, append([]string{"--json"}, args...)...)
 	if code != 0 {
@@ -165,11 +168,11 @@ func infoBlockRules(t *testing.T, args ...string) map[string][]string {
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatalf("%v\n%s", err, out)
 	}
-	rules := map[string][]string{}
+	rules, rows = map[string][]string{}, map[string][]string{}
 	for _, b := range rep.Blocks {
-		rules[b.Name] = b.Rules
+		rules[b.Name], rows[b.Name] = b.Rules, b.RowChecks
 	}
-	return rules
+	return rules, rows
 }
 
 func hasRule(rules []string, r string) bool {
@@ -181,7 +184,7 @@ func hasRule(rules []string, r string) bool {
 	return false
 }
 
-// TestInfoCutRule: info lists rule cut where heed check reads rows for it
+// TestInfoCutRule: info lists row check cut where heed check reads rows for it
 // (docs/json.md, "Under-allowing masks"): every block of kind cross, and a
 // causal block with a prefix; not a causal block without one, nor a
 // bidirectional one, whose prefix check does not apply either. The torch
@@ -201,22 +204,22 @@ func TestInfoCutRule(t *testing.T) {
 		{"prefix_causal_bad.npz", "decoder", nil},
 	} {
 		path := filepath.Join(casesDir, c.file)
-		rules := infoBlockRules(t, path)
-		if !hasRule(rules[c.cutBlock], "cut") {
-			t.Errorf("%s: block %s rules %v, want cut", c.file, c.cutBlock, rules[c.cutBlock])
+		_, rows := infoBlockRules(t, path)
+		if !hasRule(rows[c.cutBlock], "cut") {
+			t.Errorf("%s: block %s row checks %v, want cut", c.file, c.cutBlock, rows[c.cutBlock])
 		}
 		for _, o := range c.others {
-			if r, ok := rules[o]; !ok || hasRule(r, "cut") {
-				t.Errorf("%s: block %s rules %v (present %v), want no cut", c.file, o, r, ok)
+			if r, ok := rows[o]; !ok || hasRule(r, "cut") {
+				t.Errorf("%s: block %s row checks %v (present %v), want no cut", c.file, o, r, ok)
 			}
 		}
-		if len(rules) != 1+len(c.others) {
-			t.Errorf("%s: blocks %v", c.file, rules)
+		if len(rows) != 1+len(c.others) {
+			t.Errorf("%s: blocks %v", c.file, rows)
 		}
 		out, _, _ := infoRun(t, path)
 		sec := out[strings.Index(out, "block "+c.cutBlock+" "):]
-		if line := sec[strings.Index(sec, "  rules"):]; !strings.HasSuffix(strings.SplitN(line, "\n", 2)[0], ", cut") {
-			t.Errorf("%s: text rules of block %s: %q, want cut last", c.file, c.cutBlock, strings.SplitN(line, "\n", 2)[0])
+		if line := sec[strings.Index(sec, "  row checks"):]; !strings.HasSuffix(strings.SplitN(line, "\n", 2)[0], ", cut") {
+			t.Errorf("%s: text row checks of block %s: %q, want cut last", c.file, c.cutBlock, strings.SplitN(line, "\n", 2)[0])
 		}
 		if strings.HasSuffix(c.file, "_bad.npz") {
 			// check's finding of rule cut is on the block info names
@@ -245,9 +248,105 @@ func TestInfoCutRule(t *testing.T) {
 		{[]string{"--kind", "bidirectional", "--prefix", "2"}, false},
 		{nil, false},
 	} {
-		rules := infoBlockRules(t, append(c.args, lone)...)
-		if got := hasRule(rules["lone"], "cut"); got != c.cut {
-			t.Errorf("lone.npy %v: rules %v, cut %v, want %v", c.args, rules["lone"], got, c.cut)
+		_, rows := infoBlockRules(t, append(c.args, lone)...)
+		if got := hasRule(rows["lone"], "cut"); got != c.cut {
+			t.Errorf("lone.npy %v: row checks %v, cut %v, want %v", c.args, rows["lone"], got, c.cut)
 		}
+	}
+}
+
+// TestInfoRulesAreChecks: what info says heed check will run is what check
+// runs. On every fixture export and torch case, and on a metadata-less
+// array given settings by flags, info's mask rules per block are check's
+// "rules" of that block (its "rules checked:" line); in particular a prefix
+// P on a bidirectional block, where every query sees every key anyway,
+// brings no prefix rule (analysis applies it to causal blocks only) and no
+// cut. Every block lists the row checks nan_rows, row_sum and negative, and
+// check does report a negative cell on an export where numpy wrote one.
+func TestInfoRulesAreChecks(t *testing.T) {
+	files, _ := filepath.Glob(filepath.Join(casesDir, "*.npz"))
+	exports, _ := filepath.Glob(filepath.Join(fixturesDir, "exports", "*"))
+	var runs [][]string
+	for _, f := range append(files, exports...) {
+		if strings.HasSuffix(f, ".json") || strings.HasSuffix(f, ".h5") && !loader.HDF5Supported {
+			continue
+		}
+		runs = append(runs, []string{f})
+	}
+	if len(runs) < 30 {
+		t.Fatalf("%d inputs", len(runs))
+	}
+	lone := filepath.Join(fixturesDir, "exports", "lone.npy")
+	for _, flags := range [][]string{{"--kind", "bidirectional", "--prefix", "2"}, {"--kind", "causal", "--prefix", "2"},
+		{"--kind", "causal", "--window", "2"}, {"--kind", "bidirectional", "--window", "2"}} {
+		runs = append(runs, append(flags, lone))
+	}
+	for _, args := range runs {
+		rules, rows := infoBlockRules(t, args...)
+		js, code := run(t, append([]string{"check", "--json"}, args...)...)
+		var rep struct {
+			Rules map[string][]string `json:"rules"`
+		}
+		if err := json.Unmarshal([]byte(js), &rep); err != nil || code > 1 {
+			t.Fatalf("check %v: exit %d, %v\n%s", args, code, err, js)
+		}
+		if len(rep.Rules) == 0 {
+			t.Fatalf("check %v: no rules per block\n%s", args, js)
+		}
+		for b, want := range rep.Rules {
+			got, ok := rules[b]
+			if !ok || strings.Join(got, ",") != strings.Join(want, ",") {
+				t.Errorf("%v: block %s: info lists rules %v, check checked %v", args, b, got, want)
+			}
+			if r := rows[b]; len(r) < 3 || strings.Join(r[:3], ",") != "nan_rows,row_sum,negative" {
+				t.Errorf("%v: block %s: row checks %v, want nan_rows, row_sum, negative first", args, b, r)
+			}
+		}
+	}
+	rules, rows := infoBlockRules(t, "--kind", "bidirectional", "--prefix", "2", lone)
+	if hasRule(rules["lone"], "prefix") || hasRule(rows["lone"], "cut") {
+		t.Errorf("bidirectional block with prefix 2: rules %v, row checks %v; want neither prefix nor cut", rules["lone"], rows["lone"])
+	}
+	out, _, _ := infoRun(t, "--kind", "bidirectional", "--prefix", "2", lone)
+	if !strings.Contains(out, "  rules       none\n") {
+		t.Errorf("bidirectional block with prefix 2: text lacks \"rules       none\":\n%s", out)
+	}
+
+	// numpy writes rows that sum to 1 with one negative weight (-0.25 at
+	// query 1, key 0 of head 0); check must report rule negative, which info
+	// lists for the block
+	py := heedPython()
+	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
+		t.Skipf("skipping the negative cell: %s cannot import numpy (set HEED_PYTHON)", py)
+	}
+	neg := filepath.Join(t.TempDir(), "neg.npy")
+	if b, err := exec.Command(py, "-c", `
+import sys, numpy as np
+a = np.full((2, 4, 4), 0.25)
+a[0, 1] = [-0.25, 0.75, 0.25, 0.25]
+np.save(sys.argv[1], a)
+`, neg).CombinedOutput(); err != nil {
+		t.Fatalf("numpy: %v: %s", err, b)
+	}
+	_, rows = infoBlockRules(t, "--kind", "bidirectional", neg)
+	if !hasRule(rows["neg"], "negative") {
+		t.Errorf("neg.npy: row checks %v, want negative", rows["neg"])
+	}
+	js, code := run(t, "check", "--json", "--kind", "bidirectional", neg)
+	var rep struct {
+		Findings []struct {
+			Block, Rule string
+			Cells       int
+		} `json:"findings"`
+	}
+	if err := json.Unmarshal([]byte(js), &rep); err != nil || code != 1 {
+		t.Fatalf("check neg.npy: exit %d, %v\n%s", code, err, js)
+	}
+	found := false
+	for _, f := range rep.Findings {
+		found = found || f.Block == "neg" && f.Rule == "negative" && f.Cells == 1
+	}
+	if !found {
+		t.Errorf("check neg.npy: no finding of rule negative with 1 cell on block neg\n%s", js)
 	}
 }
