@@ -1189,34 +1189,3 @@ func readTokensFile(path string) ([][]string, error) {
 	}
 	return [][]string{lines}, nil
 }
-
-// Rules returns the rules heed check applies to block b of e, in the order
-// causal, window, prefix, padding, segments, explicit, nan_rows, row_sum.
-// The positional rules follow from the block's kind and settings; padding
-// needs a valid array on the key side, segments on both sides.
-func (e *Export) Rules(b *Block) []string {
-	if b.Layers == 0 {
-		return nil
-	}
-	var r []string
-	if b.Kind == KindCausal {
-		r = append(r, "causal")
-		if b.Window > 0 {
-			r = append(r, "window")
-		}
-	}
-	if b.Prefix > 0 {
-		r = append(r, "prefix")
-	}
-	ks, qs := e.Side(b.KeySide), e.Side(b.QuerySide)
-	if ks != nil && ks.Valid != nil {
-		r = append(r, "padding")
-	}
-	if ks != nil && qs != nil && ks.Segments != nil && qs.Segments != nil {
-		r = append(r, "segments")
-	}
-	if b.HasAllow {
-		r = append(r, "explicit")
-	}
-	return append(r, "nan_rows", "row_sum")
-}
