@@ -33,7 +33,7 @@ func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 		f.StringArrayVar(&pf.rules, "rule", nil, "run only this check (repeatable): causal, window, prefix, padding, segments, explicit, nan_rows, row_sum, negative, cut (give cut with the mask rules that say what is allowed)")
 	}
 	f.Float64Var(&pf.tol, "tol", analysis.DefaultTol, "a forbidden cell holding more than this mass is a leak")
-	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 1e-5)")
+	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 and f64 1e-5)")
 	f.BoolVar(&pf.sumBelow, "sum-below", false, "rows may sum below 1 (models with learned sink logits)")
 	f.StringArrayVar(&pf.blocks, "block", nil, "only this block (repeatable)")
 	pf.shard.register(cmd)

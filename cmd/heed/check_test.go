@@ -181,3 +181,17 @@ func TestTraceJSON(t *testing.T) {
 		t.Errorf("grad without gradients: exit %d", code)
 	}
 }
+
+// A float64 export of a softmax computed in float32 (the fixture lone.npy:
+// numpy softmax rows in float32 saved with astype("<f8"), gen_fixtures.py)
+// has rows off by about 1e-8: clean under the default tolerance for f64,
+// flagged when --sum-tol asks for float64 rounding.
+func TestCheckFloat64FromFloat32(t *testing.T) {
+	lone := filepath.Join("..", "..", "testdata", "fixtures", "exports", "lone.npy")
+	if out, code := run(t, "check", "--kind", "bidirectional", lone); code != 0 {
+		t.Errorf("f64 export of f32 softmax rows: exit %d, want 0\n%s", code, out)
+	}
+	if out, code := run(t, "check", "--kind", "bidirectional", "--sum-tol", "1e-9", lone); code != 1 || !strings.Contains(out, "row_sum") {
+		t.Errorf("--sum-tol 1e-9: exit %d, want 1 with a row_sum finding\n%s", code, out)
+	}
+}
