@@ -67,3 +67,26 @@ func testNoRedundancy(t *testing.T, noStats bool) {
 		}
 	}
 }
+
+// NoStats alone leaves the redundancy out too: it is built on the row
+// entropies NoStats does not compute.
+func TestNoStatsImpliesNoRedundancy(t *testing.T) {
+	ex, err := loader.Open([]string{filepath.Join(casesDir, "stats.npz")}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	opt := DefaultOptions()
+	opt.NoStats = true
+	p, err := Analyze(context.Background(), ex, opt)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, b := range p.Result().Blocks {
+		for _, hs := range b.Stats {
+			if !math.IsNaN(hs.Redundancy) || !math.IsNaN(hs.Entropy) {
+				t.Fatalf("%s L%d H%d: redundancy %v, entropy %v with NoStats, want NaN", b.Name, hs.Layer, hs.Head, hs.Redundancy, hs.Entropy)
+			}
+		}
+	}
+}

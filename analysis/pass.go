@@ -60,6 +60,7 @@ type Options struct {
 	// (entropy, normalised entropy, confidence, distance: heed check prints
 	// none of them): they are NaN in the result. The sums the checks and
 	// diagnoses read (row sums, zeros, sink and document-sink mass) stay.
+	// It leaves the redundancy out too (it is built on the row entropies).
 	NoStats bool
 	// MaxLayerBytes bounds the float32 copy of one layer's heads kept for the
 	// redundancy pass; when a layer needs more, every s-th query row is kept
@@ -443,6 +444,9 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	maxRows := opt.RedundancyRows
 	if maxRows == 0 {
 		maxRows = DefaultRedundancyRows
+	}
+	if opt.NoStats {
+		opt.NoRedundancy = true // the redundancy needs the row entropies
 	}
 	if opt.NoRedundancy {
 		maxRows = 1 // one row kept per head, never compared
