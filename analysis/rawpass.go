@@ -317,21 +317,7 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q,
 				ra.negm -= x
 			}
 		}
-		lu.forb++
-		if x > tol {
-			lu.cells++
-			lu.mass += x
-			ra.hit[r] = true
-			if !lu.worst.Set || x > lu.worst.Value {
-				lu.worst = Cell{Set: true, Example: example, Query: q, Key: k, Value: x}
-			}
-			if hs != nil {
-				i := k - p + base
-				hs[i]++
-				w.lo[r] = min(w.lo[r], i)
-				w.hi[r] = max(w.hi[r], i)
-			}
-		}
+		w.forbidCell(ra, lu, hs, r, x, q, k, p, base, tol, example)
 	}
 }
 

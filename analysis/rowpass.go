@@ -304,6 +304,27 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 	ra.neg += neg
 }
 
+// forbidCell counts key k of query row q (position p), forbidden by rule r
+// and holding x, into the rule's leak accumulators lu and offset histogram
+// hs: a leak when x > tol. Both paths' forbidden runs call it.
+func (w *worker) forbidCell(ra *rowAcc, lu *leakUnit, hs []int64, r Rule, x float64, q, k, p, base int, tol float64, example string) {
+	lu.forb++
+	if x > tol {
+		lu.cells++
+		lu.mass += x
+		ra.hit[r] = true
+		if !lu.worst.Set || x > lu.worst.Value {
+			lu.worst = Cell{Set: true, Example: example, Query: q, Key: k, Value: x}
+		}
+		if hs != nil {
+			i := k - p + base
+			hs[i]++
+			w.lo[r] = min(w.lo[r], i)
+			w.hi[r] = max(w.hi[r], i)
+		}
+	}
+}
+
 // forbiddenRun is the loop body of a key forbidden by rule r, for keys [a, b).
 func (w *worker) forbiddenRun(ra *rowAcc, row []float32, a, b, q, p, base int, r Rule, tol float64, example string) {
 	lu := &w.u.leak[r]
@@ -332,20 +353,6 @@ func (w *worker) forbiddenRun(ra *rowAcc, row []float32, a, b, q, p, base int, r
 				ra.negm -= x
 			}
 		}
-		lu.forb++
-		if x > tol {
-			lu.cells++
-			lu.mass += x
-			ra.hit[r] = true
-			if !lu.worst.Set || x > lu.worst.Value {
-				lu.worst = Cell{Set: true, Example: example, Query: q, Key: k, Value: x}
-			}
-			if hs != nil {
-				i := k - p + base
-				hs[i]++
-				w.lo[r] = min(w.lo[r], i)
-				w.hi[r] = max(w.hi[r], i)
-			}
-		}
+		w.forbidCell(ra, lu, hs, r, x, q, k, p, base, tol, example)
 	}
 }
