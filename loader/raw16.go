@@ -60,6 +60,32 @@ func (b *Block) raw16(layer, batch, head, n int) (*rawArray, int, error) {
 // (index: the 16-bit pattern). The caller must not modify it.
 func F16ToF32Table() *[65536]float32 { return f16ToF32() }
 
+var (
+	bf16Once  sync.Once
+	bf16Table *[65536]float32
+)
+
+// RawTable returns the table of the float32 value of each pattern ReadRaw16
+// gives for dtype d (F16ToF32Table for Float16; for BFloat16 the pattern as
+// the top half of a float32, which is what ReadAttn gives), nil for other
+// dtypes. The caller must not modify it.
+func RawTable(d DType) *[65536]float32 {
+	switch d {
+	case Float16:
+		return f16ToF32()
+	case BFloat16:
+		bf16Once.Do(func() {
+			t := new([65536]float32)
+			for i := range t {
+				t[i] = bf16ToF32(uint16(i))
+			}
+			bf16Table = t
+		})
+		return bf16Table
+	}
+	return nil
+}
+
 // ViewRaw16 is ReadRaw16 without the copy: it returns the stored patterns of
 // (layer, batch, head) as a slice of the file's mapped (or inflated) bytes,
 // and a release function the caller must call once done with them; Close

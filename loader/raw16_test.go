@@ -61,3 +61,21 @@ func TestViewRaw16(t *testing.T) {
 		}
 	}
 }
+
+// RawTable gives, for every pattern, what ReadAttn converts it to: the
+// float16 table (checked against numpy in convert_test.go) and, for
+// bfloat16, bf16ToF32 (checked against PyTorch there); none for other dtypes.
+func TestRawTable(t *testing.T) {
+	if RawTable(Float16) != F16ToF32Table() {
+		t.Error("RawTable(Float16) is not the float16 table")
+	}
+	bf := RawTable(BFloat16)
+	for i := range bf {
+		if a, b := bf[i], bf16ToF32(uint16(i)); a != b && !(a != a && b != b) {
+			t.Fatalf("RawTable(BFloat16)[%#04x] = %v, want %v", i, a, b)
+		}
+	}
+	if RawTable(Float32) != nil {
+		t.Error("RawTable(Float32) is not nil")
+	}
+}

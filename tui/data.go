@@ -219,11 +219,12 @@ type data struct {
 	ex, exB *loader.Export
 	blocks  []*blockInfo
 	heads   *lru[headKey, []float32]
+	raws    *lru[headKey, rawHead]
 	pix     *lru[pixKey, *views.Pixels]
 }
 
 func newData(ex, exB *loader.Export) *data {
-	d := &data{ex: ex, exB: exB, heads: newLRU[headKey, []float32](headBudget), pix: newLRU[pixKey, *views.Pixels](pixBudget)}
+	d := &data{ex: ex, exB: exB, heads: newLRU[headKey, []float32](headBudget), raws: newLRU[headKey, rawHead](headBudget), pix: newLRU[pixKey, *views.Pixels](pixBudget)}
 	for _, b := range ex.Blocks {
 		bi := newBlockInfo(ex, b)
 		if exB != nil {
@@ -261,6 +262,54 @@ func (d *data) head(k headKey) ([]float32, error) {
 	}
 	d.heads.put(k, w, int64(len(w))*4)
 	return w, nil
+}
+
+// rawHead is a head as its stored 16-bit patterns and their float32 values.
+type rawHead struct {
+	p     []uint16
+	value *[65536]float32
+}
+
+// raw returns a head of example 0 as its stored float16/bfloat16 patterns,
+// reading them on first use (half the memory of the float32 matrix, and no
+// conversion before drawing); ok is false when the block is not stored that
+// way (the caller uses head).
+func (d *data) raw(k headKey) (rawHead, bool, error) {
+	if k.example != 0 {
+		return rawHead{}, false, nil
+	}
+	if r, ok := d.raws.get(k); ok {
+		return r, true, nil
+	}
+	blk := d.blocks[k.block].blk
+	p := make([]uint16, blk.Queries*blk.Keys)
+	dt, err := blk.ReadRaw16(k.layer, k.batch, k.head, p)
+	if err != nil {
+		return rawHead{}, false, err
+	}
+	value := loader.RawTable(dt)
+	if value == nil {
+		return rawHead{}, false, nil
+	}
+	r := rawHead{p: p, value: value}
+	d.raws.put(k, r, int64(len(p))*2)
+	return r, true, nil
+}
+
+// weight returns cell i (row-major) of a head, from its patterns when it is
+// held that way.
+func (d *data) weight(k headKey, i int) (float32, error) {
+	if r, ok, err := d.raw(k); err != nil || ok {
+		if err != nil {
+			return 0, err
+		}
+		return r.value[r.p[i]], nil
+	}
+	w, err := d.head(k)
+	if err != nil {
+		return 0, err
+	}
+	return w[i], nil
 }
 
 // diff returns |A - B| of a head.

@@ -770,8 +770,8 @@ func (m *Model) statusFields() []views.Field {
 	}
 	if m.active == ScreenMap || m.active == ScreenCompare {
 		f = append(f, views.Field{Value: "k" + itoa(m.k)})
-		if w, err := m.d.head(m.headKey(0)); err == nil {
-			f = append(f, views.Field{Name: "w", Value: views.FormatWeight(w[m.q*b.Keys+m.k])})
+		if w, err := m.d.weight(m.headKey(0), m.q*b.Keys+m.k); err == nil {
+			f = append(f, views.Field{Name: "w", Value: views.FormatWeight(w)})
 		}
 	}
 	return f

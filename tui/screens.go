@@ -265,13 +265,21 @@ func (m *Model) mapData(memo *mapMemo) (*views.MapData, error) {
 		return memo.md, memo.err
 	}
 	memo.key, memo.made = hk, true
-	w, err := m.d.head(hk)
-	if err != nil {
+	bi := m.bi()
+	var md *views.MapData
+	if r, ok, err := m.d.raw(hk); err != nil {
 		memo.md, memo.err = nil, err
 		return nil, err
+	} else if ok {
+		md = views.NewMapData16(bi.blk.Queries, bi.blk.Keys, r.p, r.value)
+	} else {
+		w, err := m.d.head(hk)
+		if err != nil {
+			memo.md, memo.err = nil, err
+			return nil, err
+		}
+		md = views.NewMapData(bi.blk.Queries, bi.blk.Keys, w)
 	}
-	bi := m.bi()
-	md := views.NewMapData(bi.blk.Queries, bi.blk.Keys, w)
 	md.QueryTokens, md.KeyTokens = bi.tokens(m.batch)
 	md.QueryOffset = bi.blk.QueryOffset
 	md.Rule = bi.ruleFunc(m.batch, m.head)

@@ -50,6 +50,11 @@ const MaxMag = 8
 type MapData struct {
 	Q, K    int
 	Weights []float32 // row-major Q x K
+	// Raw, when Weights is nil, holds the matrix as row-major 16-bit
+	// patterns (float16 or bfloat16 as stored), RawValue giving the float32
+	// of each pattern: the Map reads a head without converting it first.
+	Raw      []uint16
+	RawValue *[65536]float32
 	// Rule returns the name of the mask rule that forbids (q, k), "" when
 	// the cell is allowed; nil means every cell is allowed.
 	Rule func(q, k int) string
@@ -78,6 +83,56 @@ func NewMapData(q, k int, weights []float32) *MapData {
 	d := &MapData{Q: q, K: k, Weights: weights, Measure: "weight"}
 	d.VMax, d.VMaxNoSink = MatrixMax(q, k, weights)
 	return d
+}
+
+// NewMapData16 is NewMapData for a matrix held as 16-bit patterns (Raw).
+func NewMapData16(q, k int, raw []uint16, value *[65536]float32) *MapData {
+	d := &MapData{Q: q, K: k, Raw: raw, RawValue: value, Measure: "weight"}
+	// Positive patterns (sign bit clear) are ordered as their values, up to
+	// the first that is +Inf (then NaN): the largest finite value is the
+	// value of the largest pattern below that one.
+	lim := uint16(0x8000)
+	for i := uint16(0); i < 0x8000; i++ {
+		if v := value[i]; v != v || math.IsInf(float64(v), 1) {
+			lim = i
+			break
+		}
+	}
+	var all, noSink uint16
+	for i := 0; i < q; i++ {
+		row := raw[i*k : (i+1)*k]
+		for j, p := range row {
+			if p >= lim || p <= noSink {
+				continue
+			}
+			if j > 0 {
+				noSink = p
+			}
+			all = max(all, p)
+		}
+	}
+	d.VMax, d.VMaxNoSink = max(value[all], 0), max(value[noSink], 0)
+	return d
+}
+
+// At returns the weight of cell (q, k).
+func (d *MapData) At(q, k int) float32 {
+	if d.Weights == nil && d.Raw != nil {
+		return d.RawValue[d.Raw[q*d.K+k]]
+	}
+	return d.Weights[q*d.K+k]
+}
+
+// row returns row q of the matrix: a slice of Weights, or Raw's row
+// converted into buf (length K).
+func (d *MapData) row(q int, buf []float32) []float32 {
+	if d.Weights == nil && d.Raw != nil {
+		for k, h := range d.Raw[q*d.K : (q+1)*d.K] {
+			buf[k] = d.RawValue[h]
+		}
+		return buf
+	}
+	return d.Weights[q*d.K : (q+1)*d.K]
 }
 
 // MatrixMax returns the largest finite value of a q x k matrix, and the
@@ -151,6 +206,10 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
 	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
+	var buf []float32               // a converted row of Raw
+	if d.Weights == nil {
+		buf = make([]float32, d.K)
+	}
 	for pr := 0; pr < rows; pr++ {
 		clear(sum)
 		clear(cnt)
@@ -158,7 +217,7 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 		qa := q0 + pr*block
 		qb := min(qa+block, d.Q)
 		for q := qa; q < qb; q++ {
-			row := d.Weights[q*d.K : (q+1)*d.K]
+			row := d.row(q, buf)
 			for pc := 0; pc < cols; pc++ {
 				ka := k0 + pc*block
 				kb := min(ka+block, d.K)
@@ -702,7 +761,7 @@ func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cq, ck, cpr, cp
 	put(" → ", st.Faint)
 	put(fmt.Sprintf("k %d", ck), st.Title)
 	put(ellipsize(quoteTok(d.token(d.KeyTokens, ck)), 16), st.Text)
-	v := d.Weights[cq*d.K+ck]
+	v := d.At(cq, ck)
 	put("  "+FormatWeight(v), Style{Attr: Bold})
 	rule := d.rule(cq, ck)
 	switch {

@@ -3,6 +3,7 @@ package views
 import (
 	"fmt"
 	"math"
+	"math/rand"
 	"reflect"
 	"slices"
 	"strings"
@@ -10,6 +11,7 @@ import (
 
 	"github.com/charmbracelet/colorprofile"
 	"github.com/charmbracelet/x/exp/golden"
+	"github.com/heed-dev/heed/loader"
 )
 
 // Golden tests: go test ./views -update rewrites testdata/<TestName>/*.golden.
@@ -484,5 +486,52 @@ func TestDownsampleRowRule(t *testing.T) {
 				t.Errorf("block 1: the leaking cell (0, 1) is not marked")
 			}
 		}
+	}
+}
+
+// A head held as float16 patterns (NewMapData16) draws exactly as the same
+// head converted to float32 (NewMapData): the same colour scale, pixels and
+// Map, cursor readout included. The patterns are random float16 values in
+// [0, 1) with exact zeros, a NaN and a leak, in float16 and in bfloat16;
+// their float32 values come from the loader's tables (checked against numpy
+// and PyTorch in loader/convert_test.go).
+func TestMapData16SameAsFloat32(t *testing.T) {
+	for _, c := range []struct {
+		dt       loader.DType
+		one, nan uint16
+	}{{loader.Float16, 0x3c00, 0x7e00}, {loader.BFloat16, 0x3f80, 0x7fc0}} {
+		testMapData16(t, loader.RawTable(c.dt), c.one, c.nan)
+	}
+}
+
+func testMapData16(t *testing.T, tab *[65536]float32, one, nan uint16) {
+	n := 53
+	rng := rand.New(rand.NewSource(5))
+	raw := make([]uint16, n*n)
+	for i := range raw {
+		if i%n <= i/n+1 && rng.Intn(5) != 0 { // allowed keys, one diagonal too many
+			raw[i] = uint16(rng.Intn(int(one)))
+		}
+	}
+	raw[7*n+2] = nan
+	w := make([]float32, len(raw))
+	for i, p := range raw {
+		w[i] = tab[p]
+	}
+	a, b := NewMapData(n, n, w), NewMapData16(n, n, raw, tab)
+	a.Rule, b.Rule = causalRule, causalRule
+	if a.VMax != b.VMax || a.VMaxNoSink != b.VMaxNoSink {
+		t.Fatalf("scale: float32 %v %v, patterns %v %v", a.VMax, a.VMaxNoSink, b.VMax, b.VMaxNoSink)
+	}
+	st := NewStyles(colorprofile.TrueColor, true, Colormaps()[0])
+	for _, opt := range []MapOptions{{CursorQ: 10, CursorK: 11}, {CursorQ: 40, CursorK: 3, Zoom: 2, Agg: AggMean}} {
+		ca, _ := RenderMap(a, 120, 40, opt, st)
+		cb, _ := RenderMap(b, 120, 40, opt, st)
+		if ca.String() != cb.String() {
+			t.Errorf("zoom %d: the Map of the patterns differs from the float32 one", opt.Zoom)
+		}
+	}
+	if a.At(7, 2) == a.At(7, 2) || b.At(7, 2) == b.At(7, 2) || a.At(3, 1) != b.At(3, 1) {
+		t.Errorf("At: float32 %v %v, patterns %v %v", a.At(7, 2), a.At(3, 1), b.At(7, 2), b.At(3, 1))
 	}
 }
