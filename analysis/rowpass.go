@@ -256,14 +256,12 @@ func allZero(xs []float32) bool {
 	return true
 }
 
-// allowedRun is the loop body of an allowed key, for keys [a, b). The
-// table lookup of xlogx is written out here so that the loop makes no call
-// (a call spills the accumulators to the stack on every key).
+// allowedRun is the loop body of an allowed key, for keys [a, b), in rows
+// that hold negative values (the others take allowedFast).
 func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 	s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
 	nzLo, nzHi := ra.nzLo, ra.nzHi
 	var zeros, neg int64
-	tab := xlogxF16
 	for k := a; k < b; k++ {
 		x32 := row[k]
 		x := float64(x32)
@@ -286,12 +284,7 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 		}
 		dist += x * float64(d)
 		if x > 0 {
-			bits := math.Float32bits(x32)
-			if i := int(bits>>13) - xlogxF16Lo; bits&0x1fff == 0 && uint(i) < uint(len(tab)) {
-				ent -= tab[i]
-			} else {
-				ent -= xlogx(x32)
-			}
+			ent -= xlogx(x32)
 		} else {
 			neg++
 			negm -= x
