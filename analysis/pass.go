@@ -382,11 +382,12 @@ type worker struct {
 	lo    [numMask]int
 	hi    [numMask]int
 	u     unitAcc
-	r16   []uint16 // the head's 16-bit patterns on the pattern path (rawpass.go)
-	cut   CutAcc   // the unit's rows cut off before allowed keys (cut.go)
-	runs  ruleRuns // the rule runs of every row of one batch item (rowpass.go)
-	one   ruleRuns // the rule runs of one row, with an explicit mask
-	stats bool     // compute the row statistics (not Options.NoStats)
+	r16   []uint16  // the head's 16-bit patterns on the pattern path (rawpass.go)
+	sums  []runSums // the allowed runs' sums of one row (cells16Clean)
+	cut   CutAcc    // the unit's rows cut off before allowed keys (cut.go)
+	runs  ruleRuns  // the rule runs of every row of one batch item (rowpass.go)
+	one   ruleRuns  // the rule runs of one row, with an explicit mask
+	stats bool      // compute the row statistics (not Options.NoStats)
 }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
@@ -669,7 +670,14 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		p := q + rules.QueryOffset
 		var badK int
 		var fin, negRow bool
-		if rt != nil {
+		// a judged row of patterns is scanned for non-finite and negative
+		// values on the way (cells16Clean), and with finite16 only when it
+		// has some: until then it counts as finite and without negatives
+		clean := rt != nil && rules.Judged(b, q)
+		if clean {
+			row16 = r16[q*K : (q+1)*K]
+			badK, fin, negRow = -1, true, false
+		} else if rt != nil {
 			row16 = r16[q*K : (q+1)*K]
 			badK, fin, negRow = finite16(row16, rt.exp)
 		} else {
@@ -700,12 +708,15 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			}
 			continue
 		}
-		if !fin {
+		nanRow := func() {
 			u.nanRows++
 			c := Cell{Set: true, Example: cfg.example, Query: q, Key: badK}
 			if c.first(u.nanFirst) {
 				u.nanFirst = c
 			}
+		}
+		if !fin {
+			nanRow()
 			continue
 		}
 		var allowRow []bool
@@ -715,8 +726,17 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		cut := cfg.doCut && cutRow(rules, p)
 		ends, rrs := w.rowRuns(rules, b, q, allowRow, cut)
 		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1, negRow: negRow}
-		if rt != nil {
-			w.cells16(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) // rawpass.go
+		if rt != nil { // rawpass.go
+			if !clean || !w.cells16Clean(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) {
+				if clean {
+					if badK, fin, negRow = finite16(row16, rt.exp); !fin {
+						nanRow()
+						continue
+					}
+					ra.negRow = negRow
+				}
+				w.cells16(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example)
+			}
 		} else {
 			w.cells(&ra, row, ends, rrs, q, p, base, tol, cfg.example) // rowpass.go
 		}

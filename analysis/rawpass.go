@@ -1,8 +1,8 @@
 package analysis
 
 import (
-	"encoding/binary"
 	"math"
+	"math/bits"
 	"sync"
 	"unsafe"
 
@@ -76,18 +76,15 @@ func xlTable(v *[65536]float32, exp uint16) *[65536]float64 {
 func finite16(row []uint16, exp uint16) (int, bool, bool) {
 	e := uint64(exp) * 0x0001000100010001
 	low := uint64(exp&-exp) * 0x0001000100010001
-	const mag, top = 0x7fff7fff7fff7fff, 0x8000800080008000
+	const mag, top = lanes16Mag, lanes16Top
 	n := len(row) &^ 7
 	var bad, neg uint64
-	if n > 0 {
-		// eight patterns a step, the flags gathered over the row and looked
-		// at once at its end (a non-finite row is rare)
-		bs := unsafe.Slice((*byte)(unsafe.Pointer(&row[0])), 2*n)
-		for i := 0; i+16 <= len(bs); i += 16 {
-			v, u := binary.LittleEndian.Uint64(bs[i:]), binary.LittleEndian.Uint64(bs[i+8:])
-			bad |= ((v & e) + low) | ((u & e) + low)
-			neg |= ((v&mag)+mag)&v | ((u&mag)+mag)&u
-		}
+	// eight patterns a step, the flags gathered over the row and looked at
+	// once at its end (a non-finite row is rare)
+	for i := 0; i < n; i += 8 {
+		v, u := load4(row, i), load4(row, i+4)
+		bad |= ((v & e) + low) | ((u & e) + low)
+		neg |= ((v&mag)+mag)&v | ((u&mag)+mag)&u
 	}
 	start := n
 	if bad&top != 0 {
@@ -107,12 +104,9 @@ func finite16(row []uint16, exp uint16) (int, bool, bool) {
 // allZero16 reports whether every pattern of xs is +0 or -0.
 func allZero16(xs []uint16) bool {
 	n := len(xs) &^ 3
-	if n > 0 {
-		bs := unsafe.Slice((*byte)(unsafe.Pointer(&xs[0])), 2*n)
-		for i := 0; i+8 <= len(bs); i += 8 {
-			if binary.LittleEndian.Uint64(bs[i:])&0x7fff7fff7fff7fff != 0 {
-				return false
-			}
+	for i := 0; i < n; i += 4 {
+		if load4(xs, i)&lanes16Mag != 0 {
+			return false
 		}
 	}
 	for _, x := range xs[n:] {
@@ -145,21 +139,34 @@ func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, ends []int32, r
 	}
 }
 
-// allowedFast16 is allowedFast (rowpass.go) over patterns.
+// allowedFast16 is allowedFast (rowpass.go) over patterns: the sums of
+// keys [a, b) and its flag word (sums16), then the run added to ra
+// (finish16).
 func allowedFast16(ra *rowAcc, t *rawTables, row []uint16, a, b, p int, stats bool) {
 	var rs runSums
-	switch {
-	case !stats:
-		rs.sum16(t, row[a:b])
-	default:
-		if a < p {
-			rs.add16(t, row[a:min(b, p)], float64(p-a), -1)
-		}
-		if b > p {
-			a0 := max(a, p)
-			rs.add16(t, row[a0:b], float64(a0-p), 1)
-		}
+	sums16(&rs, t, row, a, b, p, stats)
+	finish16(ra, &rs, t, row, a, b)
+}
+
+// sums16 computes the sums of the allowed run [a, b) of row (query at
+// position p) into rs and returns its flag word (add16).
+func sums16(rs *runSums, t *rawTables, row []uint16, a, b, p int, stats bool) uint64 {
+	if !stats {
+		return rs.sum16(t, row[a:b])
 	}
+	var flags uint64
+	if a < p {
+		flags |= rs.add16(t, row[a:min(b, p)], float64(p-a), -1)
+	}
+	if b > p {
+		a0 := max(a, p)
+		flags |= rs.add16(t, row[a0:b], float64(a0-p), 1)
+	}
+	return flags
+}
+
+// finish16 adds the allowed run [a, b), whose sums are rs, to ra.
+func finish16(ra *rowAcc, rs *runSums, t *rawTables, row []uint16, a, b int) {
 	lo, hi := -1, -1
 	for k := a; k < b; k++ {
 		if row[k]&0x7fff != 0 {
@@ -175,19 +182,105 @@ func allowedFast16(ra *rowAcc, t *rawTables, row []uint16, a, b, p int, stats bo
 			}
 		}
 	}
-	ra.addRun(&rs, float64(t.val[rs.mx16]), int64(b-a), lo, hi)
+	ra.addRun(rs, float64(t.val[rs.mx16]), int64(b-a), lo, hi)
 }
 
-// add16 adds the sums of an allowed run of patterns without negative
-// values, whose keys lie at distances d, d+step, ... from the query.
-func (rs *runSums) add16(t *rawTables, run []uint16, d, step float64) {
+// cells16Clean is cells16 for a judged row that is finite and holds no
+// negative value, which it finds out on the way instead of in a scan of
+// the row before (finite16): first the sums of every allowed run with
+// their flag words (sums16) and, for each forbidden run that is not all
+// zeros, a finite16 of that run alone; nothing is added anywhere until all
+// runs are known clean. It returns false, having added nothing, when the
+// row is not: the caller then scans it with finite16 and takes cells16.
+// When it returns true, ra and w.u hold exactly what cells16 adds for a
+// row without negative values (the same sums in the same order).
+func (w *worker) cells16Clean(ra *rowAcc, t *rawTables, row []uint16, ends []int32, rules []Rule, q, p, base int, tol float64, example string) bool {
+	if cap(w.sums) < len(ends) {
+		w.sums = make([]runSums, len(ends))
+	}
+	sums := w.sums[:len(ends)]
+	var flags uint64
+	a := 0
+	for i, e := range ends {
+		b := int(e)
+		sums[i] = runSums{}
+		switch {
+		case rules[i] == RuleNone:
+			flags |= sums16(&sums[i], t, row, a, b, p, w.stats)
+		case allZero16(row[a:b]):
+		default:
+			sums[i].nz = -1 // a forbidden run with mass: forbiddenRun16 below
+			if _, fin, neg := finite16(row[a:b], t.exp); !fin || neg {
+				return false
+			}
+		}
+		a = b
+	}
+	if flags&lanes16Top != 0 {
+		return false
+	}
+	a = 0
+	for i, e := range ends {
+		b, r := int(e), rules[i]
+		switch {
+		case r == RuleNone:
+			finish16(ra, &sums[i], t, row, a, b)
+		case sums[i].nz == 0:
+			w.u.leak[r].forb += int64(b - a)
+			if x := float64(t.val[row[a]]); x > ra.mx {
+				ra.mx = x
+			}
+		default:
+			w.forbiddenRun16(ra, t, row, a, b, q, p, base, r, tol, example)
+		}
+		a = b
+	}
+	return true
+}
+
+// Lane constants of the four-patterns-at-a-time tests (finite16, add16,
+// sum16): a lane's magnitude bits and its top (sign) bit.
+const (
+	lanes16Mag = 0x7fff7fff7fff7fff
+	lanes16Top = 0x8000800080008000
+)
+
+// load4 returns run[i], run[i+1], run[i+2], run[i+3] as one little-endian
+// word, run[i] in its low 16 bits (the pattern path runs on little-endian
+// hosts only; x86-64 and arm64 load unaligned words).
+func load4(run []uint16, i int) uint64 {
+	_ = run[i+3]
+	return *(*uint64)(unsafe.Pointer(&run[i]))
+}
+
+// bad4 is the flag word of four patterns in v: a lane's top bit is set
+// when its exponent bits are all set (Inf or NaN: adding the exponent's
+// lowest bit to them carries into the top bit) or when it is negative and
+// nonzero (its magnitude plus 0x7fff carries into the top bit, and its sign
+// bit is set). e and low are exp and exp's lowest bit in every lane.
+func bad4(v, e, low uint64) uint64 {
+	return ((v & e) + low) | (((v & lanes16Mag) + lanes16Mag) & v)
+}
+
+// add16 adds the sums of an allowed run of patterns, whose keys lie at
+// distances d, d+step, ... from the query, and returns the run's flag word
+// (bad4 over it): when its lanes' top bits are clear the run is finite and
+// holds no negative value, and the sums are the row's; otherwise the caller
+// throws them away and takes the path of rows with such values. The sums
+// are those of allowedRun16 for a run without negative values, in four
+// lanes (keys i mod 4) in the order of add32, to the bit.
+func (rs *runSums) add16(t *rawTables, run []uint16, d, step float64) uint64 {
 	val, xl := t.val, t.xl
+	e := uint64(t.exp) * 0x0001000100010001
+	low := uint64(t.exp&-t.exp) * 0x0001000100010001
 	var s0, s1, s2, s3, e0, e1, e2, e3, t0, t1, t2, t3 float64
 	var m0, m1, m2, m3 uint16
-	var nz int64
+	var nz int
+	var flags uint64
 	n := len(run) &^ 3
 	for i := 0; i < n; i += 4 {
-		h0, h1, h2, h3 := run[i], run[i+1], run[i+2], run[i+3]
+		v := load4(run, i)
+		h0, h1, h2, h3 := uint16(v), uint16(v>>16), uint16(v>>32), uint16(v>>48)
 		x0, x1, x2, x3 := float64(val[h0]), float64(val[h1]), float64(val[h2]), float64(val[h3])
 		s0 += x0
 		s1 += x1
@@ -202,9 +295,10 @@ func (rs *runSums) add16(t *rawTables, run []uint16, d, step float64) {
 		t2 += x2 * (d + 2*step)
 		t3 += x3 * (d + 3*step)
 		d += 4 * step
-		h0, h1, h2, h3 = h0&0x7fff, h1&0x7fff, h2&0x7fff, h3&0x7fff
-		m0, m1, m2, m3 = max(m0, h0), max(m1, h1), max(m2, h2), max(m3, h3)
-		nz += int64((uint32(h0)+0x7fff)>>15 + (uint32(h1)+0x7fff)>>15 + (uint32(h2)+0x7fff)>>15 + (uint32(h3)+0x7fff)>>15)
+		flags |= bad4(v, e, low)
+		m := v & lanes16Mag
+		nz += bits.OnesCount64((m + lanes16Mag) & lanes16Top)
+		m0, m1, m2, m3 = max(m0, uint16(m)), max(m1, uint16(m>>16)), max(m2, uint16(m>>32)), max(m3, uint16(m>>48))
 	}
 	for _, h := range run[n:] {
 		x := float64(val[h])
@@ -212,38 +306,47 @@ func (rs *runSums) add16(t *rawTables, run []uint16, d, step float64) {
 		e0 += xl[h]
 		t0 += x * d
 		d += step
+		flags |= bad4(uint64(h), e, low)
 		h &= 0x7fff
 		m0 = max(m0, h)
-		nz += int64((uint32(h) + 0x7fff) >> 15)
+		nz += int((uint32(h) + 0x7fff) >> 15)
 	}
 	rs.s += (s0 + s1) + (s2 + s3)
 	rs.ent += (e0 + e1) + (e2 + e3)
 	rs.dist += (t0 + t1) + (t2 + t3)
 	rs.mx16 = max(rs.mx16, m0, m1, m2, m3)
-	rs.nz += nz
+	rs.nz += int64(nz)
+	return flags
 }
 
 // sum16 is add16 for the sum and the count of nonzero values only (the
-// pass without row statistics: Options.NoStats), in the same lanes.
-func (rs *runSums) sum16(t *rawTables, run []uint16) {
+// pass without row statistics: Options.NoStats), in the same lanes; it
+// returns the run's flag word as add16 does.
+func (rs *runSums) sum16(t *rawTables, run []uint16) uint64 {
 	val := t.val
+	e := uint64(t.exp) * 0x0001000100010001
+	low := uint64(t.exp&-t.exp) * 0x0001000100010001
 	var s0, s1, s2, s3 float64
-	var nz int64
+	var nz int
+	var flags uint64
 	n := len(run) &^ 3
 	for i := 0; i < n; i += 4 {
-		h0, h1, h2, h3 := run[i], run[i+1], run[i+2], run[i+3]
-		s0 += float64(val[h0])
-		s1 += float64(val[h1])
-		s2 += float64(val[h2])
-		s3 += float64(val[h3])
-		nz += int64((uint32(h0&0x7fff)+0x7fff)>>15 + (uint32(h1&0x7fff)+0x7fff)>>15 + (uint32(h2&0x7fff)+0x7fff)>>15 + (uint32(h3&0x7fff)+0x7fff)>>15)
+		v := load4(run, i)
+		s0 += float64(val[uint16(v)])
+		s1 += float64(val[uint16(v>>16)])
+		s2 += float64(val[uint16(v>>32)])
+		s3 += float64(val[uint16(v>>48)])
+		flags |= bad4(v, e, low)
+		nz += bits.OnesCount64(((v & lanes16Mag) + lanes16Mag) & lanes16Top)
 	}
 	for _, h := range run[n:] {
 		s0 += float64(val[h])
-		nz += int64((uint32(h&0x7fff) + 0x7fff) >> 15)
+		flags |= bad4(uint64(h), e, low)
+		nz += int((uint32(h&0x7fff) + 0x7fff) >> 15)
 	}
 	rs.s += (s0 + s1) + (s2 + s3)
-	rs.nz += nz
+	rs.nz += int64(nz)
+	return flags
 }
 
 // allowedRun16 is allowedRun over patterns: x == 0 is a pattern of +0 or

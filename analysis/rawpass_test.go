@@ -51,22 +51,42 @@ func writeST16Kind(t *testing.T, path, dtype, kind string, shape []int, data []u
 // exponent bits 0 with a mantissa; bf16 likewise), NaN and Inf rows, and
 // forbidden keys mostly +0/-0 with some mass.
 func randomHead16(rng *rand.Rand, S int, bf bool, data []uint16) {
+	randomHead16Mix(rng, S, bf, data, 1)
+}
+
+// randomHead16Mix is randomHead16 with negative values in a share negRows
+// of the rows only, and forbidden keys all zero in rows without them or
+// with a leak, so that most rows are clean (the pass's path for rows
+// scanned on the way, cells16Clean) and some are not.
+func randomHead16Mix(rng *rand.Rand, S int, bf bool, data []uint16, negRows float64) {
 	one := uint16(0x3c00) // 1.0 in float16 (IEEE 754 binary16)
 	exp, mant := uint16(0x7c00), uint16(0x03ff)
 	if bf {
 		one, exp, mant = 0x3f80, 0x7f80, 0x007f
 	}
 	for q := 0; q < S; q++ {
+		negOK := rng.Float64() < negRows
+		leak := negRows >= 1 || rng.Intn(4) == 0
+		// in half the rows with negatives (when not every row has some),
+		// they are only in forbidden keys
+		forbOnly := negRows < 1 && rng.Intn(2) == 0
 		for k := 0; k < S; k++ {
 			var v uint16
-			switch c := rng.Intn(100); {
-			case k > q && c < 85:
+			c, mass := rng.Intn(100), false
+			if k > q && negRows < 1 && leak && c >= 85 {
+				c, mass = rng.Intn(100), true // a forbidden key with mass: any value
+			}
+			switch {
+			case k > q && !mass && (c < 85 || !leak):
 				v = uint16(rng.Intn(2)) << 15 // +0 or -0
 			case c < 5:
 				v = uint16(rng.Intn(2)) << 15
 			case c < 10:
 				v = uint16(rng.Intn(int(mant))+1) | uint16(rng.Intn(2))<<15 // subnormal
-			case c < 13:
+				if !negOK || (forbOnly && k <= q) {
+					v &= 0x7fff
+				}
+			case c < 13 && negOK && (!forbOnly || k > q):
 				v = uint16(rng.Intn(int(one))) | 0x8000 // negative
 			default:
 				v = uint16(rng.Intn(int(one) + 1)) // in [0, 1]
@@ -88,12 +108,14 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 		dtype string
 		bf    bool
 		s     int
-	}{{"F16", false, 37}, {"BF16", true, 37}, {"F16", false, 64}, {"BF16", true, 9}} {
+		neg   float64 // share of rows with negative values
+	}{{"F16", false, 37, 1}, {"BF16", true, 37, 1}, {"F16", false, 64, 1}, {"BF16", true, 9, 1},
+		{"F16", false, 61, 0.1}, {"BF16", true, 33, 0.1}, {"F16", false, 40, 0}} {
 		rng := rand.New(rand.NewSource(int64(c.s)))
 		L, H, S := 2, 3, c.s
 		data := make([]uint16, L*H*S*S)
 		for i := 0; i < L*H; i++ {
-			randomHead16(rng, S, c.bf, data[i*S*S:(i+1)*S*S])
+			randomHead16Mix(rng, S, c.bf, data[i*S*S:(i+1)*S*S], c.neg)
 		}
 		path := filepath.Join(t.TempDir(), "x.safetensors")
 		writeST16(t, path, c.dtype, []int{L, H, S, S}, data)
