@@ -69,6 +69,21 @@ type Options struct {
 	MaxLayerBytes int64
 	// Blocks, when not empty, restricts the pass to these block names.
 	Blocks []string
+	// Background runs the workers on operating-system threads of the
+	// lowest scheduling priority where the system has one for threads
+	// (Linux: nice 19 on each worker's thread, lowprio_linux.go), so that a
+	// program drawing a screen while the pass runs behind it keeps the
+	// processors for the screen and the terminal whenever they want them.
+	// Results do not depend on it.
+	Background bool
+	// Yield, when set, is called by the workers between heads and every
+	// 64 query rows of a head; it may block to leave the processors to
+	// something more urgent for a while (the TUI holds the pass while it
+	// answers a key; on a machine whose two processors share one core, a
+	// lower priority alone does not keep the pass from slowing the screen
+	// down). It must return when the context is canceled. Results do not
+	// depend on it.
+	Yield func()
 }
 
 // DefaultOptions returns the options heed check and heed rank start from.
@@ -469,7 +484,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	}
 	doNaN, doSum, doNeg := rowChecks(opt.Rules)
 	cfg := passConfig{tol: opt.Tol, sumTol: sumTol, sumBelow: opt.SumBelow, doNaN: doNaN, doSum: doSum, doNeg: doNeg,
-		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example}
+		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example, yield: opt.Yield}
 	cfg.doCut = cutCheck(opt.Rules) && cutBlock(rules)
 	workers := make([]*worker, nw)
 	base := blk.QueryOffset + Q - 1
@@ -506,13 +521,13 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 			if err := ctx.Err(); err != nil {
 				return fmt.Errorf("%w: %w", ErrCanceled, err)
 			}
-			err := parallel(ctx, workers, H, func(w *worker, h int) error {
+			err := parallel(ctx, workers, H, opt.Background, opt.Yield, func(w *worker, h int) error {
 				return w.head(rd, rules, cfg, bp.Unit(l, h, b), st, l, b, h)
 			})
 			if err != nil {
 				return err
 			}
-			err = parallel(ctx, workers, pairs, func(w *worker, n int) error {
+			err = parallel(ctx, workers, pairs, opt.Background, opt.Yield, func(w *worker, n int) error {
 				pairSum[n], pairCnt[n] = st.js(pi[n], pj[n])
 				return nil
 			})
@@ -536,8 +551,10 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 }
 
 // parallel runs fn(w, i) for i in [0, n) over the workers and returns the
-// first error.
-func parallel(ctx context.Context, workers []*worker, n int, fn func(w *worker, i int) error) error {
+// first error. With bg, each worker goroutine runs on a thread of its own
+// whose priority it lowers (Options.Background); the thread ends with the
+// goroutine, so no lowered thread goes back to the runtime's pool.
+func parallel(ctx context.Context, workers []*worker, n int, bg bool, yield func(), fn func(w *worker, i int) error) error {
 	if n == 0 {
 		return nil
 	}
@@ -551,6 +568,10 @@ func parallel(ctx context.Context, workers []*worker, n int, fn func(w *worker, 
 		wg.Add(1)
 		go func(w *worker) {
 			defer wg.Done()
+			if bg {
+				runtime.LockOSThread() // never unlocked: the thread exits with the goroutine
+				lowerThreadPriority()
+			}
 			for {
 				mu.Lock()
 				if first != nil || next >= n {
@@ -560,6 +581,9 @@ func parallel(ctx context.Context, workers []*worker, n int, fn func(w *worker, 
 				i := next
 				next++
 				mu.Unlock()
+				if yield != nil {
+					yield()
+				}
 				err := ctx.Err()
 				if err != nil {
 					err = fmt.Errorf("%w: %w", ErrCanceled, err)
@@ -587,6 +611,7 @@ type passConfig struct {
 	grad, allow                   bool
 	doCut                         bool // the cut check reads this block's rows (cut.go)
 	example                       string
+	yield                         func() // Options.Yield
 }
 
 // lnN returns ln n for n >= 1, from a table up to 4096 keys.
@@ -667,6 +692,9 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		return float64(row[k])
 	}
 	for q := 0; q < Q; q++ {
+		if cfg.yield != nil && q&63 == 63 {
+			cfg.yield()
+		}
 		p := q + rules.QueryOffset
 		var badK int
 		var fin, negRow bool

@@ -7,6 +7,8 @@ import (
 	"math"
 	"sort"
 	"strconv"
+	"sync/atomic"
+	"time"
 
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/analysis"
@@ -262,5 +264,37 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 		}
 		msg.data = td
 		return msg
+	}
+}
+
+// holdFor is how long the background statistics stand still after a key or
+// a mouse event: long enough for the model to draw the new frame and the
+// terminal to show it, short enough that they go on as soon as the user
+// stops to look.
+const holdFor = 150 * time.Millisecond
+
+// hold lets the UI hold the background statistics (analysis.Options.Yield)
+// while it answers the user: on a small machine the pass and the frame
+// compete for the processors (two that share one core slow each other down
+// whatever their priorities), and a key should not wait for statistics.
+type hold struct {
+	until atomic.Int64 // Unix nanoseconds before which the pass waits
+}
+
+// push holds the pass for holdFor from now.
+func (h *hold) push() {
+	if h != nil {
+		h.until.Store(time.Now().Add(holdFor).UnixNano())
+	}
+}
+
+// wait returns when the hold has passed or ctx is done.
+func (h *hold) wait(ctx context.Context) {
+	for {
+		d := time.Until(time.Unix(0, h.until.Load()))
+		if d <= 0 || ctx.Err() != nil {
+			return
+		}
+		time.Sleep(min(d, 10*time.Millisecond))
 	}
 }

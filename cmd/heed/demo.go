@@ -100,7 +100,7 @@ func runDemo(cmd *cobra.Command, res *demo.Results, tf *tuiFlags) error {
 		return err
 	}
 	defer m.Close()
-	p := tea.NewProgram(m, tea.WithContext(cmd.Context()))
+	p := tea.NewProgram(m, tea.WithContext(cmd.Context()), tea.WithFPS(tui.FPS))
 	if _, err := p.Run(); err != nil && !errors.Is(err, tea.ErrProgramKilled) {
 		return err
 	}

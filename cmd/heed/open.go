@@ -51,7 +51,7 @@ func runTUI(cmd *cobra.Command, args []string, lf *loadFlags, tf *tuiFlags) erro
 		return err
 	}
 	defer m.Close()
-	p := tea.NewProgram(m, tea.WithContext(cmd.Context()))
+	p := tea.NewProgram(m, tea.WithContext(cmd.Context()), tea.WithFPS(tui.FPS))
 	if _, err := p.Run(); err != nil && !errors.Is(err, tea.ErrProgramKilled) {
 		return err
 	}
