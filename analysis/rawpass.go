@@ -426,8 +426,10 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q,
 
 // readRaw16 gives head (l, b, h) as patterns when rd can and the pass needs
 // no float32 matrix (gradients are read as float32): the tables to read them
-// with, the patterns (a view of the file's bytes where the loader can give
-// one, else a copy in w.r16) and a function to call when done with them
+// with, the patterns (a view where the loader gives one, i.e. bytes already
+// in memory such as an inflated NPZ member; else a copy in w.r16, which the
+// loader reads from the file with one positioned read) and a function to
+// call when done with them
 // (nil when there is nothing to release). nil tables = use ReadAttn.
 func (w *worker) readRaw16(rd reader, cfg passConfig, l, b, h int) (*rawTables, []uint16, func(), error) {
 	rr, ok := rd.(raw16Reader)

@@ -103,7 +103,7 @@ func randomHead16Mix(rng *rand.Rand, S int, bf bool, data []uint16, negRows floa
 }
 
 func TestRaw16SameAsFloat32(t *testing.T) {
-	defer func() { noRaw16, noView16 = false, false }()
+	defer func() { noRaw16, noView16, loader.ViewMapped = false, false, false }()
 	for _, c := range []struct {
 		dtype string
 		bf    bool
@@ -128,22 +128,23 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 			t.Fatalf("%s: ReadRaw16 = %v, %v: the pattern path is not taken", c.dtype, d, err)
 		}
 		for _, opt := range []Options{DefaultOptions(), {Tol: DefaultTol, RedundancyRows: -1}, {Tol: DefaultTol, NoRedundancy: true, NoStats: true}} {
-			// the float32 path, the patterns copied, the patterns viewed in place
-			var got [3]*Partial
-			for i, mode := range [][2]bool{{true, false}, {false, true}, {false, false}} {
-				noRaw16, noView16 = mode[0], mode[1]
+			// the float32 path, the patterns copied (read from the file),
+			// the patterns viewed in place in the mapping, the patterns
+			// copied from the mapping
+			var got [4]*Partial
+			for i, mode := range [][3]bool{{true, false, false}, {false, true, false}, {false, false, true}, {false, true, true}} {
+				noRaw16, noView16, loader.ViewMapped = mode[0], mode[1], mode[2]
 				p, err := Analyze(context.Background(), ex, opt)
 				if err != nil {
 					t.Fatal(err)
 				}
 				got[i] = p
 			}
-			noView16 = false
-			if !reflect.DeepEqual(got[0], got[1]) {
-				t.Fatalf("%s S=%d: pattern path (copied) differs from the float32 path", c.dtype, S)
-			}
-			if !reflect.DeepEqual(got[0], got[2]) {
-				t.Fatalf("%s S=%d: pattern path (viewed) differs from the float32 path", c.dtype, S)
+			noView16, loader.ViewMapped = false, false
+			for i, how := range []string{"read from the file", "viewed in the mapping", "copied from the mapping"} {
+				if !reflect.DeepEqual(got[0], got[i+1]) {
+					t.Fatalf("%s S=%d: pattern path (%s) differs from the float32 path", c.dtype, S, how)
+				}
 			}
 		}
 		ex.Close()

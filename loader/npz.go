@@ -106,7 +106,11 @@ func (z *npzFile) member(path, name string, f *zip.File) (*rawArray, error) {
 		if f.UncompressedSize64 != f.CompressedSize64 || off < 0 || size < 0 || off > z.mf.size() || size > z.mf.size()-off {
 			return nil, ferr(fmt.Sprintf("stored member of %d bytes at %d runs past the end of the archive (%d bytes)", size, off, z.mf.size()), nil)
 		}
-		return npyArray(z.mf.bytes()[off:off+size], path, name, &z.mf.life)
+		a, err := npyArray(z.mf.bytes()[off:off+size], path, name, &z.mf.life)
+		if a != nil {
+			a.src = z.mf
+		}
+		return a, err
 	case zip.Deflate:
 		rc, err := f.Open()
 		if err != nil {

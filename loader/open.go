@@ -160,6 +160,7 @@ func openNPY(ref fileRef) (Container, error) {
 		mf.close()
 		return nil, err
 	}
+	a.src = mf
 	return &npyFile{mf: mf, arr: a}, nil
 }
 

@@ -7,6 +7,7 @@ import (
 	"strings"
 	"sync"
 	"unicode/utf8"
+	"unsafe"
 )
 
 // errClosed is returned by reads of an array whose file has been closed.
@@ -122,6 +123,25 @@ type rawArray struct {
 	// data returns the array's bytes (exactly nelem*elem of them). It is
 	// called between life.enter and life.leave.
 	data func() ([]byte, error)
+	// src, when set, is the mapped file data's bytes lie in: a whole head
+	// is then copied with a positioned read of the file (mappedFile.pread)
+	// rather than through the mapping. nil for bytes in memory (inflated
+	// NPZ members, tests).
+	src *mappedFile
+}
+
+// copyBytes copies n bytes of the array's data from byte off into dst: by a
+// positioned read of the file where the array has one (src), else from
+// data. The caller holds the lifetime; data is what r.data returned.
+func (r *rawArray) copyBytes(dst, data []byte, off int) error {
+	if r.src != nil && !ViewMapped {
+		ok, err := r.src.pread(dst, data, off)
+		if ok || err != nil {
+			return err
+		}
+	}
+	copy(dst, data[off:off+len(dst)])
+	return nil
 }
 
 func (r *rawArray) Name() string  { return r.name }
@@ -156,6 +176,10 @@ func (r *rawArray) readFlat(off, n int, dst []float32) error {
 		return err
 	}
 	defer r.life.leave()
+	if r.dtype == Float32 && !r.big && hostLittle && n > 0 {
+		// little-endian float32 on a little-endian host: the bytes are the values
+		return r.copyBytes(unsafe.Slice((*byte)(unsafe.Pointer(&dst[0])), 4*n), b, off*4)
+	}
 	convertF32(r.dtype, r.big, b[off*r.elem:], dst)
 	return nil
 }

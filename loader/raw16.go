@@ -27,7 +27,9 @@ func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
 	}
 	defer r.life.leave()
 	if n > 0 {
-		copy(unsafe.Slice((*byte)(unsafe.Pointer(&dst[0])), 2*n), data[2*off:2*(off+n)])
+		if err := r.copyBytes(unsafe.Slice((*byte)(unsafe.Pointer(&dst[0])), 2*n), data, 2*off); err != nil {
+			return Invalid, fmt.Errorf("loader: %s: %w", r.label(), err)
+		}
 	}
 	return r.dtype, nil
 }
@@ -55,6 +57,11 @@ func (b *Block) raw16(layer, batch, head, n int) (*rawArray, int, error) {
 	}
 	return r, off, nil
 }
+
+// ViewMapped makes ViewRaw16 give views of mapped files too, and ReadRaw16
+// and ReadAttn copy through the mapping instead of reading the file
+// (tests and benchmarks compare the two ways).
+var ViewMapped bool
 
 // F16ToF32Table returns the float16 -> float32 table ReadAttn converts with
 // (index: the 16-bit pattern). The caller must not modify it.
@@ -87,17 +94,23 @@ func RawTable(d DType) *[65536]float32 {
 }
 
 // ViewRaw16 is ReadRaw16 without the copy: it returns the stored patterns of
-// (layer, batch, head) as a slice of the file's mapped (or inflated) bytes,
-// and a release function the caller must call once done with them; Close
-// waits until every view is released. It returns nil, Invalid and no error
-// where ReadRaw16 would return Invalid, and where the head's bytes are not
-// 2-byte aligned (a container may place an array at an odd offset): the
-// caller then copies with ReadRaw16 or converts with ReadAttn.
+// (layer, batch, head) as a slice of bytes already in memory (an inflated
+// NPZ member), and a release function the caller must call once done with
+// them; Close waits until every view is released. It returns nil, Invalid
+// and no error where ReadRaw16 would return Invalid, where the head's bytes
+// are not 2-byte aligned (a container may place an array at an odd offset),
+// and where they are in a mapped file, which ReadRaw16 reads for less than a
+// first look through the mapping costs (mappedFile.pread; unless
+// ViewMapped is set): the caller then copies with ReadRaw16 or converts
+// with ReadAttn.
 func (b *Block) ViewRaw16(layer, batch, head int) ([]uint16, DType, func(), error) {
 	n := b.Queries * b.Keys
 	r, off, err := b.raw16(layer, batch, head, n)
 	if r == nil || err != nil {
 		return nil, Invalid, nil, err
+	}
+	if r.src != nil && !ViewMapped {
+		return nil, Invalid, nil, nil
 	}
 	data, err := r.bytes()
 	if err != nil {

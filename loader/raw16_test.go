@@ -9,9 +9,11 @@ import (
 // TestViewRaw16 checks the in-place view of a head's float16 patterns
 // against the copy ReadRaw16 makes and against ReadAttn's conversion (the
 // values numpy wrote: gen_fixtures.py's export_causal_arrays, float16), in
-// a stored and a deflated NPZ, and that Close waits for the views to be
-// released and later views fail.
+// a stored NPZ (mapped: views only with ViewMapped) and a deflated one, and
+// that Close waits for the views to be released and later views fail.
 func TestViewRaw16(t *testing.T) {
+	ViewMapped = true
+	defer func() { ViewMapped = false }()
 	for _, name := range []string{"stored.npz", "deflated.npz"} {
 		ex, err := Open([]string{filepath.Join("..", "testdata", "fixtures", "npz", name)}, NewOptions())
 		if err != nil {

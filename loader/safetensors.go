@@ -195,7 +195,7 @@ func (s *stFile) parse(path string, b []byte) error {
 		}
 		data := b[dataStart+int64(e.DataOffsets[0]) : dataStart+int64(e.DataOffsets[1])]
 		s.arrays = append(s.arrays, &rawArray{name: name, file: path, dtype: dt, shape: shape,
-			elem: itemSize(dt), life: &s.mf.life, data: func() ([]byte, error) { return data, nil }})
+			elem: itemSize(dt), life: &s.mf.life, data: func() ([]byte, error) { return data, nil }, src: s.mf})
 	}
 	sortedArrays(s.arrays)
 	s.metadata = meta

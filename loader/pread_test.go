@@ -1,0 +1,112 @@
+package loader
+
+import (
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
+	"testing"
+)
+
+// TestPreadSameAsMapping: a whole head read with a positioned read of the
+// file (the default for mapped files) is the same, bit for bit, as the copy
+// through the mapping (ViewMapped), for every export fixture the loader
+// maps (NPY, stored and zip64 NPZ, safetensors; float16 and float32; the
+// mapping path is the one TestFixtures and TestViewRaw16 check against
+// numpy), and a mapped file gives no view unless ViewMapped is set.
+func TestPreadSameAsMapping(t *testing.T) {
+	defer func() { ViewMapped = false }()
+	files, err := filepath.Glob(filepath.Join("..", "testdata", "fixtures", "*", "*"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	checked, filesRead := 0, 0
+	for _, file := range files {
+		if !strings.HasSuffix(file, ".npy") && !strings.HasSuffix(file, ".npz") && !strings.HasSuffix(file, ".safetensors") {
+			continue
+		}
+		if strings.Contains(file, string(filepath.Separator)+"bad"+string(filepath.Separator)) {
+			continue
+		}
+		var got [2][][]float32
+		var raw [2][][]uint16
+		for i, mapped := range []bool{false, true} {
+			ViewMapped = mapped
+			ex, err := Open([]string{file}, NewOptions())
+			if err != nil {
+				break // not an export (plain arrays): other tests cover it
+			}
+			for _, b := range ex.Blocks {
+				n := b.Queries * b.Keys
+				for l := 0; l < b.Layers; l++ {
+					for bt := 0; bt < b.Batch; bt++ {
+						for h := 0; h < b.Heads; h++ {
+							f := make([]float32, n)
+							if err := b.ReadAttn(l, bt, h, f); err != nil {
+								t.Fatalf("%s: %v", file, err)
+							}
+							got[i] = append(got[i], f)
+							r := make([]uint16, n)
+							if _, err := b.ReadRaw16(l, bt, h, r); err != nil {
+								t.Fatalf("%s: %v", file, err)
+							}
+							raw[i] = append(raw[i], r)
+							if ra, ok := b.attn[l].flat.(*rawArray); ok && ra.src != nil && !mapped {
+								filesRead++
+								if v, d, _, err := b.ViewRaw16(l, bt, h); err != nil || v != nil || d != Invalid {
+									t.Fatalf("%s: ViewRaw16 of a mapped file = %d patterns, %v, %v; want none", file, len(v), d, err)
+								}
+							}
+						}
+					}
+				}
+			}
+			ex.Close()
+		}
+		if got[0] == nil {
+			continue
+		}
+		checked++
+		for i := range got[0] {
+			same := slices.EqualFunc(got[0][i], got[1][i], func(a, b float32) bool { return a == b || (a != a && b != b) })
+			if !same || !slices.Equal(raw[0][i], raw[1][i]) {
+				t.Fatalf("%s: head %d: positioned read and mapping differ", file, i)
+			}
+		}
+	}
+	if checked < 3 || filesRead == 0 {
+		t.Fatalf("only %d export fixtures checked, %d heads read from the file", checked, filesRead)
+	}
+}
+
+// TestPreadTruncated: a file cut short after it was opened gives an error
+// naming it when a head past the new end is read, not a crash (reading a
+// mapping past the end of its file raises SIGBUS).
+func TestPreadTruncated(t *testing.T) {
+	src, err := os.ReadFile(filepath.Join("..", "testdata", "fixtures", "exports", "gqa.safetensors"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	path := filepath.Join(t.TempDir(), "cut.safetensors")
+	if err := os.WriteFile(path, src, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	ex, err := Open([]string{path}, NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	b := ex.Blocks[0]
+	if err := os.Truncate(path, int64(len(src)/2)); err != nil {
+		t.Fatal(err)
+	}
+	r := make([]uint16, b.Queries*b.Keys)
+	l, bt, h := b.Layers-1, b.Batch-1, b.Heads-1 // the last head: past the cut
+	_, err = b.ReadRaw16(l, bt, h, r)
+	if err == nil {
+		t.Fatal("reading past the end of a truncated file succeeded")
+	}
+	if !strings.Contains(err.Error(), "cut.safetensors") || !strings.Contains(err.Error(), "changed") {
+		t.Errorf("error %q does not name the file and say why", err)
+	}
+}
