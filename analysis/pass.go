@@ -8,6 +8,7 @@ import (
 	"runtime"
 	"sync"
 
+	"github.com/heed-dev/heed/internal/bigmem"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -399,6 +400,8 @@ type worker struct {
 	u     unitAcc
 	r16   []uint16  // the head's 16-bit patterns on the pattern path (rawpass.go)
 	sums  []runSums // the allowed runs' sums of one row (cells16Clean)
+	// freeR16 frees r16 (internal/bigmem), nil until r16 is made
+	freeR16 func()
 	cut   CutAcc    // the unit's rows cut off before allowed keys (cut.go)
 	runs  ruleRuns  // the rule runs of every row of one batch item (rowpass.go)
 	one   ruleRuns  // the rule runs of one row, with an explicit mask
@@ -475,8 +478,21 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 		stride++
 	}
 	nr := (Q + stride - 1) / stride
+	// the large buffers (a head per worker, a layer's rows) are freed when
+	// the block is done (internal/bigmem: huge pages, few page faults)
+	var frees []func()
+	defer func() {
+		for _, f := range frees {
+			f()
+		}
+	}()
+	big := func(n int) []float32 {
+		b, free := bigmem.Float32s(n)
+		frees = append(frees, free)
+		return b
+	}
 	st := &layerStore{stride: stride, rows: nr, keys: K,
-		vals: make([]float32, H*nr*K), ent: make([]float64, H*nr), ok: make([]bool, H*nr), neg: make([]bool, H*nr),
+		vals: big(H * nr * K), ent: make([]float64, H*nr), ok: make([]bool, H*nr), neg: make([]bool, H*nr),
 		lo: make([]int32, H*nr), hi: make([]int32, H*nr)}
 	sumTol := opt.SumTol
 	if sumTol <= 0 {
@@ -489,10 +505,15 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	workers := make([]*worker, nw)
 	base := blk.QueryOffset + Q - 1
 	for i := range workers {
-		w := &worker{a: make([]float32, Q*K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats}
+		w := &worker{a: big(Q * K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats}
 		if cfg.grad {
-			w.g = make([]float32, Q*K)
+			w.g = big(Q * K)
 		}
+		defer func() {
+			if w.freeR16 != nil {
+				w.freeR16()
+			}
+		}()
 		if cfg.allow {
 			w.allow = make([]bool, Q*K)
 		}

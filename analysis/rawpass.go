@@ -6,6 +6,7 @@ import (
 	"sync"
 	"unsafe"
 
+	"github.com/heed-dev/heed/internal/bigmem"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -446,7 +447,10 @@ func (w *worker) readRaw16(rd reader, cfg passConfig, l, b, h int) (*rawTables, 
 		}
 	}
 	if len(w.r16) != len(w.a) {
-		w.r16 = make([]uint16, len(w.a))
+		if w.freeR16 != nil {
+			w.freeR16()
+		}
+		w.r16, w.freeR16 = bigmem.Uint16s(len(w.a))
 	}
 	d, err := rr.ReadRaw16(l, b, h, w.r16)
 	if err != nil || d == loader.Invalid {

@@ -73,6 +73,17 @@ type config struct {
 	big                       bool
 	sample                    time.Duration
 	tuiRounds                 int
+	parts                     string
+}
+
+// part reports whether the -parts flag names p.
+func (c config) part(p string) bool {
+	for _, s := range strings.Split(c.parts, ",") {
+		if strings.TrimSpace(s) == p {
+			return true
+		}
+	}
+	return false
 }
 
 func main() {
@@ -105,6 +116,7 @@ func main() {
 	flag.BoolVar(&c.big, "big", true, "also measure memory on a 4 GiB export (written once, about 4.3 GB of disk)")
 	flag.DurationVar(&c.sample, "sample", time.Millisecond, "interval between /proc samples of the memory runs")
 	flag.IntVar(&c.tuiRounds, "tui", 3, "TUI timing rounds in tmux at 200x60 (0 = none)")
+	flag.StringVar(&c.parts, "parts", "timing,memory,tui", "what to measure, comma-separated: timing (the ratios), memory, tui")
 	flag.Parse()
 	if err := bench(c); err != nil {
 		fmt.Fprintln(os.Stderr, "bench:", err)
@@ -145,14 +157,12 @@ func bench(c config) error {
 		return err
 	}
 
-	if err := timing(c, self, file); err != nil {
-		return err
+	if c.part("timing") {
+		if err := timing(c, self, file); err != nil {
+			return err
+		}
 	}
 
-	type sized struct {
-		file string
-		s    shape
-	}
 	sizes := []sized{{file, small}}
 	if c.big {
 		for _, s := range []shape{mid, big} {
@@ -163,6 +173,31 @@ func bench(c config) error {
 			sizes = append(sizes, sized{f, s})
 		}
 	}
+	if c.part("memory") {
+		if err := memory(c, sizes); err != nil {
+			return err
+		}
+	}
+	if c.tuiRounds > 0 && c.part("tui") {
+		fmt.Printf("\nTUI in tmux at 200x60, %d rounds: start -> first frame (Map of L0 H0), key } -> frame of the next head\n", c.tuiRounds)
+		for _, sz := range sizes {
+			if err := tuiTiming(c, sz.file, sz.s); err != nil {
+				fmt.Println("  TUI timing:", err)
+			}
+		}
+	}
+	return nil
+}
+
+// sized is a generated export and its shape.
+type sized struct {
+	file string
+	s    shape
+}
+
+// memory measures the peak anonymous memory of heed check and heed rank on
+// each export.
+func memory(c config, sizes []sized) error {
 	fmt.Printf("\nmemory: peak RssAnon (anonymous resident memory; mapped file pages are RssFile and do not count), /proc sampled every %v\n", c.sample)
 	fmt.Printf("  %-10s %-22s %10s %10s %10s %9s\n", "command", "export", "RssAnon", "RssFile", "wall", "samples")
 	var peaks []int64
@@ -193,14 +228,6 @@ func bench(c config) error {
 		fmt.Printf("  same heads, %.2f GB -> %.2f GB file (8x): check %+.1f MB, rank %+.1f MB of RssAnon\n",
 			float64(mid.bytes())/1e9, float64(big.bytes())/1e9,
 			float64(peaks[4]-peaks[2])/1e6, float64(peaks[5]-peaks[3])/1e6)
-	}
-	if c.tuiRounds > 0 {
-		fmt.Printf("\nTUI in tmux at 200x60, %d rounds: start -> first frame (Map of L0 H0), key } -> frame of the next head\n", c.tuiRounds)
-		for _, sz := range sizes {
-			if err := tuiTiming(c, sz.file, sz.s); err != nil {
-				fmt.Println("  TUI timing:", err)
-			}
-		}
 	}
 	return nil
 }

@@ -6,8 +6,10 @@ import (
 	"math"
 	"slices"
 	"strings"
+	"sync"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/bigmem"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/views"
 )
@@ -30,6 +32,7 @@ type lru[K comparable, V any] struct {
 	budget, used int64
 	order        *list.List // front = most recent
 	items        map[K]*list.Element
+	evicted      func(K, V) // when set, called with each entry put drops
 }
 
 type lruEntry[K comparable, V any] struct {
@@ -65,6 +68,9 @@ func (c *lru[K, V]) put(k K, v V, cost int64) {
 		c.order.Remove(e)
 		delete(c.items, en.k)
 		c.used -= en.cost
+		if c.evicted != nil {
+			c.evicted(en.k, en.v)
+		}
 	}
 }
 
@@ -169,16 +175,21 @@ func (bi *blockInfo) rowRunsFunc(batch, head int) func(q int) ([]int32, []string
 	if !explicit && bi.runs != nil {
 		rs = bi.runs[batch]
 	}
+	// views.Downsample calls it from several goroutines at once: the runs
+	// are made once, by whichever call comes first
+	var once sync.Once
 	return func(q int) ([]int32, []string) {
-		if rs == nil {
-			rs = bi.makeRuns(batch, head)
-			if !explicit {
-				if bi.runs == nil {
-					bi.runs = make([]*rowRuns, bi.blk.Batch)
+		once.Do(func() {
+			if rs == nil {
+				rs = bi.makeRuns(batch, head)
+				if !explicit {
+					if bi.runs == nil {
+						bi.runs = make([]*rowRuns, bi.blk.Batch)
+					}
+					bi.runs[batch] = rs
 				}
-				bi.runs[batch] = rs
 			}
-		}
+		})
 		return rs.ends[rs.start[q]:rs.start[q+1]], rs.names[rs.start[q]:rs.start[q+1]]
 	}
 }
@@ -221,10 +232,44 @@ type data struct {
 	heads   *lru[headKey, []float32]
 	raws    *lru[headKey, rawHead]
 	pix     *lru[pixKey, *views.Pixels]
+	// The pattern buffers of raw heads come from internal/bigmem (huge
+	// pages: filling a fresh 8 MB buffer for a 2048 x 2048 head costs a few
+	// page faults instead of two thousand) and are freed by close. spare is
+	// the buffer of a raw head the cache dropped, reused for the next head
+	// of its size. pinned is the head whose buffer must be neither reused
+	// nor freed when dropped (the Map's current head, which its MapData
+	// still reads): it waits in orphans until close.
+	spare   rawHead
+	pinned  headKey
+	orphans []func()
+}
+
+// close frees the pattern buffers; the caches are emptied, so a later read
+// goes back to the (closed) export and fails instead of reading freed
+// memory.
+func (d *data) close() {
+	for _, e := range d.raws.items {
+		e.Value.(*lruEntry[headKey, rawHead]).v.release()
+	}
+	d.spare.release()
+	for _, f := range d.orphans {
+		f()
+	}
+	d.raws = newLRU[headKey, rawHead](headBudget)
+	d.spare, d.orphans = rawHead{}, nil
 }
 
 func newData(ex, exB *loader.Export) *data {
 	d := &data{ex: ex, exB: exB, heads: newLRU[headKey, []float32](headBudget), raws: newLRU[headKey, rawHead](headBudget), pix: newLRU[pixKey, *views.Pixels](pixBudget)}
+	d.raws.evicted = func(k headKey, r rawHead) {
+		switch {
+		case k == d.pinned:
+			d.orphans = append(d.orphans, r.free)
+		default:
+			d.spare.release()
+			d.spare = r
+		}
+	}
 	for _, b := range ex.Blocks {
 		bi := newBlockInfo(ex, b)
 		if exB != nil {
@@ -268,6 +313,13 @@ func (d *data) head(k headKey) ([]float32, error) {
 type rawHead struct {
 	p     []uint16
 	value *[65536]float32
+	free  func() // frees p (internal/bigmem); nil for none
+}
+
+func (r rawHead) release() {
+	if r.free != nil {
+		r.free()
+	}
 }
 
 // raw returns a head of example 0 as its stored float16/bfloat16 patterns,
@@ -282,16 +334,20 @@ func (d *data) raw(k headKey) (rawHead, bool, error) {
 		return r, true, nil
 	}
 	blk := d.blocks[k.block].blk
-	p := make([]uint16, blk.Queries*blk.Keys)
-	dt, err := blk.ReadRaw16(k.layer, k.batch, k.head, p)
-	if err != nil {
+	var r rawHead
+	if n := blk.Queries * blk.Keys; len(d.spare.p) == n {
+		r, d.spare = d.spare, rawHead{}
+	} else {
+		r.p, r.free = bigmem.Uint16s(n)
+	}
+	dt, err := blk.ReadRaw16(k.layer, k.batch, k.head, r.p)
+	value := loader.RawTable(dt)
+	if err != nil || value == nil {
+		r.release()
 		return rawHead{}, false, err
 	}
-	value := loader.RawTable(dt)
-	if value == nil {
-		return rawHead{}, false, nil
-	}
-	r := rawHead{p: p, value: value}
+	r.value = value
+	p := r.p
 	d.raws.put(k, r, int64(len(p))*2)
 	return r, true, nil
 }

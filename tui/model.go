@@ -220,6 +220,7 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 // Close closes the exports the model opened and stops its background work.
 func (m *Model) Close() error {
 	m.cancel()
+	m.d.close()
 	var err error
 	if m.opts.Export == nil {
 		err = m.d.ex.Close()

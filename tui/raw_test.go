@@ -2,6 +2,7 @@ package tui
 
 import (
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 
@@ -40,5 +41,51 @@ func TestMapFromFloat16Patterns(t *testing.T) {
 	want := "w " + views.FormatWeight(w[m.q*blk.Keys+m.k])
 	if !strings.Contains(v, want) {
 		t.Errorf("status bar lacks %q:\n%s", want, v)
+	}
+}
+
+// Pattern buffers of heads the cache drops are reused for the next heads
+// (data.spare), never the buffer of the head the Map shows: with a cache
+// of two heads, walking through every head of a float16 export and back,
+// the Map's matrix is always the file's head it names (ReadRaw16 of that
+// head, which TestMapFromFloat16Patterns ties to numpy's values).
+func TestRawBuffersReused(t *testing.T) {
+	path := filepath.Join("..", "testdata", "fixtures", "npz", "stored.npz")
+	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := New(set, Options{At: "decoder:L0:H0:B0:q1", Background: "dark", Profile: colorprofile.Ascii})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer m.Close()
+	m.Update(tea.WindowSizeMsg{Width: 100, Height: 30})
+	blk := m.bi().blk
+	n := blk.Queries * blk.Keys
+	m.d.raws.budget = int64(2 * 2 * n) // two heads
+	reused := 0
+	keys := strings.Repeat("}", blk.Heads-1) + "]" + strings.Repeat("{", blk.Heads-1) + "[" + strings.Repeat("}", blk.Heads-1)
+	for i, k := range keys {
+		spare := m.d.spare.p
+		m.Update(tea.KeyPressMsg{Code: k, Text: string(k)})
+		_ = m.View()
+		md, err := m.mapData(&m.screens[ScreenMap].(*mapScreen).memo)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if spare != nil && len(md.Raw) > 0 && &spare[0] == &md.Raw[0] {
+			reused++
+		}
+		want := make([]uint16, n)
+		if _, err := blk.ReadRaw16(m.layer, m.batch, m.head, want); err != nil {
+			t.Fatal(err)
+		}
+		if !slices.Equal(md.Raw, want) {
+			t.Fatalf("step %d (L%d H%d): the Map's patterns are not that head's", i, m.layer, m.head)
+		}
+	}
+	if reused == 0 {
+		t.Error("no dropped buffer was reused")
 	}
 }

@@ -265,6 +265,7 @@ func (m *Model) mapData(memo *mapMemo) (*views.MapData, error) {
 		return memo.md, memo.err
 	}
 	memo.key, memo.made = hk, true
+	m.d.pinned = hk // its patterns stay this head's while md reads them
 	bi := m.bi()
 	var md *views.MapData
 	if r, ok, err := m.d.raw(hk); err != nil {

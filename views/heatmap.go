@@ -3,8 +3,11 @@ package views
 import (
 	"fmt"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
+	"sync"
+	"unsafe"
 )
 
 // Agg is how a pixel that covers several cells combines their weights.
@@ -61,7 +64,9 @@ type MapData struct {
 	// RowRuns, when set, gives Rule for a whole row q at once, as runs of
 	// keys sharing a rule: keys [ends[i-1], ends[i]) (ends[-1] = 0) have
 	// rule rules[i], "" = allowed. Downsample uses it instead of a call per
-	// cell and looks only at the forbidden runs for marks.
+	// cell and looks only at the forbidden runs for marks. It must be safe
+	// to call from several goroutines at once: Downsample splits a large
+	// matrix over the processors (Rule alone is only ever called from one).
 	RowRuns func(q int) (ends []int32, rules []string)
 	// QueryTokens and KeyTokens label the axes (nil: indices only).
 	QueryTokens, KeyTokens []string
@@ -98,21 +103,106 @@ func NewMapData16(q, k int, raw []uint16, value *[65536]float32) *MapData {
 			break
 		}
 	}
+	// rows in chunks over the processors, each chunk's maxima then merged:
+	// the same patterns whatever the split
+	var mu sync.Mutex
 	var all, noSink uint16
-	for i := 0; i < q; i++ {
-		row := raw[i*k : (i+1)*k]
-		for j, p := range row {
-			if p >= lim || p <= noSink {
-				continue
-			}
-			if j > 0 {
-				noSink = p
-			}
-			all = max(all, p)
-		}
-	}
+	inChunks(q, q*k, func(lo, hi int) {
+		a, n := max16(raw[lo*k:hi*k], k, lim)
+		mu.Lock()
+		all, noSink = max(all, a), max(noSink, n)
+		mu.Unlock()
+	})
 	d.VMax, d.VMaxNoSink = max(value[all], 0), max(value[noSink], 0)
 	return d
+}
+
+// max16 returns the largest pattern below lim of the rows of m (k patterns
+// each), and the largest outside column 0. Patterns below lim (sign bit
+// clear, below +Inf) are ordered as their values.
+func max16(m []uint16, k int, lim uint16) (all, noSink uint16) {
+	if k <= 0 {
+		return 0, 0
+	}
+	for i := 0; i+k <= len(m); i += k {
+		row := m[i : i+k]
+		// the largest pattern of the row past column 0, four lanes of 16
+		// bits at a time: while every pattern is below 0x8000 (no sign bit),
+		// (m | 0x8000) - v keeps to each lane and sets its top bit exactly
+		// where m >= v; a row with a pattern at or above lim (negative, Inf,
+		// NaN) takes the loop that leaves them out
+		rest := row[min(1, len(row)):]
+		mx, or := laneMax(rest)
+		if or&0x8000 == 0 && mx < lim {
+			noSink = max(noSink, mx)
+		} else {
+			for _, p := range rest {
+				if p < lim && p > noSink {
+					noSink = p
+				}
+			}
+		}
+		all = max(all, noSink)
+		if len(row) > 0 && row[0] < lim {
+			all = max(all, row[0])
+		}
+	}
+	return all, noSink
+}
+
+// laneMax returns the largest pattern of xs and the OR of all of them,
+// valid as a maximum when that OR has no sign bit (bit 15) set. Four lanes
+// of 16 bits a word, four words a step in four running maxima: while every
+// pattern is below 0x8000, (m | 0x8000) - v keeps to each lane and sets its
+// top bit exactly where m >= v.
+func laneMax(xs []uint16) (uint16, uint64) {
+	var m0, m1, m2, m3, or uint64
+	n := len(xs) &^ 15
+	for j := 0; j < n; j += 16 {
+		w := (*[4]uint64)(unsafe.Pointer(&xs[j])) // lane order does not matter for a maximum
+		or |= w[0] | w[1] | w[2] | w[3]
+		m0, m1, m2, m3 = laneMax2(m0, w[0]), laneMax2(m1, w[1]), laneMax2(m2, w[2]), laneMax2(m3, w[3])
+	}
+	m := laneMax2(laneMax2(m0, m1), laneMax2(m2, m3))
+	or |= or >> 32
+	or |= or >> 16
+	mx := max(uint16(m), uint16(m>>16), uint16(m>>32), uint16(m>>48))
+	for _, p := range xs[n:] {
+		or |= uint64(p)
+		mx = max(mx, p)
+	}
+	return mx, or
+}
+
+// laneMax2 is the lane by lane maximum of m and v, whose lanes are below
+// 0x8000.
+func laneMax2(m, v uint64) uint64 {
+	const top = 0x8000800080008000
+	t := ((m | top) - v) & top // the top bit of the lanes where m >= v
+	ge := (t - t>>15) | t      // those lanes all ones
+	return m&ge | v&^ge
+}
+
+// inChunks calls fn on [lo, hi) ranges that cover [0, n), one goroutine a
+// range over the processors when the work (cells) is large enough to pay
+// for them, else once with [0, n) on the caller's goroutine; it returns
+// when every call has.
+func inChunks(n, cells int, fn func(lo, hi int)) {
+	parts := min(runtime.GOMAXPROCS(0), n)
+	if cells < 1<<20 || parts < 2 {
+		fn(0, n)
+		return
+	}
+	var wg sync.WaitGroup
+	for i := 0; i < parts; i++ {
+		lo, hi := i*n/parts, (i+1)*n/parts
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			fn(lo, hi)
+		}()
+	}
+	wg.Wait()
 }
 
 // At returns the weight of cell (q, k).
@@ -203,27 +293,55 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 	rows, cols = max(rows, 0), max(cols, 0)
 	p := &Pixels{Rows: rows, Cols: cols, Q0: q0, K0: k0, Block: block,
 		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols)}
+	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
+	cells := rows * block * (kEnd - k0)
+	if d.RowRuns == nil && d.Rule != nil {
+		cells = 0 // Rule need not be safe to call from several goroutines
+	}
+	// pixel rows in chunks over the processors: each pixel depends on its
+	// own cells only, so the pixels are the same whatever the split
+	inChunks(rows, cells, func(lo, hi int) { downsampleRows(d, p, lo, hi, q0, k0, kEnd, block, agg) })
+	return p
+}
+
+// downsampleRows fills pixel rows [lo, hi) of p (see Downsample).
+func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg Agg) {
+	cols := p.Cols
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
-	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
-	var buf []float32               // a converted row of Raw
+	var buf []float32 // a converted row of Raw
 	if d.Weights == nil {
 		buf = make([]float32, d.K)
 	}
-	for pr := 0; pr < rows; pr++ {
+	for pr := lo; pr < hi; pr++ {
 		clear(sum)
 		clear(cnt)
 		base := pr * cols
 		qa := q0 + pr*block
 		qb := min(qa+block, d.Q)
 		for q := qa; q < qb; q++ {
-			row := d.row(q, buf)
+			// a row of patterns is read through the table cell by cell,
+			// without converting it first (but for Rule, which wants the
+			// converted row); the values and their order are the same
+			var row []float32
+			var raw []uint16
+			if d.Weights == nil && d.Raw != nil && (d.RowRuns != nil || d.Rule == nil) {
+				raw = d.Raw[q*d.K : (q+1)*d.K]
+			} else {
+				row = d.row(q, buf)
+			}
 			for pc := 0; pc < cols; pc++ {
 				ka := k0 + pc*block
 				kb := min(ka+block, d.K)
 				i := base + pc
 				w := p.Weight[i]
 				if w != w {
+					continue
+				}
+				if raw != nil {
+					w = aggRaw(raw[ka:kb], d.RawValue, agg, w, &sum[pc])
+					cnt[pc] += int32(kb - ka)
+					p.Weight[i] = w
 					continue
 				}
 				cells := row[ka:kb]
@@ -261,7 +379,7 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 				p.Weight[i] = w
 			}
 			if d.RowRuns != nil {
-				markRuns(d, p, row, q, base, k0, kEnd, block)
+				markRuns(d, p, row, raw, q, base, k0, kEnd, block)
 			}
 		}
 		if agg == AggMean {
@@ -273,19 +391,68 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 			}
 		}
 	}
-	return p
+}
+
+// aggRaw is the pixel loop of Downsample over a run of patterns: the max
+// or (adding into *sum) the sum of their values, w the pixel so far; NaN
+// wins and stops the run, as on float32 rows.
+func aggRaw(cells []uint16, tab *[65536]float32, agg Agg, w float32, sum *float64) float32 {
+	if agg == AggMax {
+		for _, h := range cells {
+			if v := tab[h]; v > w || v != v {
+				w = v
+				if v != v {
+					break
+				}
+			}
+		}
+		return w
+	}
+	var s float64
+	for _, h := range cells {
+		v := tab[h]
+		if v != v {
+			return v
+		}
+		s += float64(v)
+	}
+	*sum += s
+	return w
+}
+
+// nextNonzero16 returns the first index in [k, end) of raw whose pattern is
+// not +0 or -0, or end; four patterns a step.
+func nextNonzero16(raw []uint16, k, end int) int {
+	for ; k+4 <= end; k += 4 {
+		if *(*uint64)(unsafe.Pointer(&raw[k]))&0x7fff7fff7fff7fff != 0 {
+			break
+		}
+	}
+	for ; k < end && raw[k]&0x7fff == 0; k++ {
+	}
+	return k
 }
 
 // markRuns marks the pixels of row q (pixel row starting at base) that hold
-// a forbidden cell above the tolerance, from the row's runs (MapData.RowRuns).
-func markRuns(d *MapData, p *Pixels, row []float32, q, base, k0, kEnd, block int) {
+// a forbidden cell above the tolerance, from the row's runs (MapData.RowRuns):
+// from row, or from raw through the table when the row is patterns.
+func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base, k0, kEnd, block int) {
 	ends, rules := d.RowRuns(q)
 	a := 0
 	for j, e := range ends {
 		b, r := int(e), rules[j]
 		if r != "" && b > k0 && a < kEnd {
 			for k := max(a, k0); k < min(b, kEnd); k++ {
-				v := row[k]
+				var v float32
+				if raw != nil {
+					// a mask that holds leaves zeros: skip them four at a time
+					if k = nextNonzero16(raw, k, min(b, kEnd)); k == min(b, kEnd) {
+						break
+					}
+					v = d.RawValue[raw[k]]
+				} else {
+					v = row[k]
+				}
 				if !(v > d.Tol) {
 					continue
 				}

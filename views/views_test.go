@@ -5,6 +5,7 @@ import (
 	"math"
 	"math/rand"
 	"reflect"
+	"runtime"
 	"slices"
 	"strings"
 	"testing"
@@ -533,5 +534,102 @@ func testMapData16(t *testing.T, tab *[65536]float32, one, nan uint16) {
 	}
 	if a.At(7, 2) == a.At(7, 2) || b.At(7, 2) == b.At(7, 2) || a.At(3, 1) != b.At(3, 1) {
 		t.Errorf("At: float32 %v %v, patterns %v %v", a.At(7, 2), a.At(3, 1), b.At(7, 2), b.At(3, 1))
+	}
+}
+
+// A head large enough for NewMapData16 and Downsample to split it over the
+// processors gives the same scale and pixels whatever the number of
+// processors, and the same as the head converted to float32 (NewMapData):
+// float16 patterns with negative values, NaN and +Inf (which the scale
+// leaves out), and a causal mask given as row runs.
+func TestLargeHeadInChunks(t *testing.T) {
+	defer runtime.GOMAXPROCS(runtime.GOMAXPROCS(0))
+	const q, k = 1100, 1000 // 1.1 M cells: over the size that is split
+	tab := loader.RawTable(loader.Float16)
+	rng := rand.New(rand.NewSource(9))
+	raw := make([]uint16, q*k)
+	for i := range raw {
+		c := rng.Intn(1000)
+		if (i/k)%7 != 0 {
+			c += 20 // most rows without negative or non-finite values
+		}
+		switch {
+		case c == 0:
+			raw[i] = 0x7e00 // NaN
+		case c == 1:
+			raw[i] = 0x7c00 // +Inf
+		case c < 20:
+			raw[i] = 0x8000 | uint16(rng.Intn(0x3c00)) // negative
+		case i%k <= i/k+1: // allowed, and one diagonal too many
+			raw[i] = uint16(rng.Intn(0x3c00))
+		}
+	}
+	raw[3*k+500] = 0x7c00 // +Inf alone in a row otherwise finite and positive
+	w := make([]float32, len(raw))
+	for i, p := range raw {
+		w[i] = tab[p]
+	}
+	runs := func(row int) ([]int32, []string) {
+		if row+1 >= k {
+			return []int32{k}, []string{""}
+		}
+		return []int32{int32(row + 1), k}, []string{"", "causal"}
+	}
+	var px []*Pixels
+	var scale [][2]float32
+	for _, procs := range []int{1, 3} {
+		runtime.GOMAXPROCS(procs)
+		for _, d := range []*MapData{NewMapData(q, k, w), NewMapData16(q, k, raw, tab)} {
+			d.RowRuns, d.Tol = runs, 1e-6
+			scale = append(scale, [2]float32{d.VMax, d.VMaxNoSink})
+			for _, agg := range []Agg{AggMean, AggMax} {
+				// the whole head (split over the processors) and a zoomed window
+				px = append(px, Downsample(d, 0, 0, 100, 100, 11, agg), Downsample(d, 5, 17, 40, 70, 3, agg))
+			}
+		}
+	}
+	for i := range scale {
+		if scale[i] != scale[0] {
+			t.Errorf("scale %d: %v, want %v", i, scale[i], scale[0])
+		}
+	}
+	if scale[0][0] <= 0 || scale[0][0] > 1 {
+		t.Errorf("scale %v: not the largest finite weight in [0, 1)", scale[0])
+	}
+	for i := 4; i < len(px); i++ {
+		a, b := px[i%4], px[i]
+		same := len(a.Weight) == len(b.Weight) && slices.Equal(a.Rule, b.Rule)
+		for j := range a.Weight {
+			same = same && (a.Weight[j] == b.Weight[j] || a.Weight[j] != a.Weight[j] && b.Weight[j] != b.Weight[j]) && a.Forbid[j] == b.Forbid[j]
+		}
+		if !same {
+			t.Errorf("pixels %d differ from pixels %d", i, i%4)
+		}
+	}
+}
+
+// laneMax, the scale's four-lanes-a-word maximum, is the plain maximum of
+// patterns below 0x8000 and flags (bit 15 of its OR) a pattern with the sign
+// bit wherever it is, for every length and position.
+func TestLaneMax(t *testing.T) {
+	rng := rand.New(rand.NewSource(3))
+	for n := 0; n < 70; n++ {
+		for trial := 0; trial < 20; trial++ {
+			xs := make([]uint16, n)
+			for i := range xs {
+				xs[i] = uint16(rng.Intn(0x8000))
+			}
+			neg := n > 0 && trial%2 == 1
+			if neg {
+				xs[rng.Intn(n)] |= 0x8000
+			}
+			mx, or := laneMax(xs)
+			if got := or&0x8000 != 0; got != neg {
+				t.Fatalf("n=%d %v: sign flagged %v, want %v", n, xs, got, neg)
+			}
+			if !neg && (n > 0 && mx != slices.Max(xs) || n == 0 && mx != 0) {
+				t.Fatalf("n=%d %v: max %d", n, xs, mx)
+			}
+		}
 	}
 }
