@@ -402,10 +402,10 @@ type worker struct {
 	sums  []runSums // the allowed runs' sums of one row (cells16Clean)
 	// freeR16 frees r16 (internal/bigmem), nil until r16 is made
 	freeR16 func()
-	cut   CutAcc    // the unit's rows cut off before allowed keys (cut.go)
-	runs  ruleRuns  // the rule runs of every row of one batch item (rowpass.go)
-	one   ruleRuns  // the rule runs of one row, with an explicit mask
-	stats bool      // compute the row statistics (not Options.NoStats)
+	cut     CutAcc   // the unit's rows cut off before allowed keys (cut.go)
+	runs    ruleRuns // the rule runs of every row of one batch item (rowpass.go)
+	one     ruleRuns // the rule runs of one row, with an explicit mask
+	stats   bool     // compute the row statistics (not Options.NoStats)
 }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
