@@ -80,10 +80,9 @@ type Options struct {
 	// Yield, when set, is called by the workers between heads and every
 	// 64 query rows of a head; it may block to leave the processors to
 	// something more urgent for a while (the TUI holds the pass while it
-	// answers a key; on a machine whose two processors share one core, a
-	// lower priority alone does not keep the pass from slowing the screen
-	// down). It must return when the context is canceled. Results do not
-	// depend on it.
+	// answers a key: on a small machine a lower priority alone does not
+	// keep the pass from slowing the screen down). It must return when the
+	// context is canceled. Results do not depend on it.
 	Yield func()
 }
 

@@ -275,8 +275,9 @@ const holdFor = 150 * time.Millisecond
 
 // hold lets the UI hold the background statistics (analysis.Options.Yield)
 // while it answers the user: on a small machine the pass and the frame
-// compete for the processors (two that share one core slow each other down
-// whatever their priorities), and a key should not wait for statistics.
+// compete for the processors and the memory (a lower priority for the
+// pass did not keep a head switch under 50 ms on two processors), and a key
+// should not wait for statistics.
 type hold struct {
 	until atomic.Int64 // Unix nanoseconds before which the pass waits
 }
