@@ -129,14 +129,20 @@ func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, ends []int32, r
 		case r == RuleNone:
 			w.allowedRun16(ra, t, row, a, b, p)
 		case allZero16(row[a:b]):
-			w.u.leak[r].forb += int64(b - a)
-			if x := float64(t.val[row[a]]); x > ra.mx {
-				ra.mx = x
-			}
+			w.zeroRun16(ra, t, row, a, b, r)
 		default:
 			w.forbiddenRun16(ra, t, row, a, b, q, p, base, r, tol, example)
 		}
 		a = b
+	}
+}
+
+// zeroRun16 counts the run [a, b) forbidden by r whose patterns are all +0
+// or -0 (a mask that holds): its cells, and its value for the row maximum.
+func (w *worker) zeroRun16(ra *rowAcc, t *rawTables, row []uint16, a, b int, r Rule) {
+	w.u.leak[r].forb += int64(b - a)
+	if x := float64(t.val[row[a]]); x > ra.mx {
+		ra.mx = x
 	}
 }
 
@@ -227,10 +233,7 @@ func (w *worker) cells16Clean(ra *rowAcc, t *rawTables, row []uint16, ends []int
 		case r == RuleNone:
 			finish16(ra, &sums[i], t, row, a, b)
 		case sums[i].nz == 0:
-			w.u.leak[r].forb += int64(b - a)
-			if x := float64(t.val[row[a]]); x > ra.mx {
-				ra.mx = x
-			}
+			w.zeroRun16(ra, t, row, a, b, r)
 		default:
 			w.forbiddenRun16(ra, t, row, a, b, q, p, base, r, tol, example)
 		}
