@@ -508,11 +508,11 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 		if cfg.grad {
 			w.g = big(Q * K)
 		}
-		defer func() {
+		frees = append(frees, func() {
 			if w.freeR16 != nil {
 				w.freeR16()
 			}
-		}()
+		})
 		if cfg.allow {
 			w.allow = make([]bool, Q*K)
 		}
@@ -721,13 +721,14 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		// a judged row of patterns is scanned for non-finite and negative
 		// values on the way (cells16Clean), and with finite16 only when it
 		// has some: until then it counts as finite and without negatives
-		clean := rt != nil && rules.Judged(b, q)
-		if clean {
+		judged := rules.Judged(b, q)
+		clean := rt != nil && judged
+		if rt != nil {
 			row16 = r16[q*K : (q+1)*K]
 			badK, fin, negRow = -1, true, false
-		} else if rt != nil {
-			row16 = r16[q*K : (q+1)*K]
-			badK, fin, negRow = finite16(row16, rt.exp)
+			if !clean {
+				badK, fin, negRow = finite16(row16, rt.exp)
+			}
 		} else {
 			row = w.a[q*K : (q+1)*K]
 			badK, fin, negRow = finite32(row)
@@ -749,22 +750,15 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		if keep {
 			st.ok[h*st.rows+sr] = false
 		}
-		if !rules.Judged(b, q) {
+		if !judged {
 			u.padRows++
 			if !fin {
 				u.padNaN++
 			}
 			continue
 		}
-		nanRow := func() {
-			u.nanRows++
-			c := Cell{Set: true, Example: cfg.example, Query: q, Key: badK}
-			if c.first(u.nanFirst) {
-				u.nanFirst = c
-			}
-		}
 		if !fin {
-			nanRow()
+			u.nanRow(cfg.example, q, badK)
 			continue
 		}
 		var allowRow []bool
@@ -778,7 +772,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			if !clean || !w.cells16Clean(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) {
 				if clean {
 					if badK, fin, negRow = finite16(row16, rt.exp); !fin {
-						nanRow()
+						u.nanRow(cfg.example, q, badK)
 						continue
 					}
 					ra.negRow = negRow
@@ -874,6 +868,15 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	}
 	w.commit(acc, cfg)
 	return nil
+}
+
+// nanRow counts judged row q as not finite, badK its first non-finite key.
+func (u *unitAcc) nanRow(example string, q, badK int) {
+	u.nanRows++
+	c := Cell{Set: true, Example: example, Query: q, Key: badK}
+	if c.first(u.nanFirst) {
+		u.nanFirst = c
+	}
 }
 
 // commit adds the unit's sums to acc (exactly) and clears the histograms.

@@ -13,21 +13,29 @@ import (
 	"github.com/heed-dev/heed/views"
 )
 
-// A float16 export (numpy's, gen_fixtures.py) is drawn from its stored
-// patterns: the Map's head is held as patterns, and the status bar's weight
-// at the cursor is what ReadAttn converts that cell to.
-func TestMapFromFloat16Patterns(t *testing.T) {
+// storedF16Model opens numpy's float16 NPZ fixture (gen_fixtures.py) at loc,
+// 100 x 30 without colour; it is closed when the test ends.
+func storedF16Model(t *testing.T, loc string) *Model {
+	t.Helper()
 	path := filepath.Join("..", "testdata", "fixtures", "npz", "stored.npz")
 	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
-	m, err := New(set, Options{At: "decoder:L1:H1:B0:q3", Background: "dark", Profile: colorprofile.Ascii})
+	m, err := New(set, Options{At: loc, Background: "dark", Profile: colorprofile.Ascii})
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer m.Close()
+	t.Cleanup(func() { m.Close() })
 	m.Update(tea.WindowSizeMsg{Width: 100, Height: 30})
+	return m
+}
+
+// A float16 export (numpy's, gen_fixtures.py) is drawn from its stored
+// patterns: the Map's head is held as patterns, and the status bar's weight
+// at the cursor is what ReadAttn converts that cell to.
+func TestMapFromFloat16Patterns(t *testing.T) {
+	m := storedF16Model(t, "decoder:L1:H1:B0:q3")
 	v := ansi.Strip(m.View().Content)
 	hk := m.headKey(0)
 	if _, ok, err := m.d.raw(hk); !ok || err != nil {
@@ -50,17 +58,7 @@ func TestMapFromFloat16Patterns(t *testing.T) {
 // the Map's matrix is always the file's head it names (ReadRaw16 of that
 // head, which TestMapFromFloat16Patterns ties to numpy's values).
 func TestRawBuffersReused(t *testing.T) {
-	path := filepath.Join("..", "testdata", "fixtures", "npz", "stored.npz")
-	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	m, err := New(set, Options{At: "decoder:L0:H0:B0:q1", Background: "dark", Profile: colorprofile.Ascii})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer m.Close()
-	m.Update(tea.WindowSizeMsg{Width: 100, Height: 30})
+	m := storedF16Model(t, "decoder:L0:H0:B0:q1")
 	blk := m.bi().blk
 	n := blk.Queries * blk.Keys
 	m.d.raws.budget = int64(2 * 2 * n) // two heads

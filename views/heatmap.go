@@ -126,11 +126,9 @@ func max16(m []uint16, k int, lim uint16) (all, noSink uint16) {
 	}
 	for i := 0; i+k <= len(m); i += k {
 		row := m[i : i+k]
-		// the largest pattern of the row past column 0, four lanes of 16
-		// bits at a time: while every pattern is below 0x8000 (no sign bit),
-		// (m | 0x8000) - v keeps to each lane and sets its top bit exactly
-		// where m >= v; a row with a pattern at or above lim (negative, Inf,
-		// NaN) takes the loop that leaves them out
+		// the largest pattern of the row past column 0 (laneMax); a row with
+		// a pattern at or above lim (negative, Inf, NaN) takes the loop that
+		// leaves them out
 		rest := row[min(1, len(row)):]
 		mx, or := laneMax(rest)
 		if or&0x8000 == 0 && mx < lim {
