@@ -127,7 +127,7 @@ func reach(r *Rules, b int) map[int]int64 {
 	var m map[int]int64
 	dst := make([]Rule, r.Keys)
 	for q := 0; q < r.Queries; q++ {
-		p := r.Pos(q)
+		p := r.Pos(b, q)
 		if !r.Judged(b, q) || !cutRow(r, p) {
 			continue
 		}

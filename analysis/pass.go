@@ -327,7 +327,7 @@ func newBlockPartial(blk *loader.Block, rules *Rules) *BlockPartial {
 // by +n cannot show at the last real query of a padded item.
 func geometry(r *Rules, b int) GeometryAcc {
 	var g GeometryAcc
-	base := r.QueryOffset + r.Queries - 1
+	base := r.MaxPos()
 	diff := make([][]int64, numMask)
 	var valid []bool // nil = every key is real
 	if r.validK != nil {
@@ -358,7 +358,7 @@ func geometry(r *Rules, b int) GeometryAcc {
 			continue
 		}
 		g.Rows++
-		p := r.Pos(q)
+		p := r.Pos(b, q)
 		if r.active[RuleCausal] {
 			if r.active[RulePrefix] && p < r.Prefix {
 				add(RulePrefix, p, max(r.Prefix, p+1), r.Keys)
@@ -502,7 +502,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example, yield: opt.Yield}
 	cfg.doCut = cutCheck(opt.Rules) && cutBlock(rules)
 	workers := make([]*worker, nw)
-	base := blk.QueryOffset + Q - 1
+	base := rules.MaxPos()
 	for i := range workers {
 		w := &worker{a: big(Q * K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats}
 		if cfg.grad {
@@ -696,7 +696,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	for r := range w.lo {
 		w.lo[r], w.hi[r] = math.MaxInt, -1
 	}
-	base := rules.QueryOffset + Q - 1
+	base := rules.MaxPos()
 	masked := false
 	for r := RuleCausal; r < numMask; r++ {
 		masked = masked || rules.active[r]
@@ -715,7 +715,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		if cfg.yield != nil && q&63 == 63 {
 			cfg.yield()
 		}
-		p := q + rules.QueryOffset
+		p := rules.Pos(b, q)
 		var badK int
 		var fin, negRow bool
 		// a judged row of patterns is scanned for non-finite and negative
@@ -942,7 +942,7 @@ func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
 			la.Worst = lu.worst
 		}
 		if hs := w.hist[r]; hs != nil && w.hi[r] >= 0 {
-			base := len(hs) - len(w.rr) // QueryOffset + Queries - 1
+			base := len(hs) - len(w.rr) // rules.MaxPos()
 			if la.Offsets == nil {
 				la.Offsets = map[int]int64{}
 			}

@@ -84,6 +84,8 @@ type Rules struct {
 	Kind                       loader.Kind
 	Queries, Keys, QueryOffset int
 	Window, Prefix             int
+	qpos                       [][]int // per batch item (or one shared row), nil = q + QueryOffset
+	maxPos                     int
 	active                     [numMask]bool
 	sameSide                   bool
 	validQ, validK             [][]bool  // per batch item, nil = all valid
@@ -105,10 +107,16 @@ type Rules struct {
 func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules, error) {
 	r := &Rules{
 		Kind: blk.Kind, Queries: blk.Queries, Keys: blk.Keys, QueryOffset: blk.QueryOffset,
-		Window: blk.Window, Prefix: blk.Prefix, batch: blk.Batch, cacheB: -1,
+		Window: blk.Window, Prefix: blk.Prefix, batch: blk.Batch, cacheB: -1, qpos: blk.QPos,
+	}
+	r.maxPos = blk.QueryOffset + blk.Queries - 1
+	for _, row := range r.qpos {
+		for _, p := range row {
+			r.maxPos = max(r.maxPos, p)
+		}
 	}
 	r.sameSide = blk.Kind != loader.KindCross && (blk.QuerySide == blk.KeySide)
-	r.validQ = sideValid(qside, blk.Batch, blk.QueryOffset+blk.Queries)
+	r.validQ = sideValid(qside, blk.Batch, r.maxPos+1)
 	r.validK = sideValid(kside, blk.Batch, blk.Keys)
 	if r.sameSide && kside != nil && len(kside.Segments) > 0 {
 		r.segK = make([][]int64, blk.Batch)
@@ -222,8 +230,20 @@ func (r *Rules) RowChecks() []Rule {
 // sequence (so k - q offsets, positional shares and sinks are meaningful).
 func (r *Rules) SelfAttention() bool { return r.sameSide }
 
-// Pos returns the absolute position of query row q (q plus the KV-cache offset).
-func (r *Rules) Pos(q int) int { return q + r.QueryOffset }
+// Pos returns the key position of query row q of batch item b: q plus the
+// KV-cache offset, or the block's query positions (loader.Block.QueryPos).
+func (r *Rules) Pos(b, q int) int {
+	if r.qpos == nil {
+		return q + r.QueryOffset
+	}
+	if b < len(r.qpos) {
+		return r.qpos[b][q]
+	}
+	return r.qpos[0][q]
+}
+
+// MaxPos is the largest key position of any query row.
+func (r *Rules) MaxPos() int { return r.maxPos }
 
 // Judged reports whether query row q of batch item b is judged: padding
 // query rows are not.
@@ -231,7 +251,7 @@ func (r *Rules) Judged(b, q int) bool {
 	if r.validQ == nil {
 		return true
 	}
-	return r.validQ[b][q+r.QueryOffset]
+	return r.validQ[b][r.Pos(b, q)]
 }
 
 // DocStart returns the first key position of the document that holds
@@ -250,7 +270,7 @@ func (r *Rules) Row(b, q int, allowRow []bool, dst []Rule) {
 	for k := range dst {
 		dst[k] = RuleNone
 	}
-	p := q + r.QueryOffset
+	p := r.Pos(b, q)
 	K := r.Keys
 	if r.active[RuleCausal] {
 		if r.active[RulePrefix] && p < r.Prefix {
@@ -307,7 +327,7 @@ func (r *Rules) Cell(b, h, q, k int) (Rule, error) {
 	if q < 0 || q >= r.Queries || k < 0 || k >= r.Keys || b < 0 || b >= r.batch {
 		return RuleNone, fmt.Errorf("analysis: cell (batch %d, query %d, key %d) out of range", b, q, k)
 	}
-	p := q + r.QueryOffset
+	p := r.Pos(b, q)
 	if r.active[RuleCausal] && k > p {
 		if r.active[RulePrefix] && p < r.Prefix {
 			if k >= r.Prefix {

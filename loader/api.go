@@ -10,6 +10,7 @@ package loader
 import (
 	"errors"
 	"fmt"
+	"strings"
 )
 
 // DType is the element type of a stored array.
@@ -110,10 +111,35 @@ type Options struct {
 	Window     int    // -1 = not set
 	Prefix     int    // -1 = not set
 	KVHeads    int    // -1 = not set
+	// ComputeDType is the dtype the model computed attention in (Invalid =
+	// not set); see ParseComputeDType.
+	ComputeDType DType
+	// QueryStart is the key position of query row 0 of every block (-1 = not
+	// set): a decode step written from a static (pre-allocated) KV cache.
+	QueryStart int
 }
 
 // NewOptions returns Options with nothing overridden.
-func NewOptions() Options { return Options{Window: -1, Prefix: -1, KVHeads: -1} }
+func NewOptions() Options { return Options{Window: -1, Prefix: -1, KVHeads: -1, QueryStart: -1} }
+
+// ParseComputeDType reads the name of the dtype a model computed in, as the
+// metadata key compute_dtype and the --compute-dtype flag take it: the
+// short names heed prints (f16, bf16, f32, f64) or PyTorch's and numpy's
+// (float16, half, bfloat16, float32, float, float64, double; a "torch."
+// prefix is accepted).
+func ParseComputeDType(s string) (DType, error) {
+	switch strings.TrimPrefix(strings.ToLower(strings.TrimSpace(s)), "torch.") {
+	case "f16", "float16", "half", "fp16":
+		return Float16, nil
+	case "bf16", "bfloat16", "bfp16":
+		return BFloat16, nil
+	case "f32", "float32", "float", "fp32":
+		return Float32, nil
+	case "f64", "float64", "double", "fp64":
+		return Float64, nil
+	}
+	return Invalid, fmt.Errorf("compute dtype %q is not one of float16, bfloat16, float32, float64", s)
+}
 
 // ErrNoHDF5 is returned (wrapped) when a HDF5 file is opened by a build without HDF5 support.
 var ErrNoHDF5 = errors.New("loader: this heed was built without HDF5 support; rebuild with cgo and libhdf5-dev (CGO_ENABLED=1 go build ./cmd/heed)")

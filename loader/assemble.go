@@ -16,8 +16,9 @@ const FormatName = "heed-export/1"
 
 // metaDoc is the heed-export/1 metadata object.
 type metaDoc struct {
-	Format string               `json:"format"`
-	Blocks map[string]metaBlock `json:"blocks"`
+	Format       string               `json:"format"`
+	ComputeDType string               `json:"compute_dtype"`
+	Blocks       map[string]metaBlock `json:"blocks"`
 }
 
 // metaBlock is one block's entry in the metadata; nil pointers are "not said".
@@ -29,6 +30,11 @@ type metaBlock struct {
 	Window  *int            `json:"window"`
 	Prefix  *int            `json:"prefix"`
 	KVHeads *int            `json:"kv_heads"`
+	// ComputeDType is the dtype the model computed attention in.
+	ComputeDType *string `json:"compute_dtype"`
+	// QueryStart is the key position of query row 0: an integer, or a list
+	// with one per batch item.
+	QueryStart json.RawMessage `json:"query_start"`
 }
 
 // metaSource is metadata JSON and the file it came from.
@@ -62,6 +68,7 @@ const (
 	roleGrad
 	roleAllow
 	roleOut
+	roleQPos
 	roleTokens
 	roleValid
 	roleSegments
@@ -69,7 +76,7 @@ const (
 	roleMeta
 )
 
-var roleNames = map[string]role{"attn": roleAttn, "grad": roleGrad, "allow": roleAllow, "out": roleOut}
+var roleNames = map[string]role{"attn": roleAttn, "grad": roleGrad, "allow": roleAllow, "out": roleOut, "qpos": roleQPos}
 
 // classify splits a convention name into its block (or side) name, role
 // and layer (-1 for a whole array).
@@ -88,7 +95,7 @@ func classify(name string) (owner string, r role, layer int) {
 	parts := strings.Split(name, "/")
 	n := len(parts)
 	if n >= 3 && isDigits(parts[n-1]) {
-		if r, ok := roleNames[parts[n-2]]; ok && r != roleAllow && parts[0] != "" {
+		if r, ok := roleNames[parts[n-2]]; ok && r != roleAllow && r != roleQPos && parts[0] != "" {
 			l, err := strconv.Atoi(parts[n-1])
 			if err == nil && l < 1<<20 {
 				return strings.Join(parts[:n-2], "/"), r, l
@@ -120,7 +127,7 @@ type parts struct {
 	name                 string
 	attn, grad, out      Array         // whole arrays
 	attnL, gradL, outL   map[int]Array // per-layer arrays
-	allow                Array
+	allow, qpos          Array
 	bare                 bool // assembled from arrays outside the convention
 	attnName, sourceDesc string
 }
@@ -161,6 +168,11 @@ func (p *parts) set(r role, layer int, a Array) error {
 			return dup()
 		}
 		p.allow = a
+	case roleQPos:
+		if p.qpos != nil {
+			return dup()
+		}
+		p.qpos = a
 	}
 	return nil
 }
@@ -186,7 +198,7 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		seen[name] = a
 		owner, r, layer := classify(name)
 		switch r {
-		case roleAttn, roleGrad, roleAllow, roleOut:
+		case roleAttn, roleGrad, roleAllow, roleOut, roleQPos:
 			p := blocks[owner]
 			if p == nil {
 				p = &parts{name: owner}
@@ -309,7 +321,7 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 	}
 	sort.Strings(names)
 	for _, n := range names {
-		b, err := buildBlock(blocks[n], md.Blocks[n], opt)
+		b, err := buildBlock(blocks[n], md.Blocks[n], md.ComputeDType, opt)
 		if err != nil {
 			return nil, err
 		}
@@ -328,8 +340,9 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		if b.Layers > 0 && b.Heads == 1 {
 			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: one head per layer: heads were probably averaged at export, so per-head statistics and pruning do not apply", b.Name))
 		}
-		if b.Layers > 0 && b.Kind == KindUnknown {
-			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: kind unknown (no metadata): only row checks apply; pass --kind causal, bidirectional or cross", b.Name))
+		if b.Layers > 0 && b.AxesFrom == "rank" && b.AxesOther != "" {
+			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: axes guessed from the rank as %q (no metadata, no --axes); if the array is [%s], pass --axes %q (or meta blocks.%s.axes)",
+				b.Name, b.Axes, strings.ReplaceAll(b.AxesOther, " ", ", "), b.AxesOther, b.Name))
 		}
 		if b.Window > 0 && b.Kind != KindCausal {
 			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: window %d is only checked for causal blocks", b.Name, b.Window))
@@ -357,6 +370,12 @@ func mergeMeta(metas []metaSource) (metaDoc, error) {
 			}
 			out.Format = d.Format
 		}
+		if d.ComputeDType != "" {
+			if out.ComputeDType != "" && out.ComputeDType != d.ComputeDType {
+				return out, &FormatError{File: m.file, Array: "meta", Offset: -1, Msg: fmt.Sprintf("compute_dtype %q differs from %q given elsewhere", d.ComputeDType, out.ComputeDType)}
+			}
+			out.ComputeDType = d.ComputeDType
+		}
 		for name, b := range d.Blocks {
 			if prev, ok := out.Blocks[name]; ok {
 				pj, _ := json.Marshal(prev)
@@ -379,9 +398,13 @@ type blockSettings struct {
 	axes                    string
 	window, prefix, kvHeads int
 	axesFrom                string // "--axes", "metadata", "attribute" or ""
+	kindFrom                string // "--kind", "metadata", "attribute" or ""
+	compute                 DType  // Invalid = not said
+	queryStart              []int  // nil = not said; one value, or one per batch item
+	startFrom               string // "--query-start", "metadata", "attribute"
 }
 
-func settings(p *parts, mb metaBlock, opt Options, attn Array) (blockSettings, error) {
+func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array) (blockSettings, error) {
 	var s blockSettings
 	attr := func(name string) (string, bool) {
 		if ar, ok := attn.(attrReader); ok && attn != nil {
@@ -395,12 +418,63 @@ func settings(p *parts, mb metaBlock, opt Options, attn Array) (blockSettings, e
 	// kind
 	switch {
 	case opt.Kind != "":
-		s.kind = opt.Kind
+		s.kind, s.kindFrom = opt.Kind, "--kind"
 	case mb.Kind != nil:
-		s.kind = Kind(*mb.Kind)
+		s.kind, s.kindFrom = Kind(*mb.Kind), "metadata"
 	default:
 		if v, ok := attr("kind"); ok {
-			s.kind = Kind(v)
+			s.kind, s.kindFrom = Kind(v), "attribute"
+		}
+	}
+	if s.kind == KindUnknown {
+		s.kindFrom = ""
+	}
+	// compute dtype
+	var cname, cfrom string
+	switch {
+	case opt.ComputeDType != Invalid:
+		s.compute = opt.ComputeDType
+	case mb.ComputeDType != nil:
+		cname, cfrom = *mb.ComputeDType, "metadata"
+	case topCompute != "":
+		cname, cfrom = topCompute, "metadata"
+	default:
+		if v, ok := attr("compute_dtype"); ok {
+			cname, cfrom = v, "attribute"
+		}
+	}
+	if cfrom != "" {
+		d, err := ParseComputeDType(cname)
+		if err != nil {
+			return s, metaErr("%v", err)
+		}
+		s.compute = d
+	}
+	// query start
+	switch {
+	case opt.QueryStart >= 0:
+		s.queryStart, s.startFrom = []int{opt.QueryStart}, "--query-start"
+	case len(mb.QueryStart) > 0 && string(mb.QueryStart) != "null":
+		var one int
+		var list []int
+		if err := json.Unmarshal(mb.QueryStart, &one); err == nil {
+			list = []int{one}
+		} else if err := json.Unmarshal(mb.QueryStart, &list); err != nil || len(list) == 0 {
+			return s, metaErr("query_start must be an integer or a list of integers (one per batch item)")
+		}
+		for _, v := range list {
+			if v < 0 {
+				return s, metaErr("query_start %d is negative", v)
+			}
+		}
+		s.queryStart, s.startFrom = list, "metadata"
+	default:
+		if v, ok := attr("query_start"); ok {
+			n, err := strconv.Atoi(strings.TrimSpace(v))
+			if err != nil || n < 0 {
+				return s, &FormatError{File: attn.File(), Array: attn.Name(), Offset: -1, Msg: fmt.Sprintf("attribute query_start=%q is not a non-negative integer", v)}
+			}
+			s.queryStart, s.startFrom = []int{n}, "attribute"
 		}
 	}
 	switch s.kind {
@@ -642,7 +716,7 @@ func shapeEq(a, b []int) bool {
 	return true
 }
 
-func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
+func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block, error) {
 	b := &Block{Name: p.name}
 	attnArrs, attnPer, err := layerArrays(p.name, "attn", p.attn, p.attnL)
 	if err != nil {
@@ -668,11 +742,12 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 		}
 		return nil, ferr(a, "block %q has no attention (%s/attn or %s/attn/N)", p.name, p.name, p.name)
 	}
-	st, err := settings(p, mb, opt, first)
+	st, err := settings(p, mb, topCompute, opt, first)
 	if err != nil {
 		return nil, err
 	}
 	b.Kind, b.QuerySide, b.KeySide = st.kind, st.query, st.key
+	b.KindFrom, b.ComputeDType = st.kindFrom, st.compute
 	b.Window, b.Prefix, b.KVHeads = st.window, st.prefix, st.kvHeads
 
 	var dims [5]int
@@ -709,6 +784,11 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 		b.DType = a0.DType()
 		b.Layers, b.Batch, b.Heads, b.Queries, b.Keys = dims[0], dims[1], dims[2], dims[3], dims[4]
 		b.Axes = strings.Join(sp.names, " ")
+		b.AxesFrom = st.axesFrom
+		if b.AxesFrom == "" {
+			b.AxesFrom = "rank"
+			b.AxesOther = otherReading(len(a0.Shape()), attnPer)
+		}
 		b.attn = slabs(attnArrs, sp, b.Layers)
 		b.Source = a0.Name()
 		if attnPer {
@@ -855,9 +935,112 @@ func buildBlock(p *parts, mb metaBlock, opt Options) (*Block, error) {
 				return nil, ferr(first, "causal block with more queries (%d) than keys (%d): check the axes (%s)", b.Queries, b.Keys, b.Axes)
 			}
 			b.QueryOffset = b.Keys - b.Queries
+			if b.QueryOffset > 0 {
+				b.PosFrom = "offset"
+			}
 		}
+		if err := setQueryPos(b, p.qpos, st, first); err != nil {
+			return nil, err
+		}
+	} else if p.qpos != nil {
+		return nil, ferr(p.qpos, "block %q has query positions but no attention (%s/attn)", p.name, p.name)
 	}
 	return b, nil
+}
+
+// otherReading returns the --axes value of the other way an attention array
+// of this rank could be read when its axes were taken from the rank, or ""
+// when the rank's reading is the only common one. A whole rank-4 array is
+// [layer, head, query, key] by rank, but one layer saved alone as [batch,
+// head, query, key] has the same rank; a rank-3 array is [head, query, key]
+// by rank, or a batch of one averaged head.
+func otherReading(rank int, perLayer bool) string {
+	switch {
+	case rank == 4 && !perLayer:
+		return "batch head query key"
+	case rank == 3:
+		return "batch query key"
+	}
+	return ""
+}
+
+// maxQPos bounds the elements of a BLOCK/qpos array (read whole).
+const maxQPos = 1 << 24
+
+// setQueryPos places the block's query rows among its keys from BLOCK/qpos
+// or query_start; without either, rows keep QueryOffset.
+func setQueryPos(b *Block, qpos Array, st blockSettings, first Array) error {
+	if qpos != nil && st.queryStart != nil && st.startFrom != "--query-start" {
+		return ferr(qpos, "block %q has both %s/qpos and query_start: give one", b.Name, b.Name)
+	}
+	check := func(a Array, pos [][]int) error {
+		for bi, row := range pos {
+			for q, v := range row {
+				if v < 0 || v >= b.Keys {
+					what := "query_start"
+					if a != nil {
+						what = a.Name()
+					}
+					return &FormatError{File: first.File(), Array: what, Offset: -1,
+						Msg: fmt.Sprintf("batch item %d, query %d is at key position %d, outside the %d keys", bi, q, v, b.Keys)}
+				}
+			}
+		}
+		return nil
+	}
+	switch {
+	case st.startFrom == "--query-start" || (qpos == nil && st.queryStart != nil):
+		if len(st.queryStart) != 1 && len(st.queryStart) != b.Batch {
+			return &FormatError{File: first.File(), Array: "meta", Offset: -1, Msg: fmt.Sprintf("block %q: query_start lists %d positions for %d batch items", b.Name, len(st.queryStart), b.Batch)}
+		}
+		pos := make([][]int, len(st.queryStart))
+		for i, s0 := range st.queryStart {
+			pos[i] = make([]int, b.Queries)
+			for q := range pos[i] {
+				pos[i][q] = s0 + q
+			}
+		}
+		if err := check(nil, pos); err != nil {
+			return err
+		}
+		b.QPos, b.PosFrom = pos, st.startFrom
+	case qpos != nil:
+		if !qpos.DType().IsInt() || qpos.DType() == Bool {
+			return ferr(qpos, "query positions must be integers, got %s", qpos.DType())
+		}
+		sh := qpos.Shape()
+		nb := 1
+		switch {
+		case len(sh) == 1 && sh[0] == b.Queries:
+		case len(sh) == 2 && sh[1] == b.Queries && (sh[0] == b.Batch || sh[0] == 1):
+			nb = sh[0]
+		default:
+			return ferr(qpos, "query positions must be [query] or [batch, query] = [%d, %d], got shape %v", b.Batch, b.Queries, sh)
+		}
+		if nb*b.Queries > maxQPos {
+			return ferr(qpos, "%d query positions is more than heed reads (%d)", nb*b.Queries, maxQPos)
+		}
+		flat := make([]int64, nb*b.Queries)
+		if err := qpos.ReadInt64(nil, flat); err != nil {
+			return ferr(qpos, "%v", err)
+		}
+		pos := make([][]int, nb)
+		for i := range pos {
+			pos[i] = make([]int, b.Queries)
+			for q := range pos[i] {
+				v := flat[i*b.Queries+q]
+				if v < 0 || v >= int64(b.Keys) {
+					return ferr(qpos, "batch item %d, query %d is at key position %d, outside the %d keys", i, q, v, b.Keys)
+				}
+				pos[i][q] = int(v)
+			}
+		}
+		b.QPos, b.PosFrom = pos, "qpos"
+	default:
+		return nil
+	}
+	b.QueryOffset = b.QPos[0][0]
+	return nil
 }
 
 // maxHead bounds Queries*Keys: callers allocate one head as a buffer.

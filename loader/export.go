@@ -135,8 +135,32 @@ type Block struct {
 	// KVHeads is the number of key/value heads (grouped-query attention); 0 = Heads.
 	KVHeads int
 	// QueryOffset is the absolute position of query row 0 (Keys-Queries for a
-	// causal block whose queries are the last Q of K positions, else 0).
+	// causal block whose queries are the last Q of K positions, else 0; with
+	// QPos, the position of row 0 of batch item 0, for labels).
 	QueryOffset int
+	// QPos, when not nil, holds the key position of every query row per
+	// batch item ([batch][Queries], or one row shared by every item): from
+	// BLOCK/qpos, or from query_start. Use QueryPos.
+	QPos [][]int
+	// PosFrom says how query rows were placed among the keys: "qpos"
+	// (BLOCK/qpos), "metadata" (query_start), "--query-start", "offset"
+	// (a causal block with fewer queries than keys: the last Q of K
+	// positions, assumed) or "" (row q is position q).
+	PosFrom string
+	// KindFrom says who gave Kind: "--kind", "metadata", "attribute", or ""
+	// when nobody did (analysis may then infer it and write "inferred").
+	KindFrom string
+	// KindEvidence is, for a kind analysis inferred, what the data showed.
+	KindEvidence string
+	// AxesFrom says who gave Axes: "--axes", "metadata", "attribute", or
+	// "rank" when heed read them by the array's rank (a guess).
+	AxesFrom string
+	// AxesOther is, when the axes were guessed and the array could also be
+	// read another way, the --axes value of that other reading.
+	AxesOther string
+	// ComputeDType is the dtype the model computed attention in (metadata
+	// compute_dtype, --compute-dtype); Invalid when nobody said.
+	ComputeDType DType
 	// Axes names the stored axes of the attention arrays, e.g.
 	// "layer batch head query key" (per-layer arrays: without "layer").
 	Axes string
@@ -158,6 +182,20 @@ type Block struct {
 	grad  []slab // per layer, nil without gradients
 	out   []slab // per layer, nil without activations
 	allow *allowSource
+}
+
+// QueryPos returns the key position of query row q of batch item b: where
+// the query sits in the key sequence, which the positional rules (causal,
+// window, prefix) compare keys with.
+func (b *Block) QueryPos(batch, q int) int {
+	if b.QPos == nil {
+		return q + b.QueryOffset
+	}
+	row := b.QPos[0]
+	if batch < len(b.QPos) {
+		row = b.QPos[batch]
+	}
+	return row[q]
 }
 
 // slab locates one layer's [batch, head, query, key] data inside an array.

@@ -13,6 +13,8 @@ import (
 type loadFlags struct {
 	axes, kind, tokens      string
 	window, prefix, kvHeads int
+	computeDType            string
+	queryStart              int
 }
 
 func (lf *loadFlags) register(cmd *cobra.Command) {
@@ -23,6 +25,8 @@ func (lf *loadFlags) register(cmd *cobra.Command) {
 	f.IntVar(&lf.window, "window", -1, "sliding window W: a query at q may see keys q-W < k <= q")
 	f.IntVar(&lf.prefix, "prefix", -1, "prefix length P: the first P positions see each other both ways")
 	f.IntVar(&lf.kvHeads, "kv-heads", -1, "number of key/value heads (grouped-query attention)")
+	f.StringVar(&lf.computeDType, "compute-dtype", "", `dtype the model computed attention in (float32, bfloat16, float16), e.g. "bfloat16" for a bf16 model saved as float32: row-sum tolerances follow it`)
+	f.IntVar(&lf.queryStart, "query-start", -1, "key position of query row 0, e.g. 17 for a decode step at position 17 written from a static (pre-allocated) KV cache")
 }
 
 func (lf *loadFlags) options() loader.Options {
@@ -33,6 +37,8 @@ func (lf *loadFlags) options() loader.Options {
 	o.Window = lf.window
 	o.Prefix = lf.prefix
 	o.KVHeads = lf.kvHeads
+	o.QueryStart = lf.queryStart
+	o.ComputeDType, _ = loader.ParseComputeDType(lf.computeDType) // checked in openSet
 	return o
 }
 
@@ -48,8 +54,13 @@ func openSet(args []string, lf *loadFlags) (*loader.Set, error) {
 	default:
 		return nil, fmt.Errorf("--kind %q: must be causal, bidirectional or cross", lf.kind)
 	}
-	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 {
-		return nil, errors.New("--window, --prefix and --kv-heads must not be negative")
+	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 || lf.queryStart < -1 {
+		return nil, errors.New("--window, --prefix, --kv-heads and --query-start must not be negative")
+	}
+	if lf.computeDType != "" {
+		if _, err := loader.ParseComputeDType(lf.computeDType); err != nil {
+			return nil, fmt.Errorf("--compute-dtype: %w", err)
+		}
 	}
 	return loader.OpenSet(args, lf.options())
 }
