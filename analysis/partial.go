@@ -2,12 +2,15 @@ package analysis
 
 import (
 	"fmt"
+	"slices"
 	"sort"
 )
 
 // PartialVersion is written in every Partial; Merge refuses other versions.
 // 2: padding keys left out of the forbidden-cell counts, options no_stats.
-const PartialVersion = "heed-partial/2"
+// 3: coverage (who gave the kind, inferred masks, query positions, axes,
+// compute dtype) and rows summing within a lower precision's rounding.
+const PartialVersion = "heed-partial/3"
 
 // Partial is the exact state of an analysis: per block, per (layer, head,
 // batch item) sums and counts over every example seen. It is what a shard of
@@ -56,6 +59,27 @@ type BlockPartial struct {
 	Rules       []string `json:"rules"`
 	SelfAttn    bool     `json:"self_attention"`
 	HasGrad     bool     `json:"grad"`
+	// RowChecks are the row rules the pass ran on the block.
+	RowChecks []string `json:"row_checks"`
+	// RulesGiven is true when --rule chose the checks (Options.Rules).
+	RulesGiven bool `json:"rules_given,omitempty"`
+	// Coverage: who gave the kind ("--kind", "metadata", "attribute",
+	// "inferred", "" = nobody) and, for an inferred or undecided kind, what
+	// the data showed; the axes and who gave them ("rank" = guessed) and
+	// the other common reading; how query rows were placed (loader.Block's
+	// PosFrom; "unknown" with the reason in PosEvidence); the compute dtype
+	// ("" = unknown) and the row-sum tolerances (RowSumTolerance). Examples
+	// that disagree give "mixed"; Evidence keeps the smallest string.
+	KindFrom     string  `json:"kind_from"`
+	Evidence     string  `json:"evidence,omitempty"`
+	Axes         string  `json:"axes"`
+	AxesFrom     string  `json:"axes_from"`
+	AxesOther    string  `json:"axes_other,omitempty"`
+	PosFrom      string  `json:"positions,omitempty"`
+	PosEvidence  string  `json:"positions_evidence,omitempty"`
+	ComputeDType string  `json:"compute_dtype,omitempty"`
+	SumTol       float64 `json:"sum_tol"`
+	SumLoose     float64 `json:"sum_loose,omitempty"`
 	// Units holds the accumulators of (layer, head) at index layer*Heads+head,
 	// one per batch item (batch item b of every example adds to entry b).
 	Units [][]HeadAcc `json:"units"`
@@ -94,6 +118,29 @@ func (bp *BlockPartial) absorb(o *BlockPartial) {
 	agree(&bp.Window, o.Window)
 	agree(&bp.Prefix, o.Prefix)
 	agree(&bp.QueryOffset, o.QueryOffset)
+	agreeS := func(a *string, b string) {
+		if *a != b {
+			*a = "mixed"
+		}
+	}
+	agreeS(&bp.KindFrom, o.KindFrom)
+	agreeS(&bp.Axes, o.Axes)
+	agreeS(&bp.AxesFrom, o.AxesFrom)
+	agreeS(&bp.PosFrom, o.PosFrom)
+	agreeS(&bp.ComputeDType, o.ComputeDType)
+	if o.AxesOther != "" && (bp.AxesOther == "" || o.AxesOther < bp.AxesOther) {
+		bp.AxesOther = o.AxesOther
+	}
+	if o.Evidence != "" && (bp.Evidence == "" || o.Evidence < bp.Evidence) {
+		bp.Evidence = o.Evidence
+	}
+	if o.PosEvidence != "" && (bp.PosEvidence == "" || o.PosEvidence < bp.PosEvidence) {
+		bp.PosEvidence = o.PosEvidence
+	}
+	bp.SumTol, bp.SumLoose = max(bp.SumTol, o.SumTol), max(bp.SumLoose, o.SumLoose)
+	if fmt.Sprint(bp.RowChecks) != fmt.Sprint(o.RowChecks) {
+		bp.RowChecks = unionStrings(bp.RowChecks, o.RowChecks)
+	}
 	if bp.DType != o.DType {
 		bp.DType = "mixed"
 	}
@@ -130,6 +177,11 @@ type HeadAcc struct {
 	RowSum     Sum     `json:"row_sum"`
 	SumBadRows int64   `json:"sum_bad_rows"`
 	SumBadDev  Sum     `json:"sum_bad_dev"` // sum of |row sum - 1| over bad rows
+	// SumLowRows counts rows off by more than the stored dtype's tolerance
+	// but within a bfloat16 softmax's rounding, when the compute dtype is
+	// unknown (RowSumTolerance); SumLowMax is their largest |sum - 1|.
+	SumLowRows int64   `json:"sum_low_rows,omitempty"`
+	SumLowMax  float64 `json:"sum_low_max,omitempty"`
 	SumMin     float64 `json:"sum_min"`
 	SumMax     float64 `json:"sum_max"`
 	SumSeen    bool    `json:"sum_seen"`
@@ -243,6 +295,8 @@ func (a *HeadAcc) Merge(o *HeadAcc) {
 	a.RowSum.Merge(o.RowSum)
 	a.SumBadRows += o.SumBadRows
 	a.SumBadDev.Merge(o.SumBadDev)
+	a.SumLowRows += o.SumLowRows
+	a.SumLowMax = max(a.SumLowMax, o.SumLowMax)
 	if o.SumSeen {
 		if !a.SumSeen || o.SumMin < a.SumMin {
 			a.SumMin = o.SumMin
@@ -363,9 +417,20 @@ func (p *Partial) block(name string) *BlockPartial {
 	return nil
 }
 
+func unionStrings(a, b []string) []string {
+	out := append([]string(nil), a...)
+	for _, x := range b {
+		if !slices.Contains(out, x) {
+			out = append(out, x)
+		}
+	}
+	return out
+}
+
 func cloneBlock(b *BlockPartial) *BlockPartial {
 	c := *b
 	c.Rules = append([]string(nil), b.Rules...)
+	c.RowChecks = append([]string(nil), b.RowChecks...)
 	c.Units = make([][]HeadAcc, len(b.Units))
 	for i := range b.Units {
 		c.Units[i] = make([]HeadAcc, len(b.Units[i]))

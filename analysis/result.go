@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"math"
+	"slices"
 	"sort"
 	"strings"
 )
@@ -110,10 +111,138 @@ type Result struct {
 	// Notes are things worth knowing that are not findings (e.g. padding
 	// rows that are NaN, which are benign).
 	Notes []string
+	// Coverage says, per block, what was judged and what was not.
+	Coverage []Coverage
 }
 
-// Clean reports whether there are no findings.
+// Clean reports whether there are no findings. A result without findings
+// is not "clean" as a verdict unless every block was judged: see Verdict.
 func (r *Result) Clean() bool { return len(r.Findings) == 0 }
+
+// Verdicts (Result.Verdict).
+const (
+	VerdictClean     = "clean"      // no findings, and every block's mask rules were judged
+	VerdictFindings  = "findings"   // at least one finding
+	VerdictNotJudged = "not_judged" // no findings, but some block's mask rules were not judged
+)
+
+// Verdict says what the result can claim: VerdictFindings when there are
+// findings; otherwise VerdictNotJudged when some block's mask rules could
+// not be judged (Coverage[i].Judged false: kind unknown and not inferred,
+// query positions unknown, no judged row), else VerdictClean.
+func (r *Result) Verdict() string {
+	if len(r.Findings) > 0 {
+		return VerdictFindings
+	}
+	for _, c := range r.Coverage {
+		if !c.Judged {
+			return VerdictNotJudged
+		}
+	}
+	return VerdictClean
+}
+
+// Gap is something a verdict did not judge: what, why, and what would let
+// heed judge it.
+type Gap struct {
+	Block string `json:"block"`
+	// What: "mask" (no mask rule could be chosen: kind unknown), "positions"
+	// (where the queries sit among the keys is unknown), "rows" (no query
+	// row was judged).
+	What string `json:"what"`
+	Why  string `json:"why"`
+	Fix  string `json:"fix"`
+}
+
+// Coverage says, for one block, what a verdict judged and what it did not.
+type Coverage struct {
+	Block string `json:"block"`
+	Kind  string `json:"kind"`
+	// KindFrom: "--kind", "metadata", "attribute", "inferred" or "unknown".
+	KindFrom string `json:"kind_from"`
+	// Evidence: for an inferred or undecided kind, what the data showed.
+	Evidence string `json:"evidence,omitempty"`
+	Window   int    `json:"window,omitempty"`
+	Prefix   int    `json:"prefix,omitempty"`
+	Axes     string `json:"axes"`
+	// AxesFrom: "--axes", "metadata", "attribute" or "rank" (guessed from
+	// the array's rank); AxesOther the other common reading of a guess.
+	AxesFrom  string `json:"axes_from"`
+	AxesOther string `json:"axes_other,omitempty"`
+	// Positions: how query rows were placed among the keys: "rows" (row q
+	// is position q), "offset" (the last Q of K positions, assumed),
+	// "qpos", "metadata" (query_start), "--query-start", "unknown".
+	Positions string `json:"positions"`
+	// ComputeDType is the dtype the model computed in ("" = unknown);
+	// SumTol the row-sum tolerance applied; SumLoose, when not 0, the
+	// tolerance of rows explained by a lower compute precision.
+	ComputeDType string   `json:"compute_dtype"`
+	SumTol       float64  `json:"sum_tol"`
+	SumLoose     float64  `json:"sum_loose,omitempty"`
+	MaskRules    []string `json:"mask_rules"`
+	RowChecks    []string `json:"row_checks"`
+	// JudgedRows counts judged (query row, head) pairs over batch items and
+	// examples; ForbiddenCells, per mask rule, the cells it forbids in them
+	// (where a leak could show).
+	JudgedRows     int64            `json:"judged_rows"`
+	ForbiddenCells map[string]int64 `json:"forbidden_cells"`
+	// Judged is false when the block's mask rules were not judged;
+	// NotJudged says what, why, and how to let heed judge it.
+	Judged    bool  `json:"judged"`
+	NotJudged []Gap `json:"not_judged"`
+}
+
+func coverageOf(bp *BlockPartial) Coverage {
+	c := Coverage{Block: bp.Name, Kind: bp.Kind, KindFrom: bp.KindFrom, Evidence: bp.Evidence, Axes: bp.Axes,
+		AxesFrom: bp.AxesFrom, AxesOther: bp.AxesOther, Positions: bp.PosFrom, ComputeDType: bp.ComputeDType,
+		SumTol: bp.SumTol, SumLoose: bp.SumLoose, MaskRules: append([]string{}, bp.Rules...),
+		RowChecks: append([]string{}, bp.RowChecks...), ForbiddenCells: map[string]int64{}, NotJudged: []Gap{}, Judged: true}
+	if max(bp.Window, 0) > 0 && slices.Contains(bp.Rules, RuleWindow.String()) {
+		c.Window = bp.Window
+	}
+	if max(bp.Prefix, 0) > 0 && slices.Contains(bp.Rules, RulePrefix.String()) {
+		c.Prefix = bp.Prefix
+	}
+	if c.KindFrom == "" {
+		c.KindFrom = "unknown"
+	}
+	if c.Positions == "" {
+		c.Positions = "rows"
+	}
+	for i := range bp.Units {
+		for j := range bp.Units[i] {
+			u := &bp.Units[i][j]
+			c.JudgedRows += u.Rows + u.NaNRows
+			for r := RuleCausal; r < numMask; r++ {
+				if u.Leaks[r].Forbidden > 0 {
+					c.ForbiddenCells[r.String()] += u.Leaks[r].Forbidden
+				}
+			}
+		}
+	}
+	gap := func(what, why, fix string) {
+		c.Judged = false
+		c.NotJudged = append(c.NotJudged, Gap{Block: bp.Name, What: what, Why: why, Fix: fix})
+	}
+	if bp.Kind == "" && !bp.RulesGiven {
+		why := "kind unknown: no metadata said it"
+		if bp.Evidence != "" {
+			why += "; from the data: " + bp.Evidence
+		}
+		gap("mask", why, fmt.Sprintf("say the kind: --kind causal|bidirectional|cross, or meta blocks.%s.kind", bp.Name))
+	}
+	if bp.PosFrom == "unknown" || bp.PosFrom == "mixed" {
+		why := bp.PosEvidence
+		if why == "" {
+			why = "examples place their queries differently"
+		}
+		gap("positions", why, fmt.Sprintf("give the queries' key positions: meta blocks.%s.query_start (one, or one per batch item), an array %s/qpos [batch, query], or --query-start P", bp.Name, bp.Name))
+	}
+	if c.JudgedRows == 0 {
+		gap("rows", "no query row was judged (every query row is padding, or the block is empty)", "check valid/"+"SIDE of the block's query side")
+	}
+	return c
+}
 
 // Block returns the named block's result, or nil.
 func (r *Result) Block(name string) *BlockResult {
@@ -209,6 +338,7 @@ func (p *Partial) Result() *Result {
 		res.Blocks = append(res.Blocks, br)
 		res.Findings = append(res.Findings, findings(bp)...)
 		res.Notes = append(res.Notes, notes(bp)...)
+		res.Coverage = append(res.Coverage, coverageOf(bp))
 	}
 	// worst first: NaN rows and leaks by mass; diagnoses follow that order
 	sort.SliceStable(res.Findings, func(i, j int) bool { return res.Findings[i].Mass > res.Findings[j].Mass })
@@ -229,6 +359,18 @@ func notes(bp *BlockPartial) []string {
 	var out []string
 	if padNaN > 0 {
 		out = append(out, fmt.Sprintf("%s: %d of %d padding query rows hold NaN; padding rows are not judged (benign unless NaN spreads into real rows)", bp.Name, padNaN, pad))
+	}
+	var low int64
+	var lowMax float64
+	for i := range bp.Units {
+		for j := range bp.Units[i] {
+			low += bp.Units[i][j].SumLowRows
+			lowMax = max(lowMax, bp.Units[i][j].SumLowMax)
+		}
+	}
+	if low > 0 {
+		out = append(out, fmt.Sprintf("%s: %d rows sum to 1 only within %.2g (%s rounding allows %.0e): the size of a bfloat16 or float16 softmax's rounding, so the model probably computed attention in lower precision and the export widened it; judged at bfloat16's tolerance %.0e, not reported as a bug. If the model computed in %s, this is a bug: say the compute dtype (meta compute_dtype or --compute-dtype)",
+			bp.Name, low, lowMax, bp.DType, bp.SumTol, bp.SumLoose, bp.DType))
 	}
 	if bp.Heads == 1 {
 		out = append(out, fmt.Sprintf("%s: the head axis has length 1: heads were probably averaged at export, so per-head statistics describe the average", bp.Name))

@@ -147,6 +147,9 @@ type Block struct {
 	// (a causal block with fewer queries than keys: the last Q of K
 	// positions, assumed) or "" (row q is position q).
 	PosFrom string
+	// PosEvidence says why the query positions are unknown (PosFrom
+	// "unknown", set by analysis when the data contradicts "offset").
+	PosEvidence string
 	// KindFrom says who gave Kind: "--kind", "metadata", "attribute", or ""
 	// when nobody did (analysis may then infer it and write "inferred").
 	KindFrom string

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"slices"
 	"strings"
 	"text/tabwriter"
 
@@ -108,7 +109,23 @@ With --against B it runs the causal-invariance check instead: A and B are
 the same model on inputs that differ from position P on, and nothing before
 P may change (see --against, --from and the README).
 
-Exit status: 0 clean, 1 findings, 2 bad input.`,
+When nobody said a block's kind (no metadata, no --kind), check infers
+its mask from where the exact zeros are (causal, sliding window, prefix, or
+none) and says so; a block it cannot decide, or whose queries' positions
+are unknown, is "not judged", never "clean".
+
+Examples:
+  heed check run.npz                          # metadata says the kinds
+  heed check attn.npy --kind causal           # a bare array
+  heed check attn.npy --axes "batch head query key"   # one layer saved alone
+  heed check step.npz --query-start 17        # a decode step from a static cache
+  heed check run.npz --compute-dtype bfloat16 # a bf16 model saved as float32
+  heed check run.npz --json                   # verdict, coverage, findings
+
+Exit status: 0 clean (every block judged, nothing found), 1 findings,
+2 bad input, 3 not judged (nothing found, but some block's mask could not
+be judged: the report names the flag or metadata key that would let heed
+judge it).`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			if af.active(cmd) {
@@ -130,8 +147,11 @@ Exit status: 0 clean, 1 findings, 2 bad input.`,
 			} else {
 				writeCheckText(out, res, set.Warnings)
 			}
-			if !res.Clean() {
+			switch res.Verdict() {
+			case analysis.VerdictFindings:
 				return &findingsError{len(res.Findings)}
+			case analysis.VerdictNotJudged:
+				return &notJudgedError{len(notJudged(res))}
 			}
 			return nil
 		},
@@ -145,7 +165,9 @@ Exit status: 0 clean, 1 findings, 2 bad input.`,
 
 // checkReport is the JSON of heed check (docs/json.md).
 type checkReport struct {
+	Verdict   string               `json:"verdict"`
 	Clean     bool                 `json:"clean"`
+	Coverage  []analysis.Coverage  `json:"coverage"`
 	Examples  int64                `json:"examples"`
 	Findings  []analysis.Finding   `json:"findings"`
 	Diagnosis []analysis.Diagnosis `json:"diagnosis"`
@@ -156,7 +178,7 @@ type checkReport struct {
 }
 
 func writeCheckJSON(w io.Writer, res *analysis.Result, warnings []string) error {
-	rep := checkReport{Clean: res.Clean(), Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
+	rep := checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
 		Rules: map[string][]string{}, Notes: res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
 	if rep.Findings == nil {
 		rep.Findings = []analysis.Finding{}
@@ -192,7 +214,7 @@ func rulesLine(res *analysis.Result) string {
 		if len(rs) == 0 {
 			rs = []string{"row checks only"}
 			if b.Kind == string(loader.KindUnknown) {
-				rs[0] += " (kind unknown: pass --kind)"
+				rs[0] += " (kind unknown)"
 			}
 		}
 		parts = append(parts, b.Name+": "+strings.Join(rs, ", "))
@@ -200,12 +222,52 @@ func rulesLine(res *analysis.Result) string {
 	return strings.Join(parts, "; ")
 }
 
+// notJudged lists the gaps of every block that was not judged.
+func notJudged(res *analysis.Result) []analysis.Gap {
+	var out []analysis.Gap
+	for _, c := range res.Coverage {
+		out = append(out, c.NotJudged...)
+	}
+	return out
+}
+
+// coverageLines says, per block, how its kind and positions were known
+// when heed had to infer or assume them (guessed axes are in the warnings),
+// then what was not judged.
+func coverageLines(w io.Writer, res *analysis.Result) {
+	for _, c := range res.Coverage {
+		if c.KindFrom == "inferred" {
+			fmt.Fprintf(w, "inferred: %s: %s (say the kind with --kind or meta blocks.%s.kind to override)\n", c.Block, c.Evidence, c.Block)
+		}
+		if c.Positions == "offset" {
+			fmt.Fprintf(w, "positions: %s: queries taken as the last of the keys (a KV-cache step); say otherwise with meta blocks.%s.query_start, %s/qpos or --query-start\n", c.Block, c.Block, c.Block)
+		}
+	}
+	for _, g := range notJudged(res) {
+		fmt.Fprintf(w, "not judged: %s: %s: %s. To judge it: %s\n", g.Block, g.What, g.Why, g.Fix)
+	}
+}
+
 func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 	ex := fmt.Sprintf("%d %s", res.Examples, plural(int(res.Examples), "example", "examples"))
-	if res.Clean() {
+	switch res.Verdict() {
+	case analysis.VerdictClean:
 		fmt.Fprintf(w, "heed check: clean: no mask leaks, cut-off rows, NaN rows or un-normalised rows in %s.\n", ex)
 		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
-	} else {
+		coverageLines(w, res)
+	case analysis.VerdictNotJudged:
+		gaps := notJudged(res)
+		var blocks []string
+		for _, g := range gaps {
+			if !slices.Contains(blocks, g.Block) {
+				blocks = append(blocks, g.Block)
+			}
+		}
+		fmt.Fprintf(w, "heed check: NOT JUDGED: %s %s could not be judged, so this is not a clean result; nothing was found in what was judged (%s).\n",
+			plural(len(blocks), "block", "blocks"), strings.Join(blocks, ", "), ex)
+		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
+		coverageLines(w, res)
+	default:
 		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), plural(len(res.Diagnoses), "likely bug", "likely bugs"),
 			len(res.Findings), plural(len(res.Findings), "finding", "findings"), ex, "These are evidence to confirm by re-evaluating the model, not verdicts.")
 		for i, d := range res.Diagnoses {
@@ -234,6 +296,7 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 		}
 		tw.Flush()
 		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
+		coverageLines(w, res)
 	}
 	for _, n := range res.Notes {
 		fmt.Fprintf(w, "note: %s\n", n)

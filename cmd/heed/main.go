@@ -95,7 +95,8 @@ func stoppedByInterrupt(cmd *cobra.Command, err error) bool {
 }
 
 // exitCode maps an error to the command contract's exit codes: 0 success,
-// 1 findings, 2 bad input (any other error), 130 interrupted (143 when by
+// 1 findings, 2 bad input (any other error), 3 not judged (heed check found
+// nothing but could not judge some block's mask), 130 interrupted (143 when by
 // SIGTERM, set by main; but see stoppedByInterrupt).
 func exitCode(err error, interrupted bool) int {
 	if interrupted {
@@ -111,6 +112,10 @@ func exitCode(err error, interrupted bool) int {
 	if errors.As(err, &f) {
 		return 1
 	}
+	var nj *notJudgedError
+	if errors.As(err, &nj) {
+		return 3
+	}
 	fmt.Fprintln(os.Stderr, "heed: "+err.Error())
 	return 2
 }
@@ -120,3 +125,10 @@ func exitCode(err error, interrupted bool) int {
 type findingsError struct{ n int }
 
 func (f *findingsError) Error() string { return fmt.Sprintf("%d findings", f.n) }
+
+// notJudgedError is returned by heed check when it found nothing but could
+// not judge the mask of some block (analysis.VerdictNotJudged): exit code 3,
+// nothing more printed (the report says what was not judged and why).
+type notJudgedError struct{ blocks int }
+
+func (e *notJudgedError) Error() string { return fmt.Sprintf("%d blocks not judged", e.blocks) }
