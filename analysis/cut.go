@@ -2,6 +2,7 @@ package analysis
 
 import (
 	"fmt"
+	"math"
 	"sort"
 
 	"github.com/heed-dev/heed/loader"
@@ -24,6 +25,17 @@ import (
 // A unit (layer, head, batch item) is cut when at least minCutRows rows stop
 // at the same offset c and they are at least cutShare of the rows that have
 // allowed keys after p + c.
+
+//
+// Underflow: in float16 (and, in principle, bfloat16) a probability below
+// half the smallest subnormal rounds to exactly 0 without any mask: a sharp
+// row of cross-attention ends in exact zeros wherever its logits fall far
+// enough below the maximum. Such zeros are no evidence of a mask. A row is
+// left out of the cut check when it holds a nonzero value at most
+// underflowTiny of the dtype (stored or computed): 2^10 times the smallest
+// subnormal, where the row's values have run down to the end of the
+// dtype's range, so its zeros are more likely underflow than a mask. A mask
+// cut shows in the rows (and heads) that are not that sharp.
 
 const (
 	minCutRows = 2
@@ -57,6 +69,39 @@ func (c *CutAcc) commitTo(acc *CutAcc) {
 	acc.merge(c)
 	c.Rows, c.Cells, c.First = 0, 0, Cell{}
 	clear(c.Stops)
+}
+
+// underflowTiny returns the value at or below which a row of dtype d is
+// taken to reach underflow (2^10 x the smallest subnormal: float16 2^-24,
+// bfloat16 2^-133, from the IEEE 754 binary16 and bfloat16 layouts), 0 for
+// dtypes where a softmax does not underflow in practice.
+func underflowTiny(d loader.DType) float64 {
+	switch d {
+	case loader.Float16:
+		return math.Ldexp(1, -24+10)
+	case loader.BFloat16:
+		return math.Ldexp(1, -133+10)
+	}
+	return 0
+}
+
+// rowReachesUnderflow reports whether the row (float32 values, or 16-bit
+// patterns through rt) holds a nonzero value at most tiny in magnitude.
+func rowReachesUnderflow(row []float32, row16 []uint16, rt *rawTables, tiny float64) bool {
+	if row16 != nil && rt != nil {
+		for _, hb := range row16 {
+			if v := float64(rt.val[hb]); v != 0 && math.Abs(v) <= tiny {
+				return true
+			}
+		}
+		return false
+	}
+	for _, v := range row {
+		if v != 0 && math.Abs(float64(v)) <= tiny {
+			return true
+		}
+	}
+	return false
 }
 
 // cutCheck reports whether the cut check runs with the --rule selection rs.

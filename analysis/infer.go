@@ -28,7 +28,13 @@ import (
 //     W_u = max over rows of (p - first key with mass + 1).
 //   - A unit whose rows that look past themselves all sit before some P < K,
 //     and reach no further than P - 1, while rows from P on exist and do
-//     not, looks like a prefix LM with prefix P.
+//     not, and at least 90% of the rows before P - 1 reach exactly P - 1,
+//     looks like a prefix LM with prefix P.
+//   - A unit with rows looking past themselves whose live cells after the
+//     query's position are still at least half exact zeros, a share at least
+//     0.4 above that of the cells before it, looks "mostly masked": a causal
+//     mask that leaks (a cell let through, a mask shifted by +1). Sharp
+//     heads whose small weights underflow have zeros on both sides.
 //   - Any other unit with rows looking past themselves is dense.
 //
 // Over the units: causal when at least half of them look causal or like a
@@ -54,7 +60,10 @@ type InferAcc struct {
 	// Units sampled ((layer, head, batch item) matrices); Causal, Prefix and
 	// Dense count how each looked; Blank the units with nothing to show
 	// (no live key after any row's position, or no finite row).
-	Units, Causal, Prefix, Dense, Blank int64
+	Units, Causal, Prefix, Shifted, Dense, Blank int64
+	// Shift is the most common s of the units whose rows all stop s keys
+	// after their own position (a causal mask shifted by +s).
+	Shift int
 	// Window and Prefix (Len) are the inferred W and P (0 = none), WindowUnits
 	// and PrefixUnits the units showing exactly them.
 	Window      int
@@ -84,6 +93,7 @@ const (
 	lookBlank unitLook = iota
 	lookCausal
 	lookPrefix
+	lookShifted
 	lookDense
 )
 
@@ -121,6 +131,7 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 	a := &inf.Acc
 	wins := map[int]int64{}
 	pres := map[int]int64{}
+	shifts := map[int]int64{}
 	maxReach := 0
 	for _, s := range all {
 		a.Units++
@@ -133,6 +144,9 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 		case lookPrefix:
 			a.Prefix++
 			pres[s.p]++
+		case lookShifted:
+			a.Shifted++
+			shifts[s.w]++
 		case lookDense:
 			a.Dense++
 		}
@@ -143,7 +157,7 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 		inf.Evidence = fmt.Sprintf("no sampled head shows a key after its query's position (%d sampled): nothing to infer a mask from", a.Units)
 		return inf, nil
 	}
-	masked := a.Causal + a.Prefix
+	masked := a.Causal + a.Prefix + a.Shifted
 	pct := func(n int64) string { return fmt.Sprintf("%d of %d", n, informative) }
 	switch {
 	case 2*masked >= informative:
@@ -156,7 +170,7 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 		}
 		var breaks []int
 		for _, s := range all {
-			if s.look == lookDense && (len(breaks) == 0 || breaks[len(breaks)-1] != s.lay) {
+			if (s.look == lookDense || s.look == lookShifted) && (len(breaks) == 0 || breaks[len(breaks)-1] != s.lay) {
 				breaks = append(breaks, s.lay)
 			}
 		}
@@ -169,8 +183,16 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 		default:
 			inf.Evidence = fmt.Sprintf("causal mask: %s sampled heads have exact zeros after each query's position", pct(masked))
 		}
-		if a.Dense > 0 {
-			inf.Evidence += fmt.Sprintf("; %d do not (layer %s): judged against the inferred mask", a.Dense, list(a.BreakLayers))
+		if a.Shifted > 0 {
+			sh, _ := mode(shifts)
+			a.Shift = sh
+			inf.Evidence += fmt.Sprintf("; %d have exact zeros in most cells after it but mass in some (a mask that leaks?)", a.Shifted)
+		}
+		if a.Shifted > 0 && a.Causal+a.Prefix == 0 {
+			inf.Evidence = fmt.Sprintf("causal mask that leaks: every informative sampled head (%s) has exact zeros in most cells after each query's position, and mass in some", pct(a.Shifted))
+		}
+		if a.Dense+a.Shifted > 0 {
+			inf.Evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", list(a.BreakLayers))
 		}
 	case 10*a.Dense >= 8*informative:
 		inf.Kind = loader.KindBidirectional
@@ -201,9 +223,12 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 	}
 	var rows, past, room int
 	w := 0
+	excess := 0                // max over rows of last - p
+	var upN, upZ, loN, loZ int // live cells after / before the row's position, and their exact zeros
 	pastMaxPos, pastReach := -1, -1
 	firstClean := K // smallest position of a row that does not look past itself
 	var cleanPos []int
+	var lasts [][2]int // (p, last) of every row looked at
 	for q := 0; q < Q; q++ {
 		p := q + off
 		if p >= K || dead[p] || (qs != nil && !qs.IsValid(b, p)) {
@@ -228,6 +253,23 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 			continue
 		}
 		rows++
+		lasts = append(lasts, [2]int{p, last})
+		for k, v := range row {
+			switch {
+			case dead[k] || k == p:
+			case k > p:
+				upN++
+				if v == 0 {
+					upZ++
+				}
+			default:
+				loN++
+				if v == 0 {
+					loZ++
+				}
+			}
+		}
+		excess = max(excess, last-p)
 		for k := p + 1; k < K; k++ {
 			if !dead[k] {
 				room++
@@ -255,10 +297,36 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 			firstClean = min(firstClean, p)
 		}
 	}
-	if pastMaxPos < P && P < K && firstClean < K {
+	// a prefix LM lets every row before P - 1 see up to P - 1: a few rows
+	// reaching past themselves (a leak) are not a prefix
+	var before, full int
+	for _, pl := range lasts {
+		if pl[0] < P-1 {
+			before++
+			if pl[1] == P-1 {
+				full++
+			}
+		}
+	}
+	if pastMaxPos < P && P < K && firstClean < K && before > 0 && 10*full >= 9*before {
 		return lookPrefix, 0, P
 	}
+	// mostly masked: most live cells after the query's position are exact
+	// zeros, clearly more than before it (sharp heads whose small weights
+	// underflow have zeros on both sides)
+	if upN > 0 && 2*upZ >= upN && (loN == 0 || float64(upZ)/float64(upN)-float64(loZ)/float64(loN) >= 0.4) {
+		return lookShifted, excess, 0
+	}
 	return lookDense, 0, 0
+}
+
+func allDead(d []bool) bool {
+	for _, x := range d {
+		if !x {
+			return false
+		}
+	}
+	return true
 }
 
 // sampleUnits picks the (layer, head, batch item) matrices InferMask reads:

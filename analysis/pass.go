@@ -565,6 +565,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	cfg := passConfig{tol: opt.Tol, sumTol: sumTol, sumLoose: sumLoose, sumBelow: opt.SumBelow, doNaN: doNaN, doSum: doSum, doNeg: doNeg,
 		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example, yield: opt.Yield}
 	cfg.doCut = cutCheck(opt.Rules) && cutBlock(rules)
+	cfg.tiny = max(underflowTiny(blk.DType), underflowTiny(blk.ComputeDType))
 	workers := make([]*worker, nw)
 	base := rules.MaxPos()
 	for i := range workers {
@@ -692,6 +693,7 @@ func parallel(ctx context.Context, workers []*worker, n int, bg bool, yield func
 type passConfig struct {
 	tol, sumTol                   float64
 	sumLoose                      float64 // > sumTol: rows within it are counted apart (compute dtype unknown)
+	tiny                          float64 // > 0: a row with a value this small may have underflowed to 0 (cut.go)
 	sumBelow, doNaN, doSum, doNeg bool
 	grad, allow                   bool
 	doCut                         bool // the cut check reads this block's rows (cut.go)
@@ -847,7 +849,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		} else {
 			w.cells(&ra, row, ends, rrs, q, p, base, tol, cfg.example) // rowpass.go
 		}
-		if cut {
+		if cut && !(cfg.tiny > 0 && rowReachesUnderflow(row, row16, rt, cfg.tiny)) {
 			w.cut.row(w.rr, p, q, ra.nzHi, cfg.example)
 		}
 		s, ent, dist, amass, negm, mx := ra.s, ra.ent, ra.dist, ra.amass, ra.negm, ra.mx
