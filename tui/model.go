@@ -150,6 +150,14 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 		}
 		return nil, fmt.Errorf("tui: %s: no attention block", strings.Join(set.Examples[0], ", "))
 	}
+	// the Map marks cells by the same rules the checks judge by: a mask
+	// inferred from the data when nobody gave the kind (as the pass does)
+	if err := analysis.InferExport(context.Background(), ex); err != nil {
+		if opts.Export == nil {
+			ex.Close()
+		}
+		return nil, err
+	}
 	var exB *loader.Export
 	if set.Len() == 2 {
 		if exB, err = set.Open(1); err != nil {
@@ -784,6 +792,13 @@ func (m *Model) statusFields() []views.Field {
 	f := []views.Field{{Value: b.Name}, {Value: "L" + itoa(m.layer)}, {Value: "H" + itoa(m.head)}}
 	if b.Batch > 1 {
 		f = append(f, views.Field{Value: "B" + itoa(m.batch)})
+	}
+	if b.AxesFrom == "rank" && b.AxesOther != "" {
+		// how the array was read, until someone says (Findings has the words)
+		f = append(f, views.Field{Name: "axes guessed", Value: strings.ReplaceAll(b.Axes, " ", "·")})
+	}
+	if b.KindFrom == "inferred" {
+		f = append(f, views.Field{Name: "inferred", Value: string(b.Kind)})
 	}
 	if m.active == ScreenMap || m.active == ScreenCompare || m.active == ScreenTrace {
 		f = append(f, views.Field{Value: "q" + itoa(m.q)})

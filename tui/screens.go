@@ -456,6 +456,7 @@ func (s *findingsScreen) Refresh() {
 	if m.anaErr != nil {
 		d.Notes = append(d.Notes, "the checks failed: "+m.anaErr.Error())
 	}
+	d.Notes = append(d.Notes, m.set.Warnings...)
 	if m.res != nil {
 		for _, f := range m.res.Findings {
 			bl := m.res.Block(f.Block)
@@ -477,6 +478,14 @@ func (s *findingsScreen) Refresh() {
 		}
 		d.Caveat = analysis.Caveat
 		d.Notes = append(d.Notes, m.res.Notes...)
+		for _, c := range m.res.Coverage {
+			for _, g := range c.NotJudged {
+				d.NotJudged = append(d.NotJudged, fmt.Sprintf("%s: %s: %s. To judge it: %s", g.Block, g.What, g.Why, g.Fix))
+			}
+			if c.KindFrom == "inferred" {
+				d.Inferred = append(d.Inferred, c.Block+": "+c.Evidence)
+			}
+		}
 	}
 	s.sel = max(0, min(s.sel, len(d.Rows)-1))
 	c, l := views.Findings(d, s.w, s.h, s.sel, m.st)

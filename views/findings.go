@@ -34,6 +34,12 @@ type FindingsData struct {
 	Progress string
 	// Notes are things worth knowing that are not findings.
 	Notes []string
+	// NotJudged says, one line each, what the checks could not judge, why,
+	// and what would let them: with no rows, the verdict is then "not
+	// judged", never "clean".
+	NotJudged []string
+	// Inferred says, one line per block, a mask inferred from the data.
+	Inferred []string
 }
 
 // FindingsLayout is where the table went, for mouse clicks.
@@ -64,6 +70,8 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 	switch {
 	case !d.Done:
 		title += " · checking… " + d.Progress
+	case len(d.Rows) == 0 && len(d.NotJudged) > 0:
+		title += " · NOT JUDGED"
 	case len(d.Rows) == 0:
 		title += " · clean"
 	default:
@@ -71,10 +79,35 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 	}
 	c.Text(0, 0, title, st.Title, -1)
 	y := 1
-	if d.Done && len(d.Rows) == 0 {
+	if d.Done && len(d.Rows) == 0 && len(d.NotJudged) == 0 {
 		y++
 		c.Text(0, y, "No forbidden cell carries mass, no row is NaN, every judged row sums to 1.", st.Good, -1)
 		y += 2
+	}
+	if d.Done && len(d.NotJudged) > 0 {
+		y++
+		if len(d.Rows) == 0 {
+			c.Text(0, y, "Not a clean result: nothing was found in what was judged, but this was not judged:", st.Warn, -1)
+			y++
+		}
+		for _, n := range d.NotJudged {
+			for _, ln := range wrap(n, w-2) {
+				if y >= h-4 {
+					break
+				}
+				c.Text(0, y, "! ", st.Warn, -1)
+				c.Text(2, y, ln, st.Text, -1)
+				y++
+			}
+		}
+		y++
+	}
+	for _, n := range d.Inferred {
+		if y >= h-4 {
+			break
+		}
+		c.Text(0, y, "inferred: "+n, st.Faint, w)
+		y++
 	}
 	// Keep at least 4 table rows: diagnosis gets what is left.
 	diagMax := max(1, h-y-6)
