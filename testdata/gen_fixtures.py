@@ -495,10 +495,12 @@ def gen_exports(out):
           "query_side": "target", "key_side": "target", "rules": ["causal"], "row_checks": ROW_CHECKS}],
         [{"name": "target", "len": 7, "first_tokens": ["a", "b", "c", "d", "e", "f", "g"], "padding": 0}])
 
-    # 5. a lone .npy without metadata: block named after the file, kind unknown
+    # 5. a lone .npy without metadata: block named after the file; nobody
+    #    said the kind and every row has mass after its query's position (a
+    #    softmax over all keys), so heed infers it bidirectional and says so
     np.save(os.path.join(d, "lone.npy"), softmax_rows(grid((3, 4, 4)), np.ones((4, 4), bool)).astype("<f8"))
     expects["lone.npy"] = info_expect(
-        [{"name": "lone", "kind": "unknown", "dtype": "f64", "layers": 1, "batch": 1, "heads": 3, "queries": 4, "keys": 4,
+        [{"name": "lone", "kind": "bidirectional", "kind_from": "inferred", "axes_from": "rank", "dtype": "f64", "layers": 1, "batch": 1, "heads": 3, "queries": 4, "keys": 4,
           "query_offset": 0, "grad": False, "allow": False, "valid": False, "segments": False, "out": False,
           "query_side": "", "key_side": "", "rules": [], "row_checks": ROW_CHECKS}], [])
 

@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
+	"slices"
 	"strconv"
 	"strings"
 
@@ -38,6 +39,11 @@ of examples; info describes the first and checks that the others match it.`,
 				return err
 			}
 			defer ex.Close()
+			// the kind heed check would infer from the data, so that the
+			// rules listed are the ones check judges by
+			if err := analysis.InferExport(cmd.Context(), ex); err != nil {
+				return err
+			}
 			rep := newInfoReport(set, ex)
 			if asJSON {
 				enc := json.NewEncoder(cmd.OutOrStdout())
@@ -70,32 +76,42 @@ type infoReport struct {
 }
 
 type infoBlock struct {
-	Name        string   `json:"name"`
-	Kind        string   `json:"kind"`
-	DType       string   `json:"dtype"`
-	Layers      int      `json:"layers"`
-	Batch       int      `json:"batch"`
-	Heads       int      `json:"heads"`
-	KVHeads     int      `json:"kv_heads"`
-	Queries     int      `json:"queries"`
-	Keys        int      `json:"keys"`
-	QueryOffset int      `json:"query_offset"`
-	Window      int      `json:"window"`
-	Prefix      int      `json:"prefix"`
-	Axes        string   `json:"axes"`
-	Source      string   `json:"source"`
-	QuerySide   string   `json:"query_side"`
-	KeySide     string   `json:"key_side"`
-	Grad        bool     `json:"grad"`
-	Allow       bool     `json:"allow"`
-	Valid       bool     `json:"valid"`
-	Segments    bool     `json:"segments"`
-	Out         bool     `json:"out"`
-	OutLayers   int      `json:"out_layers"`
-	Positions   int      `json:"positions"`
-	Features    int      `json:"features"`
-	Rules       []string `json:"rules"`      // mask rules, as heed check's "rules"
-	RowChecks   []string `json:"row_checks"` // row rules: nan_rows, row_sum, negative, cut where it applies
+	Name        string `json:"name"`
+	Kind        string `json:"kind"`
+	DType       string `json:"dtype"`
+	Layers      int    `json:"layers"`
+	Batch       int    `json:"batch"`
+	Heads       int    `json:"heads"`
+	KVHeads     int    `json:"kv_heads"`
+	Queries     int    `json:"queries"`
+	Keys        int    `json:"keys"`
+	QueryOffset int    `json:"query_offset"`
+	Window      int    `json:"window"`
+	Prefix      int    `json:"prefix"`
+	Axes        string `json:"axes"`
+	Source      string `json:"source"`
+	QuerySide   string `json:"query_side"`
+	KeySide     string `json:"key_side"`
+	Grad        bool   `json:"grad"`
+	Allow       bool   `json:"allow"`
+	Valid       bool   `json:"valid"`
+	Segments    bool   `json:"segments"`
+	Out         bool   `json:"out"`
+	OutLayers   int    `json:"out_layers"`
+	Positions   int    `json:"positions"`
+	Features    int    `json:"features"`
+	// who gave the kind (--kind, metadata, attribute, inferred, unknown) and,
+	// inferred or undecided, what the data showed; who gave the axes (rank =
+	// guessed) and their other reading; how queries sit among the keys; the
+	// dtype the model computed in ("" = unknown)
+	KindFrom     string   `json:"kind_from"`
+	Evidence     string   `json:"evidence,omitempty"`
+	AxesFrom     string   `json:"axes_from"`
+	AxesOther    string   `json:"axes_other,omitempty"`
+	QueryPos     string   `json:"query_positions"`
+	ComputeDType string   `json:"compute_dtype"`
+	Rules        []string `json:"rules"`      // mask rules, as heed check's "rules"
+	RowChecks    []string `json:"row_checks"` // row rules: nan_rows, row_sum, negative, cut where it applies
 }
 
 type infoSide struct {
@@ -113,6 +129,13 @@ type infoSide struct {
 type infoLogits struct {
 	DType string `json:"dtype"`
 	Shape []int  `json:"shape"`
+}
+
+func dashS(s string) string {
+	if s == "" {
+		return "unknown"
+	}
+	return s
 }
 
 func kindName(k loader.Kind) string {
@@ -142,7 +165,22 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 			Segments: qs != nil && qs.Segments != nil || ks != nil && ks.Segments != nil,
 			Out:      b.OutLayers > 0, OutLayers: b.OutLayers, Positions: b.Positions, Features: b.Features,
 			Rules: rules, RowChecks: rows,
+			KindFrom: b.KindFrom, Evidence: b.KindEvidence, AxesFrom: b.AxesFrom, AxesOther: b.AxesOther, QueryPos: b.PosFrom,
 		})
+		ib := &r.Blocks[len(r.Blocks)-1]
+		if ib.KindFrom == "" {
+			ib.KindFrom = "unknown"
+		}
+		if ib.QueryPos == "" {
+			ib.QueryPos = "rows"
+		}
+		if b.ComputeDType != loader.Invalid {
+			ib.ComputeDType = b.ComputeDType.String()
+		}
+		if b.PosFrom == "unknown" {
+			// check judges no positional rule there
+			ib.Rules = slices.DeleteFunc(ib.Rules, func(r string) bool { return r == "causal" || r == "window" || r == "prefix" })
+		}
 	}
 	for _, name := range sortedSides(ex) {
 		s := ex.Sides[name]
@@ -251,6 +289,10 @@ func (r *infoReport) writeText(w io.Writer) {
 				k = "-"
 			}
 			fmt.Fprintf(w, "  sides       queries %s, keys %s\n", q, k)
+			fmt.Fprintf(w, "  known from  kind: %s, axes: %s, query positions: %s, compute dtype: %s\n", b.KindFrom, b.AxesFrom, b.QueryPos, dashS(b.ComputeDType))
+			if b.Evidence != "" {
+				fmt.Fprintf(w, "  evidence    %s\n", b.Evidence)
+			}
 		}
 		fmt.Fprintf(w, "  present     grad %s, allow %s, valid %s, segments %s, out %s\n", yesNo(b.Grad), yesNo(b.Allow), yesNo(b.Valid), yesNo(b.Segments), yesNo(b.Out))
 		if b.Out {
