@@ -87,15 +87,17 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 	if d.Done && len(d.NotJudged) > 0 {
 		y++
 		if len(d.Rows) == 0 {
-			c.Text(0, y, "Not a clean result: nothing was found in what was judged, but this was not judged:", st.Warn, -1)
+			c.Text(0, y, "Not clean: nothing found in what was judged, but this was not judged:", st.Warn, -1)
 			y++
 		}
 		for _, n := range d.NotJudged {
-			for _, ln := range wrap(n, w-2) {
+			for i, ln := range wrap(n, w-2) {
 				if y >= h-4 {
 					break
 				}
-				c.Text(0, y, "! ", st.Warn, -1)
+				if i == 0 {
+					c.Text(0, y, "! ", st.Warn, -1)
+				}
 				c.Text(2, y, ln, st.Text, -1)
 				y++
 			}
@@ -103,11 +105,13 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 		y++
 	}
 	for _, n := range d.Inferred {
-		if y >= h-4 {
-			break
+		for _, ln := range wrap("inferred: "+n, w) {
+			if y >= h-4 {
+				break
+			}
+			c.Text(0, y, ln, st.Faint, w)
+			y++
 		}
-		c.Text(0, y, "inferred: "+n, st.Faint, w)
-		y++
 	}
 	// Keep at least 4 table rows: diagnosis gets what is left.
 	diagMax := max(1, h-y-6)
@@ -135,11 +139,13 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 		}
 	}
 	for _, n := range d.Notes {
-		if y >= h-4 {
-			break
+		for _, ln := range wrap("note: "+n, w) {
+			if y >= h-4 {
+				break
+			}
+			c.Text(0, y, ln, st.Faint, w)
+			y++
 		}
-		c.Text(0, y, "note: "+n, st.Faint, w)
-		y++
 	}
 	if len(d.Rows) == 0 {
 		return c, l

@@ -159,6 +159,9 @@ func TestFindings(t *testing.T) {
 		{"clean_ascii_80x21", &FindingsData{Done: true}, 80, 21, 0, colorprofile.ASCII},
 		{"running_ascii_80x21", &FindingsData{Progress: "40%"}, 80, 21, 0, colorprofile.ASCII},
 		{"scroll_ascii_80x21", many, 80, 21, 25, colorprofile.ASCII},
+		{"notjudged_ascii_80x21", &FindingsData{Done: true, NotJudged: []string{"decoder: mask: kind unknown: no metadata said it. To judge it: say the kind: --kind causal|bidirectional|cross, or meta blocks.decoder.kind"},
+			Notes: []string{"decoder: axes guessed from the rank as \"layer head query key\" (no metadata, no --axes); if the array is [batch, head, query, key], pass --axes \"batch head query key\""}}, 80, 21, 0, colorprofile.ASCII},
+		{"inferred_truecolor_80x21", &FindingsData{Done: true, Inferred: []string{"decoder: causal mask: 12 of 12 sampled heads have exact zeros after each query's position"}}, 80, 21, 0, colorprofile.TrueColor},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
