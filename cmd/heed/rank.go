@@ -190,6 +190,14 @@ head saves no compute until the model is rebuilt without it.`,
 				rep.Metric = analysis.ScoreName
 				rep.Warnings = append(rep.Warnings, noGradients+": no importance; "+analysis.ScoreDoc)
 			}
+			for _, c := range res.Coverage {
+				if c.KindFrom == "inferred" {
+					rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: kind inferred from the data (%s); masked keys and leak mass follow it (--kind or meta blocks.%s.kind to say otherwise)", c.Block, c.Evidence, c.Block))
+				}
+				for _, g := range c.NotJudged {
+					rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: %s not judged: %s. To judge it: %s", g.Block, g.What, g.Why, g.Fix))
+				}
+			}
 			if !res.Clean() {
 				rep.Warnings = append(rep.Warnings, fmt.Sprintf("heed check finds %d problems in these exports (leaks or bad rows): statistics of a buggy export describe the bug too; run heed check", len(res.Findings)))
 			}
