@@ -26,6 +26,7 @@ type verdictCase struct {
 	Layers       []int  `json:"layers"`
 	Heads        []int  `json:"heads"`
 	Offsets      []int  `json:"offsets"`
+	Batch        []int  `json:"batch"`
 	Note         string `json:"note"`
 	ComputeDType string `json:"compute_dtype"`
 	AxesFrom     string `json:"axes_from"`
@@ -68,6 +69,7 @@ func TestVerdicts(t *testing.T) {
 					Rule    string `json:"rule"`
 					Layer   []int  `json:"layer"`
 					Head    []int  `json:"head"`
+					Batch   []int  `json:"batch"`
 					Offsets []struct {
 						Offset int `json:"offset"`
 					} `json:"offsets"`
@@ -124,6 +126,9 @@ func TestVerdicts(t *testing.T) {
 				for _, f := range rep.Findings {
 					if f.Rule != c.Rule || !slices.Equal(f.Layer, c.Layers) || !slices.Equal(f.Head, c.Heads) {
 						t.Errorf("finding %s layers %v heads %v, want %s layers %v heads %v", f.Rule, f.Layer, f.Head, c.Rule, c.Layers, c.Heads)
+					}
+					if c.Batch != nil && !slices.Equal(f.Batch, c.Batch) {
+						t.Errorf("batch items %v, want %v", f.Batch, c.Batch)
 					}
 					if c.Offsets != nil {
 						var offs []int

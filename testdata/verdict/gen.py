@@ -172,6 +172,31 @@ def gen(out):
     cases["static_cache_leak"] = {"verdict": "findings", "kind": "causal", "kind_from": "metadata", "positions": "metadata",
                                   "rule": "causal", "layers": [0], "heads": list(range(H)), "offsets": [1]}
 
+    # 10b. The same cache, a batch of two sequences decoded together whose
+    #      current positions differ (6 and 9: right-padded prompts), one
+    #      block with the query positions as an array B/qpos [batch, query].
+    torch.manual_seed(12)
+    cache2 = torch.zeros(2, S, E)
+    cache2[0, :7] = torch.randn(7, E)
+    cache2[1, :10] = torch.randn(10, E)
+    pos2 = [6, 9]
+    q2 = torch.stack([cache2[0, 6:7], cache2[1, 9:10]])
+    m3 = torch.zeros(2 * H, 1, S, dtype=torch.bool)  # [batch * heads, query, key]
+    for b, p in enumerate(pos2):
+        m3[b * H:(b + 1) * H, 0, p + 1:] = True
+    with torch.no_grad():
+        _, w3 = mha(q2, cache2, cache2, attn_mask=m3, need_weights=True, average_attn_weights=False)
+        m4 = m3.clone()
+        m4[H:, 0, 10] = False  # the bug: item 1 sees one unused slot
+        _, w4 = mha(q2, cache2, cache2, attn_mask=m4, need_weights=True, average_attn_weights=False)
+    qmeta = {"format": "heed-export/1", "blocks": {"step": {"kind": "causal", "axes": "batch head query key"}}}
+    qpos = np.array([[6], [9]], dtype=np.int64)
+    save(os.path.join(out, "static_cache_qpos.npz"), {"step/attn/0": w3.numpy(), "step/qpos": qpos}, qmeta)
+    save(os.path.join(out, "static_cache_qpos_leak.npz"), {"step/attn/0": w4.numpy(), "step/qpos": qpos}, qmeta)
+    cases["static_cache_qpos"] = {"verdict": "clean", "kind": "causal", "kind_from": "metadata", "positions": "qpos"}
+    cases["static_cache_qpos_leak"] = {"verdict": "findings", "kind": "causal", "kind_from": "metadata", "positions": "qpos",
+                                       "rule": "causal", "layers": [0], "heads": list(range(H)), "offsets": [1], "batch": [1]}
+
     # 11. A bfloat16 model whose attention is upcast to float32 before saving.
     ws = run_layers([right] * 2, 11, dtype=torch.bfloat16)
     dev = max(float((w.float().sum(-1) - 1).abs().max()) for w in ws)
