@@ -5,7 +5,7 @@ GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
 
-.PHONY: all build demo deps test check-fmt vet unit purego fuzz crosscheck bench clean
+.PHONY: all build demo deps test check-fmt vet staticcheck unit purego fuzz crosscheck bench clean
 
 all: build
 
@@ -19,7 +19,7 @@ build: deps
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet unit purego fuzz crosscheck
+test: deps check-fmt vet staticcheck unit purego fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -28,6 +28,10 @@ check-fmt:
 
 vet:
 	$(GO) vet ./...
+
+# staticcheck at a pinned version, fetched through the module proxy.
+staticcheck:
+	$(GO) run honnef.co/go/tools/cmd/staticcheck@v0.8.2 ./...
 
 unit:
 	HEED_PYTHON=$(PYTHON) $(GO) test -race -count=1 -timeout 30m ./...

@@ -320,15 +320,6 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 	return lookDense, 0, 0
 }
 
-func allDead(d []bool) bool {
-	for _, x := range d {
-		if !x {
-			return false
-		}
-	}
-	return true
-}
-
 // sampleUnits picks the (layer, head, batch item) matrices InferMask reads:
 // every layer, heads spread evenly (up to 8 a layer), the first and last
 // batch item, within inferMaxValues values.

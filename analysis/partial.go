@@ -174,9 +174,9 @@ type HeadAcc struct {
 	Importance   Sum   `json:"importance"` // sum over examples of |sum_{q,k} A*G|
 	GradRows     int64 `json:"grad_rows_skipped"`
 
-	RowSum     Sum     `json:"row_sum"`
-	SumBadRows int64   `json:"sum_bad_rows"`
-	SumBadDev  Sum     `json:"sum_bad_dev"` // sum of |row sum - 1| over bad rows
+	RowSum     Sum   `json:"row_sum"`
+	SumBadRows int64 `json:"sum_bad_rows"`
+	SumBadDev  Sum   `json:"sum_bad_dev"` // sum of |row sum - 1| over bad rows
 	// SumLowRows counts rows off by more than the stored dtype's tolerance
 	// but within a bfloat16 softmax's rounding, when the compute dtype is
 	// unknown (RowSumTolerance); SumLowMax is their largest |sum - 1|.

@@ -46,16 +46,11 @@ func writeST16Kind(t *testing.T, path, dtype, kind string, shape []int, data []u
 	}
 }
 
-// randomHead16 fills a causal matrix of patterns: allowed keys with random
-// small positive values, a few negative ones, +0/-0, subnormals (f16:
-// exponent bits 0 with a mantissa; bf16 likewise), NaN and Inf rows, and
-// forbidden keys mostly +0/-0 with some mass.
-func randomHead16(rng *rand.Rand, S int, bf bool, data []uint16) {
-	randomHead16Mix(rng, S, bf, data, 1)
-}
-
-// randomHead16Mix is randomHead16 with negative values in a share negRows
-// of the rows only, and forbidden keys all zero in rows without them or
+// randomHead16Mix fills a causal matrix of patterns: allowed keys with
+// random small positive values, a few negative ones, +0/-0, subnormals
+// (f16: exponent bits 0 with a mantissa; bf16 likewise), NaN and Inf rows,
+// and forbidden keys mostly +0/-0 with some mass; negative values in a
+// share negRows of the rows only, and forbidden keys all zero in rows without them or
 // with a leak, so that most rows are clean (the pass's path for rows
 // scanned on the way, cells16Clean) and some are not.
 func randomHead16Mix(rng *rand.Rand, S int, bf bool, data []uint16, negRows float64) {

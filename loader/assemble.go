@@ -124,12 +124,11 @@ func isDigits(s string) bool {
 
 // parts are the arrays of one block.
 type parts struct {
-	name                 string
-	attn, grad, out      Array         // whole arrays
-	attnL, gradL, outL   map[int]Array // per-layer arrays
-	allow, qpos          Array
-	bare                 bool // assembled from arrays outside the convention
-	attnName, sourceDesc string
+	name               string
+	attn, grad, out    Array         // whole arrays
+	attnL, gradL, outL map[int]Array // per-layer arrays
+	allow, qpos        Array
+	bare               bool // assembled from arrays outside the convention
 }
 
 func (p *parts) set(r role, layer int, a Array) error {

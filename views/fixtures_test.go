@@ -2,7 +2,6 @@ package views
 
 import (
 	"math"
-	"strconv"
 )
 
 // Fixtures for the golden tests. The matrices are row-wise softmaxes of
@@ -55,12 +54,4 @@ func causalMap(n int, leakShift int, toks []string) *MapData {
 	d.Rule = causalRule
 	d.QueryTokens, d.KeyTokens = toks, toks
 	return d
-}
-
-func indexTokens(n int) []string {
-	t := make([]string, n)
-	for i := range t {
-		t[i] = "t" + strconv.Itoa(i)
-	}
-	return t
 }

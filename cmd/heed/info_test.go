@@ -16,8 +16,8 @@ import (
 
 const fixturesDir = "../../testdata/fixtures"
 
-// infoRun executes "heed info" with args; it returns stdout, the error and the exit code.
-func infoRun(t *testing.T, args ...string) (string, error, int) {
+// infoRun executes "heed info" with args; it returns stdout, the exit code and the error.
+func infoRun(t *testing.T, args ...string) (string, int, error) {
 	t.Helper()
 	cmd := newRootCmd()
 	var out, errb bytes.Buffer
@@ -33,7 +33,7 @@ func infoRun(t *testing.T, args ...string) (string, error, int) {
 			code = 1
 		}
 	}
-	return out.String(), err, code
+	return out.String(), code, err
 }
 
 func asFindings(err error, f **findingsError) bool {
@@ -65,7 +65,7 @@ func TestInfoJSONFixtures(t *testing.T) {
 			if strings.HasSuffix(file, ".h5") && !loader.HDF5Supported {
 				t.Skip("built without HDF5")
 			}
-			out, err, code := infoRun(t, "--json", filepath.Join(fixturesDir, "exports", file))
+			out, code, err := infoRun(t, "--json", filepath.Join(fixturesDir, "exports", file))
 			if code != 0 {
 				t.Fatalf("exit %d: %v", code, err)
 			}
@@ -99,7 +99,7 @@ func TestInfoJSONFixtures(t *testing.T) {
 }
 
 func TestInfoText(t *testing.T) {
-	out, err, code := infoRun(t, filepath.Join(fixturesDir, "exports", "causal.npz"))
+	out, code, err := infoRun(t, filepath.Join(fixturesDir, "exports", "causal.npz"))
 	if code != 0 {
 		t.Fatal(err)
 	}
@@ -115,7 +115,7 @@ func TestInfoText(t *testing.T) {
 func TestInfoFlags(t *testing.T) {
 	tok := filepath.Join(t.TempDir(), "tokens.json")
 	os.WriteFile(tok, []byte(`["w","x","y","z"]`), 0o644)
-	out, err, code := infoRun(t, "--json", "--kind", "causal", "--tokens", tok, filepath.Join(fixturesDir, "exports", "lone.npy"))
+	out, code, err := infoRun(t, "--json", "--kind", "causal", "--tokens", tok, filepath.Join(fixturesDir, "exports", "lone.npy"))
 	if code != 0 {
 		t.Fatal(err)
 	}
@@ -129,7 +129,7 @@ func TestInfoFlags(t *testing.T) {
 		len(got.Sides) != 1 || !reflect.DeepEqual(got.Sides[0].FirstTokens, []string{"w", "x", "y", "z"}) {
 		t.Errorf("info = %+v", got)
 	}
-	_, err, code = infoRun(t, "--kind", "sideways", filepath.Join(fixturesDir, "exports", "lone.npy"))
+	_, code, err = infoRun(t, "--kind", "sideways", filepath.Join(fixturesDir, "exports", "lone.npy"))
 	if code != 2 || !strings.Contains(err.Error(), "--kind") {
 		t.Errorf("bad --kind: exit %d, %v", code, err)
 	}
@@ -142,7 +142,7 @@ func TestInfoBadInputs(t *testing.T) {
 		t.Fatalf("%d bad inputs", len(files))
 	}
 	for _, f := range files {
-		_, err, code := infoRun(t, f)
+		_, code, err := infoRun(t, f)
 		if code != 2 || err == nil {
 			t.Errorf("%s: exit %d, want 2", f, code)
 			continue
@@ -151,7 +151,7 @@ func TestInfoBadInputs(t *testing.T) {
 			t.Errorf("%s: error %q, want one line naming the file", f, msg)
 		}
 	}
-	if _, err, code := infoRun(t, filepath.Join(fixturesDir, "no-such-file.npz")); code != 2 || !strings.Contains(err.Error(), "no such file") {
+	if _, code, err := infoRun(t, filepath.Join(fixturesDir, "no-such-file.npz")); code != 2 || !strings.Contains(err.Error(), "no such file") {
 		t.Errorf("missing file: exit %d, %v", code, err)
 	}
 }
@@ -160,7 +160,7 @@ func TestInfoBadInputs(t *testing.T) {
 // rules and row checks.
 func infoBlockRules(t *testing.T, args ...string) (rules, rows map[string][]string) {
 	t.Helper()
-	out, err, code := infoRun(t, append([]string{"--json"}, args...)...)
+	out, code, err := infoRun(t, append([]string{"--json"}, args...)...)
 	if code != 0 {
 		t.Fatalf("info %v: exit %d: %v", args, code, err)
 	}

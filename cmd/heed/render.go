@@ -133,7 +133,7 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 	}
 	defer m.Close()
 	if scr.index == tui.ScreenCompare && set.Len() != 2 {
-		return errors.New("render: --screen compare needs two exports of the same shape: heed render A B ...")
+		return errors.New("render: --screen compare needs two exports of the same shape (heed render A B ...)")
 	}
 	ex, err := set.Open(0)
 	if err != nil {
