@@ -194,6 +194,13 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 		if a.Dense+a.Shifted > 0 {
 			inf.Evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", list(a.BreakLayers))
 		}
+		if Q > K {
+			// more queries than keys: not a self-attention block; a
+			// triangle there is cross-attention made causal, which the cut
+			// check judges
+			inf.Kind, inf.Window, inf.Prefix = loader.KindCross, 0, 0
+			inf.Evidence = fmt.Sprintf("cross-attention (%d queries over %d keys): %s sampled heads have exact zeros after each query's position, a triangular cut the cut check judges", Q, K, pct(masked))
+		}
 	case 10*a.Dense >= 8*informative:
 		inf.Kind = loader.KindBidirectional
 		what := "bidirectional"

@@ -127,6 +127,19 @@ def gen(out):
     save(os.path.join(out, "nometa_undecided.npz"), per_layer(run_layers([right, None, None, None], 8)))
     cases["nometa_undecided"] = {"verdict": "not_judged", "kind": "", "kind_from": "unknown"}
 
+    # 8b. Cross-attention (12 target queries over 7 source keys) given a
+    #     causal mask by mistake, no metadata: more queries than keys is not
+    #     self-attention, so the triangle is judged as a cut.
+    torch.manual_seed(13)
+    tq, sk = torch.randn(B, T, E), torch.randn(B, 7, E)
+    cross = torch.nn.MultiheadAttention(E, H, batch_first=True).eval()
+    cut_mask = torch.triu(torch.ones(T, 7, dtype=torch.bool), diagonal=1)
+    with torch.no_grad():
+        _, wx = cross(tq, sk, sk, attn_mask=cut_mask, need_weights=True, average_attn_weights=False)
+    save(os.path.join(out, "nometa_crosscut.npz"), {"cross/attn/0": wx.numpy()})
+    cases["nometa_crosscut"] = {"verdict": "findings", "kind": "cross", "kind_from": "inferred", "rule": "cut",
+                                "layers": [0], "heads": list(range(H))}
+
     # 9. One layer's attention saved alone as a bare [batch, head, query, key]
     #    array (3 batch items): read by rank as [layer, head, query, key]
     #    unless --axes says otherwise.
