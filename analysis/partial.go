@@ -37,6 +37,7 @@ type PartialOptions struct {
 	MaxLayerBytes  int64 `json:"max_layer_bytes"`
 	NoRedundancy   bool  `json:"no_redundancy,omitempty"`
 	NoStats        bool  `json:"no_stats,omitempty"`
+	NoInfer        bool  `json:"no_infer,omitempty"`
 }
 
 // BlockPartial is the state of one block. Examples of a set share its

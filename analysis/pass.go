@@ -149,7 +149,7 @@ type reader interface {
 func NewPartial(opt Options) *Partial {
 	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow,
 		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes, NoRedundancy: opt.NoRedundancy,
-		NoStats: opt.NoStats}
+		NoStats: opt.NoStats, NoInfer: opt.NoInfer}
 	for _, r := range opt.Rules {
 		po.Rules = append(po.Rules, r.String())
 	}

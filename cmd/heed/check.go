@@ -21,6 +21,7 @@ type passFlags struct {
 	tol      float64
 	sumTol   float64
 	sumBelow bool
+	noInfer  bool
 	blocks   []string
 	shard    shardFlags // --shard, --partial (shard.go)
 	// noRedundancy: check prints no statistics, so it skips the pass over
@@ -37,6 +38,7 @@ func (pf *passFlags) register(cmd *cobra.Command, withRules bool) {
 	f.Float64Var(&pf.sumTol, "sum-tol", 0, "row-sum tolerance; 0 = by dtype (bf16 1e-2, f16 1e-3, f32 and f64 1e-5)")
 	f.BoolVar(&pf.sumBelow, "sum-below", false, "rows may sum below 1 (models with learned sink logits)")
 	f.StringArrayVar(&pf.blocks, "block", nil, "only this block (repeatable)")
+	f.BoolVar(&pf.noInfer, "no-infer", false, "never infer a block's mask from its zeros: a block whose kind nobody gave is not judged (exit 3 from check)")
 	pf.shard.register(cmd)
 }
 
@@ -44,6 +46,7 @@ func (pf *passFlags) options() (analysis.Options, error) {
 	opt := analysis.DefaultOptions()
 	opt.Tol, opt.SumTol, opt.SumBelow, opt.Blocks = pf.tol, pf.sumTol, pf.sumBelow, pf.blocks
 	opt.NoRedundancy, opt.NoStats = pf.noRedundancy, pf.noRedundancy
+	opt.NoInfer = pf.noInfer
 	if pf.tol < 0 || math.IsNaN(pf.tol) || pf.sumTol < 0 || math.IsNaN(pf.sumTol) {
 		return opt, fmt.Errorf("--tol and --sum-tol must not be negative")
 	}

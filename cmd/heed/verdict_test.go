@@ -192,6 +192,11 @@ func TestNotJudgedText(t *testing.T) {
 	if !strings.Contains(out, "--kind causal|bidirectional|cross") || !strings.Contains(out, "meta blocks.decoder.kind") {
 		t.Errorf("no way to judge named:\n%s", out)
 	}
+	// --no-infer: a block whose kind nobody gave is not judged, even where
+	// the data shows a mask
+	if out, code := run(t, "check", "--no-infer", filepath.Join(verdictDir, "nometa_clean.npz")); code != 3 || !strings.Contains(out, "NOT JUDGED") {
+		t.Errorf("--no-infer on an export without metadata: exit %d, want 3\n%s", code, out)
+	}
 	// --kind given: judged
 	if out, code := run(t, "check", "--kind", "bidirectional", filepath.Join(verdictDir, "nometa_undecided.npz")); code != 0 {
 		t.Errorf("--kind bidirectional: exit %d, want 0\n%s", code, out)
