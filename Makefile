@@ -5,7 +5,7 @@ GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
 
-.PHONY: all build demo deps test check-fmt vet staticcheck unit purego fuzz crosscheck bench clean
+.PHONY: all build demo deps test check-fmt vet staticcheck unit pycapture purego fuzz crosscheck bench clean
 
 all: build
 
@@ -19,7 +19,7 @@ build: deps
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet staticcheck unit purego fuzz crosscheck
+test: deps check-fmt vet staticcheck unit pycapture purego fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -46,10 +46,15 @@ fuzz:
 	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) ./loader
 
+# The PyTorch capture module's tests (against PyTorch's outputs and autograd).
+pycapture:
+	$(PYTHON) -m unittest discover -s python -v
+
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:
 	$(PYTHON) testdata/gen_fixtures.py --check
 	$(PYTHON) testdata/demo/generate.py --check
+	$(PYTHON) testdata/verdict/gen.py --check
 
 # Whole-process timing and memory figures (bench/main.go says what is measured).
 # Exports are written once with numpy into HEED_BENCH_DIR or /tmp/heed-bench

@@ -524,7 +524,7 @@ def _attention_modules(model):
         if isinstance(mod, torch.nn.MultiheadAttention):
             key, idx = _group(path)
             groups.setdefault(key, []).append((idx, path, mod))
-    out = {}
+    out, roles = {}, {}
     for key, mods in groups.items():
         mods.sort(key=lambda x: x[0])
         role = _role(model, mods[0][1])
@@ -532,9 +532,10 @@ def _attention_modules(model):
         if name is None or name in out:
             name = re.sub(r"\.?#\.?", ".", key).strip(".") or "attn"
         out[name] = [m for _, _, m in mods]
-        # an encoder stack run with a causal mask is recorded as "decoder"
-        if role == "encoder":
-            out.setdefault("decoder", out[name])
+        roles[name] = role
+    # an encoder stack run with a causal mask is recorded as "decoder"
+    if "encoder" in out and "decoder" not in out:
+        out["decoder"] = out["encoder"]
     return out
 
 

@@ -48,6 +48,7 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newOpenCmd())
 	root.AddCommand(newInfoCmd())
 	root.AddCommand(newCheckCmd())
+	root.AddCommand(newCapturePyCmd())
 	root.AddCommand(newRankCmd())
 	root.AddCommand(newTraceCmd())
 	root.AddCommand(newDemoCmd())
