@@ -34,7 +34,9 @@ import (
 //     query's position are still at least half exact zeros, a share at least
 //     0.4 above that of the cells before it, looks "mostly masked": a causal
 //     mask that leaks (a cell let through, a mask shifted by +1). Sharp
-//     heads whose small weights underflow have zeros on both sides.
+//     heads whose small weights underflow have zeros on both sides. The
+//     mirror image (cells before the query mostly zeros, mass after it: an
+//     inverted boolean mask) counts the same way.
 //   - Any other unit with rows looking past themselves is dense.
 //
 // Over the units: causal when at least half of them look causal or like a
@@ -45,8 +47,11 @@ import (
 // have the same W_u = W and W is less than the longest row's reach (a row
 // that sees key 0 gives W_u = p + 1, so a causal block without a window
 // shows no W shared below that). At least 80% dense units: a square block
-// is bidirectional, a rectangular one cross-attention. Anything in between
-// is not decided, and the block is reported as not judged.
+// is bidirectional, one with more queries than keys cross-attention; with
+// fewer queries than keys it is not decided (cross-attention over a longer
+// source, or a KV-cache step whose mask let the future through). Anything
+// in between is not decided either, and the block is reported as not
+// judged.
 //
 // The thresholds (1/2, 60%, 80%) are ours, chosen so that a mask lost in a
 // minority of layers stays a finding and a block whose heads disagree
@@ -201,6 +206,10 @@ func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inf
 			inf.Kind, inf.Window, inf.Prefix = loader.KindCross, 0, 0
 			inf.Evidence = fmt.Sprintf("cross-attention (%d queries over %d keys): %s sampled heads have exact zeros after each query's position, a triangular cut the cut check judges", Q, K, pct(masked))
 		}
+	case 10*a.Dense >= 8*informative && Q < K:
+		// cross-attention over a longer source, or a KV-cache step whose
+		// mask let the future through: the zeros cannot tell them apart
+		inf.Evidence = fmt.Sprintf("not decided: %s sampled heads have mass after their query's position (taken as the last %d of %d), which cross-attention over a longer sequence has and a KV-cache step should not", pct(a.Dense), Q, K)
 	case 10*a.Dense >= 8*informative:
 		inf.Kind = loader.KindBidirectional
 		what := "bidirectional"
@@ -322,6 +331,12 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 	// zeros, clearly more than before it (sharp heads whose small weights
 	// underflow have zeros on both sides)
 	if upN > 0 && 2*upZ >= upN && (loN == 0 || float64(upZ)/float64(upN)-float64(loZ)/float64(loN) >= 0.4) {
+		return lookShifted, excess, 0
+	}
+	// inverted polarity (True = allowed passed where True = blocked is
+	// meant): the mass sits after the query, the cells up to it are zeros;
+	// the block is still triangular, and judged against a causal mask
+	if loN > 0 && upN > 0 && 2*loZ >= loN && float64(loZ)/float64(loN)-float64(upZ)/float64(upN) >= 0.4 {
 		return lookShifted, excess, 0
 	}
 	return lookDense, 0, 0

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"archive/zip"
 	"encoding/json"
 	"os"
 	"os/exec"
@@ -208,5 +209,74 @@ func TestNotJudgedText(t *testing.T) {
 	// a bf16 model said to have computed in float32: the rows are a bug
 	if out, code := run(t, "check", "--compute-dtype", "float32", filepath.Join(verdictDir, "bf16_upcast.npz")); code != 1 || !strings.Contains(out, "row_sum") {
 		t.Errorf("--compute-dtype float32: exit %d, want 1 with row_sum\n%s", code, out)
+	}
+}
+
+// stripMeta copies an NPZ without its meta member (archive/zip; NPZ members
+// are NAME.npy, numpy's savez).
+func stripMeta(t *testing.T, src, dst string) {
+	t.Helper()
+	r, err := zip.OpenReader(src)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer r.Close()
+	f, err := os.Create(dst)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	w := zip.NewWriter(f)
+	for _, m := range r.File {
+		if m.Name == "meta.npy" {
+			continue
+		}
+		if err := w.Copy(m); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// TestInferenceOnCasesWithoutMeta judges the PyTorch-made cases of
+// testdata/cases with their metadata removed: a correct model is never
+// said to have a likely bug, and every bug whose pattern the zeros can
+// show is found with the rule the metadata run finds. (Bugs the zeros
+// cannot show without metadata: a decoder with no mask at all looks like
+// an encoder, a window one key too wide in every head looks like that
+// window, and padding or cross-attention sides need the metadata.)
+func TestInferenceOnCasesWithoutMeta(t *testing.T) {
+	dir := t.TempDir()
+	found := map[string]string{
+		"shift_bad": "causal", "shift_padded_bad": "causal", "some_batch_bad": "causal", "some_heads_bad": "causal",
+		"some_layers_bad": "causal", "documents_bad": "segments", "explicit_bad": "explicit", "nan_spread_bad": "nan_rows",
+		"train_mode_bad": "row_sum", "inverted_bad": "causal",
+	}
+	files, _ := filepath.Glob(filepath.Join(casesDir, "*.npz"))
+	for _, src := range files {
+		name := strings.TrimSuffix(filepath.Base(src), ".npz")
+		dst := filepath.Join(dir, name+".npz")
+		stripMeta(t, src, dst)
+		out, code := run(t, "check", "--json", dst)
+		var rep struct {
+			Verdict  string
+			Findings []struct{ Rule string }
+		}
+		if err := json.Unmarshal([]byte(out), &rep); err != nil {
+			t.Fatalf("%s: %v\n%s", name, err, out)
+		}
+		if strings.HasSuffix(name, "_good") && code == 1 {
+			t.Errorf("%s (correct model) without metadata: findings %v", name, rep.Findings)
+		}
+		if want, ok := found[name]; ok {
+			if !slices.ContainsFunc(rep.Findings, func(f struct{ Rule string }) bool { return f.Rule == want }) {
+				t.Errorf("%s without metadata: findings %v, want rule %s (exit %d)", name, rep.Findings, want, code)
+			}
+		}
+		if name == "decode_bad" && rep.Verdict == "clean" {
+			t.Errorf("decode_bad without metadata called clean: a KV-cache step with mass on later keys cannot be told from cross-attention")
+		}
 	}
 }
