@@ -5,7 +5,7 @@ GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
 
-.PHONY: all build demo deps test check-fmt vet unit purego fuzz crosscheck bench clean
+.PHONY: all build demo deps test check-fmt vet unit pytest-capture purego fuzz crosscheck bench clean
 
 all: build
 
@@ -19,7 +19,7 @@ build: deps
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet unit purego fuzz crosscheck
+test: deps check-fmt vet unit pytest-capture purego fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -31,6 +31,10 @@ vet:
 
 unit:
 	HEED_PYTHON=$(PYTHON) $(GO) test -race -count=1 -timeout 30m ./...
+
+# python/heed_capture.py against PyTorch's own outputs and autograd (torch 1.13+, numpy).
+pytest-capture:
+	$(PYTHON) -m unittest discover -s python -v
 
 # The build without cgo must still build (it refuses HDF5 with a message).
 purego:

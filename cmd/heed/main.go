@@ -54,6 +54,7 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newMergeCmd())
 	root.AddCommand(newRenderCmd())
 	root.AddCommand(newShareCmd())
+	root.AddCommand(newCapturePyCmd())
 	return root
 }
 
