@@ -232,6 +232,8 @@ class TestTransformer(Base):
                 self.run_model()
                 raise Boom("the model failed")
         self.assertEqual(str(cm.exception), "the model failed")  # the original error
+        if hasattr(cm.exception, "__notes__"):  # Python >= 3.11: a note says why nothing was written
+            self.assertIn("nothing written", " ".join(cm.exception.__notes__))
         self.assertFalse(os.path.exists(self.path("no.npz")))
         self.assertEqual([f for f in os.listdir(self.dir)], [])  # no temporary file left either
         self.assertRestored(self.model)
@@ -378,6 +380,34 @@ class TestDecoderOnly(Base):
         self.assertEqual(done, [("layers.L1", 0, 2, "layers.1.self_attn")])
         w = self.model.layers[1].self_attn.out_proj.weight
         self.assertTrue((w[:, 8:12] == 0).all())
+
+    def test_padding_differs_per_layer(self):
+        mhas = nn.Sequential()
+        mhas.layers = nn.ModuleList(nn.MultiheadAttention(D, HEADS, batch_first=True) for _ in range(2))
+        x = torch.randn(2, 5, D)
+        p0, p1 = pads([5, 3], 5), pads([4, 5], 5)
+        with torch.no_grad(), heed_capture.record(mhas, self.path("p.npz")):
+            mhas.layers[0](x, x, x, key_padding_mask=p0)
+            mhas.layers[1](x, x, x, key_padding_mask=p1)
+        arrays, meta = self.load("p.npz")
+        self.assertEqual(sorted(meta["blocks"]), ["layers.L0", "layers.L1"])
+        side = meta["blocks"]["layers.L1"]["key"]
+        self.assertEqual(side, "target.layers.L1")
+        np.testing.assert_array_equal(arrays["valid/target"], (~p0).numpy().astype(np.int8))
+        np.testing.assert_array_equal(arrays["valid/" + side], (~p1).numpy().astype(np.int8))
+        # nn.MultiheadAttention's own per-head weights
+        with torch.no_grad():
+            _, w = mhas.layers[1](x, x, x, key_padding_mask=p1, average_attn_weights=False)
+        np.testing.assert_allclose(arrays["layers.L1/attn/0"], w.numpy(), rtol=0, atol=1e-6)
+
+    def test_module_run_twice_refused(self):
+        with self.assertRaises(RuntimeError) as cm:
+            with heed_capture.record(self.model, self.path("twice.npz")):
+                self.model(self.ids, causal(8))
+                self.model(self.ids, causal(8))
+        self.assertIn("second time", str(cm.exception))
+        self.assertFalse(os.path.exists(self.path("twice.npz")))
+        self.assertRestored(self.model)
 
     def test_prune(self):
         before = [l.self_attn.out_proj.weight.detach().clone() for l in self.model.layers]
