@@ -405,9 +405,16 @@ class Recorder:
         orig = F.scaled_dot_product_attention
         rec = self
         handles = []
+        def enter(mod, inp, path):
+            rec._stack.append(path)  # returns None: the input is unchanged
+
+        def leave(mod, inp, out):
+            if rec._stack:
+                rec._stack.pop()  # returns None: the output is unchanged
+
         for path, m in self.model.named_modules():
-            handles.append(m.register_forward_pre_hook(lambda mod, inp, path=path: rec._stack.append(path)))
-            handles.append(m.register_forward_hook(lambda mod, inp, out: rec._stack.pop() if rec._stack else None))
+            handles.append(m.register_forward_pre_hook(lambda mod, inp, path=path: enter(mod, inp, path)))
+            handles.append(m.register_forward_hook(leave))
 
         def sdpa(query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None, **kw):
             return rec._sdpa(query, key, value, attn_mask, dropout_p, is_causal, scale, kw)

@@ -488,20 +488,29 @@ class TestCustom(Base):
         self.assertEqual(arrays["tokens/target"].shape, (2, 5))
 
 
-@unittest.skipIf(int(torch.__version__.split(".")[0]) < 2,
-                 "torch %s has no F.scaled_dot_product_attention (torch >= 2.0)" % torch.__version__)
-class TestSDPA(Base):
-    def test_sdpa_recorded(self):
+class SDPACase(Base):
+    """F.scaled_dot_product_attention replaced during the record."""
+
+    def check_sdpa(self):
+        class Layer(nn.Module):
+            def __init__(self):
+                super().__init__()
+                self.lin = nn.Linear(D, 3 * D)
+
+            def forward(self, x):
+                q, k, v = self.lin(x).reshape(x.shape[0], x.shape[1], 3, 2, D // 2).permute(2, 0, 3, 1, 4)
+                return F.scaled_dot_product_attention(q, k, v, is_causal=True).transpose(1, 2).reshape(x.shape)
+
         class M(nn.Module):
             def __init__(self):
                 super().__init__()
-                self.layers = nn.ModuleList(nn.Linear(D, 3 * D) for _ in range(2))
+                self.layers = nn.ModuleList(Layer() for _ in range(2))
 
             def forward(self, x):
-                for lin in self.layers:
-                    q, k, v = lin(x).reshape(x.shape[0], x.shape[1], 3, 2, D // 2).permute(2, 0, 3, 1, 4)
-                    x = F.scaled_dot_product_attention(q, k, v, is_causal=True).transpose(1, 2).reshape(x.shape)
+                for layer in self.layers:
+                    x = layer(x)
                 return x
+
         model = M()
         x = torch.randn(2, 6, D)
         with torch.no_grad():
@@ -509,9 +518,46 @@ class TestSDPA(Base):
         with heed_capture.record(model, self.path("s.npz")):
             out = model(x)
         torch.testing.assert_close(out, ref, rtol=1e-5, atol=1e-5)
+        self.assertRestored(model)
         arrays, meta = self.load("s.npz")
         self.assertEqual(meta["blocks"]["layers"]["kind"], "causal")
-        self.assertEqual(arrays["layers/attn/1"].shape, (2, 2, 6, 6))
+        self.assertNotIn("layers/allow", arrays)
+        a = arrays["layers/attn/1"]
+        self.assertEqual(a.shape, (2, 2, 6, 6))
+        self.assertTrue((np.triu(a, 1) == 0).all())  # is_causal: nothing after the query
+        np.testing.assert_allclose(a.sum(-1), 1, rtol=0, atol=1e-5)
+
+
+@unittest.skipIf(int(torch.__version__.split(".")[0]) < 2,
+                 "torch %s has no F.scaled_dot_product_attention (torch >= 2.0)" % torch.__version__)
+class TestSDPA(SDPACase):
+    def test_sdpa_recorded(self):
+        self.check_sdpa()
+
+
+def sdpa_stand_in(query, key, value, attn_mask=None, dropout_p=0.0, is_causal=False, scale=None):
+    """torch 2's reference implementation of scaled_dot_product_attention as
+    its documentation writes it (from memory), for torch < 2, where the
+    function does not exist: it lets the patching, naming and restoring run
+    here; TestSDPA compares with PyTorch's own kernel on torch >= 2."""
+    L, S = query.shape[-2], key.shape[-2]
+    s = query @ key.transpose(-2, -1) * (1 / math.sqrt(query.shape[-1]) if scale is None else scale)
+    if is_causal:
+        s = s.masked_fill(~torch.ones(L, S, dtype=torch.bool).tril(0), float("-inf"))
+    if attn_mask is not None:
+        s = s.masked_fill(~attn_mask, float("-inf")) if attn_mask.dtype == torch.bool else s + attn_mask
+    return torch.softmax(s, -1) @ value
+
+
+@unittest.skipIf(hasattr(F, "scaled_dot_product_attention"), "torch >= 2.0: TestSDPA uses PyTorch's own kernel")
+class TestSDPAStandIn(SDPACase):
+    def test_sdpa_recorded(self):
+        F.scaled_dot_product_attention = sdpa_stand_in
+        try:
+            self.check_sdpa()
+            self.assertIs(F.scaled_dot_product_attention, sdpa_stand_in)  # restored
+        finally:
+            del F.scaled_dot_product_attention
 
 
 if __name__ == "__main__":
