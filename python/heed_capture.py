@@ -264,7 +264,6 @@ class _Call:
         self.window = None
         self.query_start = None
         self.side_q = self.side_k = "target"
-        self.allow_given = False
 
 
 class Recorder:
@@ -322,7 +321,6 @@ class Recorder:
             call.blocked = _blocked_of(a, allowed_true=True)
             while call.blocked.ndim < 4:
                 call.blocked = call.blocked[None]
-            call.allow_given = True
         self._hook(p, call)
         self.calls.append(call)
         return probs

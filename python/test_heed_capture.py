@@ -20,7 +20,6 @@ import os
 import sys
 import tempfile
 import unittest
-import zipfile
 
 import numpy as np
 import torch
