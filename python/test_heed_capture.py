@@ -399,6 +399,31 @@ class TestDecoderOnly(Base):
             _, w = mhas.layers[1](x, x, x, key_padding_mask=p1, average_attn_weights=False)
         np.testing.assert_allclose(arrays["layers.L1/attn/0"], w.numpy(), rtol=0, atol=1e-6)
 
+    def test_kdim_vdim_seq_first_unbatched(self):
+        mods = nn.Sequential()
+        mods.attn = nn.MultiheadAttention(D, HEADS, kdim=6, vdim=10)  # separate projections, (seq, batch, E)
+        mods.single = nn.MultiheadAttention(D, HEADS, batch_first=True)
+        q, k, v = torch.randn(5, 2, D), torch.randn(7, 2, 6), torch.randn(7, 2, 10)
+        x = torch.randn(4, D)  # unbatched
+        kpm = pads([7, 3], 7)
+        with torch.no_grad():
+            ref, w_ref = mods.attn(q, k, v, key_padding_mask=kpm, average_attn_weights=False)
+            ref1, w1_ref = mods.single(x, x, x)  # averaged over heads, as the caller asked
+        with torch.no_grad(), heed_capture.record(mods, self.path("kv.npz")):
+            out, w = mods.attn(q, k, v, key_padding_mask=kpm, average_attn_weights=False)
+            out1, w1 = mods.single(x, x, x)
+        # PyTorch's own outputs and weights, returned as the caller asked for them
+        torch.testing.assert_close(out, ref, rtol=1e-5, atol=1e-6)
+        torch.testing.assert_close(w, w_ref, rtol=1e-5, atol=1e-6)
+        torch.testing.assert_close(out1, ref1, rtol=1e-5, atol=1e-6)
+        torch.testing.assert_close(w1, w1_ref, rtol=1e-5, atol=1e-6)
+        arrays, meta = self.load("kv.npz")
+        self.assertEqual((meta["blocks"]["attn"]["kind"], meta["blocks"]["attn"]["key"]), ("cross", "source"))
+        self.assertEqual(meta["blocks"]["single"]["kind"], "bidirectional")
+        np.testing.assert_allclose(arrays["attn/attn/0"], w_ref.numpy(), rtol=0, atol=1e-6)
+        self.assertEqual(arrays["single/attn/0"].shape, (1, HEADS, 4, 4))
+        np.testing.assert_array_equal(arrays["valid/source"], (~kpm).numpy().astype(np.int8))
+
     def test_module_run_twice_refused(self):
         with self.assertRaises(RuntimeError) as cm:
             with heed_capture.record(self.model, self.path("twice.npz")):
