@@ -5,7 +5,7 @@ GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
 
-.PHONY: all build demo deps test check-fmt vet staticcheck unit pycapture purego fuzz crosscheck bench clean
+.PHONY: all build demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
 
 all: build
 
@@ -19,7 +19,7 @@ build: deps
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet staticcheck unit pycapture purego fuzz crosscheck
+test: deps check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -36,6 +36,10 @@ staticcheck:
 unit:
 	HEED_PYTHON=$(PYTHON) $(GO) test -race -count=1 -timeout 30m ./...
 
+# python/heed_capture.py against PyTorch's own outputs and autograd (torch 1.13+, numpy).
+pytest-capture:
+	$(PYTHON) -m unittest discover -s python -v
+
 # The build without cgo must still build (it refuses HDF5 with a message).
 purego:
 	CGO_ENABLED=0 $(GO) build -o /dev/null ./cmd/heed
@@ -45,10 +49,6 @@ fuzz:
 	$(GO) test -run '^$$' -fuzz '^FuzzNPY$$' -fuzztime $(FUZZTIME) ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) ./loader
-
-# The PyTorch capture module's tests (against PyTorch's outputs and autograd).
-pycapture:
-	$(PYTHON) -m unittest discover -s python -v
 
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:

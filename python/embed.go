@@ -1,6 +1,6 @@
-// Package pycapture carries python/heed_capture.py, the module that records a
-// live PyTorch model's attention into a heed export, so that the heed binary
-// can write it out (heed capture-py). Only cmd imports it.
+// Package pycapture carries python/heed_capture.py, the one-file Python
+// module that records a live PyTorch model into heed-export/1, so that the
+// heed binary can write it out (heed capture-py). Only cmd imports it.
 package pycapture
 
 import _ "embed"
@@ -10,5 +10,5 @@ import _ "embed"
 //go:embed heed_capture.py
 var Source []byte
 
-// FileName is the module's file name.
+// FileName is the name the module is written under.
 const FileName = "heed_capture.py"

@@ -40,19 +40,22 @@ func exportSnippet(t *testing.T) (code, from string) {
 	return "", ""
 }
 
-// snippetHarness runs the snippet on a torch.nn.Transformer (2 + 2 layers, 4
-// heads, padded batch of 3, lengths differ per item and side) twice: with
-// PyTorch's own causal mask (Transformer.generate_square_subsequent_mask) and
-// with triu(diagonal=2), which lets query q see key q+1. As the reference it
-// also writes what the first encoder layer's nn.MultiheadAttention returns
-// when called directly on the embeddings (PyTorch's own computation, not
-// through the snippet).
-const snippetHarness = `
-import sys
+// snippetPrelude defines what the README's snippet uses: a torch.nn.Transformer
+// (2 + 2 layers, 4 heads, batch_first) with embeddings and an output layer,
+// a padded batch of 3 (lengths differ per item and side), tokens and gold
+// labels. The snippet is then run twice (snippetRuns): with PyTorch's own
+// causal mask (Transformer.generate_square_subsequent_mask) and with
+// triu(diagonal=2), which lets query q see key q+1. As the reference it also
+// writes what the first encoder layer's nn.MultiheadAttention returns when
+// called directly on the embeddings (PyTorch's own computation, not through
+// heed_capture).
+const snippetPrelude = `
+import os, sys, json
+sys.path.insert(0, sys.argv[1])
+os.chdir(sys.argv[2])
 import torch
 from torch import nn
 
-out = sys.argv[1]
 torch.manual_seed(11)
 V, D, S, T = 20, 32, 7, 6
 src_len, tgt_len = [7, 4, 5], [6, 3, 5]
@@ -63,40 +66,36 @@ class Model(nn.Module):
         super().__init__()
         self.emb = nn.Embedding(V, D)
         self.transformer = nn.Transformer(D, 4, 2, 2, 64, dropout=0.0, batch_first=True)
+        self.out = nn.Linear(D, V)
 
-    def forward(self, src, tgt, src_pad, tgt_pad, tgt_mask):
-        return self.transformer(self.emb(src), self.emb(tgt), tgt_mask=tgt_mask, src_key_padding_mask=src_pad,
-                                tgt_key_padding_mask=tgt_pad, memory_key_padding_mask=src_pad)
-
-
-def blocks(name):
-    if name.endswith(".self_attn"):
-        if "encoder." in name:
-            return ("encoder", "bidirectional", "source", "source")
-        return ("decoder", "causal", "target", "target")
-    if name.endswith(".multihead_attn"):
-        return ("cross", "cross", "target", "source")
+    def forward(self, src, tgt, **masks):
+        return self.out(self.transformer(self.emb(src), self.emb(tgt), **masks))
 
 
 model = Model()
-src, tgt = torch.randint(1, V, (3, S)), torch.randint(1, V, (3, T))
+src, tgt, gold = torch.randint(1, V, (3, S)), torch.randint(1, V, (3, T)), torch.randint(0, V, (3, T))
 src_pad = torch.arange(S)[None] >= torch.tensor(src_len)[:, None]
 tgt_pad = torch.arange(T)[None] >= torch.tensor(tgt_len)[:, None]
 words = lambda ids, pad: [[("<pad>" if p else "w%d" % i) for i, p in zip(r, q)] for r, q in zip(ids.tolist(), pad.tolist())]
-tokens = {"source": words(src, src_pad), "target": words(tgt, tgt_pad)}
-valid = {"source": (~src_pad).int().tolist(), "target": (~tgt_pad).int().tolist()}
+src_words, tgt_words = words(src, src_pad), words(tgt, tgt_pad)
 masks = {"ok": nn.Transformer.generate_square_subsequent_mask(T),
          "leak": torch.triu(torch.full((T, T), float("-inf")), diagonal=2)}
-for name, mask in masks.items():
-    heed_export(model, lambda: model(src, tgt, src_pad, tgt_pad, mask), f"{out}/{name}.npz", blocks, tokens, valid)
+`
 
-assert all("forward" not in m.__dict__ for m in model.modules())  # the snippet restored every forward
+// snippetRuns runs the snippet (SNIPPET, a string) once per mask and keeps
+// each run.npz, then writes the reference.
+const snippetRuns = `
+for name, tgt_mask in masks.items():
+    exec(compile(SNIPPET, "README.md export-snippet", "exec"))
+    os.replace("run.npz", name + ".npz")
+    model.zero_grad()
+
+assert all("forward" not in m.__dict__ for m in model.modules())  # heed_capture restored every forward
 with torch.no_grad():
     x = model.emb(src)
     _, w = model.transformer.encoder.layers[0].self_attn(x, x, x, key_padding_mask=src_pad, need_weights=True,
                                                          average_attn_weights=False)
-import json
-json.dump({"encoder_layer0": w.tolist(), "source": tokens["source"]}, open(f"{out}/ref.json", "w"))
+json.dump({"encoder_layer0": w.tolist(), "source": src_words}, open("ref.json", "w"))
 `
 
 func torchPython(t *testing.T) string {
@@ -114,19 +113,28 @@ func torchPython(t *testing.T) string {
 	return py
 }
 
-// TestExportSnippet runs the README's snippet exactly as printed on a torch
-// model, opens what it wrote with heed's loader, compares the first encoder
-// layer with what PyTorch's nn.MultiheadAttention returns for the same input,
-// and runs heed check on both masks.
+// TestExportSnippet runs the README's snippet exactly as printed (with
+// python/heed_capture.py) on a torch model, opens what it wrote with heed's
+// loader, compares the first encoder layer with what PyTorch's
+// nn.MultiheadAttention returns for the same input, and runs heed check on
+// both masks.
 func TestExportSnippet(t *testing.T) {
 	py := torchPython(t)
 	snip, from := exportSnippet(t)
 	dir := t.TempDir()
 	script := filepath.Join(dir, "export.py")
-	if err := os.WriteFile(script, []byte(snip+"\n"+snippetHarness), 0o644); err != nil {
+	quoted, err := json.Marshal(snip) // a JSON string is a Python string literal
+	if err != nil {
 		t.Fatal(err)
 	}
-	if out, err := exec.Command(py, script, dir).CombinedOutput(); err != nil {
+	if err := os.WriteFile(script, []byte(snippetPrelude+"SNIPPET = "+string(quoted)+"\n"+snippetRuns), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	pydir, err := filepath.Abs("../../python")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if out, err := exec.Command(py, script, pydir, dir).CombinedOutput(); err != nil {
 		t.Fatalf("snippet from %s: %v\n%s", from, err, out)
 	}
 	var ref struct {
@@ -163,6 +171,12 @@ func TestExportSnippet(t *testing.T) {
 		if got != w || b.Batch != 3 || b.Heads != 4 {
 			t.Errorf("block %s: %v batch %d heads %d, want %v batch 3 heads 4", name, got, b.Batch, b.Heads, w)
 		}
+		if !b.HasGrad { // the snippet's backward ran inside the block
+			t.Errorf("block %s: no gradients", name)
+		}
+	}
+	if ex.Logits == nil || !reflect.DeepEqual(ex.Logits.Shape(), []int{3, 6, 20}) {
+		t.Errorf("logits %v, want an array [3, 6, 20] (rec.logits)", ex.Logits)
 	}
 	if src := ex.Side("source"); src == nil || !reflect.DeepEqual(src.Tokens, ref.Source) || src.IsValid(1, 4) || !src.IsValid(1, 3) {
 		t.Errorf("source side: %+v, want tokens %v with item 1 padded from position 4", src, ref.Source)
