@@ -7,6 +7,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 )
@@ -277,6 +278,50 @@ func TestInferenceOnCasesWithoutMeta(t *testing.T) {
 		}
 		if name == "decode_bad" && rep.Verdict == "clean" {
 			t.Errorf("decode_bad without metadata called clean: a KV-cache step with mass on later keys cannot be told from cross-attention")
+		}
+	}
+}
+
+// TestInferredVerdictMerges: shards of a set whose kind is inferred from
+// the data merge to the single run's report, byte for byte, verdict and
+// coverage included; and a set whose blocks are not judged exits 3 from
+// merge as from check.
+func TestInferredVerdictMerges(t *testing.T) {
+	for _, tc := range []struct {
+		files []string
+		code  int
+	}{
+		{[]string{"nometa_cell.npz", "nometa_cell.npz", "nometa_clean.npz", "nometa_cell.npz"}, 1},
+		{[]string{"nometa_undecided.npz", "nometa_undecided.npz", "nometa_undecided.npz"}, 3},
+	} {
+		dir := t.TempDir()
+		var args []string
+		for i, f := range tc.files {
+			raw, err := os.ReadFile(filepath.Join(verdictDir, f))
+			if err != nil {
+				t.Fatal(err)
+			}
+			p := filepath.Join(dir, "ex"+strconv.Itoa(i)+".npz")
+			if err := os.WriteFile(p, raw, 0o644); err != nil {
+				t.Fatal(err)
+			}
+			args = append(args, p)
+		}
+		one, code := run(t, append([]string{"check", "--json"}, args...)...)
+		if code != tc.code {
+			t.Fatalf("%v: single run exit %d, want %d\n%s", tc.files, code, tc.code, one)
+		}
+		var parts []string
+		for i := 0; i < 2; i++ {
+			p := filepath.Join(dir, "p"+strconv.Itoa(i)+".json")
+			if out, code := run(t, append([]string{"check", "--shard", strconv.Itoa(i) + "/2", "--partial", p}, args...)...); code != 0 {
+				t.Fatalf("shard %d: exit %d\n%s", i, code, out)
+			}
+			parts = append(parts, p)
+		}
+		merged, code := run(t, append([]string{"merge", "--json"}, parts...)...)
+		if code != tc.code || merged != one {
+			t.Errorf("%v: merge exit %d (want %d), same report %v", tc.files, code, tc.code, merged == one)
 		}
 	}
 }
