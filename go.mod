@@ -16,6 +16,7 @@ require (
 	github.com/creack/pty v1.1.24
 	github.com/edsrzf/mmap-go v1.2.0
 	github.com/mattn/go-runewidth v0.0.30
+	github.com/nlpodyssey/gopickle v0.2.0
 	github.com/spf13/cobra v1.10.2
 	github.com/spf13/pflag v1.0.9
 	github.com/x448/float16 v0.8.4

@@ -322,6 +322,11 @@ func TestBadInputs(t *testing.T) {
 		{"st_unknown_dtype.safetensors", `unknown or unsupported dtype "Q4"`},
 		{"st_bad_json.safetensors", "bad tensor entry"},
 		{"unknown_format.bin", "not an export heed reads"},
+		{"torch_system.pt", "data.pkl: refused class posix.system"},
+		{"torch_custom.pt", "data.pkl: refused class __main__.Thing"},
+		{"torch_huge_string.pt", "data.pkl: malformed pickle: an argument of 4611686018427387904 bytes"},
+		{"torch_short_storage.pt", `16 elements from offset 0 need 64 bytes, its storage "0" has 40`},
+		{"torch_no_storage.pt", `its storage "0" is not in the archive`},
 	}
 	listed := map[string]bool{}
 	for _, c := range cases {
@@ -420,7 +425,7 @@ func TestCorruptFixtures(t *testing.T) {
 	}
 	dir := t.TempDir()
 	for _, f := range []string{"npy/f16_le.npy", "npy/f32_fortran.npy", "npy/tokens_u.npy", "npz/stored.npz",
-		"npz/deflated.npz", "safetensors/dtypes.safetensors", "exports/gqa.safetensors"} {
+		"npz/deflated.npz", "safetensors/dtypes.safetensors", "exports/gqa.safetensors", "torch/dict.pt", "torch/transposed.pt"} {
 		data, err := os.ReadFile(filepath.Join(fixtures, f))
 		if err != nil {
 			t.Fatal(err)

@@ -126,3 +126,20 @@ func FuzzSafetensors(f *testing.F) {
 		assembleAndRead(s.Arrays(), m)
 	})
 }
+
+func FuzzTorch(f *testing.F) {
+	seedFrom(f, ".pt")
+	f.Fuzz(func(t *testing.T, data []byte) {
+		if len(data) > maxFuzzInput {
+			return
+		}
+		z, err := newTorch(fileRef{path: "fuzz.pt", npyName: "fuzz"}, memFile("fuzz.pt", data))
+		if err != nil {
+			return
+		}
+		defer z.Close()
+		readAll(z.Arrays())
+		m, _ := z.Meta()
+		assembleAndRead(z.Arrays(), m)
+	})
+}

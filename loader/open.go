@@ -18,6 +18,7 @@ import (
 var exportExts = map[string]string{
 	".npy": "npy", ".npz": "npz", ".safetensors": "safetensors",
 	".h5": "hdf5", ".hdf5": "hdf5", ".hdf": "hdf5", ".he5": "hdf5",
+	".pt": "torch", ".pth": "torch",
 }
 
 const hdf5Magic = "\x89HDF\r\n\x1a\n"
@@ -43,6 +44,18 @@ func sniff(f io.ReaderAt, size int64) string {
 		return "hdf5"
 	}
 	return ""
+}
+
+// isZipFile reports whether the file starts like a zip archive.
+func isZipFile(path string) bool {
+	f, err := os.Open(path)
+	if err != nil {
+		return false
+	}
+	defer f.Close()
+	var b [4]byte
+	n, _ := f.ReadAt(b[:], 0)
+	return n == 4 && (string(b[:]) == "PK\x03\x04" || string(b[:]) == "PK\x05\x06")
 }
 
 // hasHDF5Signature looks for the HDF5 format signature at 0, 512, 1024, ...
@@ -97,6 +110,9 @@ func openFile(ref fileRef) (Container, error) {
 		return nil, &FormatError{File: ref.path, Offset: -1, Msg: "is a directory"}
 	}
 	format := sniff(f, st.Size())
+	if format == "npz" && isTorchZip(f, st.Size()) {
+		format = "torch"
+	}
 	f.Close()
 	if format == "" {
 		format = exportExts[strings.ToLower(filepath.Ext(ref.path))]
@@ -106,6 +122,11 @@ func openFile(ref fileRef) (Container, error) {
 		return openNPY(ref)
 	case "npz":
 		return openNPZ(ref.path)
+	case "torch":
+		if torchExt(ref.path) && format == exportExts[strings.ToLower(filepath.Ext(ref.path))] && !isZipFile(ref.path) {
+			return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not a torch.save zip archive: a file in the legacy format (torch < 1.6, or _use_new_zipfile_serialization=False); re-save it with torch.save's default format"}
+		}
+		return openTorch(ref)
 	case "safetensors":
 		return openSafetensors(ref.path)
 	case "hdf5":
@@ -117,7 +138,7 @@ func openFile(ref fileRef) (Container, error) {
 	if st.Size() == 0 {
 		return nil, &FormatError{File: ref.path, Offset: -1, Msg: "empty file"}
 	}
-	return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not an export heed reads (NPY, NPZ, safetensors or HDF5): unrecognised first bytes"}
+	return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not an export heed reads (NPY, NPZ, safetensors, HDF5 or torch.save): unrecognised first bytes"}
 }
 
 func unwrapPath(err error) error {

@@ -584,6 +584,87 @@ def npy_with_header(hdr_dict_text, data=b"", version=1):
     return b"\x93NUMPY\x02\x00" + struct.pack("<I", len(h)) + h + data
 
 
+def torch_np(t):
+    """A tensor as numpy for report_array: bfloat16 through torch's own
+    conversion to float32."""
+    if t.dtype == torch.bfloat16:
+        return t.float().numpy(), "bf16"
+    return t.numpy(), None
+
+
+def torch_report(path, rel):
+    """What torch.load (weights only: tensors, lists, dicts, strings) reports
+    about a torch.save fixture, named as heed names it (README)."""
+    obj = torch.load(path)
+    stem = os.path.splitext(os.path.basename(path))[0]
+    arrays, meta = [], None
+
+    def tensor(name, t):
+        a, heed = torch_np(t.contiguous())
+        arrays.append(report_array(name, a, heed=heed, source_dtype=str(t.dtype)))
+
+    def walk(prefix, v):
+        nonlocal meta
+        if isinstance(v, torch.Tensor):
+            tensor(prefix, v)
+        elif isinstance(v, str):
+            if prefix == "meta":
+                meta = v
+            else:
+                arrays.append(report_array(prefix, np.array(v)))
+        elif isinstance(v, dict):
+            for k in sorted(v):
+                walk(k if not prefix else prefix + "/" + k, v[k])
+        elif isinstance(v, (list, tuple)) and v and all(isinstance(x, torch.Tensor) for x in v):
+            for i, x in enumerate(v):
+                tensor(prefix + "/" + str(i), x)
+        else:
+            arrays.append(report_array(prefix, np.array(v, dtype=str)))
+
+    if isinstance(obj, torch.Tensor):
+        tensor(stem, obj)
+    elif isinstance(obj, (list, tuple)):
+        for i, x in enumerate(obj):
+            tensor(stem + "." + str(i), x)
+    else:
+        walk("", obj)
+    arrays.sort(key=lambda r: r["name"])
+    return {"file": rel, "format": "torch", "meta": meta, "arrays": arrays}
+
+
+def gen_torch(out):
+    """torch.save fixtures (the zip format of torch >= 1.6). torch.save's
+    bytes are not compared (the archive embeds its file name); --check
+    compares what torch.load reports (torch_report)."""
+    d = os.path.join(out, "torch")
+    os.makedirs(d)
+    a = torch.tensor(softmax_rows(grid((2, 3, 4, 4)), causal(4, 4)).astype("<f4"))
+    saves = {
+        "f32.pt": a,
+        "f16.pt": a.half(),
+        "bf16.pt": a.bfloat16(),
+        "f64.pth": a.double()[0],
+        "layers.pt": [a[0], a[1]],
+        "transposed.pt": a[0, 0].t(),  # a Fortran-order view of its storage
+        "view.pt": a[1],  # a view at a storage offset: the whole storage is saved
+        "dict.pt": {"decoder/attn": [a[0][None], a[1][None]], "tokens/target": [["w0", "w1", "w2", "w3"]],
+                    "valid/target": torch.tensor([[1, 1, 1, 0]], dtype=torch.int8),
+                    "meta": json.dumps({"format": "heed-export/1", "blocks": {"decoder": {
+                        "kind": "causal", "query": "target", "key": "target", "axes": "batch head query key"}}})},
+        "ints.pt": {"valid/t": torch.tensor([[1, 0], [1, 1]], dtype=torch.bool),
+                    "segments/t": torch.tensor([[0, 1], [2, 3]], dtype=torch.int64),
+                    "x/attn": torch.ones(2, 2, dtype=torch.float32) / 2},
+    }
+    leak = a.clone()
+    leak[1, 2, 1, 3] = 0.25  # query 1 sees key 3: a causal leak at +2
+    saves["leak.pt"] = {"decoder/attn": leak, "meta": json.dumps({"format": "heed-export/1", "blocks": {
+        "decoder": {"kind": "causal", "axes": "layer head query key"}}})}
+    for name, obj in saves.items():
+        p = os.path.join(d, name)
+        torch.save(obj, p)
+        write_json(os.path.splitext(p)[0] + ".json", torch_report(p, "torch/" + name))
+
+
 def gen_bad(out):
     d = os.path.join(out, "bad")
     os.makedirs(d)
@@ -637,6 +718,30 @@ def gen_bad(out):
     notjson = b'{"x": [1, 2'
     w("st_bad_json.safetensors", struct.pack("<Q", len(notjson)) + notjson)
     w("unknown_format.bin", b"GIF89a...")
+
+    # torch.save archives with a hostile or broken pickle, written byte by
+    # byte with the opcodes of Python's pickletools documentation (never
+    # unpickled here): GLOBAL 'posix system' then REDUCE, which pickle.load
+    # would run; a class of the saving program; a pickle whose BINUNICODE8
+    # claims 2^62 bytes; a storage member shorter than its tensor.
+    def torch_zip(name, pkl, members=()):
+        buf = io.BytesIO()
+        with zipfile.ZipFile(buf, "w", zipfile.ZIP_STORED) as z:
+            z.writestr(zipfile.ZipInfo(name + "/data.pkl", (1980, 1, 1, 0, 0, 0)), pkl)
+            for m, data in members:
+                z.writestr(zipfile.ZipInfo(name + "/" + m, (1980, 1, 1, 0, 0, 0)), data)
+            z.writestr(zipfile.ZipInfo(name + "/version", (1980, 1, 1, 0, 0, 0)), b"3\n")
+        w(name + ".pt", buf.getvalue())
+
+    torch_zip("torch_system", b"\x80\x02cposix\nsystem\nq\x00X\x04\x00\x00\x00echoq\x01\x85q\x02Rq\x03.")
+    torch_zip("torch_custom", b"\x80\x02c__main__\nThing\nq\x00)\x81q\x01.")
+    torch_zip("torch_huge_string", b"\x80\x04\x8d" + (1 << 62).to_bytes(8, "little") + b"abc.")
+    # _rebuild_tensor_v2(('storage', torch.FloatStorage, '0', 'cpu', 16), 0, (4, 4), (4, 1), False, OrderedDict())
+    rebuild = (b"\x80\x02ctorch._utils\n_rebuild_tensor_v2\nq\x00((X\x07\x00\x00\x00storageq\x01ctorch\nFloatStorage\nq\x02"
+               b"X\x01\x00\x00\x000q\x03X\x03\x00\x00\x00cpuq\x04K\x10tq\x05QK\x00K\x04K\x04\x86q\x06K\x04K\x01\x86q\x07"
+               b"\x89ccollections\nOrderedDict\nq\x08)Rq\ttq\nRq\x0b.")
+    torch_zip("torch_short_storage", rebuild, [("data/0", b"\0" * 40)])
+    torch_zip("torch_no_storage", rebuild)
     return []
 
 
@@ -650,6 +755,7 @@ def generate(out):
     gen_npz(out)
     gen_safetensors(out)
     gen_hdf5(out)
+    gen_torch(out)
     gen_exports(out)
     gen_conv(out)
     gen_bad(out)
@@ -661,7 +767,8 @@ DETERMINISTIC = (".npy", ".safetensors", ".json", ".bin")
 def reread(base):
     """Have numpy / h5py read the files under base and report them again."""
     out = {}
-    for sub, fn in [("npy", None), ("npz", npz_report), ("safetensors", st_report), ("hdf5", h5_report)]:
+    for sub, fn in [("npy", None), ("npz", npz_report), ("safetensors", st_report), ("hdf5", h5_report),
+                    ("torch", torch_report)]:
         d = os.path.join(base, sub)
         for name in sorted(os.listdir(d)):
             if name.endswith(".json"):

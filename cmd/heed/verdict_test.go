@@ -325,3 +325,26 @@ func TestInferredVerdictMerges(t *testing.T) {
 		}
 	}
 }
+
+// TestTorchSaveExport: a torch.save file (a dict of heed-export/1 names,
+// written by torch in testdata/gen_fixtures.py) is judged like the same
+// arrays in an NPZ, and a hostile pickle is refused with exit 2, naming the
+// class, without running it.
+func TestTorchSaveExport(t *testing.T) {
+	out, code := run(t, "check", "--json", "../../testdata/fixtures/torch/dict.pt")
+	if code != 0 || !strings.Contains(out, `"verdict": "clean"`) || !strings.Contains(out, `"kind_from": "metadata"`) {
+		t.Fatalf("dict.pt: exit %d\n%s", code, out)
+	}
+	out, code = run(t, "check", "../../testdata/fixtures/torch/layers.pt")
+	if code != 0 || !strings.Contains(out, "inferred: layers: causal mask") {
+		t.Fatalf("layers.pt (a list of per-layer tensors): exit %d\n%s", code, out)
+	}
+	out, code = run(t, "check", "--json", "../../testdata/fixtures/torch/leak.pt")
+	if code != 1 || !strings.Contains(out, `"rule": "causal"`) || !strings.Contains(out, `"offset": 2`) {
+		t.Fatalf("leak.pt: exit %d\n%s", code, out)
+	}
+	// the loader's message (TestBadInputs checks its words) with exit 2
+	if _, code = run(t, "info", "../../testdata/fixtures/bad/torch_system.pt"); code != 2 {
+		t.Fatalf("hostile pickle: exit %d, want 2", code)
+	}
+}
