@@ -731,6 +731,11 @@ class Recorder:
                     np.savez(f, **arrays)
                 f.flush()
                 os.fsync(f.fileno())
+            # mkstemp makes the file 0600; give it the mode a plain open()
+            # would (0666 less the umask), so that colleagues can read it
+            mask = os.umask(0)
+            os.umask(mask)
+            os.chmod(tmp, 0o666 & ~mask)
             os.replace(tmp, path)
         except BaseException:
             try:
