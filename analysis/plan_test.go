@@ -12,9 +12,10 @@ func synthResult(layers, heads, kv int, scores [][]float64, grad bool) *Result {
 	br := &BlockResult{Name: "decoder", Layers: layers, Heads: heads, KVHeads: kv, HasGrad: grad}
 	for l := 0; l < layers; l++ {
 		for h := 0; h < heads; h++ {
-			hs := HeadStats{Layer: l, Head: h, Score: scores[l][h], ImportanceNorm: math.NaN()}
+			hs := HeadStats{Layer: l, Head: h, Score: scores[l][h]}
+			hs.Importance, hs.ImportanceNorm = math.NaN(), math.NaN()
 			if grad {
-				hs.ImportanceNorm = scores[l][h]
+				hs.Importance = scores[l][h]
 			}
 			br.Stats = append(br.Stats, hs)
 		}
@@ -30,7 +31,7 @@ func TestPlanLowestFirstNeverWholeLayer(t *testing.T) {
 	}
 	// layer 0 keeps its best head; the third pruned head comes from layer 1
 	want := map[int][]int{0: {0, 1}, 1: {2}}
-	if !reflect.DeepEqual(p.Heads["decoder"], want) || p.Pruned != 3 || p.Metric != "importance_norm" {
+	if !reflect.DeepEqual(p.Heads["decoder"], want) || p.Pruned != 3 || p.Metric != "importance" {
 		t.Fatalf("plan = %v (%d pruned, %s), want %v", p.Heads, p.Pruned, p.Metric, want)
 	}
 	if n := len(p.Curve); n != 4 || p.Curve[n-1].Heads != 4 {
@@ -62,7 +63,8 @@ func TestPlanKVGroups(t *testing.T) {
 }
 
 // TestPlanOnImportanceCase: the plan from autograd-checked importances
-// prunes the heads with the lowest importance_norm.
+// prunes the heads with the lowest importance (Michel et al. 2019's I_h,
+// compared model-wide; docs/pruning.md says why not importance_norm).
 func TestPlanOnImportanceCase(t *testing.T) {
 	files, _ := filepath.Glob(filepath.Join(casesDir, "importance", "*.npz"))
 	res := analyzePaths(t, DefaultOptions(), files...).Result()
@@ -76,7 +78,7 @@ func TestPlanOnImportanceCase(t *testing.T) {
 	}
 	var all []lh
 	for _, hs := range res.Block("decoder").Stats {
-		all = append(all, lh{hs.Layer, hs.Head, hs.ImportanceNorm})
+		all = append(all, lh{hs.Layer, hs.Head, hs.Importance})
 	}
 	sort.Slice(all, func(i, j int) bool { return all[i].v < all[j].v })
 	want := map[int][]int{}
@@ -87,6 +89,6 @@ func TestPlanOnImportanceCase(t *testing.T) {
 		sort.Ints(want[l])
 	}
 	if !reflect.DeepEqual(p.Heads["decoder"], want) {
-		t.Fatalf("plan %v, want the two lowest importance_norm heads %v", p.Heads, want)
+		t.Fatalf("plan %v, want the two lowest importance heads %v", p.Heads, want)
 	}
 }

@@ -126,7 +126,7 @@ func TestRankPlanAndFormats(t *testing.T) {
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatal(err)
 	}
-	if rep.Metric != "importance_norm" || len(rep.Heads) != 8 || rep.Plan.Pruned != 2 || len(rep.Plan.Curve) == 0 {
+	if rep.Metric != "importance" || len(rep.Heads) != 8 || rep.Plan.Pruned != 2 || len(rep.Plan.Curve) == 0 {
 		t.Fatalf("metric %s, %d heads, %d pruned", rep.Metric, len(rep.Heads), rep.Plan.Pruned)
 	}
 	for _, k := range []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "distance", "sink", "redundancy", "importance"} {

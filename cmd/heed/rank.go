@@ -185,7 +185,7 @@ head saves no compute until the model is rebuilt without it.`,
 						LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
 				}
 			}
-			rep.Metric = "importance_norm"
+			rep.Metric = "importance"
 			if !grad {
 				rep.Metric = analysis.ScoreName
 				rep.Warnings = append(rep.Warnings, noGradients+": no importance; "+analysis.ScoreDoc)
@@ -294,7 +294,7 @@ func writeRankCSV(w io.Writer, hs []rankHead) error {
 
 func writeRankText(w io.Writer, rep *rankReport) {
 	cols := []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share", "distance", "sink", "redundancy"}
-	if rep.Metric == "importance_norm" {
+	if rep.Metric == "importance" {
 		cols = append(cols, "importance", "importance_norm")
 	} else {
 		cols = append(cols, analysis.ScoreName)
