@@ -3,8 +3,9 @@ package analysis
 import (
 	"context"
 	"fmt"
+	"maps"
 	"math"
-	"sort"
+	"slices"
 
 	"github.com/heed-dev/heed/loader"
 )
@@ -60,167 +61,124 @@ import (
 // inferMaxValues bounds how many values the sample reads per block.
 const inferMaxValues = 1 << 24
 
-// InferAcc holds the counts behind an inference.
-type InferAcc struct {
-	// Units sampled ((layer, head, batch item) matrices); Causal, Prefix and
-	// Dense count how each looked; Blank the units with nothing to show
-	// (no live key after any row's position, or no finite row).
-	Units, Causal, Prefix, Shifted, Dense, Blank int64
-	// Shift is the most common s of the units whose rows all stop s keys
-	// after their own position (a causal mask shifted by +s).
-	Shift int
-	// Window and Prefix (Len) are the inferred W and P (0 = none), WindowUnits
-	// and PrefixUnits the units showing exactly them.
-	Window      int
-	WindowUnits int64
-	PrefixLen   int
-	PrefixUnits int64
-	// BreakLayers are the layers with a unit that breaks the inferred mask
-	// (dense units of a block inferred causal).
-	BreakLayers []int
-}
-
-// Inference is the outcome of InferMask for one block.
-type Inference struct {
-	// Kind is the inferred kind, loader.KindUnknown when not decided.
-	Kind loader.Kind
-	// Window and Prefix are the inferred W and P (0 = none).
-	Window, Prefix int
-	// Evidence says what the data showed, in words.
-	Evidence string
-	// Acc holds the counts behind it.
-	Acc InferAcc
-}
-
 type unitLook int
 
 const (
 	lookBlank unitLook = iota
 	lookCausal
 	lookPrefix
-	lookShifted
+	lookLeaky // mostly masked after the query, or the mirror image
 	lookDense
 )
 
-// InferMask samples the matrices of blk and infers its mask (see the rule
-// above). qs and ks are the block's query and key sides (nil without);
-// padding query rows (valid = 0) are left out.
-func InferMask(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) (Inference, error) {
-	var inf Inference
+// unitSeen is how one sampled matrix looked (lookAt): its window W_u when
+// causal, its prefix P_u when a prefix LM.
+type unitSeen struct {
+	look        unitLook
+	w, p, layer int
+}
+
+// scanSample reads the sampled matrices of blk once (sampleUnits) and
+// returns how each looks (only when classify: lookAt) and the last key
+// holding mass in any of them (-1 when none), which tests assumed query
+// positions (positionsWhy).
+func scanSample(ctx context.Context, blk *loader.Block, qs *loader.Side, classify bool) ([]unitSeen, int, error) {
 	Q, K := blk.Queries, blk.Keys
-	if Q <= 0 || K <= 0 || blk.Layers <= 0 {
-		return inf, nil
-	}
-	off := 0
-	if Q < K {
-		off = K - Q
-	}
-	units := sampleUnits(blk)
+	off := max(K-Q, 0)
 	buf := make([]float32, Q*K)
 	dead := make([]bool, K)
-	type seen struct {
-		look      unitLook
-		w, p, lay int
-	}
-	var all []seen
-	for _, u := range units {
+	var seen []unitSeen
+	live := -1
+	for _, u := range sampleUnits(blk) {
 		if err := ctx.Err(); err != nil {
-			return inf, fmt.Errorf("%w: %w", ErrCanceled, err)
+			return nil, 0, fmt.Errorf("%w: %w", ErrCanceled, err)
 		}
 		if err := blk.ReadAttn(u[0], u[2], u[1], buf); err != nil {
-			return inf, err
+			return nil, 0, err
 		}
-		look, w, p := lookAt(buf, Q, K, off, u[2], qs, dead)
-		all = append(all, seen{look, w, p, u[0]})
-	}
-	a := &inf.Acc
-	wins := map[int]int64{}
-	pres := map[int]int64{}
-	shifts := map[int]int64{}
-	maxReach := 0
-	for _, s := range all {
-		a.Units++
-		switch s.look {
-		case lookBlank:
-			a.Blank++
-		case lookCausal:
-			a.Causal++
-			wins[s.w]++
-		case lookPrefix:
-			a.Prefix++
-			pres[s.p]++
-		case lookShifted:
-			a.Shifted++
-			shifts[s.w]++
-		case lookDense:
-			a.Dense++
-		}
-	}
-	maxReach = off + Q // a row that sees key 0 from the last position
-	informative := a.Units - a.Blank
-	if informative == 0 {
-		inf.Evidence = fmt.Sprintf("no sampled head shows a key after its query's position (%d sampled): nothing to infer a mask from", a.Units)
-		return inf, nil
-	}
-	masked := a.Causal + a.Prefix + a.Shifted
-	pct := func(n int64) string { return fmt.Sprintf("%d of %d", n, informative) }
-	switch {
-	case 2*masked >= informative:
-		inf.Kind = loader.KindCausal
-		if p, n := mode(pres); 2*n >= informative && p > 0 {
-			inf.Prefix, a.PrefixLen, a.PrefixUnits = p, p, n
-		}
-		if w, n := mode(wins); a.Causal > 0 && 10*n >= 6*a.Causal && w < maxReach && inf.Prefix == 0 {
-			inf.Window, a.Window, a.WindowUnits = w, w, n
-		}
-		var breaks []int
-		for _, s := range all {
-			if (s.look == lookDense || s.look == lookShifted) && (len(breaks) == 0 || breaks[len(breaks)-1] != s.lay) {
-				breaks = append(breaks, s.lay)
+		for i := len(buf) - 1; i >= 0; i-- {
+			if k := i % K; k > live && buf[i] != 0 && !math.IsNaN(float64(buf[i])) {
+				live = k
 			}
 		}
-		a.BreakLayers = uniqueSorted(breaks)
-		switch {
-		case inf.Prefix > 0:
-			inf.Evidence = fmt.Sprintf("causal mask with a prefix of %d: %s sampled heads have exact zeros after each query's position except inside the first %d positions", inf.Prefix, pct(a.PrefixUnits), inf.Prefix)
-		case inf.Window > 0:
-			inf.Evidence = fmt.Sprintf("causal mask with a window of %d: %s sampled heads have exact zeros after each query's position, and %d of them before each query's last %d keys", inf.Window, pct(a.Causal), a.WindowUnits, inf.Window)
-		default:
-			inf.Evidence = fmt.Sprintf("causal mask: %s sampled heads have exact zeros after each query's position", pct(masked))
+		if classify {
+			look, w, p := lookAt(buf, Q, K, off, u[2], qs, dead)
+			seen = append(seen, unitSeen{look, w, p, u[0]})
 		}
-		if a.Shifted > 0 {
-			sh, _ := mode(shifts)
-			a.Shift = sh
-			inf.Evidence += fmt.Sprintf("; %d have exact zeros in most cells after it but mass in some (a mask that leaks?)", a.Shifted)
+	}
+	return seen, live, nil
+}
+
+// inferMask decides a block's kind from how its sampled matrices looked
+// (the rule at the top of this file). It returns KindUnknown when it does
+// not decide; evidence says what the data showed either way.
+func inferMask(seen []unitSeen, Q, K int) (kind loader.Kind, window, prefix int, evidence string) {
+	var causal, pre, leaky, dense, blank int64
+	wins, pres := map[int]int64{}, map[int]int64{}
+	var breaks []int // layers of the units that break a mask
+	for _, s := range seen {
+		switch s.look {
+		case lookBlank:
+			blank++
+		case lookCausal:
+			causal++
+			wins[s.w]++
+		case lookPrefix:
+			pre++
+			pres[s.p]++
+		case lookLeaky:
+			leaky++
+			breaks = append(breaks, s.layer)
+		case lookDense:
+			dense++
+			breaks = append(breaks, s.layer)
 		}
-		if a.Shifted > 0 && a.Causal+a.Prefix == 0 {
-			inf.Evidence = fmt.Sprintf("causal mask that leaks: every informative sampled head (%s) has exact zeros in most cells after each query's position, and mass in some", pct(a.Shifted))
+	}
+	informative := int64(len(seen)) - blank
+	if informative == 0 {
+		return loader.KindUnknown, 0, 0, fmt.Sprintf("no sampled head shows a key after its query's position (%d sampled): nothing to infer a mask from", len(seen))
+	}
+	masked := causal + pre + leaky
+	pct := func(n int64) string { return fmt.Sprintf("%d of %d", n, informative) }
+	switch {
+	case 2*masked >= informative && Q > K:
+		// more queries than keys: not a self-attention block; a triangle
+		// there is cross-attention made causal, which the cut check judges
+		return loader.KindCross, 0, 0, fmt.Sprintf("cross-attention (%d queries over %d keys): %s sampled heads have exact zeros after each query's position, a triangular cut the cut check judges", Q, K, pct(masked))
+	case 2*masked >= informative:
+		var winUnits int64
+		if p, n := mode(pres); 2*n >= informative && p > 0 {
+			prefix = p
+			evidence = fmt.Sprintf("causal mask with a prefix of %d: %s sampled heads have exact zeros after each query's position except inside the first %d positions", p, pct(n), p)
+		} else if w, n := mode(wins); causal > 0 && 10*n >= 6*causal && w < max(K-Q, 0)+Q {
+			// a row that sees key 0 from the last position has W_u = K
+			window, winUnits = w, n
+			evidence = fmt.Sprintf("causal mask with a window of %d: %s sampled heads have exact zeros after each query's position, and %d of them before each query's last %d keys", w, pct(causal), winUnits, w)
+		} else {
+			evidence = fmt.Sprintf("causal mask: %s sampled heads have exact zeros after each query's position", pct(masked))
 		}
-		if a.Dense+a.Shifted > 0 {
-			inf.Evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", list(a.BreakLayers))
+		if leaky > 0 && causal+pre == 0 {
+			evidence = fmt.Sprintf("causal mask that leaks: every informative sampled head (%s) has exact zeros in most cells after each query's position, and mass in some", pct(leaky))
+		} else if leaky > 0 {
+			evidence += fmt.Sprintf("; %d have exact zeros in most cells after it but mass in some (a mask that leaks?)", leaky)
 		}
-		if Q > K {
-			// more queries than keys: not a self-attention block; a
-			// triangle there is cross-attention made causal, which the cut
-			// check judges
-			inf.Kind, inf.Window, inf.Prefix = loader.KindCross, 0, 0
-			inf.Evidence = fmt.Sprintf("cross-attention (%d queries over %d keys): %s sampled heads have exact zeros after each query's position, a triangular cut the cut check judges", Q, K, pct(masked))
+		if len(breaks) > 0 {
+			slices.Sort(breaks)
+			evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", list(slices.Compact(breaks)))
 		}
-	case 10*a.Dense >= 8*informative && Q < K:
+		return loader.KindCausal, window, prefix, evidence
+	case 10*dense >= 8*informative && Q < K:
 		// cross-attention over a longer source, or a KV-cache step whose
 		// mask let the future through: the zeros cannot tell them apart
-		inf.Evidence = fmt.Sprintf("not decided: %s sampled heads have mass after their query's position (taken as the last %d of %d), which cross-attention over a longer sequence has and a KV-cache step should not", pct(a.Dense), Q, K)
-	case 10*a.Dense >= 8*informative:
-		inf.Kind = loader.KindBidirectional
-		what := "bidirectional"
+		return loader.KindUnknown, 0, 0, fmt.Sprintf("not decided: %s sampled heads have mass after their query's position (taken as the last %d of %d), which cross-attention over a longer sequence has and a KV-cache step should not", pct(dense), Q, K)
+	case 10*dense >= 8*informative:
+		kind, what := loader.KindBidirectional, "bidirectional"
 		if Q != K {
-			inf.Kind, what = loader.KindCross, "cross-attention"
+			kind, what = loader.KindCross, "cross-attention"
 		}
-		inf.Evidence = fmt.Sprintf("%s (no positional mask): %s sampled heads have mass after their query's position", what, pct(a.Dense))
-	default:
-		inf.Evidence = fmt.Sprintf("not decided: %s sampled heads have exact zeros after each query's position and %d do not: a mask in some heads only, or none", pct(masked), a.Dense)
+		return kind, 0, 0, fmt.Sprintf("%s (no positional mask): %s sampled heads have mass after their query's position", what, pct(dense))
 	}
-	return inf, nil
+	return loader.KindUnknown, 0, 0, fmt.Sprintf("not decided: %s sampled heads have exact zeros after each query's position and %d do not: a mask in some heads only, or none", pct(masked), dense)
 }
 
 // lookAt classifies one matrix (see the rule at the top of this file) and
@@ -229,21 +187,15 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 	for k := range dead {
 		dead[k] = true
 	}
-	for q := 0; q < Q; q++ {
-		row := a[q*K : (q+1)*K]
-		for k, v := range row {
-			if v != 0 && dead[k] {
-				dead[k] = false
-			}
+	for i, v := range a {
+		if v != 0 {
+			dead[i%K] = false
 		}
 	}
 	var rows, past, room int
 	w := 0
-	excess := 0                // max over rows of last - p
 	var upN, upZ, loN, loZ int // live cells after / before the row's position, and their exact zeros
-	pastMaxPos, pastReach := -1, -1
-	firstClean := K // smallest position of a row that does not look past itself
-	var cleanPos []int
+	pastMaxPos, pastReach, maxPos := -1, -1, -1
 	var lasts [][2]int // (p, last) of every row looked at
 	for q := 0; q < Q; q++ {
 		p := q + off
@@ -269,6 +221,7 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 			continue
 		}
 		rows++
+		maxPos = p
 		lasts = append(lasts, [2]int{p, last})
 		for k, v := range row {
 			switch {
@@ -285,19 +238,14 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 				}
 			}
 		}
-		excess = max(excess, last-p)
-		for k := p + 1; k < K; k++ {
-			if !dead[k] {
-				room++
-				break
-			}
+		if slices.Contains(dead[p+1:], false) {
+			room++
 		}
 		if last > p {
 			past++
 			pastMaxPos = max(pastMaxPos, p)
 			pastReach = max(pastReach, last)
 		} else {
-			cleanPos = append(cleanPos, p)
 			w = max(w, p-first+1)
 		}
 	}
@@ -307,14 +255,10 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 	if past == 0 {
 		return lookCausal, w, 0
 	}
-	P := pastReach + 1
-	for _, p := range cleanPos {
-		if p >= P {
-			firstClean = min(firstClean, p)
-		}
-	}
-	// a prefix LM lets every row before P - 1 see up to P - 1: a few rows
+	// a prefix LM lets every row before P - 1 see up to P - 1, and rows
+	// from P on (which then do not look past themselves) exist: a few rows
 	// reaching past themselves (a leak) are not a prefix
+	P := pastReach + 1
 	var before, full int
 	for _, pl := range lasts {
 		if pl[0] < P-1 {
@@ -324,20 +268,19 @@ func lookAt(a []float32, Q, K, off, b int, qs *loader.Side, dead []bool) (unitLo
 			}
 		}
 	}
-	if pastMaxPos < P && P < K && firstClean < K && before > 0 && 10*full >= 9*before {
+	if pastMaxPos < P && P < K && maxPos >= P && before > 0 && 10*full >= 9*before {
 		return lookPrefix, 0, P
 	}
 	// mostly masked: most live cells after the query's position are exact
 	// zeros, clearly more than before it (sharp heads whose small weights
-	// underflow have zeros on both sides)
-	if upN > 0 && 2*upZ >= upN && (loN == 0 || float64(upZ)/float64(upN)-float64(loZ)/float64(loN) >= 0.4) {
-		return lookShifted, excess, 0
+	// underflow have zeros on both sides); or the mirror image, an inverted
+	// boolean mask: the mass after the query, the cells up to it zeros
+	share := func(z, n int) float64 { return float64(z) / float64(n) }
+	if upN > 0 && 2*upZ >= upN && (loN == 0 || share(upZ, upN)-share(loZ, loN) >= 0.4) {
+		return lookLeaky, 0, 0
 	}
-	// inverted polarity (True = allowed passed where True = blocked is
-	// meant): the mass sits after the query, the cells up to it are zeros;
-	// the block is still triangular, and judged against a causal mask
-	if loN > 0 && upN > 0 && 2*loZ >= loN && float64(loZ)/float64(loN)-float64(upZ)/float64(upN) >= 0.4 {
-		return lookShifted, excess, 0
+	if loN > 0 && upN > 0 && 2*loZ >= loN && share(loZ, loN)-share(upZ, upN) >= 0.4 {
+		return lookLeaky, 0, 0
 	}
 	return lookDense, 0, 0
 }
@@ -377,12 +320,7 @@ func sampleUnits(blk *loader.Block) [][3]int {
 // mode returns the most frequent key (the smallest on ties) and its count.
 func mode(m map[int]int64) (int, int64) {
 	best, n := 0, int64(0)
-	keys := make([]int, 0, len(m))
-	for k := range m {
-		keys = append(keys, k)
-	}
-	sort.Ints(keys)
-	for _, k := range keys {
+	for _, k := range slices.Sorted(maps.Keys(m)) {
 		if m[k] > n {
 			best, n = k, m[k]
 		}
@@ -390,98 +328,75 @@ func mode(m map[int]int64) (int, int64) {
 	return best, n
 }
 
-func uniqueSorted(xs []int) []int {
-	sort.Ints(xs)
-	out := xs[:0]
-	for i, x := range xs {
-		if i == 0 || x != xs[i-1] {
-			out = append(out, x)
-		}
+// positionsWhy tests the assumption that the queries of a causal block
+// with fewer queries than keys are the last Q of K positions
+// (loader.Block.PosFrom "offset") against live, the last key with mass in
+// any sampled head. It returns a reason when the data contradicts it: the
+// keys from the first query's assumed position on hold no mass, as in a
+// decode step written from a pre-allocated (static) cache, whose unused
+// slots sit at the end. "" when the assumption holds or cannot be tested.
+func positionsWhy(blk *loader.Block, live int) string {
+	Q, K := blk.Queries, blk.Keys
+	if live < 0 || live >= K-Q {
+		return ""
 	}
-	return out
+	return fmt.Sprintf("queries taken as the last %d of %d positions (from %d), but no sampled head has mass on any key after %d: a decode step from a pre-allocated (static) cache, whose query sits before its unused slots", Q, K, K-Q, live)
 }
 
-// CheckPositions tests, on a sample, the assumption that the queries of a
-// causal block with fewer queries than keys are the last Q of K positions
-// (loader.Block.PosFrom "offset"). It returns a reason when the data
-// contradicts it: every sampled head leaves the keys from some k0 <= the
-// first query's assumed position without any mass, as a decode step
-// written from a pre-allocated (static) cache does, whose unused slots sit
-// at the end. "" when the assumption holds or cannot be tested.
-func CheckPositions(ctx context.Context, blk *loader.Block) (string, error) {
-	if blk.PosFrom != "offset" || blk.Kind != loader.KindCausal {
-		return "", nil
+// setKind gives blk a kind the data showed (KindFrom "inferred"), with the
+// window and prefix that go with it where the block has none, and, for a
+// causal block with fewer queries than keys, queries at the last Q of K
+// positions (PosFrom "offset", to be tested by positionsWhy).
+func setKind(blk *loader.Block, kind loader.Kind, window, prefix int, evidence string) {
+	blk.Kind, blk.KindFrom, blk.KindEvidence = kind, "inferred", evidence
+	if blk.Window <= 0 && window > 0 {
+		blk.Window = window
 	}
-	Q, K := blk.Queries, blk.Keys
-	buf := make([]float32, Q*K)
-	live := -1 // the last key with mass in any sampled head
-	for _, u := range sampleUnits(blk) {
-		if err := ctx.Err(); err != nil {
-			return "", fmt.Errorf("%w: %w", ErrCanceled, err)
-		}
-		if err := blk.ReadAttn(u[0], u[2], u[1], buf); err != nil {
-			return "", err
-		}
-		for i := len(buf) - 1; i >= 0; i-- {
-			if k := i % K; k > live && buf[i] != 0 && !math.IsNaN(float64(buf[i])) {
-				live = k
-			}
-		}
-		if live >= K-Q {
-			return "", nil
-		}
+	if blk.Prefix <= 0 && prefix > 0 {
+		blk.Prefix = prefix
 	}
-	if live < 0 {
-		return "", nil
+	if kind == loader.KindCausal && blk.QPos == nil && blk.Queries < blk.Keys {
+		blk.QueryOffset, blk.PosFrom = blk.Keys-blk.Queries, "offset"
 	}
-	return fmt.Sprintf("queries taken as the last %d of %d positions (from %d), but no sampled head has mass on any key after %d: a decode step from a pre-allocated (static) cache, whose query sits before its unused slots", Q, K, K-Q, live), nil
 }
 
 // InferExport infers the mask of every block of ex whose kind nobody gave
 // (loader.Block.KindFrom == "") and sets it on the block (Kind, Window,
 // Prefix, KindFrom "inferred", KindEvidence), and tests the assumed query
-// positions of causal blocks with fewer queries than keys (CheckPositions;
-// PosFrom becomes "unknown" and KindEvidence says why when the data
-// contradicts them). Blocks it cannot decide keep KindUnknown and get the
-// reason in KindEvidence. Calling it again does nothing.
+// positions of causal blocks with fewer queries than keys (PosFrom becomes
+// "unknown" and PosEvidence says why when the data contradicts them).
+// Blocks it cannot decide keep KindUnknown and get the reason in
+// KindEvidence. Calling it again does nothing.
 func InferExport(ctx context.Context, ex *loader.Export) error {
 	for _, blk := range ex.Blocks {
-		if err := inferBlock(ctx, blk, ex.Side(blk.QuerySide), ex.Side(blk.KeySide)); err != nil {
+		if err := inferBlock(ctx, blk, ex.Side(blk.QuerySide)); err != nil {
 			return err
 		}
 	}
 	return nil
 }
 
-func inferBlock(ctx context.Context, blk *loader.Block, qs, ks *loader.Side) error {
-	if blk.Layers <= 0 {
+// inferBlock is InferExport for one block: one read of its sample serves
+// both the inference and the test of the positions.
+func inferBlock(ctx context.Context, blk *loader.Block, qs *loader.Side) error {
+	needKind := blk.KindFrom == "" && blk.Kind == loader.KindUnknown && blk.KindEvidence == ""
+	offset := func() bool { return blk.PosFrom == "offset" && blk.Kind == loader.KindCausal }
+	if blk.Layers <= 0 || blk.Queries <= 0 || blk.Keys <= 0 || (!needKind && !offset()) {
 		return nil
 	}
-	if blk.KindFrom == "" && blk.Kind == loader.KindUnknown && blk.KindEvidence == "" {
-		inf, err := InferMask(ctx, blk, qs, ks)
-		if err != nil {
-			return err
-		}
-		blk.KindEvidence = inf.Evidence
-		if inf.Kind != loader.KindUnknown {
-			blk.Kind, blk.KindFrom = inf.Kind, "inferred"
-			if blk.Window <= 0 {
-				blk.Window = inf.Window
-			}
-			if blk.Prefix <= 0 {
-				blk.Prefix = inf.Prefix
-			}
-			if blk.Kind == loader.KindCausal && blk.QPos == nil && blk.Queries < blk.Keys {
-				blk.QueryOffset, blk.PosFrom = blk.Keys-blk.Queries, "offset"
-			}
+	seen, live, err := scanSample(ctx, blk, qs, needKind)
+	if err != nil {
+		return err
+	}
+	if needKind {
+		kind, window, prefix, evidence := inferMask(seen, blk.Queries, blk.Keys)
+		blk.KindEvidence = evidence
+		if kind != loader.KindUnknown {
+			setKind(blk, kind, window, prefix, evidence)
 		}
 	}
-	if blk.PosFrom == "offset" {
-		why, err := CheckPositions(ctx, blk)
-		if err != nil {
-			return err
-		}
-		if why != "" {
+	if offset() {
+		if why := positionsWhy(blk, live); why != "" {
 			blk.PosFrom, blk.PosEvidence = "unknown", why
 		}
 	}

@@ -85,8 +85,8 @@ type Options struct {
 	// context is canceled. Results do not depend on it.
 	Yield func()
 	// NoInfer leaves blocks whose kind nobody gave as they are: no mask is
-	// inferred from their zeros (InferMask) and assumed query positions are
-	// not tested (CheckPositions).
+	// inferred from their zeros (analysis/infer.go) and assumed query
+	// positions are not tested.
 	NoInfer bool
 }
 
@@ -249,19 +249,10 @@ func (p *Partial) add(ctx context.Context, ex *loader.Export, example string, op
 		qs, ks := ex.Side(blk.QuerySide), ex.Side(blk.KeySide)
 		if bp := p.block(blk.Name); bp != nil && blk.KindFrom == "" && bp.KindFrom == "inferred" {
 			// an earlier example showed the mask: judge this one by it too
-			blk.Kind, blk.KindFrom, blk.KindEvidence = loader.Kind(bp.Kind), "inferred", bp.Evidence
-			if blk.Window <= 0 && bp.Window > 0 {
-				blk.Window = bp.Window
-			}
-			if blk.Prefix <= 0 && bp.Prefix > 0 {
-				blk.Prefix = bp.Prefix
-			}
-			if blk.Kind == loader.KindCausal && blk.QPos == nil && blk.Queries < blk.Keys {
-				blk.QueryOffset, blk.PosFrom = blk.Keys-blk.Queries, "offset"
-			}
+			setKind(blk, loader.Kind(bp.Kind), bp.Window, bp.Prefix, bp.Evidence)
 		}
 		if !opt.NoInfer {
-			if err := inferBlock(ctx, blk, qs, ks); err != nil {
+			if err := inferBlock(ctx, blk, qs); err != nil {
 				return err
 			}
 		}
