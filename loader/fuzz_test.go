@@ -93,53 +93,35 @@ func FuzzNPY(f *testing.F) {
 	})
 }
 
-func FuzzNPZ(f *testing.F) {
-	seedFrom(f, ".npz")
+// fuzzContainer runs a container parser on fuzzed file bytes, then reads
+// every array and assembles the export, as the commands would.
+func fuzzContainer(f *testing.F, ext string, open func(name string, mf *mappedFile) (Container, error)) {
+	seedFrom(f, ext)
 	f.Fuzz(func(t *testing.T, data []byte) {
 		if len(data) > maxFuzzInput {
 			return
 		}
-		z, err := newNPZ("fuzz.npz", memFile("fuzz.npz", data))
+		c, err := open("fuzz"+ext, memFile("fuzz"+ext, data))
 		if err != nil {
 			return
 		}
-		defer z.Close()
-		readAll(z.Arrays())
-		m, _ := z.Meta()
-		assembleAndRead(z.Arrays(), m)
+		defer c.Close()
+		readAll(c.Arrays())
+		m, _ := c.Meta()
+		assembleAndRead(c.Arrays(), m)
 	})
+}
+
+func FuzzNPZ(f *testing.F) {
+	fuzzContainer(f, ".npz", func(name string, mf *mappedFile) (Container, error) { return newNPZ(name, mf) })
 }
 
 func FuzzSafetensors(f *testing.F) {
-	seedFrom(f, ".safetensors")
-	f.Fuzz(func(t *testing.T, data []byte) {
-		if len(data) > maxFuzzInput {
-			return
-		}
-		s, err := newSafetensors("fuzz.safetensors", memFile("fuzz.safetensors", data))
-		if err != nil {
-			return
-		}
-		defer s.Close()
-		readAll(s.Arrays())
-		m, _ := s.Meta()
-		assembleAndRead(s.Arrays(), m)
-	})
+	fuzzContainer(f, ".safetensors", func(name string, mf *mappedFile) (Container, error) { return newSafetensors(name, mf) })
 }
 
 func FuzzTorch(f *testing.F) {
-	seedFrom(f, ".pt")
-	f.Fuzz(func(t *testing.T, data []byte) {
-		if len(data) > maxFuzzInput {
-			return
-		}
-		z, err := newTorch(fileRef{path: "fuzz.pt", npyName: "fuzz"}, memFile("fuzz.pt", data))
-		if err != nil {
-			return
-		}
-		defer z.Close()
-		readAll(z.Arrays())
-		m, _ := z.Meta()
-		assembleAndRead(z.Arrays(), m)
+	fuzzContainer(f, ".pt", func(name string, mf *mappedFile) (Container, error) {
+		return newTorch(fileRef{path: name, npyName: "fuzz"}, mf)
 	})
 }

@@ -104,15 +104,19 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 		}
 		y++
 	}
-	for _, n := range d.Inferred {
-		for _, ln := range wrap("inferred: "+n, w) {
-			if y >= h-4 {
-				break
+	// faint wraps each of lines, prefixed, while 4 rows stay for the table
+	faint := func(prefix string, lines []string) {
+		for _, n := range lines {
+			for _, ln := range wrap(prefix+n, w) {
+				if y >= h-4 {
+					return
+				}
+				c.Text(0, y, ln, st.Faint, w)
+				y++
 			}
-			c.Text(0, y, ln, st.Faint, w)
-			y++
 		}
 	}
+	faint("inferred: ", d.Inferred)
 	// Keep at least 4 table rows: diagnosis gets what is left.
 	diagMax := max(1, h-y-6)
 	used := 0
@@ -138,15 +142,7 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 			y++
 		}
 	}
-	for _, n := range d.Notes {
-		for _, ln := range wrap("note: "+n, w) {
-			if y >= h-4 {
-				break
-			}
-			c.Text(0, y, ln, st.Faint, w)
-			y++
-		}
-	}
+	faint("note: ", d.Notes)
 	if len(d.Rows) == 0 {
 		return c, l
 	}
