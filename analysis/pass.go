@@ -310,10 +310,6 @@ func (p *Partial) addBlock(ctx context.Context, blk *loader.Block, rd reader, qs
 	if err != nil {
 		return err
 	}
-	if blk.PosFrom == "unknown" && len(only) == 0 {
-		// the positional rules would compare keys with wrong positions
-		rules.active[RuleCausal], rules.active[RulePrefix], rules.active[RuleWindow] = false, false, false
-	}
 	if blk.Queries <= 0 || blk.Keys <= 0 || blk.Layers <= 0 || blk.Heads <= 0 || blk.Batch <= 0 {
 		return fmt.Errorf("analysis: block %s: empty shape", blk.Name)
 	}

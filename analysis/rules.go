@@ -147,10 +147,12 @@ func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules
 		RuleExplicit: r.allow != nil,
 	}
 	if len(only) == 0 {
-		causal := blk.Kind == loader.KindCausal
+		// where the queries sit is unknown (loader.Block.PosFrom): the
+		// positional rules would compare keys with wrong positions
+		causal := blk.Kind == loader.KindCausal && blk.PosFrom != "unknown"
 		r.active[RuleCausal] = causal
 		r.active[RulePrefix] = causal && can[RulePrefix]
-		r.active[RuleWindow] = can[RuleWindow]
+		r.active[RuleWindow] = can[RuleWindow] && blk.PosFrom != "unknown"
 		r.active[RuleSegments] = can[RuleSegments]
 		r.active[RulePadding] = can[RulePadding]
 		r.active[RuleExplicit] = can[RuleExplicit]

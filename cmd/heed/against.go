@@ -40,7 +40,11 @@ func (af *againstFlags) run(cmd *cobra.Command, args []string, lf *loadFlags, to
 	} else if tol == 0 {
 		return fmt.Errorf("--tol 0 with --against: give a tolerance > 0, or leave --tol out for the dtype's")
 	}
-	return runAgainst(cmd.Context(), cmd.OutOrStdout(), args, af, lf.options(), tol, asJSON)
+	o, err := lf.options()
+	if err != nil {
+		return err
+	}
+	return runAgainst(cmd.Context(), cmd.OutOrStdout(), args, af, o, tol, asJSON)
 }
 
 // runAgainst opens A (args) and B (--against), compares them with

@@ -29,8 +29,25 @@ func (lf *loadFlags) register(cmd *cobra.Command) {
 	f.IntVar(&lf.queryStart, "query-start", -1, "key position of query row 0, e.g. 17 for a decode step at position 17 written from a static (pre-allocated) KV cache")
 }
 
-func (lf *loadFlags) options() loader.Options {
+// options turns the flags into loader options, refusing values that
+// cannot be meant.
+func (lf *loadFlags) options() (loader.Options, error) {
 	o := loader.NewOptions()
+	switch loader.Kind(lf.kind) {
+	case loader.KindUnknown, loader.KindCausal, loader.KindBidirectional, loader.KindCross:
+	default:
+		return o, fmt.Errorf("--kind %q: must be causal, bidirectional or cross", lf.kind)
+	}
+	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 || lf.queryStart < -1 {
+		return o, errors.New("--window, --prefix, --kv-heads and --query-start must not be negative")
+	}
+	if lf.computeDType != "" {
+		d, err := loader.ParseComputeDType(lf.computeDType)
+		if err != nil {
+			return o, fmt.Errorf("--compute-dtype: %w", err)
+		}
+		o.ComputeDType = d
+	}
 	o.Axes = lf.axes
 	o.Kind = loader.Kind(lf.kind)
 	o.TokensFile = lf.tokens
@@ -38,8 +55,7 @@ func (lf *loadFlags) options() loader.Options {
 	o.Prefix = lf.prefix
 	o.KVHeads = lf.kvHeads
 	o.QueryStart = lf.queryStart
-	o.ComputeDType, _ = loader.ParseComputeDType(lf.computeDType) // checked in openSet
-	return o
+	return o, nil
 }
 
 // openSet opens the examples named by args (files, directories, @LIST
@@ -49,18 +65,9 @@ func openSet(args []string, lf *loadFlags) (*loader.Set, error) {
 	if len(args) == 0 {
 		return nil, errors.New("no export files given")
 	}
-	switch loader.Kind(lf.kind) {
-	case loader.KindUnknown, loader.KindCausal, loader.KindBidirectional, loader.KindCross:
-	default:
-		return nil, fmt.Errorf("--kind %q: must be causal, bidirectional or cross", lf.kind)
+	o, err := lf.options()
+	if err != nil {
+		return nil, err
 	}
-	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 || lf.queryStart < -1 {
-		return nil, errors.New("--window, --prefix, --kv-heads and --query-start must not be negative")
-	}
-	if lf.computeDType != "" {
-		if _, err := loader.ParseComputeDType(lf.computeDType); err != nil {
-			return nil, fmt.Errorf("--compute-dtype: %w", err)
-		}
-	}
-	return loader.OpenSet(args, lf.options())
+	return loader.OpenSet(args, o)
 }

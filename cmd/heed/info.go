@@ -4,7 +4,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
-	"slices"
 	"strconv"
 	"strings"
 
@@ -176,10 +175,6 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 		}
 		if b.ComputeDType != loader.Invalid {
 			ib.ComputeDType = b.ComputeDType.String()
-		}
-		if b.PosFrom == "unknown" {
-			// check judges no positional rule there
-			ib.Rules = slices.DeleteFunc(ib.Rules, func(r string) bool { return r == "causal" || r == "window" || r == "prefix" })
 		}
 	}
 	for _, name := range sortedSides(ex) {
