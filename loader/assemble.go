@@ -972,21 +972,6 @@ func setQueryPos(b *Block, qpos Array, st blockSettings, first Array) error {
 	if qpos != nil && st.queryStart != nil && st.startFrom != "--query-start" {
 		return ferr(qpos, "block %q has both %s/qpos and query_start: give one", b.Name, b.Name)
 	}
-	check := func(a Array, pos [][]int) error {
-		for bi, row := range pos {
-			for q, v := range row {
-				if v < 0 || v >= b.Keys {
-					what := "query_start"
-					if a != nil {
-						what = a.Name()
-					}
-					return &FormatError{File: first.File(), Array: what, Offset: -1,
-						Msg: fmt.Sprintf("batch item %d, query %d is at key position %d, outside the %d keys", bi, q, v, b.Keys)}
-				}
-			}
-		}
-		return nil
-	}
 	switch {
 	case st.startFrom == "--query-start" || (qpos == nil && st.queryStart != nil):
 		if len(st.queryStart) != 1 && len(st.queryStart) != b.Batch {
@@ -994,13 +979,14 @@ func setQueryPos(b *Block, qpos Array, st blockSettings, first Array) error {
 		}
 		pos := make([][]int, len(st.queryStart))
 		for i, s0 := range st.queryStart {
+			if s0+b.Queries > b.Keys { // s0 >= 0: settings checked it
+				return &FormatError{File: first.File(), Array: "query_start", Offset: -1,
+					Msg: fmt.Sprintf("batch item %d: %d queries from key position %d run past the %d keys", i, b.Queries, s0, b.Keys)}
+			}
 			pos[i] = make([]int, b.Queries)
 			for q := range pos[i] {
 				pos[i][q] = s0 + q
 			}
-		}
-		if err := check(nil, pos); err != nil {
-			return err
 		}
 		b.QPos, b.PosFrom = pos, st.startFrom
 	case qpos != nil:

@@ -327,6 +327,7 @@ func TestBadInputs(t *testing.T) {
 		{"torch_huge_string.pt", "data.pkl: malformed pickle: an argument of 4611686018427387904 bytes"},
 		{"torch_short_storage.pt", `16 elements from offset 0 need 64 bytes, its storage "0" has 40`},
 		{"torch_no_storage.pt", `its storage "0" is not in the archive`},
+		{"torch_legacy.pt", "legacy format (torch < 1.6"},
 	}
 	listed := map[string]bool{}
 	for _, c := range cases {

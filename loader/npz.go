@@ -39,28 +39,53 @@ type npzFile struct {
 	temps   []*inflated
 }
 
-func openNPZ(path string) (Container, error) {
-	mf, err := mapFile(path)
+// openZip opens a zip archive: a torch.save file when it holds
+// ARCHIVE/data.pkl (torch.go), else an NPZ. Its directory is read once.
+func openZip(ref fileRef) (Container, error) {
+	mf, err := mapFile(ref.path)
 	if err != nil {
 		return nil, err
 	}
-	return newNPZ(path, mf)
+	zr, err := readZip(ref.path, mf)
+	if err != nil {
+		mf.close()
+		return nil, err
+	}
+	if torchArchive(zr) != nil {
+		return newTorchZip(ref, mf, zr)
+	}
+	return newNPZZip(ref.path, mf, zr)
 }
 
+func readZip(path string, mf *mappedFile) (*zip.Reader, error) {
+	zr, err := zip.NewReader(mf.readerAt(), mf.size())
+	if err != nil {
+		return nil, &FormatError{File: path, Offset: -1, Msg: "not a readable NPZ or torch.save (zip) archive", Err: err}
+	}
+	return zr, nil
+}
+
+// newNPZ reads an NPZ from a mapped file (tests and fuzzing; openZip is
+// what opens files).
 func newNPZ(path string, mf *mappedFile) (*npzFile, error) {
+	zr, err := readZip(path, mf)
+	if err != nil {
+		mf.close()
+		return nil, err
+	}
+	return newNPZZip(path, mf, zr)
+}
+
+func newNPZZip(path string, mf *mappedFile, zr *zip.Reader) (*npzFile, error) {
 	z := &npzFile{mf: mf}
-	if err := z.read(path); err != nil {
+	if err := z.read(path, zr); err != nil {
 		z.Close()
 		return nil, err
 	}
 	return z, nil
 }
 
-func (z *npzFile) read(path string) error {
-	zr, err := zip.NewReader(z.mf.readerAt(), z.mf.size())
-	if err != nil {
-		return &FormatError{File: path, Offset: -1, Msg: "not a readable NPZ (zip) archive", Err: err}
-	}
+func (z *npzFile) read(path string, zr *zip.Reader) error {
 	seen := map[string]bool{}
 	for _, f := range zr.File {
 		if !strings.HasSuffix(f.Name, ".npy") || strings.HasSuffix(f.Name, "/") {

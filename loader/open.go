@@ -46,18 +46,6 @@ func sniff(f io.ReaderAt, size int64) string {
 	return ""
 }
 
-// isZipFile reports whether the file starts like a zip archive.
-func isZipFile(path string) bool {
-	f, err := os.Open(path)
-	if err != nil {
-		return false
-	}
-	defer f.Close()
-	var b [4]byte
-	n, _ := f.ReadAt(b[:], 0)
-	return n == 4 && (string(b[:]) == "PK\x03\x04" || string(b[:]) == "PK\x05\x06")
-}
-
 // hasHDF5Signature looks for the HDF5 format signature at 0, 512, 1024, ...
 // (the HDF5 file format specification, "Format Signature").
 func hasHDF5Signature(f io.ReaderAt, size int64) bool {
@@ -110,9 +98,6 @@ func openFile(ref fileRef) (Container, error) {
 		return nil, &FormatError{File: ref.path, Offset: -1, Msg: "is a directory"}
 	}
 	format := sniff(f, st.Size())
-	if format == "npz" && isTorchZip(f, st.Size()) {
-		format = "torch"
-	}
 	f.Close()
 	if format == "" {
 		format = exportExts[strings.ToLower(filepath.Ext(ref.path))]
@@ -120,13 +105,10 @@ func openFile(ref fileRef) (Container, error) {
 	switch format {
 	case "npy":
 		return openNPY(ref)
-	case "npz":
-		return openNPZ(ref.path)
-	case "torch":
-		if torchExt(ref.path) && format == exportExts[strings.ToLower(filepath.Ext(ref.path))] && !isZipFile(ref.path) {
-			return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not a torch.save zip archive: a file in the legacy format (torch < 1.6, or _use_new_zipfile_serialization=False); re-save it with torch.save's default format"}
-		}
-		return openTorch(ref)
+	case "npz": // a zip archive: NPZ or torch.save
+		return openZip(ref)
+	case "torch": // by its extension only: the bytes are not a zip archive
+		return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not a torch.save zip archive: a file in the legacy format (torch < 1.6, or _use_new_zipfile_serialization=False); re-save it with torch.save's default format"}
 	case "safetensors":
 		return openSafetensors(ref.path)
 	case "hdf5":

@@ -7,7 +7,6 @@ import (
 	"io"
 	"math"
 	"math/big"
-	"path/filepath"
 	"sort"
 	"strconv"
 	"strings"
@@ -137,58 +136,50 @@ func (t *torchFile) Arrays() []Array      { return append([]Array(nil), t.arrays
 func (t *torchFile) Meta() (string, bool) { return t.meta, t.hasMeta }
 func (t *torchFile) Close() error         { return t.mf.close() }
 
-// isTorchZip reports whether a zip archive is a torch.save file (a member
-// named data.pkl one level down).
-func isTorchZip(f io.ReaderAt, size int64) bool {
-	zr, err := zip.NewReader(f, size)
-	if err != nil {
-		return false
-	}
+// torchArchive returns the data.pkl member of a torch.save archive (one
+// level down: ARCHIVE/data.pkl), nil when zr is not one.
+func torchArchive(zr *zip.Reader) *zip.File {
 	for _, m := range zr.File {
 		if strings.HasSuffix(m.Name, "/data.pkl") && strings.Count(m.Name, "/") == 1 {
-			return true
+			return m
 		}
 	}
-	return false
+	return nil
 }
 
-func openTorch(ref fileRef) (Container, error) {
-	mf, err := mapFile(ref.path)
+// newTorch reads a torch.save file from a mapped file (tests and fuzzing;
+// openZip is what opens files).
+func newTorch(ref fileRef, mf *mappedFile) (*torchFile, error) {
+	zr, err := readZip(ref.path, mf)
 	if err != nil {
+		mf.close()
 		return nil, err
 	}
-	return newTorch(ref, mf)
+	return newTorchZip(ref, mf, zr)
 }
 
-func newTorch(ref fileRef, mf *mappedFile) (*torchFile, error) {
+func newTorchZip(ref fileRef, mf *mappedFile, zr *zip.Reader) (*torchFile, error) {
 	t := &torchFile{mf: mf}
-	if err := t.read(ref); err != nil {
+	if err := t.read(ref, zr); err != nil {
 		mf.close()
 		return nil, err
 	}
 	return t, nil
 }
 
-func (t *torchFile) read(ref fileRef) error {
+func (t *torchFile) read(ref fileRef, zr *zip.Reader) error {
 	path := ref.path
 	ferr := func(arr, format string, a ...any) error {
 		return &FormatError{File: path, Array: arr, Offset: -1, Msg: fmt.Sprintf(format, a...)}
 	}
-	zr, err := zip.NewReader(t.mf.readerAt(), t.mf.size())
-	if err != nil {
-		return &FormatError{File: path, Offset: -1, Msg: "not a readable torch.save (zip) archive", Err: err}
-	}
-	members := map[string]*zip.File{}
-	var pkl *zip.File
-	prefix := ""
-	for _, m := range zr.File {
-		members[m.Name] = m
-		if strings.HasSuffix(m.Name, "/data.pkl") && strings.Count(m.Name, "/") == 1 {
-			pkl, prefix = m, strings.TrimSuffix(m.Name, "data.pkl")
-		}
-	}
+	pkl := torchArchive(zr)
 	if pkl == nil {
 		return ferr("", "a zip archive without ARCHIVE/data.pkl: not a torch.save file")
+	}
+	prefix := strings.TrimSuffix(pkl.Name, "data.pkl")
+	members := map[string]*zip.File{}
+	for _, m := range zr.File {
+		members[m.Name] = m
 	}
 	if pkl.UncompressedSize64 > maxTorchPickle {
 		return ferr("data.pkl", "pickle of %d bytes is larger than heed reads (%d)", pkl.UncompressedSize64, maxTorchPickle)
@@ -605,10 +596,4 @@ func scanPickle(b []byte) error {
 		}
 	}
 	return fmt.Errorf("malformed pickle: no STOP opcode")
-}
-
-// torchExt reports whether a file name has a torch.save extension.
-func torchExt(path string) bool {
-	e := strings.ToLower(filepath.Ext(path))
-	return e == ".pt" || e == ".pth"
 }

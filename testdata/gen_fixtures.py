@@ -742,6 +742,8 @@ def gen_bad(out):
                b"\x89ccollections\nOrderedDict\nq\x08)Rq\ttq\nRq\x0b.")
     torch_zip("torch_short_storage", rebuild, [("data/0", b"\0" * 40)])
     torch_zip("torch_no_storage", rebuild)
+    # the legacy (pre-1.6) torch.save format: a pickle stream, not a zip
+    torch.save(torch.ones(2, 2), os.path.join(d, "torch_legacy.pt"), _use_new_zipfile_serialization=False)
     return []
 
 
