@@ -355,14 +355,8 @@ func newBlockPartial(blk *loader.Block, rules *Rules, opt Options) *BlockPartial
 	for _, r := range rules.Active() {
 		bp.Rules = append(bp.Rules, r.String())
 	}
-	nan, sum, neg := rowChecks(opt.Rules)
-	for _, c := range []struct {
-		on bool
-		r  Rule
-	}{{nan, RuleNaNRows}, {sum, RuleRowSum}, {neg, RuleNegative}, {cutCheck(opt.Rules) && cutBlock(rules), RuleCut}} {
-		if c.on {
-			bp.RowChecks = append(bp.RowChecks, c.r.String())
-		}
+	for _, r := range rules.RowChecks(opt.Rules) {
+		bp.RowChecks = append(bp.RowChecks, r.String())
 	}
 	bp.Units = make([][]HeadAcc, blk.Layers*blk.Heads)
 	for i := range bp.Units {

@@ -211,16 +211,16 @@ func (r *Rules) Active() []Rule {
 func (r *Rules) Has(x Rule) bool { return x.IsMask() && r.active[x] }
 
 // RowChecks lists the row rules the attention pass runs on the block of r
-// when no --rule selects rules, as the pass decides them: nan_rows, row_sum
-// and negative on every block (rowChecks), then cut where it reads rows
-// (cutBlock: a cross block, or the prefix rule applies).
-func (r *Rules) RowChecks() []Rule {
+// with the --rule selection selected (nil = none: every row check), as the
+// pass decides them: nan_rows, row_sum and negative (rowChecks), then cut
+// where it reads rows (cutBlock: a cross block, or the prefix rule applies).
+func (r *Rules) RowChecks(selected []Rule) []Rule {
 	var out []Rule
-	nan, sum, neg := rowChecks(nil)
+	nan, sum, neg := rowChecks(selected)
 	for _, c := range []struct {
 		on bool
 		r  Rule
-	}{{nan, RuleNaNRows}, {sum, RuleRowSum}, {neg, RuleNegative}, {cutCheck(nil) && cutBlock(r), RuleCut}} {
+	}{{nan, RuleNaNRows}, {sum, RuleRowSum}, {neg, RuleNegative}, {cutCheck(selected) && cutBlock(r), RuleCut}} {
 		if c.on {
 			out = append(out, c.r)
 		}

@@ -226,7 +226,7 @@ func blockChecks(b *loader.Block, qs, ks *loader.Side) (rules, rows []string) {
 	for _, x := range r.Active() {
 		rules = append(rules, x.String())
 	}
-	for _, x := range r.RowChecks() {
+	for _, x := range r.RowChecks(nil) {
 		rows = append(rows, x.String())
 	}
 	return rules, rows
