@@ -2,6 +2,7 @@ package analysis
 
 import (
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"sort"
 	"strings"
 )
@@ -72,13 +73,6 @@ func which(xs []int, total int, one, many string) string {
 		return fmt.Sprintf("%s %d", one, xs[0])
 	}
 	return many + " " + list(xs)
-}
-
-func plural(n int, one, many string) string {
-	if n == 1 {
-		return one
-	}
-	return many
 }
 
 // possible returns the cells rule r forbids at offset o over the finding's
@@ -234,7 +228,7 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 			first := f.Layers[0]
 			d.Pattern = "nan_rows"
 			d.Value = float64(first)
-			d.Text = fmt.Sprintf("%d real query %s are NaN in %s, first in layer %d: fully masked queries give NaN (softmax over nothing).", f.Rows, plural(int(f.Rows), "row", "rows"), where, first)
+			d.Text = fmt.Sprintf("%d real query %s are NaN in %s, first in layer %d: fully masked queries give NaN (softmax over nothing).", f.Rows, words.Plural(int(f.Rows), "row", "rows"), where, first)
 			d.Check = "check for rows whose masks block every key (left padding with a causal mask, two additive masks summed to -inf or overflowing in fp16/bf16) and use a finite fill value or guard fully masked rows"
 			d.Evidence = append(d.Evidence, fmt.Sprintf("%d NaN rows out of %d judged rows; first at %s", f.Rows, f.JudgedRows, f.Worst))
 			if pl := padNaNFirst(bp); pl >= 0 && pl < first {
@@ -329,19 +323,19 @@ func whereDiagnosis(bp *BlockPartial, f *Finding, what Diagnosis) (Diagnosis, bo
 	case !allH:
 		d.Pattern = "only_some_heads"
 		d.Text = fmt.Sprintf("Only %s %s of %s %s %s (%s) in %s: a mask broadcast over the head axis is wrong.",
-			plural(len(f.Heads), "head", "heads"), list(f.Heads), plural(len(f.Layers), "layer", "layers"), list(f.Layers),
-			plural(len(f.Heads), "leaks", "leak"), f.Rule, bp.Name)
+			words.Plural(len(f.Heads), "head", "heads"), list(f.Heads), words.Plural(len(f.Layers), "layer", "layers"), list(f.Layers),
+			words.Plural(len(f.Heads), "leaks", "leak"), f.Rule, bp.Name)
 		d.Check = "check how the mask is expanded to [batch*heads, q, k] or [batch, heads, q, k] (repeat vs repeat_interleave, batch-major order) and any per-head bias"
 	case !allL:
 		d.Pattern = "only_some_layers"
 		d.Text = fmt.Sprintf("Only %s %s of %s %s (%s): %s.",
-			plural(len(f.Layers), "layer", "layers"), list(f.Layers), bp.Name, plural(len(f.Layers), "leaks", "leak"), f.Rule,
-			plural(len(f.Layers), "that layer takes another code path or gets another mask", "those layers take another code path or get another mask"))
+			words.Plural(len(f.Layers), "layer", "layers"), list(f.Layers), bp.Name, words.Plural(len(f.Layers), "leaks", "leak"), f.Rule,
+			words.Plural(len(f.Layers), "that layer takes another code path or gets another mask", "those layers take another code path or get another mask"))
 		d.Check = "check what differs for these layers: layer type (full vs sliding), a kernel fallback, a mask passed per layer or cached from another layer"
 	case !allB:
 		d.Pattern = "only_some_batch"
 		d.Text = fmt.Sprintf("Only batch %s %s of %s %s (%s): the mask is wrong for some batch items.",
-			plural(len(f.Batches), "item", "items"), list(f.Batches), bp.Name, plural(len(f.Batches), "leaks", "leak"), f.Rule)
+			words.Plural(len(f.Batches), "item", "items"), list(f.Batches), bp.Name, words.Plural(len(f.Batches), "leaks", "leak"), f.Rule)
 		d.Check = "check how the mask is broadcast over the batch (a [1, q, k] mask vs per-item padding masks, a path taken only for unpadded items)"
 	default:
 		return d, false

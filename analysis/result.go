@@ -3,6 +3,7 @@ package analysis
 import (
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"math"
 	"slices"
 	"sort"
@@ -400,9 +401,10 @@ func (l Location) MarshalJSON() ([]byte, error) {
 	}{plain(l), l.String()})
 }
 
-// String formats the location as a LOC.
+// String formats the location as a LOC (words.Loc), the key included when
+// the location is a cell.
 func (l Location) String() string {
-	return fmt.Sprintf("%s:L%d:H%d:B%d:q%d", l.Block, l.Layer, l.Head, l.Batch, l.Query)
+	return words.Loc{Block: l.Block, Layer: l.Layer, Head: l.Head, Batch: l.Batch, Query: l.Query, Key: l.Key}.String()
 }
 
 // OffsetCount is how many leaking cells sit at offset k - q.

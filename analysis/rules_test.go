@@ -164,9 +164,13 @@ func mustAnalyze(t *testing.T, ex *loader.Export, opt Options) *Result {
 }
 
 func TestLocationString(t *testing.T) {
-	l := Location{Block: "decoder", Layer: 3, Head: 7, Batch: 1, Query: 12}
+	l := Location{Block: "decoder", Layer: 3, Head: 7, Batch: 1, Query: 12, Key: -1}
 	if got := l.String(); got != "decoder:L3:H7:B1:q12" {
 		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12 (DESIGN.md's LOC form)", got)
+	}
+	l.Key = 13
+	if got := l.String(); got != "decoder:L3:H7:B1:q12:k13" {
+		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12:k13 (a cell: the key too)", got)
 	}
 }
 

@@ -24,6 +24,7 @@ import (
 	"charm.land/lipgloss/v2"
 	"github.com/charmbracelet/colorprofile"
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/views"
 )
@@ -241,17 +242,18 @@ func (m *Model) Close() error {
 	return err
 }
 
-// Location is where the model is: block, layer, head, batch item and the
-// Map's query and key.
-func (m *Model) Location() Loc {
-	return Loc{Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Batch: m.batch, Query: m.q, Key: -1}
+// Location is where the model is: block, layer, head, the batch item (when
+// the block has more than one), and the cursor's query and key.
+func (m *Model) Location() words.Loc {
+	l := words.Loc{Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Batch: -1, Query: m.q, Key: m.k}
+	if m.bi().blk.Batch > 1 {
+		l.Batch = m.batch
+	}
+	return l
 }
 
-// LocationString is the location as it is copied: the batch item is
-// included when the block has more than one.
-func (m *Model) LocationString() string {
-	return m.Location().format(m.bi().blk.Batch > 1)
-}
+// LocationString is the location as it is copied and shown.
+func (m *Model) LocationString() string { return m.Location().String() }
 
 // Canvas returns the cells of the focused screen's body as last drawn (the
 // area between the tab bar and the status line, after a WindowSizeMsg or
@@ -376,7 +378,7 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 			m.setMsg("statistics: "+msg.err.Error(), m.st.Bad)
 		case msg.res != nil && len(msg.res.Findings) > 0:
 			n := len(msg.res.Findings)
-			m.setMsg(fmt.Sprintf("%d %s · press 3 for Findings", n, plural(n, "finding", "findings")), m.st.Bad)
+			m.setMsg(words.Count(n, "finding", "findings")+" · press n for the first", m.st.Bad)
 		case msg.res != nil:
 			m.setMsg("checks clean", m.st.Good)
 		}
@@ -600,10 +602,11 @@ func (m *Model) setBlock(i int) {
 // gotoLoc moves to a location string; start is true for --at (which also
 // opens the Map when a query is given).
 func (m *Model) gotoLoc(s string, start bool) error {
-	l, err := ParseLoc(s)
+	l, err := words.ParseLoc(s)
 	if err != nil {
 		return err
 	}
+	l.Batch = max(l.Batch, 0)
 	bi := -1
 	var names []string
 	for i, b := range m.d.blocks {
@@ -926,10 +929,3 @@ func fitLines(s string, h int) string {
 }
 
 func itoa(i int) string { return fmt.Sprint(i) }
-
-func plural(n int, one, many string) string {
-	if n == 1 {
-		return one
-	}
-	return many
-}

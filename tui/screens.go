@@ -3,13 +3,13 @@ package tui
 import (
 	"fmt"
 	"math"
-	"sort"
 	"strconv"
 	"strings"
 
 	"charm.land/bubbles/v2/key"
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/views"
 )
 
@@ -390,7 +390,7 @@ func (s *findingsScreen) Update(msg tea.Msg) tea.Cmd {
 func (s *findingsScreen) open(f analysis.Finding) {
 	m := s.m
 	w := f.Worst
-	loc := Loc{Block: w.Block, Layer: w.Layer, Head: w.Head, Batch: w.Batch, Query: w.Query, Key: w.Key}
+	loc := words.Loc{Block: w.Block, Layer: w.Layer, Head: w.Head, Batch: w.Batch, Query: w.Query, Key: w.Key}
 	if err := m.gotoLoc(loc.String(), false); err != nil {
 		m.setMsg(err.Error(), m.st.Bad)
 		return
@@ -413,29 +413,6 @@ func (s *findingsScreen) open(f analysis.Finding) {
 		}
 	}
 	m.setMsg(fmt.Sprintf("%s finding: worst cell %s value %s", f.Rule, loc.String(), views.FormatValue(w.Value)), m.st.Bad)
-}
-
-// ranges writes sorted indices compactly: "0-3, 7".
-func ranges(xs []int, total int) string {
-	if len(xs) == total && total > 1 {
-		return fmt.Sprintf("all %d", total)
-	}
-	ys := append([]int(nil), xs...)
-	sort.Ints(ys)
-	var parts []string
-	for i := 0; i < len(ys); {
-		j := i
-		for j+1 < len(ys) && ys[j+1] == ys[j]+1 {
-			j++
-		}
-		if j > i {
-			parts = append(parts, fmt.Sprintf("%d-%d", ys[i], ys[j]))
-		} else {
-			parts = append(parts, strconv.Itoa(ys[i]))
-		}
-		i = j + 1
-	}
-	return strings.Join(parts, ",")
 }
 
 func offsetsText(os []analysis.OffsetCount) string {
@@ -465,12 +442,9 @@ func (s *findingsScreen) Refresh() {
 				L, H, B = bl.Layers, bl.Heads, bl.Batch
 			}
 			w := f.Worst
-			worst := fmt.Sprintf("L%d H%d B%d q%d", w.Layer, w.Head, w.Batch, w.Query)
-			if w.Key >= 0 {
-				worst += fmt.Sprintf(" k%d", w.Key)
-			}
+			worst := w.String()
 			d.Rows = append(d.Rows, views.FindingRow{Block: f.Block, Rule: f.Rule.String(),
-				Layers: ranges(f.Layers, L), Heads: ranges(f.Heads, H), Batches: ranges(f.Batches, B),
+				Layers: words.Ranges(f.Layers, L), Heads: words.Ranges(f.Heads, H), Batches: words.Ranges(f.Batches, B),
 				Mass: f.Mass, Max: f.Max, Cells: f.Cells, Rows: f.Rows, Worst: worst, Offsets: offsetsText(f.Offsets)})
 		}
 		for _, dg := range m.res.Diagnoses {

@@ -2,6 +2,7 @@ package tui
 
 import (
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"math"
 	"path/filepath"
 	"regexp"
@@ -128,7 +129,7 @@ func TestFlowTraceEncoderDecoder(t *testing.T) {
 	if words := strings.Fields(res.Batch[0].Source); strings.Join(words, " ") != strings.Join(ref.Tokens, " ") {
 		t.Fatalf("source tokens: numpy reads %q, the generator recorded %q", ref.Tokens, words)
 	}
-	loc, err := ParseLoc(res.Demo.At)
+	loc, err := words.ParseLoc(res.Demo.At)
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -6,6 +6,7 @@ import (
 	"encoding/base64"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"os/exec"
 	"path/filepath"
 	"strings"
@@ -191,14 +192,16 @@ func (f *flow) output(s string) {
 func (f *flow) loc(want string) {
 	f.t.Helper()
 	deadline := time.After(10 * time.Second)
+	last := ""
 	for {
 		select {
 		case got := <-f.locs:
 			if got == want {
 				return
 			}
+			last = got
 		case <-deadline:
-			f.t.Fatalf("location never became %s", want)
+			f.t.Fatalf("location never became %s (last seen %q)", want, last)
 		}
 	}
 }
@@ -244,7 +247,7 @@ func TestFlowLeakToWorstCell(t *testing.T) {
 	f.see("Findings · 1, worst first", "causal", "shifted by +1")
 	f.key("enter")
 	// numpy's worst forbidden cell is where Findings' enter lands.
-	f.loc(Loc{Block: "decoder", Layer: want.Layer, Head: want.Head, Query: want.Q, Key: -1}.String())
+	f.loc(words.Loc{Block: "decoder", Layer: want.Layer, Head: want.Head, Batch: -1, Query: want.Q, Key: want.K}.String())
 	f.see("forbidden by causal")
 	m := f.quit()
 	if m.Screen() != ScreenMap || m.k != want.K || m.batch != want.Batch {
@@ -257,14 +260,14 @@ func TestFlowMoveZoomFindCopy(t *testing.T) {
 	f := start(t, 80, 24, Options{}, file)
 	f.see("Survey · decoder")
 	f.key("]")
-	f.loc("decoder:L1:H0:q0")
+	f.loc("decoder:L1:H0:q0:k0")
 	f.key("]")
 	f.key("}")
-	f.loc("decoder:L2:H1:q0")
+	f.loc("decoder:L2:H1:q0:k0")
 	f.key("[")
 	f.key("{")
 	f.key("{")
-	f.loc("decoder:L1:H2:q0") // head wraps around
+	f.loc("decoder:L1:H2:q0:k0") // head wraps around
 	f.key("2")
 	// 60 tokens do not fit in 21 lines at 1:1: the map starts zoomed out.
 	f.see("1:2 mean")
@@ -282,12 +285,12 @@ func TestFlowMoveZoomFindCopy(t *testing.T) {
 	f.see("find token")
 	f.key("river")
 	f.key("enter")
-	f.loc("decoder:L1:H2:q3")
+	f.loc("decoder:L1:H2:q3:k3")
 	f.see("match 1 of 3")
 	f.key("n")
-	f.loc("decoder:L1:H2:q23")
+	f.loc("decoder:L1:H2:q23:k23")
 	f.key("y")
-	loc := "decoder:L1:H2:q23"
+	loc := "decoder:L1:H2:q23:k23"
 	// OSC 52 puts the location on the clipboard, also over SSH.
 	f.output("\x1b]52;c;" + base64.StdEncoding.EncodeToString([]byte(loc)))
 	f.see("copied " + loc)
@@ -307,13 +310,13 @@ func TestFlowAtGotoAndMouse(t *testing.T) {
 	f := start(t, 80, 24, Options{At: "decoder:L1:H3:q5"}, file)
 	f.see("[2 Map]", "q 5 \" past\"")
 	f.tm.Send(GotoMsg{Loc: "decoder:L0:H1:q9"})
-	f.loc("decoder:L0:H1:q9")
+	f.loc("decoder:L0:H1:q9:k9")
 	f.tm.Send(GotoMsg{Loc: "encoder:L0:H0"})
 	f.see("no block")
 	// A click on the map moves the cursor to the cell under it: row 0 of
 	// the grid is on screen line 1 (tab bar) + 3 (key labels) + 0.
 	f.tm.Send(tea.MouseClickMsg{X: 11, Y: 4, Button: tea.MouseLeft})
-	f.loc("decoder:L0:H1:q0")
+	f.loc("decoder:L0:H1:q0:k0")
 	f.tm.Send(tea.MouseClickMsg{X: 7, Y: 0, Button: tea.MouseLeft}) // the " 1 Survey " tab, columns 5-14
 	f.see("Survey ·")
 	m := f.quit()
@@ -345,31 +348,6 @@ func TestFlowCompare(t *testing.T) {
 	}
 	if d := heads[0].TV - want.TV; d > 1e-5 || d < -1e-5 {
 		t.Errorf("TV %v, numpy %v", heads[0].TV, want.TV)
-	}
-}
-
-func TestParseLoc(t *testing.T) {
-	for _, tc := range []struct {
-		in   string
-		want Loc
-		err  bool
-	}{
-		{"decoder:L3:H7:q12", Loc{"decoder", 3, 7, 0, 12, -1}, false},
-		{"layers.3.self_attn:L0:H1:B2", Loc{"layers.3.self_attn", 0, 1, 2, -1, -1}, false},
-		{"a:b:L1:H2:B0:q4:k5", Loc{"a:b", 1, 2, 0, 4, 5}, false},
-		{"decoder:L3", Loc{}, true},
-		{"L3:H7", Loc{}, true},
-		{"decoder:L-1:H2", Loc{}, true},
-	} {
-		got, err := ParseLoc(tc.in)
-		if (err != nil) != tc.err || (!tc.err && got != tc.want) {
-			t.Errorf("ParseLoc(%q) = %+v, %v; want %+v, error %v", tc.in, got, err, tc.want, tc.err)
-		}
-		if !tc.err {
-			if back, _ := ParseLoc(got.String()); back != got {
-				t.Errorf("round trip of %q: %q", tc.in, got.String())
-			}
-		}
 	}
 }
 

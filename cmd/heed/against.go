@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
 	"strings"
@@ -222,7 +223,7 @@ func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB str
 	if res.Clean() {
 		fmt.Fprintf(w, "heed check: causal invariance clean: nothing before P changed between %s and %s (%s, %s).\n", nameA, nameB, fromText(res), where)
 	} else {
-		fmt.Fprintf(w, "heed check: causal invariance: %d %s between %s and %s (%s, %s). %s\n", len(res.Findings), plural(len(res.Findings), "finding", "findings"),
+		fmt.Fprintf(w, "heed check: causal invariance: %d %s between %s and %s (%s, %s). %s\n", len(res.Findings), words.Plural(len(res.Findings), "finding", "findings"),
 			nameA, nameB, fromText(res), where, "These are evidence to confirm by re-evaluating the model, not verdicts.")
 	}
 	for _, p := range res.Parts {
@@ -261,7 +262,7 @@ func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB str
 	if len(res.Diagnoses) > 0 {
 		fmt.Fprintln(w)
 		for i, d := range res.Diagnoses {
-			fmt.Fprintf(w, "%d. [%s] %s\n", i+1, d.Pattern, strings.TrimSuffix(d.Text, " "+analysis.Caveat))
+			fmt.Fprintf(w, "%d. %s\n", i+1, strings.TrimSuffix(d.Text, " "+analysis.Caveat))
 			fmt.Fprintf(w, "   look at:  %s\n", lookAt(d.At))
 			if d.Check != "" {
 				fmt.Fprintf(w, "   check:    %s\n", d.Check)

@@ -112,7 +112,7 @@ func TestAgainstFixtures(t *testing.T) {
 	}
 
 	text, code := against(t, false, filepath.Join(invDir, "leak_a.npz"), filepath.Join(invDir, "leak_b.npz"), -1)
-	for _, want := range []string{"P = 6 for item 0, 7 for item 1", "CHANGED before P", "item 0: 4-5; item 1: 5-6", "1. [reads_future] position 4 of layer 2", "look at:  decoder layer 2 output, batch item 0, position 4", "not verdicts"} {
+	for _, want := range []string{"P = 6 for item 0, 7 for item 1", "CHANGED before P", "item 0: 4-5; item 1: 5-6", "1. position 4 of layer 2", "look at:  decoder layer 2 output, batch item 0, position 4", "not verdicts"} {
 		if code != 1 || !strings.Contains(text, want) {
 			t.Errorf("leak text (exit %d) lacks %q:\n%s", code, want, text)
 		}

@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
 	"slices"
@@ -252,7 +253,7 @@ func coverageLines(w io.Writer, res *analysis.Result) {
 }
 
 func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
-	ex := fmt.Sprintf("%d %s", res.Examples, plural(int(res.Examples), "example", "examples"))
+	ex := fmt.Sprintf("%d %s", res.Examples, words.Plural(int(res.Examples), "example", "examples"))
 	switch res.Verdict() {
 	case analysis.VerdictClean:
 		fmt.Fprintf(w, "heed check: clean: no mask leaks, cut-off rows, NaN rows or un-normalised rows in %s.\n", ex)
@@ -267,21 +268,25 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 			}
 		}
 		fmt.Fprintf(w, "heed check: NOT JUDGED: %s %s could not be judged, so this is not a clean result; nothing was found in what was judged (%s).\n",
-			plural(len(blocks), "block", "blocks"), strings.Join(blocks, ", "), ex)
+			words.Plural(len(blocks), "block", "blocks"), strings.Join(blocks, ", "), ex)
 		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
 		coverageLines(w, res)
 	default:
-		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), plural(len(res.Diagnoses), "likely bug", "likely bugs"),
-			len(res.Findings), plural(len(res.Findings), "finding", "findings"), ex, "These are evidence to confirm by re-evaluating the model, not verdicts.")
+		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), words.Plural(len(res.Diagnoses), "likely bug", "likely bugs"),
+			len(res.Findings), words.Plural(len(res.Findings), "finding", "findings"), ex, "These are evidence to confirm by re-evaluating the model, not verdicts.")
 		for i, d := range res.Diagnoses {
 			text := strings.TrimSuffix(d.Text, " "+analysis.Caveat)
-			fmt.Fprintf(w, "%d. [%s] %s\n", i+1, d.Pattern, text)
-			loc := d.At.String()
+			fmt.Fprintf(w, "%d. %s\n", i+1, text)
+			at := d.At
+			if d.Rule == analysis.RuleNaNRows {
+				at.Key = -1 // a row, not a cell
+			}
+			loc := at.String()
 			switch {
 			case d.Rule == analysis.RuleCut:
-				loc += fmt.Sprintf(" keys from %d allowed but exactly 0", d.At.Key)
-			case d.At.Key >= 0 && d.Rule != analysis.RuleNaNRows:
-				loc += fmt.Sprintf(" key %d (%.3g)", d.At.Key, d.At.Value)
+				loc += " (this key and the allowed keys after it are exactly 0)"
+			case at.Key >= 0:
+				loc += fmt.Sprintf(" (weight %.3g)", d.At.Value)
 			}
 			fmt.Fprintf(w, "   look at:  %s\n", loc)
 			fmt.Fprintf(w, "   check:    %s\n", d.Check)
@@ -294,7 +299,7 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 		fmt.Fprintln(tw, "block\trule\tlayers\theads\tbatch\tmass\tcells\tmax\trows\toffsets\tworst")
 		for _, f := range res.Findings {
-			fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%.4g\t%d\t%.3g\t%d/%d\t%s\t%s\n", f.Block, f.Rule, ranges(f.Layers), ranges(f.Heads), ranges(f.Batches),
+			fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%.4g\t%d\t%.3g\t%d/%d\t%s\t%s\n", f.Block, f.Rule, words.Ranges(f.Layers, 0), words.Ranges(f.Heads, 0), words.Ranges(f.Batches, 0),
 				f.Mass, f.Cells, f.Max, f.Rows, f.JudgedRows, offsetsShort(f.Offsets), f.Worst)
 		}
 		tw.Flush()
@@ -307,31 +312,6 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 	for _, n := range warnings {
 		fmt.Fprintf(w, "warning: %s\n", n)
 	}
-}
-
-func plural(n int, one, many string) string {
-	if n == 1 {
-		return one
-	}
-	return many
-}
-
-// ranges writes 0,1,2,3,7 as 0-3,7.
-func ranges(xs []int) string {
-	var parts []string
-	for i := 0; i < len(xs); {
-		j := i
-		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
-			j++
-		}
-		if j > i {
-			parts = append(parts, fmt.Sprintf("%d-%d", xs[i], xs[j]))
-		} else {
-			parts = append(parts, fmt.Sprint(xs[i]))
-		}
-		i = j + 1
-	}
-	return strings.Join(parts, ",")
 }
 
 func offsetsShort(os []analysis.OffsetCount) string {

@@ -3,6 +3,7 @@ package main
 import (
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"os"
 	"path/filepath"
@@ -122,7 +123,7 @@ func isTerminal(w io.Writer) bool {
 // real query of that head and batch item with the most mass on key q+1,
 // read from the export itself.
 func demoStart(path, at string) (string, error) {
-	loc, err := tui.ParseLoc(at)
+	loc, err := words.ParseLoc(at)
 	if err != nil {
 		return "", err
 	}
@@ -131,6 +132,7 @@ func demoStart(path, at string) (string, error) {
 		return "", err
 	}
 	defer ex.Close()
+	loc.Batch = max(loc.Batch, 0)
 	b := ex.Block(loc.Block)
 	if b == nil || loc.Layer >= b.Layers || loc.Head >= b.Heads || loc.Batch >= b.Batch {
 		return "", fmt.Errorf("demo: %s: no %s in %s", path, at, blockNames(ex))
@@ -146,7 +148,8 @@ func demoStart(path, at string) (string, error) {
 			best, bestQ = a[q*b.Keys+q+1], q
 		}
 	}
-	return fmt.Sprintf("%s:L%d:H%d:B%d:q%d:k%d", loc.Block, loc.Layer, loc.Head, loc.Batch, bestQ, bestQ+1), nil
+	loc.Query, loc.Key = bestQ, bestQ+1
+	return loc.String(), nil
 }
 
 // blockNames names the blocks of ex, for messages.

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -13,7 +14,6 @@ import (
 
 	"github.com/heed-dev/heed/demo"
 	"github.com/heed-dev/heed/loader"
-	"github.com/heed-dev/heed/tui"
 )
 
 // TestDemoExport writes the embedded exports with "heed demo --export" and
@@ -127,7 +127,7 @@ func TestDemoTUI(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	loc, err := tui.ParseLoc(start)
+	loc, err := words.ParseLoc(start)
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -4,6 +4,7 @@ import (
 	"encoding/csv"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
 	"sort"
@@ -299,7 +300,7 @@ func writeRankText(w io.Writer, rep *rankReport) {
 	} else {
 		cols = append(cols, analysis.ScoreName)
 	}
-	fmt.Fprintf(w, "heed rank: %d heads over %d %s; ordering metric %s\n", len(rep.Heads), rep.Examples, plural(int(rep.Examples), "example", "examples"), rep.Metric)
+	fmt.Fprintf(w, "heed rank: %d heads over %d %s; ordering metric %s\n", len(rep.Heads), rep.Examples, words.Plural(int(rep.Examples), "example", "examples"), rep.Metric)
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
 	fmt.Fprintln(tw, strings.Join(cols, "\t")+"\t")
 	for i := range rep.Heads {
@@ -325,7 +326,7 @@ func writeRankText(w io.Writer, rep *rankReport) {
 			if pt.Heads <= p.Pruned {
 				mark = "*"
 			}
-			fmt.Fprintf(w, " %s %3d heads  %6.1f%%  (%s layer %d heads %s)\n", mark, pt.Heads, 100*pt.RemovedFrac, pt.Block, pt.Layer, ranges(pt.Unit))
+			fmt.Fprintf(w, " %s %3d heads  %6.1f%%  (%s layer %d heads %s)\n", mark, pt.Heads, 100*pt.RemovedFrac, pt.Block, pt.Layer, words.Ranges(pt.Unit, 0))
 		}
 		for _, x := range p.Warnings {
 			fmt.Fprintf(w, "warning: %s\n", x)

@@ -125,7 +125,7 @@ func TestRenderFormatsAgree(t *testing.T) {
 	file := filepath.Join(casesDir, "shift_bad.npz")
 	dir := t.TempDir()
 	at := "decoder:L0:H1:q4"
-	shown := "decoder:L0:H1:B0:q4" // the block has two batch items: the title names the item
+	shown := "decoder:L0:H1:B0:q4:k4" // the block has two batch items: the title names the item, and the cursor's cell
 	for _, ext := range []string{"png", "svg", "txt"} {
 		args := []string{"render", file, "--at", at, "-o", filepath.Join(dir, "m."+ext)}
 		if ext == "txt" {

@@ -7,6 +7,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"os"
 	"path/filepath"
 	"sort"
@@ -294,7 +295,7 @@ func (sf *shardFlags) merge(paths []string, pf *passFlags) (*analysis.Partial, *
 		}
 	}
 	if len(missing) > 0 {
-		return nil, nil, fmt.Errorf("missing %s: %s (of %d shards, %d given)", plural(len(missing), "shard", "shards"),
+		return nil, nil, fmt.Errorf("missing %s: %s (of %d shards, %d given)", words.Plural(len(missing), "shard", "shards"),
 			strings.Join(missing, ", "), first.Shard.Count, len(files))
 	}
 	sort.Slice(files, func(a, b int) bool { return files[a].Shard.Index < files[b].Shard.Index })

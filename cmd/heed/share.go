@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"log/slog"
 	"os"
@@ -189,9 +190,9 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	status := func(n int, event string) string {
 		statusMu.Lock()
 		defer statusMu.Unlock()
-		s := fmt.Sprintf("%s · %d %s", listenLine, n, plural(n, "guest", "guests"))
+		s := fmt.Sprintf("%s · %d %s", listenLine, n, words.Plural(n, "guest", "guests"))
 		if sf.follow {
-			s += plural(n, " follows you", " follow you")
+			s += words.Plural(n, " follows you", " follow you")
 		}
 		if event != "" {
 			s += " · " + event
@@ -284,7 +285,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	if err := srv.Shutdown(5 * time.Second); err != nil && runErr == nil {
 		runErr = err
 	}
-	fmt.Fprintf(os.Stdout, "heed share: stopped (%d %s open)\n", n, plural(n, "session was", "sessions were"))
+	fmt.Fprintf(os.Stdout, "heed share: stopped (%d %s open)\n", n, words.Plural(n, "session was", "sessions were"))
 	return runErr
 }
 

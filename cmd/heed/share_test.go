@@ -105,7 +105,7 @@ func TestShareJourney(t *testing.T) {
 		"-o", "StrictHostKeyChecking=accept-new", "-o", "UserKnownHostsFile=" + filepath.Join(dir, "known_hosts")}
 	guest := strings.Join(append(append([]string{"env", "TERM=xterm-256color"}, sshOpts...), "-i", key, "localhost", ";", "echo", "SSH-EXIT=$?", ";", "sleep", "600"), " ")
 	tmux("new-session", "-d", "-s", "guest", "-x", "100", "-y", "30", "sh", "-c", guest)
-	screen := wait("guest", "following the presenter (decoder:L1:H2:q5)")
+	screen := wait("guest", "following the presenter (decoder:L1:H2:B0:q5:k5)")
 	for _, w := range []string{"Map", "forbidden with mass"} {
 		if !strings.Contains(screen, w) {
 			t.Errorf("the guest's TUI lacks %q:\n%s", w, screen)
@@ -114,17 +114,17 @@ func TestShareJourney(t *testing.T) {
 	wait("presenter", "1 guest follows you")
 	// The presenter moves a layer down: the guest follows.
 	tmux("send-keys", "-t", "presenter", "[")
-	wait("guest", "following the presenter (decoder:L0:H2:q5)")
+	wait("guest", "following the presenter (decoder:L0:H2:B0:q5:k5)")
 	// The guest looks around alone, the presenter moves on, the guest rejoins.
 	tmux("send-keys", "-t", "guest", "F")
 	wait("guest", "on your own  ·") // the status of a guest on their own
 	tmux("send-keys", "-t", "presenter", ">")
-	screen = wait("guest", "F: follow the presenter again (at decoder:L0:H3:q5)")
+	screen = wait("guest", "F: follow the presenter again (at decoder:L0:H3:B0:q5:k5)")
 	if !strings.Contains(screen, " decoder  L0  H2 ") {
 		t.Errorf("a guest on their own was moved:\n%s", screen)
 	}
 	tmux("send-keys", "-t", "guest", "F")
-	wait("guest", "following the presenter (decoder:L0:H3:q5)")
+	wait("guest", "following the presenter (decoder:L0:H3:B0:q5:k5)")
 
 	// A wrong key is refused.
 	out, err := exec.Command(sshOpts[0], append(append(sshOpts[1:], "-o", "BatchMode=yes", "-i", wrong), "localhost", "true")...).CombinedOutput()

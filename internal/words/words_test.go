@@ -1,0 +1,66 @@
+package words
+
+import "testing"
+
+func TestLocRoundTrip(t *testing.T) {
+	cases := []struct {
+		in   string
+		want Loc
+		err  bool
+	}{
+		{"decoder:L3:H7:q12", Loc{"decoder", 3, 7, -1, 12, -1}, false},
+		{"decoder:L7:H5:B0:q20:k41", Loc{"decoder", 7, 5, 0, 20, 41}, false},
+		{"layers.3:self:L0:H1", Loc{"layers.3:self", 0, 1, -1, -1, -1}, false},
+		{"cross:L1:H0:B2", Loc{"cross", 1, 0, 2, -1, -1}, false},
+		{"decoder:H1:L0:k3", Loc{"decoder", 0, 1, -1, -1, 3}, false},
+		{"decoder:L1", Loc{}, true},
+		{"L1:H2", Loc{}, true},
+		{"decoder:L-1:H2", Loc{}, true},
+		{"", Loc{}, true},
+	}
+	for _, tc := range cases {
+		got, err := ParseLoc(tc.in)
+		if (err != nil) != tc.err || (!tc.err && got != tc.want) {
+			t.Errorf("ParseLoc(%q) = %+v, %v; want %+v, error %v", tc.in, got, err, tc.want, tc.err)
+			continue
+		}
+		if tc.err {
+			continue
+		}
+		if back, err := ParseLoc(got.String()); err != nil || back != got {
+			t.Errorf("ParseLoc(%q.String() = %q) = %+v, %v", tc.in, got.String(), back, err)
+		}
+	}
+}
+
+func TestRanges(t *testing.T) {
+	cases := []struct {
+		xs    []int
+		total int
+		want  string
+	}{
+		{[]int{0, 1, 2, 3, 7}, 0, "0-3,7"},
+		{[]int{7, 0, 2, 1, 3}, 12, "0-3,7"},
+		{[]int{0, 1, 2, 3}, 4, "all 4"},
+		{[]int{0}, 1, "0"},
+		{[]int{5}, 12, "5"},
+		{nil, 3, ""},
+		{[]int{1, 3, 5}, 0, "1,3,5"},
+	}
+	for _, tc := range cases {
+		if got := Ranges(tc.xs, tc.total); got != tc.want {
+			t.Errorf("Ranges(%v, %d) = %q, want %q", tc.xs, tc.total, got, tc.want)
+		}
+	}
+}
+
+func TestCount(t *testing.T) {
+	for _, tc := range []struct {
+		n    int
+		want string
+	}{{0, "0 findings"}, {1, "1 finding"}, {2, "2 findings"}} {
+		if got := Count(tc.n, "finding", "findings"); got != tc.want {
+			t.Errorf("Count(%d) = %q, want %q", tc.n, got, tc.want)
+		}
+	}
+}
