@@ -124,6 +124,7 @@ type Model struct {
 	traces    map[traceKey]*views.TraceData
 	tracing   map[traceKey]bool
 	statIndex int
+	findAt    int // the finding n/N showed last, -1 before the first
 
 	// location
 	block, layer, head, batch int
@@ -174,7 +175,7 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 	}
 	m := &Model{set: set, opts: opts, d: newData(ex, exB), keys: DefaultKeyMap(), help: help.New(),
 		w: 80, h: 24, profile: opts.Profile, dark: opts.Background != "light",
-		cmp: map[int][]views.HeadChange{}, traces: map[traceKey]*views.TraceData{}, tracing: map[traceKey]bool{}, cmpBlock: -1}
+		cmp: map[int][]views.HeadChange{}, traces: map[traceKey]*views.TraceData{}, tracing: map[traceKey]bool{}, cmpBlock: -1, findAt: -1}
 	m.ctx, m.cancel = context.WithCancel(parent)
 	if m.profile == 0 {
 		m.profile = colorprofile.TrueColor
@@ -502,6 +503,12 @@ func (m *Model) key(msg tea.KeyPressMsg) tea.Cmd {
 	case key.Matches(msg, k.FindPrev):
 		m.stepMatch(-1)
 		return nil
+	case key.Matches(msg, k.NextFinding):
+		m.stepFinding(1)
+		return nil
+	case key.Matches(msg, k.PrevFinding):
+		m.stepFinding(-1)
+		return nil
 	case key.Matches(msg, k.Colormap):
 		m.cmIndex = (m.cmIndex + 1) % len(views.Colormaps())
 		m.restyle()
@@ -698,7 +705,7 @@ func (m *Model) showMatch() {
 		tr.sel = p
 	}
 	_, ktoks := m.bi().tokens(m.batch)
-	m.setMsg(fmt.Sprintf("%q: match %d of %d, position %d %q · n/N for more", m.query, m.matchAt+1, len(m.matches), p, ktoks[p]), m.st.Accent)
+	m.setMsg(fmt.Sprintf("%q: match %d of %d, position %d %q · ctrl+n/ctrl+p for more", m.query, m.matchAt+1, len(m.matches), p, ktoks[p]), m.st.Accent)
 }
 
 // syncKeys enables the bindings that apply to the focused screen and export.
@@ -783,10 +790,10 @@ func (m *Model) refresh() {
 func (m *Model) helpKeys() keyHelp {
 	k := m.keys
 	sk := m.screens[m.active]
-	global := []key.Binding{k.NextScreen, k.PrevScreen, k.Jump, k.Find, k.FindNext, k.FindPrev, k.Copy, k.Colormap, k.Help, k.Quit}
+	global := []key.Binding{k.NextFinding, k.PrevFinding, k.NextScreen, k.PrevScreen, k.Jump, k.Find, k.FindNext, k.FindPrev, k.Copy, k.Colormap, k.Help, k.Quit}
 	loc := []key.Binding{k.PrevLayer, k.NextLayer, k.PrevHead, k.NextHead, k.PrevBatch, k.NextBatch, k.PrevBlock, k.NextBlock}
 	groups := append(sk.FullHelp(), loc, global)
-	short := append(sk.ShortHelp(), k.NextScreen, k.Help, k.Quit)
+	short := append(sk.ShortHelp(), k.NextFinding, k.NextScreen, k.Help, k.Quit)
 	return keyHelp{short: short, groups: groups}
 }
 

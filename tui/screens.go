@@ -365,13 +365,13 @@ func (s *findingsScreen) Update(msg tea.Msg) tea.Cmd {
 			s.sel += max(1, s.layout.Visible)
 		case key.Matches(msg, k.Enter):
 			if n > 0 {
-				s.open(s.findings()[max(0, min(s.sel, n-1))])
+				m.showFinding(max(0, min(s.sel, n-1)))
 			}
 		}
 	case tea.MouseClickMsg:
 		if i, ok := s.layout.RowAt(msg.Y); ok && i < n {
 			if i == s.sel {
-				s.open(s.findings()[i])
+				m.showFinding(i)
 			}
 			s.sel = i
 		}
@@ -384,35 +384,6 @@ func (s *findingsScreen) Update(msg tea.Msg) tea.Cmd {
 	}
 	s.sel = max(0, min(s.sel, n-1))
 	return nil
-}
-
-// open shows the worst cell of f on the Map, zoomed in to single cells.
-func (s *findingsScreen) open(f analysis.Finding) {
-	m := s.m
-	w := f.Worst
-	loc := words.Loc{Block: w.Block, Layer: w.Layer, Head: w.Head, Batch: w.Batch, Query: w.Query, Key: w.Key}
-	if err := m.gotoLoc(loc.String(), false); err != nil {
-		m.setMsg(err.Error(), m.st.Bad)
-		return
-	}
-	m.switchTo(ScreenMap)
-	if w.Key < 0 {
-		m.k = 0
-	}
-	// Zoom until one pixel is one cell, so the worst cell is drawn alone.
-	md, err := m.mapData(&m.screens[ScreenMap].(*mapScreen).memo)
-	if err == nil {
-		bw, bh := m.bodySize()
-		for z := 0; z < 64; z++ {
-			opt := m.mapOpt
-			opt.Zoom, opt.CursorQ, opt.CursorK = z, m.q, m.k
-			if l := views.LayoutMap(md, bw, bh, opt, m.st); l.Block == 1 || l.TooSmall {
-				m.mapOpt.Zoom = z
-				break
-			}
-		}
-	}
-	m.setMsg(fmt.Sprintf("%s finding: worst cell %s value %s", f.Rule, loc.String(), views.FormatValue(w.Value)), m.st.Bad)
 }
 
 func offsetsText(os []analysis.OffsetCount) string {

@@ -19,6 +19,7 @@ import (
 	"github.com/charmbracelet/x/ansi"
 	"github.com/charmbracelet/x/exp/teatest/v2"
 	"github.com/heed-dev/heed/loader"
+	"github.com/heed-dev/heed/views"
 )
 
 // The fixtures are written by testdata/make_export.py with numpy; the
@@ -220,6 +221,8 @@ func (f *flow) key(s string) {
 		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyRight})
 	case "down":
 		f.tm.Send(tea.KeyPressMsg{Code: tea.KeyDown})
+	case "ctrl+n":
+		f.tm.Send(tea.KeyPressMsg{Code: 'n', Mod: tea.ModCtrl})
 	default:
 		f.tm.Type(s)
 	}
@@ -287,7 +290,7 @@ func TestFlowMoveZoomFindCopy(t *testing.T) {
 	f.key("enter")
 	f.loc("decoder:L1:H2:q3:k3")
 	f.see("match 1 of 3")
-	f.key("n")
+	f.key("ctrl+n")
 	f.loc("decoder:L1:H2:q23:k23")
 	f.key("y")
 	loc := "decoder:L1:H2:q23:k23"
@@ -375,4 +378,86 @@ func TestNewErrors(t *testing.T) {
 		t.Error("the parent context does not cancel the model's work")
 	}
 	m.Close()
+}
+
+// leakBoxScript writes (when argv has a second path) or reads an export and
+// returns numpy's worst forbidden cell and the bounding box of the cells
+// above the diagonal carrying more than 1e-6 in that head (causal rule:
+// k > q, the common definition of a causal mask).
+const leakBoxScript = `
+import json, sys
+import numpy as np
+a = np.load(sys.argv[1])["decoder/attn"]
+n = a.shape[-1]
+up = np.triu(np.ones((n, n), dtype=bool), k=1)
+m = np.where(up, a, -1.0)
+l, b, h, q, k = np.unravel_index(np.argmax(m), m.shape)
+qs, ks = np.nonzero(up & (a[l, b, h] > 1e-6))
+print(json.dumps({"layer": int(l), "batch": int(b), "head": int(h), "q": int(q), "k": int(k),
+                  "q0": int(qs.min()), "q1": int(qs.max()), "k0": int(ks.min()), "k1": int(ks.max())}))
+`
+
+// oneCellScript writes a 12 x 12-head causal export of 300 tokens whose one
+// leaking cell is layer 7, head 5, query 150, key 201.
+const oneCellScript = `
+import json, sys
+import numpy as np
+rng = np.random.default_rng(3)
+L, H, T = 12, 12, 300
+s = rng.normal(size=(L, 1, H, T, T)).astype(np.float32)
+s[..., np.triu(np.ones((T, T), dtype=bool), k=1)] = -np.inf
+a = np.exp(s - s.max(-1, keepdims=True)); a /= a.sum(-1, keepdims=True)
+a[7, 0, 5, 150, :151] *= 0.99; a[7, 0, 5, 150, 201] = 0.01
+meta = {"format": "heed-export/1", "blocks": {"decoder": {"kind": "causal", "axes": "layer batch head query key"}}}
+np.savez(sys.argv[1], **{"decoder/attn": a.astype(np.float16), "meta": np.array(json.dumps(meta))})
+print("{}")
+`
+
+// From the Survey one key (n) reaches the worst leaking cell, at a zoom
+// whose view holds every leaking cell of that head, and says what it is.
+func TestFlowNextFindingShowsExtent(t *testing.T) {
+	one := filepath.Join(t.TempDir(), "one.npz")
+	var none struct{}
+	numpyRef(t, oneCellScript, &none, one)
+	for _, tc := range []struct {
+		name, file string
+	}{
+		{"shifted mask, 100 tokens", makeExport(t, "leak.npz", "--leak", "--seq", "100", "--layers", "3", "--heads", "12")},
+		{"one cell of 12x12 heads, 300 tokens", one},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			var want struct{ Layer, Batch, Head, Q, K, Q0, Q1, K0, K1 int }
+			numpyRef(t, leakBoxScript, &want, tc.file)
+			f := start(t, 100, 30, Options{}, tc.file)
+			f.see("Survey · decoder")
+			f.see("1 finding")
+			f.key("n")
+			f.loc(words.Loc{Block: "decoder", Layer: want.Layer, Head: want.Head, Batch: -1, Query: want.Q, Key: want.K}.String())
+			f.see("finding 1 of 1", "causal leak")
+			m := f.quit()
+			bw, bh := m.bodySize()
+			md, err := m.mapData(&m.screens[ScreenMap].(*mapScreen).memo)
+			if err != nil {
+				t.Fatal(err)
+			}
+			opt := m.mapOpt
+			opt.CursorQ, opt.CursorK = m.q, m.k
+			l := views.LayoutMap(md, bw, bh, opt, m.st)
+			if l.Q0 > want.Q0 || l.Q0+l.PageRows() <= want.Q1 || l.K0 > want.K0 || l.K0+l.PageCols() <= want.K1 {
+				t.Errorf("view q %d+%d k %d+%d does not hold numpy's leak box q %d-%d k %d-%d", l.Q0, l.PageRows(), l.K0, l.PageCols(), want.Q0, want.Q1, want.K0, want.K1)
+			}
+			if want.Q0 == want.Q1 && want.K0 == want.K1 {
+				// one cell: shown one cell a pixel, centred
+				if l.Block != 1 {
+					t.Errorf("one leaking cell shown at %d cells a pixel, want 1", l.Block)
+				}
+				if dq := m.q - (l.Q0 + l.PageRows()/2); dq < -1 || dq > 1 {
+					t.Errorf("cursor row %d not centred in q %d+%d", m.q, l.Q0, l.PageRows())
+				}
+				if dk := m.k - (l.K0 + l.PageCols()/2); dk < -1 || dk > 1 {
+					t.Errorf("cursor key %d not centred in k %d+%d", m.k, l.K0, l.PageCols())
+				}
+			}
+		})
+	}
 }
