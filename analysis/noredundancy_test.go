@@ -46,11 +46,11 @@ func testNoRedundancy(t *testing.T, noStats bool) {
 		for bi, b := range rw.Blocks {
 			for i, hs := range b.Stats {
 				ho := ro.Blocks[bi].Stats[i]
-				if !math.IsNaN(ho.Redundancy) {
-					t.Errorf("%s: %s L%d H%d: redundancy %v without the pass, want NaN", name, b.Name, hs.Layer, hs.Head, ho.Redundancy)
+				if !math.IsNaN(ho.Distinctness) {
+					t.Errorf("%s: %s L%d H%d: redundancy %v without the pass, want NaN", name, b.Name, hs.Layer, hs.Head, ho.Distinctness)
 				}
 				a, o := hs.Stats, ho.Stats
-				a.Redundancy, o.Redundancy = 0, 0
+				a.Distinctness, o.Distinctness = 0, 0
 				if noStats {
 					for _, v := range []*[2]float64{{o.Entropy, a.Entropy}, {o.EntropyNorm, a.EntropyNorm}, {o.Confidence, a.Confidence}, {o.Distance, a.Distance}} {
 						if !math.IsNaN(v[0]) {
@@ -84,8 +84,8 @@ func TestNoStatsImpliesNoRedundancy(t *testing.T) {
 	}
 	for _, b := range p.Result().Blocks {
 		for _, hs := range b.Stats {
-			if !math.IsNaN(hs.Redundancy) || !math.IsNaN(hs.Entropy) {
-				t.Fatalf("%s L%d H%d: redundancy %v, entropy %v with NoStats, want NaN", b.Name, hs.Layer, hs.Head, hs.Redundancy, hs.Entropy)
+			if !math.IsNaN(hs.Distinctness) || !math.IsNaN(hs.Entropy) {
+				t.Fatalf("%s L%d H%d: redundancy %v, entropy %v with NoStats, want NaN", b.Name, hs.Layer, hs.Head, hs.Distinctness, hs.Entropy)
 			}
 		}
 	}

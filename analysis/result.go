@@ -38,10 +38,12 @@ type Stats struct {
 	// that are not themselves the first of their document (= Sink without
 	// segments).
 	Sink, DocSink float64
-	// Redundancy is the mean Jensen-Shannon divergence (nats, in [0, ln 2])
-	// between this head's rows and the same rows of each other head of the
-	// layer (Clark et al. 2019, sec. 6): low = the head duplicates others.
-	Redundancy float64
+	// Distinctness is the mean Jensen-Shannon divergence (nats, in [0, ln
+	// 2]) between this head's rows and the same rows of each other head of
+	// the layer (Clark et al. 2019, sec. 6): low = the head duplicates
+	// others, high = it attends unlike them. (Reported as "redundancy"
+	// before December 2026, a name that said the opposite of the value.)
+	Distinctness float64
 	// Importance is Michel et al. (2019)'s head importance E_x |sum_{q,k}
 	// A*G| (see docs/methods.md), the mean over examples (each batch item of
 	// each file is one example); NaN without gradients.
@@ -63,7 +65,7 @@ type HeadStats struct {
 	// importances (Michel et al. 2019); NaN without gradients.
 	ImportanceNorm float64
 	// Score is the heuristic pruning score used without gradients
-	// (ScoreName): Confidence * Redundancy / ln 2. Low = a diffuse head
+	// (ScoreName): Confidence * Distinctness / ln 2. Low = a diffuse head
 	// that duplicates others.
 	Score float64
 	// Batch[b] aggregates batch item b of every example.
@@ -71,10 +73,10 @@ type HeadStats struct {
 }
 
 // ScoreName names the heuristic score (HeadStats.Score) in output.
-const ScoreName = "confidence_x_js"
+const ScoreName = "keep_score"
 
 // ScoreDoc says what the heuristic score is made of.
-const ScoreDoc = "confidence_x_js = confidence (mean row maximum, Voita et al. 2019) x redundancy / ln 2 (mean Jensen-Shannon divergence to the layer's other heads, Clark et al. 2019); a heuristic, not an importance: low means a diffuse head that duplicates others"
+const ScoreDoc = "keep_score = confidence (mean row maximum, Voita et al. 2019) x distinctness / ln 2 (mean Jensen-Shannon divergence to the layer's other heads, Clark et al. 2019); a heuristic, not an importance: low means a diffuse head that duplicates others"
 
 // BlockResult is the analysis of one block.
 type BlockResult struct {
@@ -269,7 +271,7 @@ func statsOf(a *HeadAcc, grad, self, rowStats bool) Stats {
 		Confidence: mean(a.Confidence, a.Rows), Distance: mean(a.Distance, a.Rows),
 		PrevShare: mean(a.Prev, a.PosRows), SelfShare: mean(a.Self, a.SelfRows),
 		Sink: mean(a.Sink, a.SinkRows), DocSink: mean(a.DocSink, a.DocSinkRows),
-		Redundancy: mean(a.JS, a.JSRows), Importance: math.NaN(), RowSum: mean(a.RowSum, a.Rows),
+		Distinctness: mean(a.JS, a.JSRows), Importance: math.NaN(), RowSum: mean(a.RowSum, a.Rows),
 	}
 	if !self {
 		s.PrevShare, s.SelfShare = math.NaN(), math.NaN()
@@ -318,7 +320,7 @@ func (p *Partial) Result() *Result {
 					all.Merge(u)
 				}
 				hs.Stats = statsOf(&all, bp.HasGrad, bp.SelfAttn, !p.Options.NoStats)
-				hs.Score = hs.Confidence * hs.Redundancy / math.Ln2
+				hs.Score = hs.Confidence * hs.Distinctness / math.Ln2
 				if bp.Heads == 1 {
 					hs.Score = hs.Confidence
 				}

@@ -44,7 +44,7 @@ func TestStatsAgainstScipy(t *testing.T) {
 			{"entropy", got.Entropy, want.Entropy}, {"entropy_norm", got.EntropyNorm, want.EntropyNorm},
 			{"confidence", got.Confidence, want.Confidence}, {"distance", got.Distance, want.Distance},
 			{"prev_share", got.PrevShare, want.Prev}, {"self_share", got.SelfShare, want.Self},
-			{"sink", got.Sink, want.Sink}, {"redundancy", got.Redundancy, want.JS},
+			{"sink", got.Sink, want.Sink}, {"redundancy", got.Distinctness, want.JS},
 		}
 		for _, p := range pairs {
 			if !near(p.got, p.want, tolRef) {

@@ -182,9 +182,11 @@ func New(set *loader.Set, opts Options) (*Model, error) {
 	}
 	if opts.Colormap != "" {
 		found := false
-		for i, n := range views.ColormapNames() {
-			if strings.EqualFold(n, opts.Colormap) {
-				m.cmIndex, found = i, true
+		if cm, ok := views.ColormapByName(opts.Colormap); ok {
+			for i, n := range views.ColormapNames() {
+				if n == cm.Name {
+					m.cmIndex, found = i, true
+				}
 			}
 		}
 		if !found {

@@ -51,7 +51,7 @@ type stat struct {
 func surveyStats(hasGrad bool) []stat {
 	imp := stat{"importance", "", "Michel et al. 2019, normalised per layer; low = prunable", func(h *analysis.HeadStats) float64 { return h.ImportanceNorm }}
 	if !hasGrad {
-		imp = stat{analysis.ScoreName, "", "no gradients: confidence × redundancy heuristic; low = prunable", func(h *analysis.HeadStats) float64 { return h.Score }}
+		imp = stat{analysis.ScoreName, "", "no gradients: confidence × distinctness, a heuristic; low = prunable", func(h *analysis.HeadStats) float64 { return h.Score }}
 	}
 	return []stat{
 		{"entropy", "nats", "low = focused, high = spread", func(h *analysis.HeadStats) float64 { return h.Entropy }},
@@ -60,7 +60,7 @@ func surveyStats(hasGrad bool) []stat {
 		{"leak mass", "per row", "forbidden mass; 0 = clean", func(h *analysis.HeadStats) float64 { return h.LeakMass }},
 		{"sink", "", "mass on key 0; > 0.3 = sink head", func(h *analysis.HeadStats) float64 { return h.Sink }},
 		{"distance", "positions", "mean |k - q| weighted by attention", func(h *analysis.HeadStats) float64 { return h.Distance }},
-		{"redundancy", "nats", "mean JS divergence to the layer's heads; low = duplicate", func(h *analysis.HeadStats) float64 { return h.Redundancy }},
+		{"distinctness", "nats", "mean JS divergence to the layer's other heads; low = a duplicate", func(h *analysis.HeadStats) float64 { return h.Distinctness }},
 	}
 }
 

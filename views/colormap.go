@@ -101,7 +101,7 @@ var iridescentHex = []string{
 // returns fresh values: callers may keep and modify them.
 func Colormaps() []Colormap {
 	return []Colormap{
-		newColormap("iridescent", "P. Tol, Colour Schemes, SRON/EPS/TN/09-002 (2021), sequential 'iridescent'",
+		newColormap("dawn", "P. Tol, Colour Schemes, SRON/EPS/TN/09-002 (2021), the sequential scheme of 23 colours from cream to dark brown",
 			tolVibrantOrange, true, hexStops(iridescentHex...)),
 		newColormap("viridis", "S. van der Walt & N. Smith (2015), matplotlib viridis, 256-entry table (CC0)",
 			tolVibrantMagenta, false, viridisData[:]),
@@ -113,7 +113,7 @@ func Colormaps() []Colormap {
 }
 
 // DefaultColormap is the name of the colour-blind-safe default.
-const DefaultColormap = "iridescent"
+const DefaultColormap = "dawn"
 
 // ColormapNames lists the names Colormaps returns, in order.
 func ColormapNames() []string {
@@ -127,6 +127,9 @@ func ColormapNames() []string {
 
 // ColormapByName returns the named colormap (case-insensitive).
 func ColormapByName(name string) (Colormap, bool) {
+	if strings.EqualFold(name, "iridescent") {
+		name = "dawn" // its name before December 2026, taken for one version
+	}
 	for _, c := range Colormaps() {
 		if strings.EqualFold(c.Name, name) {
 			return c, true

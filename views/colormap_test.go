@@ -15,7 +15,7 @@ import (
 func TestColormapEnds(t *testing.T) {
 	want := map[string][2]string{
 		"viridis": {"#440154", "#fde725"}, "magma": {"#000004", "#fcfdbf"},
-		"cividis": {"#00224e", "#fee838"}, "iridescent": {"#fefbe9", "#46353a"},
+		"cividis": {"#00224e", "#fee838"}, "dawn": {"#fefbe9", "#46353a"},
 	}
 	for _, c := range Colormaps() {
 		w, ok := want[c.Name]
@@ -68,7 +68,7 @@ for n in ["viridis", "cividis", "magma"]:
 }
 
 func TestIridescentOnDark(t *testing.T) {
-	c, _ := ColormapByName("iridescent")
+	c, _ := ColormapByName("dawn")
 	dark := NewStyles(0, true, c)
 	light := NewStyles(0, false, c)
 	if dark.Colormap.At(0).Luma() > dark.Colormap.At(1).Luma() {

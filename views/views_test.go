@@ -61,20 +61,20 @@ func TestMap(t *testing.T) {
 		return d
 	}
 	cases := []mapCase{
-		{"leak_truecolor_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.TrueColor, true, "iridescent"},
-		{"leak_ascii_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ASCII, true, "iridescent"},
-		{"leak_notty_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.NoTTY, true, "iridescent"},
-		{"leak_ansi16_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ANSI, true, "iridescent"},
+		{"leak_truecolor_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.TrueColor, true, "dawn"},
+		{"leak_ascii_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ASCII, true, "dawn"},
+		{"leak_notty_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.NoTTY, true, "dawn"},
+		{"leak_ansi16_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ANSI, true, "dawn"},
 		{"clean_256_light_80x21", clean16, 80, 21, MapOptions{CursorQ: 15, CursorK: 0}, colorprofile.ANSI256, false, "viridis"},
 		{"clean_magma_log_80x21", clean16, 80, 21, MapOptions{CursorQ: 8, CursorK: 2, Scale: Log}, colorprofile.TrueColor, true, "magma"},
 		{"big_fit_mean_80x21", big, 80, 21, MapOptions{}, colorprofile.TrueColor, true, "cividis"},
-		{"big_fit_max_ascii_80x21", big, 80, 21, MapOptions{Agg: AggMax, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "iridescent"},
-		{"big_zoom3_ascii_80x21", big, 80, 21, MapOptions{Zoom: 3, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "iridescent"},
-		{"big_zoom_max_ascii_200x57", big, 200, 57, MapOptions{Zoom: 20, CursorQ: 299, CursorK: 299}, colorprofile.ASCII, true, "iridescent"},
-		{"nan_row_ascii_80x21", nanRow, 80, 21, MapOptions{CursorQ: 5, CursorK: 1}, colorprofile.ASCII, true, "iridescent"},
-		{"sink_shown_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8}, colorprofile.ASCII, true, "iridescent"},
-		{"sink_hidden_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8, HideSink: true}, colorprofile.ASCII, true, "iridescent"},
-		{"too_small", leak16, 10, 4, MapOptions{}, colorprofile.ASCII, true, "iridescent"},
+		{"big_fit_max_ascii_80x21", big, 80, 21, MapOptions{Agg: AggMax, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "dawn"},
+		{"big_zoom3_ascii_80x21", big, 80, 21, MapOptions{Zoom: 3, CursorQ: 10, CursorK: 200}, colorprofile.ASCII, true, "dawn"},
+		{"big_zoom_max_ascii_200x57", big, 200, 57, MapOptions{Zoom: 20, CursorQ: 299, CursorK: 299}, colorprofile.ASCII, true, "dawn"},
+		{"nan_row_ascii_80x21", nanRow, 80, 21, MapOptions{CursorQ: 5, CursorK: 1}, colorprofile.ASCII, true, "dawn"},
+		{"sink_shown_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8}, colorprofile.ASCII, true, "dawn"},
+		{"sink_hidden_ascii_80x21", sink, 80, 21, MapOptions{CursorQ: 9, CursorK: 8, HideSink: true}, colorprofile.ASCII, true, "dawn"},
+		{"too_small", leak16, 10, 4, MapOptions{}, colorprofile.ASCII, true, "dawn"},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -121,7 +121,7 @@ func TestSurvey(t *testing.T) {
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			c, _ := Survey(tc.d, tc.w, tc.h, tc.l, tc.hd, styles(t, tc.p, true, "iridescent"))
+			c, _ := Survey(tc.d, tc.w, tc.h, tc.l, tc.hd, styles(t, tc.p, true, "dawn"))
 			golden.RequireEqual(t, c.Render(tc.p))
 		})
 	}
@@ -165,7 +165,7 @@ func TestFindings(t *testing.T) {
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			c, _ := Findings(tc.d, tc.w, tc.h, tc.sel, styles(t, tc.p, true, "iridescent"))
+			c, _ := Findings(tc.d, tc.w, tc.h, tc.sel, styles(t, tc.p, true, "dawn"))
 			golden.RequireEqual(t, c.Render(tc.p))
 		})
 	}
@@ -204,7 +204,7 @@ func traceUnnormalised() *TraceData {
 // rendered unnormalised case back and compares them with the hand-worked
 // values above (and the flow example's 31.8% / 68.2%).
 func TestTraceUnnormalisedPercent(t *testing.T) {
-	st := styles(t, colorprofile.ASCII, true, "iridescent")
+	st := styles(t, colorprofile.ASCII, true, "dawn")
 	c, l := Trace(traceUnnormalised(), 80, 21, TraceOptions{}, st)
 	lines := strings.Split(c.Plain(), "\n")
 	for _, want := range []string{
@@ -291,7 +291,7 @@ func TestTrace(t *testing.T) {
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			c, _ := Trace(tc.d, tc.w, tc.h, tc.opt, styles(t, tc.p, true, "iridescent"))
+			c, _ := Trace(tc.d, tc.w, tc.h, tc.opt, styles(t, tc.p, true, "dawn"))
 			golden.RequireEqual(t, c.Render(tc.p))
 		})
 	}
@@ -319,7 +319,7 @@ func TestCompare(t *testing.T) {
 		p    colorprofile.Profile
 	}{{"narrow_ascii_80x21", 80, 21, colorprofile.ASCII}, {"wide_ascii_200x57", 200, 57, colorprofile.ASCII}, {"wide_truecolor_120x30", 120, 30, colorprofile.TrueColor}} {
 		t.Run(tc.name, func(t *testing.T) {
-			c, _ := Compare(cd, tc.w, tc.h, MapOptions{CursorQ: 0, CursorK: 1}, 0, styles(t, tc.p, true, "iridescent"))
+			c, _ := Compare(cd, tc.w, tc.h, MapOptions{CursorQ: 0, CursorK: 1}, 0, styles(t, tc.p, true, "dawn"))
 			golden.RequireEqual(t, c.Render(tc.p))
 		})
 	}
@@ -328,7 +328,7 @@ func TestCompare(t *testing.T) {
 func TestBars(t *testing.T) {
 	for _, p := range []colorprofile.Profile{colorprofile.TrueColor, colorprofile.ASCII} {
 		t.Run(p.String(), func(t *testing.T) {
-			st := styles(t, p, true, "iridescent")
+			st := styles(t, p, true, "dawn")
 			tabs := Tabs(80, []string{"Survey", "Map", "Findings"}, 1, "run7.npz", st)
 			bar := Status(80, []Field{{"block", "decoder"}, {"L", "3"}, {"H", "7"}, {"B", "0"}}, "copied decoder:L3:H7:B0:q12", st.Good, st)
 			golden.RequireEqual(t, tabs.Render(p)+"\n"+bar.Render(p))
@@ -342,7 +342,7 @@ func TestDownsampleKeepsLeak(t *testing.T) {
 	n := 1024
 	d := causalMap(n, 0, nil)
 	d.Weights[100*n+900] = 1e-3
-	st := styles(t, colorprofile.ASCII, true, "iridescent")
+	st := styles(t, colorprofile.ASCII, true, "dawn")
 	for _, agg := range []Agg{AggMean, AggMax} {
 		for zoom := 0; zoom < 12; zoom++ {
 			opt := MapOptions{Zoom: zoom, CursorQ: 100, CursorK: 900, Agg: agg}
@@ -358,7 +358,7 @@ func TestDownsampleKeepsLeak(t *testing.T) {
 func TestCellAtRoundTrip(t *testing.T) {
 	d := causalMap(300, 0, nil)
 	for _, p := range []colorprofile.Profile{colorprofile.TrueColor, colorprofile.ASCII} {
-		st := styles(t, p, true, "iridescent")
+		st := styles(t, p, true, "dawn")
 		for zoom := 0; zoom < 8; zoom++ {
 			l := LayoutMap(d, 120, 40, MapOptions{Zoom: zoom, CursorQ: 150, CursorK: 140}, st)
 			for pr := 0; pr < l.PixRows; pr += 3 {

@@ -129,7 +129,8 @@ func TestRankPlanAndFormats(t *testing.T) {
 	if rep.Metric != "importance" || len(rep.Heads) != 8 || rep.Plan.Pruned != 2 || len(rep.Plan.Curve) == 0 {
 		t.Fatalf("metric %s, %d heads, %d pruned", rep.Metric, len(rep.Heads), rep.Plan.Pruned)
 	}
-	for _, k := range []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "distance", "sink", "redundancy", "importance"} {
+	for _, k := range []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "distance", "sink", "distinctness", "importance", "keep_score",
+		"redundancy", "confidence_x_js"} { // the old names stay for one version (docs/json.md)
 		if _, ok := rep.Heads[0][k]; !ok {
 			t.Errorf("heads[0] lacks %q", k)
 		}
@@ -140,13 +141,18 @@ func TestRankPlanAndFormats(t *testing.T) {
 	}
 	// without gradients: importance is null and the heuristic is named
 	out, _ = run(t, "rank", "--json", filepath.Join(casesDir, "stats.npz"))
-	if !strings.Contains(out, `"importance": null`) || !strings.Contains(out, `"metric": "confidence_x_js"`) {
+	if !strings.Contains(out, `"importance": null`) || !strings.Contains(out, `"metric": "keep_score"`) {
 		t.Errorf("rank without gradients:\n%s", out[:min(len(out), 600)])
 	}
 	out, _ = run(t, "rank", "--csv", "--sort", "-entropy", filepath.Join(casesDir, "stats.npz"))
 	lines := strings.Split(strings.TrimSpace(out), "\n")
 	if len(lines) != 7 || !strings.HasPrefix(lines[0], "block,layer,head,entropy") {
 		t.Fatalf("csv:\n%s", out)
+	}
+	// --sort takes the old names for one version
+	old, _ := run(t, "rank", "--csv", "--sort", "-redundancy", filepath.Join(casesDir, "stats.npz"))
+	if neu, _ := run(t, "rank", "--csv", "--sort", "-distinctness", filepath.Join(casesDir, "stats.npz")); old != neu {
+		t.Errorf("--sort -redundancy differs from --sort -distinctness:\n%s\n%s", old, neu)
 	}
 	if _, code := run(t, "rank", "--sort", "bogus", dir); code != 2 {
 		t.Errorf("bad --sort: exit %d", code)

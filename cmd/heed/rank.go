@@ -19,7 +19,11 @@ import (
 // rankColumns are the per-head columns of heed rank, in output order; the
 // JSON field names are the same (docs/json.md).
 var rankColumns = []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share",
-	"distance", "sink", "doc_sink", "redundancy", "importance", "importance_norm", analysis.ScoreName, "leak_mass", "rows", "nan_rows"}
+	"distance", "sink", "doc_sink", "distinctness", "importance", "importance_norm", analysis.ScoreName, "leak_mass", "rows", "nan_rows"}
+
+// renamedColumns are the names --sort still takes for one version, and the
+// JSON fields still written beside the new ones (docs/json.md).
+var renamedColumns = map[string]string{"redundancy": "distinctness", "confidence_x_js": analysis.ScoreName}
 
 // rankHead is one head's row of heed rank; nil = not defined (no gradients, no rows).
 type rankHead struct {
@@ -34,13 +38,17 @@ type rankHead struct {
 	Distance       *float64 `json:"distance"`
 	Sink           *float64 `json:"sink"`
 	DocSink        *float64 `json:"doc_sink"`
-	Redundancy     *float64 `json:"redundancy"`
+	Distinctness   *float64 `json:"distinctness"`
 	Importance     *float64 `json:"importance"`
 	ImportanceNorm *float64 `json:"importance_norm"`
-	Score          *float64 `json:"confidence_x_js"`
+	Score          *float64 `json:"keep_score"`
 	LeakMass       *float64 `json:"leak_mass"`
 	Rows           int64    `json:"rows"`
 	NaNRows        int64    `json:"nan_rows"`
+	// the names of distinctness and keep_score before December 2026,
+	// written for one more version (renamedColumns)
+	OldRedundancy *float64 `json:"redundancy"`
+	OldScore      *float64 `json:"confidence_x_js"`
 }
 
 func num(x float64) *float64 {
@@ -77,8 +85,8 @@ func (r *rankHead) value(col string) (float64, bool) {
 		p = r.Sink
 	case "doc_sink":
 		p = r.DocSink
-	case "redundancy":
-		p = r.Redundancy
+	case "distinctness":
+		p = r.Distinctness
 	case "importance":
 		p = r.Importance
 	case "importance_norm":
@@ -140,8 +148,8 @@ func newRankCmd() *cobra.Command {
 		Short: "Rank heads: statistics, importance, a pruning plan",
 		Long: `rank prints every head's statistics aggregated over all examples given (each
 batch item of each file is one example): entropy, normalised entropy,
-confidence, positional shares, mean distance, sink mass, redundancy (mean
-Jensen-Shannon divergence to the layer's other heads) and, when the export has
+confidence, positional shares, mean distance, sink mass, distinctness (mean
+Jensen-Shannon divergence to the layer's other heads: low = a duplicate) and, when the export has
 gradients (BLOCK/grad), Michel et al. (2019)'s head importance. Without
 gradients there is no importance; the heuristic score ` + analysis.ScoreName + `
 orders heads instead.
@@ -160,6 +168,9 @@ head saves no compute until the model is rebuilt without it.`,
 			}
 			if prune < -1 || (cmd.Flags().Changed("prune-frac") && (pruneFrac < 0 || pruneFrac > 1)) {
 				return fmt.Errorf("--prune must be >= 0 and --prune-frac in [0, 1]")
+			}
+			if c := strings.TrimPrefix(sortCol, "-"); renamedColumns[c] != "" {
+				sortCol = strings.TrimSuffix(sortCol, c) + renamedColumns[c]
 			}
 			if sortCol != "" && !validColumn(strings.TrimPrefix(sortCol, "-")) {
 				return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", sortCol, strings.Join(rankColumns, ", "))
@@ -181,8 +192,8 @@ head saves no compute until the model is rebuilt without it.`,
 					rep.Heads = append(rep.Heads, rankHead{Block: b.Name, Layer: hs.Layer, Head: hs.Head,
 						Entropy: num(hs.Entropy), EntropyNorm: num(hs.EntropyNorm), Confidence: num(hs.Confidence),
 						PrevShare: num(hs.PrevShare), SelfShare: num(hs.SelfShare), Distance: num(hs.Distance),
-						Sink: num(hs.Sink), DocSink: num(hs.DocSink), Redundancy: num(hs.Redundancy),
-						Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score),
+						Sink: num(hs.Sink), DocSink: num(hs.DocSink), Distinctness: num(hs.Distinctness), OldRedundancy: num(hs.Distinctness),
+						Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score), OldScore: num(hs.Score),
 						LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
 				}
 			}
@@ -294,7 +305,7 @@ func writeRankCSV(w io.Writer, hs []rankHead) error {
 }
 
 func writeRankText(w io.Writer, rep *rankReport) {
-	cols := []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share", "distance", "sink", "redundancy"}
+	cols := []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share", "distance", "sink", "distinctness"}
 	if rep.Metric == "importance" {
 		cols = append(cols, "importance", "importance_norm")
 	} else {
