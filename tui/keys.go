@@ -22,6 +22,7 @@ type KeyMap struct {
 	Agg, Scale, Sink         key.Binding
 	Colormap                 key.Binding
 	Order                    key.Binding
+	Numbers                  key.Binding
 	Jump                     key.Binding
 	Help, Back, Quit         key.Binding
 }

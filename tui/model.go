@@ -125,6 +125,9 @@ type Model struct {
 	tracing   map[traceKey]bool
 	statIndex int
 	findAt    int // the finding n/N showed last, -1 before the first
+	// batchPicked is set once the user picks a batch item (b / B): the
+	// Survey then shows that item's statistics
+	batchPicked bool
 
 	// location
 	block, layer, head, batch int
@@ -526,8 +529,10 @@ func (m *Model) key(msg tea.KeyPressMsg) tea.Cmd {
 		m.moveHead(-1)
 	case key.Matches(msg, k.NextBatch):
 		m.batch = (m.batch + 1) % m.bi().blk.Batch
+		m.batchPicked = true
 	case key.Matches(msg, k.PrevBatch):
 		m.batch = (m.batch + m.bi().blk.Batch - 1) % m.bi().blk.Batch
+		m.batchPicked = true
 	case key.Matches(msg, k.NextBlock):
 		m.setBlock((m.block + 1) % len(m.d.blocks))
 	case key.Matches(msg, k.PrevBlock):
@@ -730,13 +735,15 @@ func (m *Model) syncKeys() {
 	k.Agg.SetEnabled(onMap)
 	k.Scale.SetEnabled(onMap)
 	k.Sink.SetEnabled(onMap && b.Keys > 1)
-	k.PageUp.SetEnabled(s != ScreenSurvey)
-	k.PageDown.SetEnabled(s != ScreenSurvey)
+	ranked := s == ScreenSurvey && m.screens[ScreenSurvey].(*surveyScreen).ranked
+	k.PageUp.SetEnabled(s != ScreenSurvey || ranked)
+	k.PageDown.SetEnabled(s != ScreenSurvey || ranked)
 	k.Left.SetEnabled(s != ScreenFindings)
 	k.Right.SetEnabled(s != ScreenFindings)
 	k.Enter.SetEnabled(s == ScreenSurvey || s == ScreenFindings || s == ScreenTrace || s == ScreenCompare)
 	k.Stat.SetEnabled(s == ScreenSurvey)
-	k.Order.SetEnabled(s == ScreenTrace)
+	k.Order.SetEnabled(s == ScreenTrace || s == ScreenSurvey)
+	k.Numbers.SetEnabled(s == ScreenSurvey)
 	k.FindNext.SetEnabled(len(m.matches) > 0)
 	k.FindPrev.SetEnabled(len(m.matches) > 0)
 	k.Find.SetEnabled(s != ScreenFindings)
@@ -744,10 +751,12 @@ func (m *Model) syncKeys() {
 	switch s {
 	case ScreenSurvey:
 		k.Enter.SetHelp("enter", "open the head's map")
+		k.Order.SetHelp("o", "ranked list / grid")
 	case ScreenFindings:
 		k.Enter.SetHelp("enter", "map at the worst cell")
 	case ScreenTrace:
 		k.Enter.SetHelp("enter", "map at this key")
+		k.Order.SetHelp("o", "order by position/share")
 	case ScreenCompare:
 		k.Enter.SetHelp("enter", "most changed head, then the next")
 	}

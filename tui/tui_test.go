@@ -461,3 +461,24 @@ func TestFlowNextFindingShowsExtent(t *testing.T) {
 		})
 	}
 }
+
+// The Survey marks a head with one leaking cell on every statistic, and its
+// ranked list of leak mass puts that head first (numpy writes the export).
+func TestFlowSurveyShowsOneLeakingCell(t *testing.T) {
+	one := filepath.Join(t.TempDir(), "one.npz")
+	var none struct{}
+	numpyRef(t, oneCellScript, &none, one)
+	f := start(t, 100, 30, Options{}, one)
+	f.see("Survey · decoder · entropy")
+	f.see("forbidden mass (any amount)") // the legend of the marks, once the statistics are in
+	for _, ln := range strings.Split(f.rec.latest(), "\n") {
+		if strings.HasPrefix(strings.TrimSpace(ln), "L") && strings.Contains(ln, "!") != strings.HasPrefix(strings.TrimSpace(ln), "L7 ") {
+			t.Errorf("a mark on a line other than L7's (or none on L7's):\n%s", f.rec.latest())
+		}
+	}
+	f.key("sss")
+	f.see("leak mass (per row)")
+	f.key("o")
+	f.see("rank  layer  head", "     1      7     5")
+	f.quit()
+}

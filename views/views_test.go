@@ -107,6 +107,31 @@ func TestSurvey(t *testing.T) {
 			Values: v, Details: []Field{{"entropy", "1.234"}, {"confidence", "0.5123"}, {"sink", "0.1000"}, {"distance", "2.500"}},
 			Note: "statistics of 1 example"}
 	}
+	// 12 x 12 heads, one leaking 1e-3 per row (L7 H5) beside one leaking
+	// 0.5 (L2 H1): linear, the small one is the lowest colour; the mark
+	// shows both whatever the statistic
+	leaky := func(log bool) *SurveyData {
+		v := make([]float64, 144)
+		marks := make([]bool, 144)
+		v[7*12+5], v[2*12+1] = 1e-3, 0.5
+		marks[7*12+5], marks[2*12+1] = true, true
+		x := d(v, 12, 12)
+		x.Stat, x.Unit, x.Hint, x.Marks, x.Log = "leak mass", "per row", "0 = clean", marks, log
+		return x
+	}
+	numbers := d(vals, 6, 12)
+	numbers.Numbers = true
+	numbers.Marks = make([]bool, 72)
+	numbers.Marks[2*12+5] = true
+	list := d(vals, 6, 12)
+	list.Order = make([]int, 72)
+	for i := range list.Order {
+		list.Order[i] = 71 - i
+	}
+	big := make([]float64, 64*64)
+	for i := range big {
+		big[i] = float64((i/64)*(i%64)%17) / 16
+	}
 	cases := []struct {
 		name        string
 		d           *SurveyData
@@ -118,6 +143,12 @@ func TestSurvey(t *testing.T) {
 		{"partial_ansi256_80x21", d(partial, 6, 12), 80, 21, 0, 0, colorprofile.ANSI256},
 		{"scroll_ascii_80x21", d(wide, 40, 32), 80, 21, 30, 31, colorprofile.ASCII},
 		{"scroll_ascii_200x57", d(wide, 40, 32), 200, 57, 30, 31, colorprofile.ASCII},
+		{"leak_marks_truecolor_80x21", leaky(false), 80, 21, 7, 5, colorprofile.TrueColor},
+		{"leak_marks_ascii_80x21", leaky(false), 80, 21, 7, 5, colorprofile.ASCII},
+		{"leak_log_ascii_80x21", leaky(true), 80, 21, 7, 5, colorprofile.ASCII},
+		{"numbers_ascii_100x21", numbers, 100, 21, 2, 5, colorprofile.ASCII},
+		{"list_ascii_80x21", list, 80, 21, 2, 5, colorprofile.ASCII},
+		{"pairs_64x64_ansi256_80x40", d(big, 64, 64), 80, 40, 40, 33, colorprofile.ANSI256},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
