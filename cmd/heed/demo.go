@@ -109,8 +109,9 @@ func runDemo(cmd *cobra.Command, res *demo.Results, tf *tuiFlags) error {
 	return nil
 }
 
-// isTerminal reports whether w is a character device (a terminal).
-func isTerminal(w io.Writer) bool {
+// isTerminal reports whether w (a reader or a writer) is a character
+// device (a terminal).
+func isTerminal(w any) bool {
 	f, ok := w.(*os.File)
 	if !ok {
 		return false

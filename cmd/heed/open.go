@@ -3,7 +3,11 @@ package main
 import (
 	"errors"
 	"fmt"
+	"os"
 	"strings"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
 
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/tui"
@@ -35,7 +39,49 @@ func (tf *tuiFlags) options() (tui.Options, error) {
 	return o, nil
 }
 
-// runTUI opens args and runs the TUI until the user quits.
+// noUI says why the terminal UI cannot run here ("" when it can): a dumb
+// terminal, or input or output that is not a terminal (a pipe, a file, a
+// CI log).
+func noUI(cmd *cobra.Command) string {
+	switch {
+	case os.Getenv("TERM") == "dumb":
+		return "TERM is dumb"
+	case !isTerminal(cmd.OutOrStdout()):
+		return "the output is not a terminal"
+	case !isTerminal(cmd.InOrStdin()):
+		return "the input is not a terminal"
+	}
+	return ""
+}
+
+// textReport is what heed FILE prints where the UI cannot run: heed info's
+// and heed check's text, and one line on stderr saying how to get the UI.
+func textReport(cmd *cobra.Command, set *loader.Set, why string) error {
+	out := cmd.OutOrStdout()
+	ex, err := set.Open(0)
+	if err != nil {
+		return err
+	}
+	defer ex.Close()
+	if err := analysis.InferExport(cmd.Context(), ex); err != nil {
+		return err
+	}
+	newInfoReport(set, ex).writeText(out)
+	fmt.Fprintln(out)
+	p, err := analysis.AnalyzeSet(cmd.Context(), set.Len(), func(i int) (*loader.Export, string, error) {
+		ex, err := set.Open(i)
+		return ex, strings.Join(set.Examples[i], ","), err
+	}, analysis.DefaultOptions())
+	if err != nil {
+		return err
+	}
+	writeCheckText(out, p.Result(), set.Warnings)
+	fmt.Fprintf(cmd.ErrOrStderr(), "heed: %s, so this is the text report (heed info and heed check); run heed in a terminal for the UI, or heed render for a picture\n", why)
+	return nil
+}
+
+// runTUI opens args and runs the TUI until the user quits (or prints the
+// text report where no UI can run).
 func runTUI(cmd *cobra.Command, args []string, lf *loadFlags, tf *tuiFlags) error {
 	opts, err := tf.options()
 	if err != nil {
@@ -44,6 +90,9 @@ func runTUI(cmd *cobra.Command, args []string, lf *loadFlags, tf *tuiFlags) erro
 	set, err := openSet(args, lf)
 	if err != nil {
 		return err
+	}
+	if why := noUI(cmd); why != "" {
+		return textReport(cmd, set, why)
 	}
 	opts.Context = cmd.Context()
 	m, err := tui.New(set, opts)
