@@ -26,18 +26,9 @@ func memFile(path string, b []byte) *mappedFile {
 }
 
 func mapFile(path string) (*mappedFile, error) {
-	f, err := os.Open(path)
+	f, st, err := openRegular(path)
 	if err != nil {
 		return nil, err
-	}
-	st, err := f.Stat()
-	if err != nil {
-		f.Close()
-		return nil, err
-	}
-	if st.IsDir() {
-		f.Close()
-		return nil, fmt.Errorf("%s: is a directory", path)
 	}
 	mf := &mappedFile{path: path, f: f}
 	if st.Size() > 0 {
