@@ -84,7 +84,7 @@ func FuzzNPY(f *testing.F) {
 		if len(data) > maxFuzzInput {
 			return
 		}
-		a, err := npyArray(data, "fuzz.npy", "decoder/attn", &lifetime{})
+		a, err := npyArray(data, hasFile, "fuzz.npy", "decoder/attn", &lifetime{})
 		if err != nil {
 			return
 		}

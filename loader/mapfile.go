@@ -54,7 +54,9 @@ func mapFile(path string) (*mappedFile, error) {
 // the mapping). Reading a head this way costs a copy in the kernel from
 // the page cache; reading it through the mapping the first time costs a
 // page fault every few pages, which on the machines we measured is two to
-// four times as much (docs/scale.md). The caller holds the lifetime.
+// four times as much (docs/scale.md). The caller holds the lifetime. Its
+// errors are *FormatError naming the file, which the caller completes with
+// the array's name (rawArray.copyBytes).
 func (m *mappedFile) pread(dst, within []byte, off int) (bool, error) {
 	if m.f == nil || m.borrowed || len(m.m) == 0 || len(dst) == 0 || len(within) == 0 {
 		return false, nil
@@ -67,9 +69,9 @@ func (m *mappedFile) pread(dst, within []byte, off int) (bool, error) {
 	n, err := m.f.ReadAt(dst, pos)
 	if n != len(dst) {
 		if err == nil || err == io.EOF {
-			err = io.ErrUnexpectedEOF
+			return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: "the file got shorter while heed read it (truncated or rewritten?)"}
 		}
-		return false, fmt.Errorf("%s: reading %d bytes at %d: %w (was the file changed while open?)", m.path, len(dst), pos, err)
+		return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: "cannot read the file", Err: err}
 	}
 	return true, nil
 }

@@ -39,8 +39,10 @@ type npyHeader struct {
 
 // readNPYHeader parses the header from r. avail is the number of bytes of
 // the whole NPY stream (used to check the claimed shape before anything is
-// allocated for it); file and name go into errors.
-func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, error) {
+// allocated for it) and has says where that number comes from in an error
+// ("the file has %d bytes", "the member declares %d bytes uncompressed");
+// file and name go into errors.
+func readNPYHeader(r io.Reader, avail int64, has, file, name string) (*npyHeader, error) {
 	ferr := func(off int64, format string, a ...any) error {
 		return &FormatError{File: file, Array: name, Offset: off, Msg: fmt.Sprintf(format, a...)}
 	}
@@ -80,7 +82,7 @@ func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, err
 		return nil, ferr(off-4, "NPY header length %d exceeds heed's limit of %d bytes", hlen, maxNPYHeader)
 	}
 	if off+hlen > avail {
-		return nil, ferr(off, "truncated NPY header: it claims %d bytes, %d remain", hlen, avail-off)
+		return nil, ferr(off, "truncated NPY header: it claims %d bytes, %s", hlen, fmt.Sprintf(has, avail-off))
 	}
 	text := make([]byte, hlen)
 	if _, err := io.ReadFull(r, text); err != nil {
@@ -91,7 +93,7 @@ func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, err
 		return nil, ferr(off, "bad NPY header %s: %v", quoteClip(string(text), headerQuote), err)
 	}
 	h.dataOff = off + hlen
-	nb, err := checkDataSize(h.shape, h.elem, avail-h.dataOff)
+	nb, err := checkDataSize(h.shape, h.elem, avail-h.dataOff, has)
 	if err != nil {
 		return nil, ferr(h.dataOff, "header lies about the data: %v", err)
 	}
@@ -377,9 +379,9 @@ func (p *pyLit) tuple() ([]int, error) {
 }
 
 // npyArray builds the array of an NPY stream whose bytes are b (the whole
-// stream, mapped or in memory).
-func npyArray(b []byte, file, name string, life *lifetime) (*rawArray, error) {
-	h, err := readNPYHeader(bytes.NewReader(b), int64(len(b)), file, name)
+// stream, mapped or in memory); has is readNPYHeader's.
+func npyArray(b []byte, has, file, name string, life *lifetime) (*rawArray, error) {
+	h, err := readNPYHeader(bytes.NewReader(b), int64(len(b)), has, file, name)
 	if err != nil {
 		return nil, err
 	}

@@ -199,7 +199,7 @@ func openNPY(ref fileRef) (Container, error) {
 	if err != nil {
 		return nil, err
 	}
-	a, err := npyArray(mf.bytes(), ref.path, ref.npyName, &mf.life)
+	a, err := npyArray(mf.bytes(), hasFile, ref.path, ref.npyName, &mf.life)
 	if err != nil {
 		mf.close()
 		return nil, err

@@ -4,6 +4,7 @@ import (
 	"os"
 	"path/filepath"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 )
@@ -106,7 +107,9 @@ func TestPreadTruncated(t *testing.T) {
 	if err == nil {
 		t.Fatal("reading past the end of a truncated file succeeded")
 	}
-	if !strings.Contains(err.Error(), "cut.safetensors") || !strings.Contains(err.Error(), "changed") {
-		t.Errorf("error %q does not name the file and say why", err)
+	// one line: the file once, the array, what is wrong
+	want := path + ": " + b.Name + "/attn/" + strconv.Itoa(l) + ": the file got shorter while heed read it"
+	if msg := err.Error(); !strings.HasPrefix(msg, want) || strings.Count(msg, "cut.safetensors") != 1 || strings.Contains(msg, "\n") {
+		t.Errorf("error %q, want %q... naming the file once", msg, want)
 	}
 }

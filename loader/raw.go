@@ -136,6 +136,10 @@ type rawArray struct {
 func (r *rawArray) copyBytes(dst, data []byte, off int) error {
 	if r.src != nil && !ViewMapped {
 		ok, err := r.src.pread(dst, data, off)
+		if fe, is := err.(*FormatError); is {
+			// name the array, and the input file rather than a temporary one
+			fe.File, fe.Array = r.file, r.name
+		}
 		if ok || err != nil {
 			return err
 		}
@@ -312,9 +316,13 @@ func (r *rawArray) ReadStrings() ([]string, error) {
 // maxZeroSizeElems bounds arrays of zero-byte elements (empty strings).
 const maxZeroSizeElems = 1 << 20
 
+// hasFile is checkDataSize's has for bytes that are a whole file.
+const hasFile = "the file has %d"
+
 // checkDataSize returns the byte size of an array of shape and element size
-// elem, or an error when it overflows or exceeds avail bytes.
-func checkDataSize(shape []int, elem int, avail int64) (int64, error) {
+// elem, or an error when it overflows or exceeds avail bytes; has is a
+// format of avail saying where that number comes from (hasFile).
+func checkDataSize(shape []int, elem int, avail int64, has string) (int64, error) {
 	n, ok := numElems(shape, math.MaxInt64/int64(max(elem, 1)))
 	if !ok {
 		return 0, fmt.Errorf("shape %v overflows", shape)
@@ -326,7 +334,7 @@ func checkDataSize(shape []int, elem int, avail int64) (int64, error) {
 	}
 	nb := n * int64(elem)
 	if nb > avail {
-		return 0, fmt.Errorf("shape %v needs %d bytes of data, the file has %d", shape, nb, avail)
+		return 0, fmt.Errorf("shape %v needs %d bytes of data, %s", shape, nb, fmt.Sprintf(has, avail))
 	}
 	return nb, nil
 }

@@ -28,7 +28,7 @@ func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
 	defer r.life.leave()
 	if n > 0 {
 		if err := r.copyBytes(unsafe.Slice((*byte)(unsafe.Pointer(&dst[0])), 2*n), data, 2*off); err != nil {
-			return Invalid, fmt.Errorf("loader: %s: %w", r.label(), err)
+			return Invalid, err
 		}
 	}
 	return r.dtype, nil

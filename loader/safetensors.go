@@ -166,7 +166,7 @@ func parseSafetensorsHeader(path string, b []byte) ([]string, map[string]stEntry
 		if stop > dataLen {
 			return nil, nil, nil, 0, ferr(name, -1, "data_offsets [%d, %d) run past the end of the data (%d bytes; truncated file?)", begin, stop, dataLen)
 		}
-		nb, err := checkDataSize(shape, itemSize(dt), math.MaxInt64)
+		nb, err := checkDataSize(shape, itemSize(dt), math.MaxInt64, hasFile)
 		if err != nil {
 			return nil, nil, nil, 0, ferr(name, -1, "%v", err)
 		}
