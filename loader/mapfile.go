@@ -69,7 +69,7 @@ func (m *mappedFile) pread(dst, within []byte, off int) (bool, error) {
 	n, err := m.f.ReadAt(dst, pos)
 	if n != len(dst) {
 		if err == nil || err == io.EOF {
-			return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: "the file got shorter while heed read it (truncated or rewritten?)"}
+			return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: errShrunk}
 		}
 		return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: "cannot read the file", Err: err}
 	}

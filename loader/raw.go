@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"runtime/debug"
 	"strings"
 	"sync"
 	"unicode/utf8"
@@ -155,6 +156,24 @@ func (r *rawArray) Shape() []int  { return append([]int(nil), r.shape...) }
 func (r *rawArray) cOrder() bool  { return !r.fortran || len(r.shape) < 2 }
 func (r *rawArray) label() string { return r.file + ": " + r.name }
 
+// faults ends a read through the mapping (deferred, with the setting
+// debug.SetPanicOnFault(true) replaced): a fault there means the file got
+// shorter after it was mapped (reading a mapping past the end of its file
+// raises SIGBUS), and becomes an error naming the file and the array
+// instead of a crash. Other panics go on.
+func (r *rawArray) faults(old bool, err *error) {
+	debug.SetPanicOnFault(old)
+	if e := recover(); e != nil {
+		if _, ok := e.(interface{ Addr() uintptr }); !ok {
+			panic(e)
+		}
+		*err = &FormatError{File: r.file, Array: r.name, Offset: -1, Msg: errShrunk}
+	}
+}
+
+// errShrunk is what a read says of a file cut short under it.
+const errShrunk = "the file got shorter while heed read it (truncated or rewritten?)"
+
 // bytes enters the lifetime and returns the data; the caller must call r.life.leave.
 func (r *rawArray) bytes() ([]byte, error) {
 	if err := r.life.enter(); err != nil {
@@ -168,7 +187,8 @@ func (r *rawArray) bytes() ([]byte, error) {
 	return b, nil
 }
 
-func (r *rawArray) readFlat(off, n int, dst []float32) error {
+func (r *rawArray) readFlat(off, n int, dst []float32) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype == String {
 		return fmt.Errorf("loader: %s: a string array has no numeric values", r.label())
 	}
@@ -228,7 +248,8 @@ func (r *rawArray) offsets(idx []int, fn func(i, off int)) {
 	}
 }
 
-func (r *rawArray) ReadFloat32(idx []int, dst []float32) error {
+func (r *rawArray) ReadFloat32(idx []int, dst []float32) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype == String {
 		return fmt.Errorf("loader: %s: a string array has no numeric values", r.label())
 	}
@@ -255,7 +276,8 @@ func (r *rawArray) ReadFloat32(idx []int, dst []float32) error {
 	return nil
 }
 
-func (r *rawArray) ReadInt64(idx []int, dst []int64) error {
+func (r *rawArray) ReadInt64(idx []int, dst []int64) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if !r.dtype.IsInt() {
 		return fmt.Errorf("loader: %s: %s array read as integers", r.label(), r.dtype)
 	}
@@ -273,7 +295,8 @@ func (r *rawArray) ReadInt64(idx []int, dst []int64) error {
 	return nil
 }
 
-func (r *rawArray) ReadStrings() ([]string, error) {
+func (r *rawArray) ReadStrings() (_ []string, err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype != String {
 		return nil, fmt.Errorf("loader: %s: %s array read as strings", r.label(), r.dtype)
 	}
