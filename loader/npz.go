@@ -223,6 +223,9 @@ func (z *npzFile) Close() error {
 	})
 }
 
+// tempFree is freeSpace (a variable so that tests can shrink the disk).
+var tempFree = freeSpace
+
 // inflated is a deflated member's data, inflated on first use: into memory,
 // or (file set) into an unlinked temporary file that is mapped and read like
 // a mapped input file (heads by pread), so that neither inflating nor
@@ -272,7 +275,7 @@ func (l *inflated) inflate() {
 		return
 	}
 	dir := os.TempDir()
-	if free, ok := freeSpace(dir); ok && free < l.total {
+	if free, ok := tempFree(dir); ok && free < l.total {
 		fail(fmt.Sprintf("inflating it takes %d bytes of temporary space, %s has %d free (set TMPDIR to a larger disk)", l.total, dir, free), nil)
 		return
 	}
