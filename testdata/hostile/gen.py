@@ -8,6 +8,7 @@ Usage (Debian's python3, which has numpy and h5py):
     /usr/bin/python3 testdata/hostile/gen.py            # rewrite the small files here
     /usr/bin/python3 testdata/hostile/gen.py --big DIR  # the big ones, into DIR (the tests do this)
     /usr/bin/python3 testdata/hostile/gen.py --big DIR --only bomb
+    /usr/bin/python3 testdata/hostile/gen.py --check    # regenerate in a temp dir and compare bytes
 
 The small files are committed. The big ones (zip bombs of hundreds of MiB
 inflated, a large honest compressed export) are cheap to make and too big to
@@ -24,6 +25,7 @@ import io
 import os
 import struct
 import sys
+import tempfile
 import zipfile
 import zlib
 
@@ -149,11 +151,37 @@ def gen_onehot(out):
             f.write(h.tobytes())
 
 
+def check():
+    """Regenerate the small files in a temporary directory and compare them
+    byte for byte with the committed ones."""
+    problems = []
+    with tempfile.TemporaryDirectory() as tmp:
+        gen_small(tmp)
+        fresh = sorted(os.listdir(tmp))
+        committed = sorted(n for n in os.listdir(HERE) if n != "gen.py")
+        for n in sorted(set(fresh) | set(committed)):
+            if n not in committed:
+                problems.append("missing from the committed corpus: " + n)
+            elif n not in fresh:
+                problems.append("committed but no longer generated: " + n)
+            elif open(os.path.join(tmp, n), "rb").read() != open(os.path.join(HERE, n), "rb").read():
+                problems.append("differs from a fresh generation: " + n)
+    for p in problems:
+        print("hostile/gen.py --check: " + p, file=sys.stderr)
+    if problems:
+        return 1
+    print("hostile/gen.py --check: %d committed files match (numpy %s, h5py %s)" % (len(fresh), np.__version__, h5py.__version__))
+    return 0
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--big", metavar="DIR", help="write the big files into DIR instead")
     ap.add_argument("--only", choices=["bomb", "onehot"], help="with --big: only this one")
+    ap.add_argument("--check", action="store_true", help="regenerate the small files in a temporary directory and compare")
     args = ap.parse_args()
+    if args.check:
+        return check()
     if args.big:
         gen_big(args.big, args.only)
     else:
