@@ -55,6 +55,7 @@ fuzz:
 crosscheck:
 	$(PYTHON) testdata/gen_fixtures.py --check
 	$(PYTHON) testdata/demo/generate.py --check
+	$(PYTHON) testdata/hostile/gen.py --check
 
 # Whole-process timing and memory figures (bench/main.go says what is measured).
 # Exports are written once with numpy into HEED_BENCH_DIR or /tmp/heed-bench

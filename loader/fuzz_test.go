@@ -8,7 +8,7 @@ import (
 )
 
 // Fuzz targets for the parsers, seeded from every fixture of their format
-// (good and bad). Inputs over maxFuzzInput bytes are skipped so each run
+// (good and bad) and from the hostile corpus (testdata/hostile). Inputs over maxFuzzInput bytes are skipped so each run
 // stays fast; the parsers must return errors, never panic, hang or allocate
 // more than the input justifies.
 //
@@ -18,7 +18,7 @@ const maxFuzzInput = 64 << 10
 
 func seedFrom(f *testing.F, exts ...string) {
 	n := 0
-	filepath.WalkDir(fixtures, func(p string, d os.DirEntry, err error) error {
+	walk := func(p string, d os.DirEntry, err error) error {
 		if err != nil || d.IsDir() {
 			return nil
 		}
@@ -31,7 +31,9 @@ func seedFrom(f *testing.F, exts ...string) {
 			}
 		}
 		return nil
-	})
+	}
+	filepath.WalkDir(fixtures, walk)
+	filepath.WalkDir(hostileDir, walk)
 	if n == 0 {
 		f.Fatalf("no seeds with %v under %s", exts, fixtures)
 	}
@@ -84,7 +86,7 @@ func FuzzNPY(f *testing.F) {
 		if len(data) > maxFuzzInput {
 			return
 		}
-		a, err := npyArray(data, "fuzz.npy", "decoder/attn", &lifetime{})
+		a, err := npyArray(data, hasFile, "fuzz.npy", "decoder/attn", &lifetime{})
 		if err != nil {
 			return
 		}

@@ -53,6 +53,23 @@ static int heed_chunk(hid_t ds, int rank, hsize_t *dims) {
 	return r;
 }
 
+// heed_unwritten is 1 when a contiguous or chunked dataset has no storage
+// allocated: created, never written (H5Dget_space_status; h5py and HDF5
+// allocate such storage late, at the first write, by default), 0 when it
+// has, or when its data is elsewhere (compact: in its header; virtual or
+// external: in other files), -1 on error.
+static int heed_unwritten(hid_t ds) {
+	hid_t p = H5Dget_create_plist(ds);
+	if (p < 0) return -1;
+	H5D_layout_t layout = H5Pget_layout(p);
+	int external = H5Pget_external_count(p);
+	H5Pclose(p);
+	if ((layout != H5D_CONTIGUOUS && layout != H5D_CHUNKED) || external != 0) return 0;
+	H5D_space_status_t st;
+	if (H5Dget_space_status(ds, &st) < 0) return -1;
+	return st == H5D_SPACE_STATUS_NOT_ALLOCATED;
+}
+
 static herr_t heed_read(hid_t ds, hid_t mem, hid_t mspace, hid_t fspace, void *buf) {
 	return H5Dread(ds, mem, mspace, fspace, H5P_DEFAULT, buf);
 }
@@ -203,6 +220,16 @@ func (h *h5File) dataset(g *hdf5.CommonFG, name, full string) (*h5Array, error) 
 		return nil, ferr("%v", err)
 	}
 	a.shape = shape
+	if prod(shape) > 0 {
+		switch C.heed_unwritten(C.hid_t(ds.ID())) {
+		case 1:
+			ds.Close()
+			return nil, ferr("created but never written: no storage allocated for its %v values (did the writing job stop?)", shape)
+		case -1:
+			ds.Close()
+			return nil, ferr("the HDF5 library cannot tell whether it was written")
+		}
+	}
 	if err := a.classify(C.hid_t(ds.ID())); err != nil {
 		ds.Close()
 		a.closeType()

@@ -26,18 +26,9 @@ func memFile(path string, b []byte) *mappedFile {
 }
 
 func mapFile(path string) (*mappedFile, error) {
-	f, err := os.Open(path)
+	f, st, err := openRegular(path)
 	if err != nil {
 		return nil, err
-	}
-	st, err := f.Stat()
-	if err != nil {
-		f.Close()
-		return nil, err
-	}
-	if st.IsDir() {
-		f.Close()
-		return nil, fmt.Errorf("%s: is a directory", path)
 	}
 	mf := &mappedFile{path: path, f: f}
 	if st.Size() > 0 {
@@ -63,7 +54,9 @@ func mapFile(path string) (*mappedFile, error) {
 // the mapping). Reading a head this way costs a copy in the kernel from
 // the page cache; reading it through the mapping the first time costs a
 // page fault every few pages, which on the machines we measured is two to
-// four times as much (docs/scale.md). The caller holds the lifetime.
+// four times as much (docs/scale.md). The caller holds the lifetime. Its
+// errors are *FormatError naming the file, which the caller completes with
+// the array's name (rawArray.copyBytes).
 func (m *mappedFile) pread(dst, within []byte, off int) (bool, error) {
 	if m.f == nil || m.borrowed || len(m.m) == 0 || len(dst) == 0 || len(within) == 0 {
 		return false, nil
@@ -76,9 +69,9 @@ func (m *mappedFile) pread(dst, within []byte, off int) (bool, error) {
 	n, err := m.f.ReadAt(dst, pos)
 	if n != len(dst) {
 		if err == nil || err == io.EOF {
-			err = io.ErrUnexpectedEOF
+			return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: errShrunk}
 		}
-		return false, fmt.Errorf("%s: reading %d bytes at %d: %w (was the file changed while open?)", m.path, len(dst), pos, err)
+		return false, &FormatError{File: m.path, Offset: pos + int64(n), Msg: "cannot read the file", Err: err}
 	}
 	return true, nil
 }

@@ -7,6 +7,7 @@ import (
 	"io"
 	"strconv"
 	"strings"
+	"unicode/utf8"
 )
 
 // NPY, as numpy's format module documents it (numpy/lib/format.py docstring;
@@ -38,8 +39,10 @@ type npyHeader struct {
 
 // readNPYHeader parses the header from r. avail is the number of bytes of
 // the whole NPY stream (used to check the claimed shape before anything is
-// allocated for it); file and name go into errors.
-func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, error) {
+// allocated for it) and has says where that number comes from in an error
+// ("the file has %d bytes", "the member declares %d bytes uncompressed");
+// file and name go into errors.
+func readNPYHeader(r io.Reader, avail int64, has, file, name string) (*npyHeader, error) {
 	ferr := func(off int64, format string, a ...any) error {
 		return &FormatError{File: file, Array: name, Offset: off, Msg: fmt.Sprintf(format, a...)}
 	}
@@ -79,7 +82,7 @@ func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, err
 		return nil, ferr(off-4, "NPY header length %d exceeds heed's limit of %d bytes", hlen, maxNPYHeader)
 	}
 	if off+hlen > avail {
-		return nil, ferr(off, "truncated NPY header: it claims %d bytes, %d remain", hlen, avail-off)
+		return nil, ferr(off, "truncated NPY header: it claims %d bytes, %s", hlen, fmt.Sprintf(has, avail-off))
 	}
 	text := make([]byte, hlen)
 	if _, err := io.ReadFull(r, text); err != nil {
@@ -87,10 +90,10 @@ func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, err
 	}
 	h, err := parseNPYDict(string(text))
 	if err != nil {
-		return nil, ferr(off, "bad NPY header %q: %v", clip(string(text), 120), err)
+		return nil, ferr(off, "bad NPY header %s: %v", quoteClip(string(text), headerQuote), err)
 	}
 	h.dataOff = off + hlen
-	nb, err := checkDataSize(h.shape, h.elem, avail-h.dataOff)
+	nb, err := checkDataSize(h.shape, h.elem, avail-h.dataOff, has)
 	if err != nil {
 		return nil, ferr(h.dataOff, "header lies about the data: %v", err)
 	}
@@ -98,13 +101,33 @@ func readNPYHeader(r io.Reader, avail int64, file, name string) (*npyHeader, err
 	return h, nil
 }
 
-func clip(s string, n int) string {
+// A header can be 1 MiB of anything: errors quote at most headerQuote
+// characters of it, and at most partQuote of the key, type string or number
+// that is wrong.
+const (
+	headerQuote = 60
+	partQuote   = 40
+)
+
+// quoteClip quotes s (Go syntax) cut after its first n characters (runes),
+// with "…" after the closing quote when something was cut; trailing padding
+// (spaces, the newline) is dropped first.
+func quoteClip(s string, n int) string {
 	s = strings.TrimRight(s, " \n")
-	if len(s) > n {
-		return s[:n] + "..."
+	i, k := 0, 0
+	for i < len(s) && k < n {
+		_, w := utf8.DecodeRuneInString(s[i:])
+		i += w
+		k++
 	}
-	return s
+	if i < len(s) {
+		return strconv.Quote(s[:i]) + "…"
+	}
+	return strconv.Quote(s)
 }
+
+// q quotes a part of a header for an error (quoteClip, partQuote).
+func q(s string) string { return quoteClip(s, partQuote) }
 
 // parseNPYDict parses the header dict literal, e.g.
 // {'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }
@@ -131,7 +154,7 @@ func parseNPYDict(s string) (*npyHeader, error) {
 		}
 		p.ws()
 		if !p.eat(':') {
-			return nil, fmt.Errorf("expected ':' after %q", key)
+			return nil, fmt.Errorf("expected ':' after %s", q(key))
 		}
 		p.ws()
 		switch key {
@@ -148,7 +171,7 @@ func parseNPYDict(s string) (*npyHeader, error) {
 			shape, err = p.tuple()
 			gotSh = true
 		default:
-			return nil, fmt.Errorf("unexpected key %q", key)
+			return nil, fmt.Errorf("unexpected key %s", q(key))
 		}
 		if err != nil {
 			return nil, fmt.Errorf("%s: %v", key, err)
@@ -191,30 +214,30 @@ func parseDescr(d string, h *npyHeader) error {
 		h.big = true
 	}
 	if d == "" {
-		return fmt.Errorf("bad descr %q", orig)
+		return fmt.Errorf("bad descr %s", q(orig))
 	}
 	kind := d[0]
 	size := 0
 	if len(d) > 1 {
 		n, err := strconv.Atoi(d[1:])
 		if err != nil || n < 0 {
-			return fmt.Errorf("unknown dtype %q", orig)
+			return fmt.Errorf("unknown dtype %s", q(orig))
 		}
 		size = n
 	}
 	switch kind {
 	case 'O':
-		return fmt.Errorf("dtype %q is an object array (a pickle), which heed never loads; save tokens as strings instead, e.g. np.save(path, np.asarray(tokens, dtype=str))", orig)
+		return fmt.Errorf("dtype %s is an object array (a pickle), which heed never loads; save tokens as strings instead, e.g. np.save(path, np.asarray(tokens, dtype=str))", q(orig))
 	case 'b', '?':
 		if size != 1 && !(kind == '?' && size == 0) {
-			return fmt.Errorf("unknown dtype %q", orig)
+			return fmt.Errorf("unknown dtype %s", q(orig))
 		}
 		h.dtype, h.elem = Bool, 1
 	case 'i', 'u':
 		types := map[int][2]DType{1: {Int8, Uint8}, 2: {Int16, Uint16}, 4: {Int32, Uint32}, 8: {Int64, Uint64}}
 		t, ok := types[size]
 		if !ok {
-			return fmt.Errorf("unknown dtype %q", orig)
+			return fmt.Errorf("unknown dtype %s", q(orig))
 		}
 		h.dtype, h.elem = t[0], size
 		if kind == 'u' {
@@ -229,27 +252,27 @@ func parseDescr(d string, h *npyHeader) error {
 		case 8:
 			h.dtype = Float64
 		default:
-			return fmt.Errorf("dtype %q (float of %d bytes) is not supported: save as float32", orig, size)
+			return fmt.Errorf("dtype %s (float of %d bytes) is not supported: save as float32", q(orig), size)
 		}
 		h.elem = size
 	case 'U':
 		h.dtype, h.strKind, h.elem = String, 'U', 4*size
 		if size > 1<<20 {
-			return fmt.Errorf("dtype %q: strings of over 2^20 characters", orig)
+			return fmt.Errorf("dtype %s: strings of over 2^20 characters", q(orig))
 		}
 	case 'S', 'a':
 		h.dtype, h.strKind, h.elem = String, 'S', size
 		if size > 1<<22 {
-			return fmt.Errorf("dtype %q: strings of over 2^22 bytes", orig)
+			return fmt.Errorf("dtype %s: strings of over 2^22 bytes", q(orig))
 		}
 	case 'c':
-		return fmt.Errorf("dtype %q (complex) is not supported", orig)
+		return fmt.Errorf("dtype %s (complex) is not supported", q(orig))
 	case 'V':
-		return fmt.Errorf("dtype %q (raw void) is not supported", orig)
+		return fmt.Errorf("dtype %s (raw void) is not supported", q(orig))
 	case 'M', 'm':
-		return fmt.Errorf("dtype %q (date/time) is not supported", orig)
+		return fmt.Errorf("dtype %s (date/time) is not supported", q(orig))
 	default:
-		return fmt.Errorf("unknown dtype %q", orig)
+		return fmt.Errorf("unknown dtype %s", q(orig))
 	}
 	return nil
 }
@@ -336,7 +359,7 @@ func (p *pyLit) tuple() ([]int, error) {
 		}
 		n, err := strconv.ParseInt(p.s[start:p.i], 10, 64)
 		if err != nil || n > 1<<50 {
-			return nil, fmt.Errorf("dimension %s too large", p.s[start:p.i])
+			return nil, fmt.Errorf("dimension %s too large", q(p.s[start:p.i]))
 		}
 		p.eat('L') // Python 2 long suffix, written by old numpy versions
 		shape = append(shape, int(n))
@@ -356,9 +379,9 @@ func (p *pyLit) tuple() ([]int, error) {
 }
 
 // npyArray builds the array of an NPY stream whose bytes are b (the whole
-// stream, mapped or in memory).
-func npyArray(b []byte, file, name string, life *lifetime) (*rawArray, error) {
-	h, err := readNPYHeader(bytes.NewReader(b), int64(len(b)), file, name)
+// stream, mapped or in memory); has is readNPYHeader's.
+func npyArray(b []byte, has, file, name string, life *lifetime) (*rawArray, error) {
+	h, err := readNPYHeader(bytes.NewReader(b), int64(len(b)), has, file, name)
 	if err != nil {
 		return nil, err
 	}

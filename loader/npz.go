@@ -21,15 +21,36 @@ import (
 // that is mapped, so a large compressed export does not grow the process's
 // anonymous memory.
 
-// maxDeflateRatio bounds how much data a deflated member can claim per
-// compressed byte: DEFLATE's best case is about 1032:1 (RFC 1951 limits; a
-// fact of the trade), so a header claiming more is lying, and is refused
-// before anything is allocated for it.
+// maxDeflateRatio is the most DEFLATE can inflate a compressed byte to: the
+// longest match is 258 bytes (RFC 1951, section 3.2.5) and its length and
+// distance codes take at least one bit each, so two bits make 258 bytes and
+// a byte at most 1032. A member whose zip entry or NPY header claims more
+// than that is lying, and is refused before anything is allocated for it.
 const maxDeflateRatio = 1032
 
-// inflateInMemory is the largest member inflated into memory; larger ones go
-// to a temporary file.
-const inflateInMemory = 32 << 20
+// maxBlankRatio and maxBlankInflate bound what a member of almost nothing
+// can cost. Past about 1000:1 deflated data is nearly all one repeated byte:
+// zlib (level 6, what numpy.savez_compressed writes) makes 1028.7:1 of
+// constant data, while the densest honest arrays measured here with zlib
+// 1.2.13 and numpy stay far below (float16 heads of one-hot rows 609:1, a
+// causal bool mask of 8192 x 8192 556:1, float32 sliding-window attention
+// over 8192 keys with a window of 16 322:1). Deflated members above
+// maxBlankRatio are refused once they add up to more than maxBlankInflate
+// bytes: a zip bomb, or an array whose writer never filled it. (A constant
+// array that large that is meant, say an all-true mask, can be saved with
+// numpy.savez, stored, which heed reads in place without inflating.)
+const (
+	maxBlankRatio   = 1000
+	maxBlankInflate = 256 << 20
+)
+
+// inflateInMemory is the largest member inflated into memory, and
+// inflateMemBudget the most an archive's members take in memory together;
+// other members are inflated into temporary files.
+const (
+	inflateInMemory  = 32 << 20
+	inflateMemBudget = 128 << 20
+)
 
 type npzFile struct {
 	mf      *mappedFile
@@ -37,6 +58,9 @@ type npzFile struct {
 	meta    string
 	hasMeta bool
 	temps   []*inflated
+	// claimed, blank and inMemory add up the inflated sizes of the deflated
+	// members: all of them, those above maxBlankRatio, those kept in memory.
+	claimed, blank, inMemory int64
 }
 
 // openZip opens a zip archive: a torch.save file when it holds
@@ -131,21 +155,24 @@ func (z *npzFile) member(path, name string, f *zip.File) (*rawArray, error) {
 		if f.UncompressedSize64 != f.CompressedSize64 || off < 0 || size < 0 || off > z.mf.size() || size > z.mf.size()-off {
 			return nil, ferr(fmt.Sprintf("stored member of %d bytes at %d runs past the end of the archive (%d bytes)", size, off, z.mf.size()), nil)
 		}
-		a, err := npyArray(z.mf.bytes()[off:off+size], path, name, &z.mf.life)
+		a, err := npyArray(z.mf.bytes()[off:off+size], "the member has %d", path, name, &z.mf.life)
 		if a != nil {
 			a.src = z.mf
 		}
 		return a, err
 	case zip.Deflate:
+		csize, usize, size := f.CompressedSize64, f.UncompressedSize64, uint64(z.mf.size())
+		if csize > size {
+			return nil, ferr(fmt.Sprintf("compressed size %d is larger than the archive (%d bytes)", csize, size), nil)
+		}
+		if usize/maxDeflateRatio > csize {
+			return nil, ferr(fmt.Sprintf("declared uncompressed size %d bytes is more than DEFLATE can make of its %d compressed bytes (1032 per byte at most)", usize, csize), nil)
+		}
 		rc, err := f.Open()
 		if err != nil {
 			return nil, ferr("cannot open the deflated member", err)
 		}
-		usize := int64(f.UncompressedSize64)
-		if usize < 0 {
-			usize = 0
-		}
-		h, err := readNPYHeader(rc, usize, path, name)
+		h, err := readNPYHeader(rc, int64(usize), "the member declares %d bytes uncompressed", path, name)
 		rc.Close()
 		if err != nil {
 			var fe *FormatError
@@ -154,16 +181,30 @@ func (z *npzFile) member(path, name string, f *zip.File) (*rawArray, error) {
 			}
 			return nil, ferr("cannot inflate the member's header", err)
 		}
+		// The header's size is at most usize (checked above), so at most
+		// maxDeflateRatio times the compressed size.
 		total := h.dataOff + h.nbytes
-		if f.CompressedSize64 > uint64(z.mf.size()) {
-			return nil, ferr(fmt.Sprintf("compressed size %d is larger than the archive (%d bytes)", f.CompressedSize64, z.mf.size()), nil)
+		z.claimed += total
+		if z.claimed/maxDeflateRatio > z.mf.size() {
+			return nil, ferr(fmt.Sprintf("the deflated members claim %d bytes together, more than DEFLATE can make of the %d-byte archive (members that overlap: a zip bomb)", z.claimed, z.mf.size()), nil)
 		}
-		if total > maxDeflateRatio*(int64(f.CompressedSize64)+1) {
-			return nil, ferr(fmt.Sprintf("header claims %d bytes, more than %d compressed bytes can hold", total, f.CompressedSize64), nil)
+		if total > maxBlankRatio*int64(csize) {
+			z.blank += total
+			if z.blank > maxBlankInflate {
+				return nil, ferr(fmt.Sprintf("inflates %d:1, %d bytes to %d: nearly all one repeated byte (a zip bomb, or an array never written); heed refuses more than %d MiB of such members",
+					total/max(int64(csize), 1), csize, total, maxBlankInflate>>20), nil)
+			}
 		}
 		lz := &inflated{f: f, total: total, dataOff: h.dataOff, path: path, name: name}
+		if total > inflateInMemory || z.inMemory+total > inflateMemBudget {
+			lz.file = &mappedFile{path: path}
+		} else {
+			z.inMemory += total
+		}
 		z.temps = append(z.temps, lz)
-		return h.array(path, name, &z.mf.life, lz.data), nil
+		a := h.array(path, name, &z.mf.life, lz.data)
+		a.src = lz.file // a head of a temporary file is read with pread, as a mapped file's
+		return a, nil
 	}
 	return nil, ferr(fmt.Sprintf("zip compression method %d is not supported (numpy writes stored or deflated members)", f.Method), nil)
 }
@@ -182,16 +223,21 @@ func (z *npzFile) Close() error {
 	})
 }
 
-// inflated is a deflated member's data, inflated on first use.
+// tempFree is freeSpace (a variable so that tests can shrink the disk).
+var tempFree = freeSpace
+
+// inflated is a deflated member's data, inflated on first use: into memory,
+// or (file set) into an unlinked temporary file that is mapped and read like
+// a mapped input file (heads by pread), so that neither inflating nor
+// reading it grows the process's memory with the member's size.
 type inflated struct {
 	f              *zip.File
 	total, dataOff int64
 	path, name     string
+	file           *mappedFile // the temporary file, nil when in memory
 
 	once sync.Once
 	buf  []byte
-	tmp  *os.File
-	m    mmap.MMap
 	err  error
 }
 
@@ -213,7 +259,7 @@ func (l *inflated) inflate() {
 		return
 	}
 	defer rc.Close()
-	if l.total <= inflateInMemory {
+	if l.file == nil {
 		// Grow with the data actually inflated, not with what the header claims.
 		var bb bytes.Buffer
 		if n, err := io.CopyN(&bb, rc, l.total); err != nil || n != l.total {
@@ -228,7 +274,12 @@ func (l *inflated) inflate() {
 		l.buf = buf
 		return
 	}
-	tmp, err := os.CreateTemp("", "heed-npz-*")
+	dir := os.TempDir()
+	if free, ok := tempFree(dir); ok && free < l.total {
+		fail(fmt.Sprintf("inflating it takes %d bytes of temporary space, %s has %d free (set TMPDIR to a larger disk)", l.total, dir, free), nil)
+		return
+	}
+	tmp, err := os.CreateTemp(dir, "heed-npz-*")
 	if err != nil {
 		fail("cannot create a temporary file to inflate into", err)
 		return
@@ -237,7 +288,11 @@ func (l *inflated) inflate() {
 	n, err := io.CopyN(tmp, rc, l.total)
 	if err != nil || n != l.total {
 		tmp.Close()
-		fail("truncated deflated member", err)
+		if err == nil || err == io.EOF {
+			fail("truncated deflated member", err)
+		} else {
+			fail("cannot inflate into a temporary file", err)
+		}
 		return
 	}
 	if err := drain(rc); err != nil {
@@ -252,7 +307,7 @@ func (l *inflated) inflate() {
 		return
 	}
 	adviseSequential(m)
-	l.tmp, l.m, l.buf = tmp, m, m
+	l.file.f, l.file.m, l.buf = tmp, m, m
 }
 
 // drain reads what is left of a member (normally nothing), so that
@@ -269,13 +324,8 @@ func drain(r io.Reader) error {
 }
 
 func (l *inflated) release() {
-	if l.m != nil {
-		l.m.Unmap()
-		l.m = nil
-	}
-	if l.tmp != nil {
-		l.tmp.Close()
-		l.tmp = nil
+	if l.file != nil {
+		l.file.release()
 	}
 	l.buf = nil
 }

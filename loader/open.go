@@ -84,18 +84,9 @@ func stem(path string) string {
 }
 
 func openFile(ref fileRef) (Container, error) {
-	f, err := os.Open(ref.path)
+	f, st, err := openRegular(ref.path)
 	if err != nil {
-		return nil, fmt.Errorf("%s: %w", ref.path, unwrapPath(err))
-	}
-	st, err := f.Stat()
-	if err != nil {
-		f.Close()
 		return nil, err
-	}
-	if st.IsDir() {
-		f.Close()
-		return nil, &FormatError{File: ref.path, Offset: -1, Msg: "is a directory"}
 	}
 	format := sniff(f, st.Size())
 	f.Close()
@@ -123,6 +114,60 @@ func openFile(ref fileRef) (Container, error) {
 	return nil, &FormatError{File: ref.path, Offset: 0, Msg: "not an export heed reads (NPY, NPZ, safetensors, HDF5 or torch.save): unrecognised first bytes"}
 }
 
+// openRegular opens an input file read-only and refuses what is not a
+// regular file: a directory, a named pipe (FIFO), a device or a socket. heed
+// maps the files it reads and reads them more than once, which a stream
+// cannot give, and opening a FIFO for reading would wait for a writer for
+// ever. It looks before opening (stat follows symbolic links), opens with
+// O_NONBLOCK (openNonblock) so that a file swapped for a FIFO after that
+// look does not block the open either, and decides on the opened file.
+func openRegular(path string) (*os.File, os.FileInfo, error) {
+	st, err := os.Stat(path)
+	if err != nil {
+		return nil, nil, fmt.Errorf("%s: %w", path, unwrapPath(err))
+	}
+	if err := notRegular(path, st); err != nil {
+		return nil, nil, err
+	}
+	f, err := os.OpenFile(path, os.O_RDONLY|openNonblock, 0)
+	if err != nil {
+		return nil, nil, fmt.Errorf("%s: %w", path, unwrapPath(err))
+	}
+	st, err = f.Stat()
+	if err == nil {
+		err = notRegular(path, st)
+	}
+	if err != nil {
+		f.Close()
+		return nil, nil, err
+	}
+	return f, st, nil
+}
+
+// notRegular is the one-line refusal of a file that is not a regular file
+// (nil for a regular file).
+func notRegular(path string, st os.FileInfo) error {
+	m := st.Mode()
+	var what string
+	switch {
+	case m.IsRegular():
+		return nil
+	case m.IsDir():
+		return &FormatError{File: path, Offset: -1, Msg: "is a directory"}
+	case m&fs.ModeNamedPipe != 0:
+		what = "a named pipe (FIFO)"
+	case m&fs.ModeSocket != 0:
+		what = "a socket"
+	case m&fs.ModeCharDevice != 0:
+		what = "a character device"
+	case m&fs.ModeDevice != 0:
+		what = "a block device"
+	default:
+		what = "a special file"
+	}
+	return &FormatError{File: path, Offset: -1, Msg: "is " + what + ", not a regular file: save the export to a file first"}
+}
+
 func unwrapPath(err error) error {
 	var pe *fs.PathError
 	if errors.As(err, &pe) {
@@ -132,15 +177,11 @@ func unwrapPath(err error) error {
 }
 
 func checkHDF5Signature(path string) error {
-	f, err := os.Open(path)
+	f, st, err := openRegular(path)
 	if err != nil {
 		return err
 	}
 	defer f.Close()
-	st, err := f.Stat()
-	if err != nil {
-		return err
-	}
 	if !hasHDF5Signature(f, st.Size()) {
 		return &FormatError{File: path, Offset: 0, Msg: "not an HDF5 file (no \\x89HDF signature), although named like one"}
 	}
@@ -158,7 +199,7 @@ func openNPY(ref fileRef) (Container, error) {
 	if err != nil {
 		return nil, err
 	}
-	a, err := npyArray(mf.bytes(), ref.path, ref.npyName, &mf.life)
+	a, err := npyArray(mf.bytes(), hasFile, ref.path, ref.npyName, &mf.life)
 	if err != nil {
 		mf.close()
 		return nil, err

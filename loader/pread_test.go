@@ -4,6 +4,7 @@ import (
 	"os"
 	"path/filepath"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 )
@@ -106,7 +107,38 @@ func TestPreadTruncated(t *testing.T) {
 	if err == nil {
 		t.Fatal("reading past the end of a truncated file succeeded")
 	}
-	if !strings.Contains(err.Error(), "cut.safetensors") || !strings.Contains(err.Error(), "changed") {
-		t.Errorf("error %q does not name the file and say why", err)
+	// one line: the file once, the array, what is wrong
+	want := path + ": " + b.Name + "/attn/" + strconv.Itoa(l) + ": the file got shorter while heed read it"
+	if msg := err.Error(); !strings.HasPrefix(msg, want) || strings.Count(msg, "cut.safetensors") != 1 || strings.Contains(msg, "\n") {
+		t.Errorf("error %q, want %q... naming the file once", msg, want)
 	}
+}
+
+// TestMappingTruncated: reads that go through the mapping (here a
+// big-endian array, converted from the mapped bytes) of a file cut short
+// after it was opened give an error naming the file and the array once,
+// not a crash: a fault past the end of the file (SIGBUS) is caught.
+func TestMappingTruncated(t *testing.T) {
+	hdr := "{'descr': '>f4', 'fortran_order': False, 'shape': (16, 4096), }"
+	pad := 64 - (10+len(hdr)+1)%64
+	b := []byte("\x93NUMPY\x01\x00") // NPY 1.0, numpy/lib/format.py docstring
+	hl := len(hdr) + pad + 1
+	b = append(b, byte(hl), byte(hl>>8))
+	b = append(b, hdr+strings.Repeat(" ", pad)+"\n"...)
+	b = append(b, make([]byte, 16*4096*4)...)
+	path := filepath.Join(t.TempDir(), "cut.npy")
+	if err := os.WriteFile(path, b, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	c, err := OpenFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	a := c.Arrays()[0]
+	if err := os.Truncate(path, 100); err != nil {
+		t.Fatal(err)
+	}
+	err = a.ReadFloat32([]int{15}, make([]float32, 4096))
+	checkRefusal(t, "ReadFloat32", err, path, "cut: the file got shorter while heed read it")
 }

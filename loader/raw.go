@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"runtime/debug"
 	"strings"
 	"sync"
 	"unicode/utf8"
@@ -136,6 +137,10 @@ type rawArray struct {
 func (r *rawArray) copyBytes(dst, data []byte, off int) error {
 	if r.src != nil && !ViewMapped {
 		ok, err := r.src.pread(dst, data, off)
+		if fe, is := err.(*FormatError); is {
+			// name the array, and the input file rather than a temporary one
+			fe.File, fe.Array = r.file, r.name
+		}
 		if ok || err != nil {
 			return err
 		}
@@ -151,6 +156,24 @@ func (r *rawArray) Shape() []int  { return append([]int(nil), r.shape...) }
 func (r *rawArray) cOrder() bool  { return !r.fortran || len(r.shape) < 2 }
 func (r *rawArray) label() string { return r.file + ": " + r.name }
 
+// faults ends a read through the mapping (deferred, with the setting
+// debug.SetPanicOnFault(true) replaced): a fault there means the file got
+// shorter after it was mapped (reading a mapping past the end of its file
+// raises SIGBUS), and becomes an error naming the file and the array
+// instead of a crash. Other panics go on.
+func (r *rawArray) faults(old bool, err *error) {
+	debug.SetPanicOnFault(old)
+	if e := recover(); e != nil {
+		if _, ok := e.(interface{ Addr() uintptr }); !ok {
+			panic(e)
+		}
+		*err = &FormatError{File: r.file, Array: r.name, Offset: -1, Msg: errShrunk}
+	}
+}
+
+// errShrunk is what a read says of a file cut short under it.
+const errShrunk = "the file got shorter while heed read it (truncated or rewritten?)"
+
 // bytes enters the lifetime and returns the data; the caller must call r.life.leave.
 func (r *rawArray) bytes() ([]byte, error) {
 	if err := r.life.enter(); err != nil {
@@ -164,7 +187,8 @@ func (r *rawArray) bytes() ([]byte, error) {
 	return b, nil
 }
 
-func (r *rawArray) readFlat(off, n int, dst []float32) error {
+func (r *rawArray) readFlat(off, n int, dst []float32) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype == String {
 		return fmt.Errorf("loader: %s: a string array has no numeric values", r.label())
 	}
@@ -224,7 +248,8 @@ func (r *rawArray) offsets(idx []int, fn func(i, off int)) {
 	}
 }
 
-func (r *rawArray) ReadFloat32(idx []int, dst []float32) error {
+func (r *rawArray) ReadFloat32(idx []int, dst []float32) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype == String {
 		return fmt.Errorf("loader: %s: a string array has no numeric values", r.label())
 	}
@@ -251,7 +276,8 @@ func (r *rawArray) ReadFloat32(idx []int, dst []float32) error {
 	return nil
 }
 
-func (r *rawArray) ReadInt64(idx []int, dst []int64) error {
+func (r *rawArray) ReadInt64(idx []int, dst []int64) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if !r.dtype.IsInt() {
 		return fmt.Errorf("loader: %s: %s array read as integers", r.label(), r.dtype)
 	}
@@ -269,7 +295,8 @@ func (r *rawArray) ReadInt64(idx []int, dst []int64) error {
 	return nil
 }
 
-func (r *rawArray) ReadStrings() ([]string, error) {
+func (r *rawArray) ReadStrings() (_ []string, err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	if r.dtype != String {
 		return nil, fmt.Errorf("loader: %s: %s array read as strings", r.label(), r.dtype)
 	}
@@ -312,9 +339,13 @@ func (r *rawArray) ReadStrings() ([]string, error) {
 // maxZeroSizeElems bounds arrays of zero-byte elements (empty strings).
 const maxZeroSizeElems = 1 << 20
 
+// hasFile is checkDataSize's has for bytes that are a whole file.
+const hasFile = "the file has %d"
+
 // checkDataSize returns the byte size of an array of shape and element size
-// elem, or an error when it overflows or exceeds avail bytes.
-func checkDataSize(shape []int, elem int, avail int64) (int64, error) {
+// elem, or an error when it overflows or exceeds avail bytes; has is a
+// format of avail saying where that number comes from (hasFile).
+func checkDataSize(shape []int, elem int, avail int64, has string) (int64, error) {
 	n, ok := numElems(shape, math.MaxInt64/int64(max(elem, 1)))
 	if !ok {
 		return 0, fmt.Errorf("shape %v overflows", shape)
@@ -326,7 +357,7 @@ func checkDataSize(shape []int, elem int, avail int64) (int64, error) {
 	}
 	nb := n * int64(elem)
 	if nb > avail {
-		return 0, fmt.Errorf("shape %v needs %d bytes of data, the file has %d", shape, nb, avail)
+		return 0, fmt.Errorf("shape %v needs %d bytes of data, %s", shape, nb, fmt.Sprintf(has, avail))
 	}
 	return nb, nil
 }

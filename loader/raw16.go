@@ -2,6 +2,7 @@ package loader
 
 import (
 	"fmt"
+	"runtime/debug"
 	"sync"
 	"unsafe"
 )
@@ -15,11 +16,12 @@ import (
 // by key, HDF5): the caller then uses ReadAttn. For a block it accepts,
 // F16ToF32Table()[dst[i]] (float16) or math.Float32frombits(uint32(dst[i])<<16)
 // (bfloat16) is exactly what ReadAttn gives.
-func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
+func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (_ DType, err error) {
 	r, off, err := b.raw16(layer, batch, head, len(dst))
 	if r == nil || err != nil {
 		return Invalid, err
 	}
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	n := len(dst)
 	data, err := r.bytes()
 	if err != nil {
@@ -28,7 +30,7 @@ func (b *Block) ReadRaw16(layer, batch, head int, dst []uint16) (DType, error) {
 	defer r.life.leave()
 	if n > 0 {
 		if err := r.copyBytes(unsafe.Slice((*byte)(unsafe.Pointer(&dst[0])), 2*n), data, 2*off); err != nil {
-			return Invalid, fmt.Errorf("loader: %s: %w", r.label(), err)
+			return Invalid, err
 		}
 	}
 	return r.dtype, nil

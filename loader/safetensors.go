@@ -138,7 +138,7 @@ func parseSafetensorsHeader(path string, b []byte) ([]string, map[string]stEntry
 		e := entries[name]
 		dt, ok := stDTypes[e.Dtype]
 		if !ok {
-			return nil, nil, nil, 0, ferr(name, -1, "unknown or unsupported dtype %q (heed reads BOOL, U8..U64, I8..I64, F16, BF16, F32, F64)", e.Dtype)
+			return nil, nil, nil, 0, ferr(name, -1, "unknown or unsupported dtype %s (heed reads BOOL, U8..U64, I8..I64, F16, BF16, F32, F64)", q(e.Dtype))
 		}
 		if len(e.DataOffsets) != 2 {
 			return nil, nil, nil, 0, ferr(name, -1, "data_offsets must be [begin, end]")
@@ -166,7 +166,7 @@ func parseSafetensorsHeader(path string, b []byte) ([]string, map[string]stEntry
 		if stop > dataLen {
 			return nil, nil, nil, 0, ferr(name, -1, "data_offsets [%d, %d) run past the end of the data (%d bytes; truncated file?)", begin, stop, dataLen)
 		}
-		nb, err := checkDataSize(shape, itemSize(dt), math.MaxInt64)
+		nb, err := checkDataSize(shape, itemSize(dt), math.MaxInt64, hasFile)
 		if err != nil {
 			return nil, nil, nil, 0, ferr(name, -1, "%v", err)
 		}

@@ -703,6 +703,11 @@ def gen_bad(out):
     w("not_hdf5.h5", b"this is a text file, not HDF5\n")
     h5 = open(os.path.join(out, "hdf5", "types.h5"), "rb").read()
     w("truncated.h5", h5[:len(h5) // 3])
+    # a dataset created but never written (the writing job died before its
+    # first write): h5py allocates no storage, so the file stays tiny whatever
+    # the shape, and reading it would give fill values for ever
+    with h5py.File(os.path.join(d, "h5_unwritten.h5"), "w") as f:
+        f.create_dataset("decoder/attn", shape=(32, 32, 4096, 4096), dtype="f2")
 
     # safetensors
     hdr = b'{"x":{"dtype":"F32","shape":[2],"data_offsets":[0,8]}}'
