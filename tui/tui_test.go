@@ -273,16 +273,16 @@ func TestFlowMoveZoomFindCopy(t *testing.T) {
 	f.loc("decoder:L1:H2:q0:k0") // head wraps around
 	f.key("2")
 	// 60 tokens do not fit in 21 lines at 1:1: the map starts zoomed out.
-	f.see("1:2 mean")
+	f.see("zoom 1:2 mean")
 	f.key("+")
-	f.see("×1")
+	f.see("zoom 1:1")
 	f.key("+")
-	f.see("×2")
+	f.see("zoom 2:1")
 	f.key("m")
 	f.see("max weight")
 	f.key("-")
 	f.key("-")
-	f.see("1:2 max")
+	f.see("zoom 1:2 max")
 	// find the 4th token, " river"
 	f.key("/")
 	f.see("find token")
@@ -301,7 +301,7 @@ func TestFlowMoveZoomFindCopy(t *testing.T) {
 	f.see("Keys of Map", "zoom in", "hide/show sink column")
 	f.key("esc")
 	f.tm.Send(tea.WindowSizeMsg{Width: 200, Height: 60})
-	f.see("forbidden with mass")
+	f.see("■ leak")
 	m := f.quit()
 	if m.w != 200 || m.h != 60 {
 		t.Errorf("size after resize %dx%d", m.w, m.h)

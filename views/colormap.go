@@ -151,6 +151,13 @@ const (
 	// GlyphHalf is the upper half block: its foreground is the upper of two
 	// rows, its background the lower.
 	GlyphHalf = '▀'
+	// GlyphLowHalf draws the lower pixel alone (the upper one is masked).
+	GlyphLowHalf = '▄'
+	// GlyphPadding marks padding keys where no colour can.
+	GlyphPadding = '░'
+	// GlyphZero is an allowed cell of weight 0 in the glyph ramp, distinct
+	// from the blank of a masked cell.
+	GlyphZero = '·'
 )
 
 // RampGlyph returns the ramp glyph of t in [0, 1]: ' ' only for t <= 0, the

@@ -55,3 +55,23 @@ func causalMap(n int, leakShift int, toks []string) *MapData {
 	d.QueryTokens, d.KeyTokens = toks, toks
 	return d
 }
+
+// paddedMap is an n x n causal head whose last pad keys are padding: rows
+// of real queries put no mass on them, and the padding query rows are not
+// judged (their rule is "" and their weights those of a plain causal row).
+func paddedMap(n, pad int, toks []string) *MapData {
+	real := n - pad
+	w := softmaxRows(n, n, distanceScore(2), func(i, j int) bool { return j <= i && (j < real || i >= real) })
+	d := NewMapData(n, n, w)
+	d.Rule = func(q, k int) string {
+		switch {
+		case q >= real:
+			return ""
+		case k >= real:
+			return "padding"
+		}
+		return causalRule(q, k)
+	}
+	d.QueryTokens, d.KeyTokens = toks, toks
+	return d
+}

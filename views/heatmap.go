@@ -274,7 +274,19 @@ type Pixels struct {
 	Forbid []float32
 	// Rule names the rule of that cell ("" when none).
 	Rule []string
+	// Kind says what the mask rules make of every cell of the pixel:
+	// KindAllowed (some cell allowed), KindMasked (every cell forbidden),
+	// KindPadding (every cell forbidden, as padding keys): the Map draws the
+	// rule under the data.
+	Kind []uint8
 }
+
+// Pixel kinds (Pixels.Kind).
+const (
+	KindAllowed uint8 = iota
+	KindMasked
+	KindPadding
+)
 
 // Downsample aggregates rows x cols pixels of block x block cells starting at
 // cell (q0, k0). It reads only those cells.
@@ -290,7 +302,7 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 	}
 	rows, cols = max(rows, 0), max(cols, 0)
 	p := &Pixels{Rows: rows, Cols: cols, Q0: q0, K0: k0, Block: block,
-		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols)}
+		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols), Kind: make([]uint8, rows*cols)}
 	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
 	cells := rows * block * (kEnd - k0)
 	if d.RowRuns == nil && d.Rule != nil {
@@ -307,6 +319,9 @@ func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg 
 	cols := p.Cols
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
+	// forbidden cells and padding cells of each pixel of the row, for Kind
+	nForbid := make([]int32, cols)
+	nPad := make([]int32, cols)
 	var buf []float32 // a converted row of Raw
 	if d.Weights == nil {
 		buf = make([]float32, d.K)
@@ -314,6 +329,8 @@ func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg 
 	for pr := lo; pr < hi; pr++ {
 		clear(sum)
 		clear(cnt)
+		clear(nForbid)
+		clear(nPad)
 		base := pr * cols
 		qa := q0 + pr*block
 		qb := min(qa+block, d.Q)
@@ -376,8 +393,27 @@ func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg 
 				cnt[pc] += int32(kb - ka)
 				p.Weight[i] = w
 			}
-			if d.RowRuns != nil {
+			switch {
+			case d.RowRuns != nil:
 				markRuns(d, p, row, raw, q, base, k0, kEnd, block)
+				countRuns(d, q, k0, kEnd, block, nForbid, nPad)
+			case d.Rule != nil:
+				for k := k0; k < kEnd; k++ {
+					if r := d.Rule(q, k); r != "" {
+						nForbid[(k-k0)/block]++
+						if r == "padding" {
+							nPad[(k-k0)/block]++
+						}
+					}
+				}
+			}
+		}
+		for pc := 0; pc < cols; pc++ {
+			if n := cnt[pc]; n > 0 && nForbid[pc] == n {
+				p.Kind[base+pc] = KindMasked
+				if nPad[pc] == n {
+					p.Kind[base+pc] = KindPadding
+				}
 			}
 		}
 		if agg == AggMean {
@@ -462,6 +498,31 @@ func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base, k0, k
 			}
 		}
 		a = b
+	}
+}
+
+// countRuns adds, per pixel column of the window [k0, kEnd), the cells of
+// row q that a rule forbids (nForbid) and those forbidden as padding keys
+// (nPad), from the row's runs.
+func countRuns(d *MapData, q, k0, kEnd, block int, nForbid, nPad []int32) {
+	ends, rules := d.RowRuns(q)
+	a := 0
+	for j, e := range ends {
+		b, r := int(e), rules[j]
+		lo, hi := max(a, k0), min(b, kEnd)
+		a = b
+		if r == "" || lo >= hi {
+			continue
+		}
+		for k := lo; k < hi; {
+			pc := (k - k0) / block
+			end := min(hi, k0+(pc+1)*block)
+			nForbid[pc] += int32(end - k)
+			if r == "padding" {
+				nPad[pc] += int32(end - k)
+			}
+			k = end
+		}
 	}
 }
 
@@ -676,14 +737,43 @@ func (d *MapData) vmax(hideSink bool) float32 {
 	return d.VMax
 }
 
-func pixelColour(st Styles, w, forbid float32, t float64) Colour {
+// pixelColour is a pixel's colour: NaN grey; a leak in the alarm colour,
+// brighter the more mass it carries (leakShade); the terminal's background
+// (NoColour) where the mask forbids every cell and nothing leaks; the padding
+// colour for padding keys; else the colormap.
+func pixelColour(st Styles, w, forbid float32, kind uint8, t float64) Colour {
 	switch {
 	case w != w:
 		return st.NaN
 	case forbid > 0:
-		return st.Colormap.Alarm
+		return leakShade(st, forbid)
+	case kind == KindMasked:
+		return NoColour
+	case kind == KindPadding:
+		return st.Padding
 	}
 	return st.Colormap.At(t)
+}
+
+// leakShade is the alarm colour for a leaking cell of weight f: from 45%
+// of the way from the background (f <= 1e-4) to the full colour (f >= 1),
+// on a log scale, so that the size of a leak shows while the smallest stays
+// visible.
+func leakShade(st Styles, f float32) Colour {
+	t := 0.45 + 0.55*math.Max(0, math.Min(1, 1+math.Log10(float64(f))/4))
+	bg := RGB(0, 0, 0)
+	if !st.Dark {
+		bg = RGB(255, 255, 255)
+	}
+	return blend(bg, st.Colormap.Alarm, t)
+}
+
+// blend mixes a and b, t = 0 giving a and 1 giving b (per channel, sRGB).
+func blend(a, b Colour, t float64) Colour {
+	ar, ag, ab := a.Channels()
+	br, bg, bb := b.Channels()
+	mix := func(x, y uint8) uint8 { return uint8(math.Round(float64(x)*(1-t) + float64(y)*t)) }
+	return RGB(mix(ar, br), mix(ag, bg), mix(ab, bb))
 }
 
 // RenderMap lays out, downsamples and draws d in one call.
@@ -715,7 +805,7 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 	}
 	colourOf := func(pr, pc int) Colour {
 		w, f, _ := px.At(pr, pc)
-		return pixelColour(st, w, f, ScaleValue(w, vmax, opt.Scale))
+		return pixelColour(st, w, f, px.Kind[pr*px.Cols+pc], ScaleValue(w, vmax, opt.Scale))
 	}
 	for y := 0; y < l.GridH; y++ {
 		for x := 0; x < px.Cols*l.MagX && x < l.GridW; x++ {
@@ -732,12 +822,22 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 				}
 				cell := Style{FG: fg, BG: bg}
 				ch := GlyphHalf
+				switch {
+				case !fg.IsSet() && !bg.IsSet():
+					ch, cell = ' ', Style{} // both halves masked: the background
+				case !fg.IsSet():
+					ch, cell = GlyphLowHalf, Style{FG: bg} // the upper half masked
+				}
 				if pc == cpc && (prT == cpr || prB == cpr) {
 					under := fg
 					if prT != cpr {
 						under = bg
 					}
-					ch, cell = '+', Style{FG: contrast(under), BG: under, Attr: Bold}
+					if !under.IsSet() {
+						ch, cell = '+', Style{Attr: Bold | Reverse}
+					} else {
+						ch, cell = '+', Style{FG: contrast(under), BG: under, Attr: Bold}
+					}
 				}
 				c.Set(l.GridX+x, l.GridY+y, ch, cell)
 				continue
@@ -747,6 +847,7 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 				continue
 			}
 			w, f, _ := px.At(pr, pc)
+			kind := px.Kind[pr*px.Cols+pc]
 			t := ScaleValue(w, vmax, opt.Scale)
 			var ch rune
 			var cell Style
@@ -755,11 +856,20 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 				ch, cell = GlyphNaN, Style{Attr: Bold}
 			case f > 0:
 				ch, cell = GlyphForbidden, Style{Attr: Bold}
+			case kind == KindMasked:
+				ch = ' '
+			case kind == KindPadding:
+				ch = GlyphPadding
+			case !(t > 0):
+				ch = GlyphZero // allowed and empty: not the blank of a masked cell
 			default:
 				ch = rune(RampGlyph(t))
 			}
 			if st.HasColour() {
-				cell.FG = pixelColour(st, w, f, t)
+				cell.FG = pixelColour(st, w, f, kind, t)
+				if kind == KindPadding && f == 0 && w == w {
+					cell.FG = st.Padding
+				}
 			}
 			if pr == cpr && pc == cpc {
 				cell.Attr |= Reverse | Bold
@@ -773,7 +883,7 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 	drawKeyHeader(c, d, l, cpc, st)
 	drawQueryLabels(c, d, l, cpr, st)
 	drawReadout(c, d, px, l, cq, ck, cpr, cpc, st)
-	drawMapLegend(c, 0, l.H-1, l.W, d.Measure, vmax, opt, l, st)
+	drawMapLegend(c, 0, l.H-1, l.W, d.Measure, vmax, opt, l, px.present(), st)
 	return c
 }
 
@@ -956,7 +1066,28 @@ func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cq, ck, cpr, cp
 
 // drawMapLegend writes the colour scale, the aggregation, the zoom and the
 // meaning of the special colours or glyphs on line y.
-func drawMapLegend(c *Canvas, x, y, w int, measure string, vmax float32, opt MapOptions, l MapLayout, st Styles) {
+// present says which kinds of pixel are in px: masked, padding, NaN,
+// allowed with weight 0.
+func (p *Pixels) present() (has map[string]bool) {
+	has = map[string]bool{}
+	for i, k := range p.Kind {
+		w := p.Weight[i]
+		switch {
+		case w != w:
+			has["NaN"] = true
+		case p.Forbid[i] > 0:
+		case k == KindMasked:
+			has["masked"] = true
+		case k == KindPadding:
+			has["padding"] = true
+		case w == 0:
+			has["zero"] = true
+		}
+	}
+	return has
+}
+
+func drawMapLegend(c *Canvas, x, y, w int, measure string, vmax float32, opt MapOptions, l MapLayout, has map[string]bool, st Styles) {
 	if measure == "" {
 		measure = "weight"
 	}
@@ -974,29 +1105,41 @@ func drawMapLegend(c *Canvas, x, y, w int, measure string, vmax float32, opt Map
 	put(lo+" ", st.Text)
 	x = drawScaleBar(c, x, y, min(16, max(0, end-x-40)), st)
 	put(" "+FormatWeight(vmax)+" ", st.Text)
-	zoom := fmt.Sprintf("×%d", min(l.MagX, l.MagY))
+	// zoom as cells : pixels, one notation both ways: 1:4 is four cells a
+	// pixel side, 2:1 one cell drawn two pixels wide
+	zoom := fmt.Sprintf("zoom %d:1", min(l.MagX, l.MagY))
 	if l.Block > 1 {
-		zoom = fmt.Sprintf("1:%d %s", l.Block, opt.Agg)
+		zoom = fmt.Sprintf("zoom 1:%d %s", l.Block, opt.Agg)
 	}
 	put(measure+" · "+zoom, st.Faint)
 	if opt.HideSink {
 		put(" · sink hidden", st.Faint)
 	}
-	put("  ", st.Text)
-	if st.HalfBlocks() || st.HasColour() {
-		put("■", Style{FG: st.Colormap.Alarm})
+	// the keys to the marks, each whole or not at all, while they fit
+	type mark struct {
+		glyph string
+		style Style
+		text  string
 	}
-	if !st.HalfBlocks() {
-		put(string(GlyphForbidden), Style{FG: colourIf(st, st.Colormap.Alarm), Attr: Bold})
+	var marks []mark
+	if st.HalfBlocks() {
+		marks = []mark{{"■", Style{FG: st.Colormap.Alarm}, "leak"}, {"□", st.Faint, "masked"},
+			{"■", Style{FG: st.Padding}, "padding"}, {"■", Style{FG: st.NaN}, "NaN"}}
+	} else {
+		marks = []mark{{string(GlyphForbidden), Style{FG: colourIf(st, st.Colormap.Alarm), Attr: Bold}, "leak"},
+			{"' '", st.Faint, "masked"}, {string(GlyphPadding), Style{FG: colourIf(st, st.Padding)}, "padding"},
+			{string(GlyphNaN), Style{Attr: Bold}, "NaN"}, {string(GlyphZero), st.Text, "zero"}}
 	}
-	put(" forbidden with mass ", st.Faint)
-	if st.HalfBlocks() || st.HasColour() {
-		put("■", Style{FG: st.NaN})
+	for _, mk := range marks {
+		if mk.text != "leak" && !has[mk.text] {
+			continue // the key to what is not in view
+		}
+		if x+2+StringWidth(mk.glyph)+1+StringWidth(mk.text) > end {
+			break
+		}
+		put("  "+mk.glyph, mk.style)
+		put(" "+mk.text, st.Faint)
 	}
-	if !st.HalfBlocks() {
-		put(string(GlyphNaN), Style{Attr: Bold})
-	}
-	put(" NaN", st.Faint)
 }
 
 func colourIf(st Styles, c Colour) Colour {

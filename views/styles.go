@@ -21,6 +21,8 @@ type Styles struct {
 
 	// NaN is the colour of NaN cells (Tol's "bad data" grey).
 	NaN Colour
+	// Padding is the colour of padding keys on the Map (no mass on them).
+	Padding Colour
 }
 
 // NewStyles returns the styles for a profile, a background and a colormap.
@@ -51,6 +53,7 @@ func NewStyles(p colorprofile.Profile, dark bool, cm Colormap) Styles {
 	s.Bar = Style{FG: pick("#202020", "#E0E0E0"), BG: pick("#D8D8D8", "#303030")}
 	s.BarDim = Style{FG: pick("#505050", "#A0A0A0"), BG: s.Bar.BG}
 	s.Tab = Style{FG: pick("#505050", "#A0A0A0")}
+	s.Padding = pick("#C9D4E6", "#2B3550")
 	s.TabActive = Style{FG: pick("#004488", "#77AADD"), Attr: Bold | Underline}
 	return s
 }

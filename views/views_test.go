@@ -39,6 +39,7 @@ type mapCase struct {
 
 func TestMap(t *testing.T) {
 	leak16 := func() *MapData { return causalMap(16, 1, demoTokens) }
+	padded := func() *MapData { return paddedMap(16, 4, demoTokens) }
 	clean16 := func() *MapData { return causalMap(16, 0, demoTokens) }
 	big := func() *MapData {
 		d := causalMap(300, 0, nil)
@@ -63,6 +64,8 @@ func TestMap(t *testing.T) {
 	cases := []mapCase{
 		{"leak_truecolor_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.TrueColor, true, "dawn"},
 		{"leak_ascii_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ASCII, true, "dawn"},
+		{"padding_truecolor_80x21", padded, 80, 21, MapOptions{CursorQ: 8, CursorK: 13}, colorprofile.TrueColor, true, "dawn"},
+		{"padding_ascii_80x21", padded, 80, 21, MapOptions{CursorQ: 8, CursorK: 13}, colorprofile.ASCII, true, "dawn"},
 		{"leak_notty_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.NoTTY, true, "dawn"},
 		{"leak_ansi16_80x21", leak16, 80, 21, MapOptions{CursorQ: 3, CursorK: 4}, colorprofile.ANSI, true, "dawn"},
 		{"clean_256_light_80x21", clean16, 80, 21, MapOptions{CursorQ: 15, CursorK: 0}, colorprofile.ANSI256, false, "viridis"},

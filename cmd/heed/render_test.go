@@ -173,7 +173,7 @@ func TestRenderFormatsAgree(t *testing.T) {
 	if root.XMLName.Local != "svg" || root.Width != strconv.Itoa(wantW) || root.Height != strconv.Itoa(wantH) {
 		t.Errorf("SVG %s %sx%s, want svg %dx%d", root.XMLName.Local, root.Width, root.Height, wantW, wantH)
 	}
-	if !strings.Contains(root.Title, shown) || !strings.Contains(root.Desc, "forbidden with mass") {
+	if !strings.Contains(root.Title, shown) || !strings.Contains(root.Desc, "■ leak") {
 		t.Errorf("SVG title %q, desc lacks the legend", root.Title)
 	}
 }

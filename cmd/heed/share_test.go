@@ -106,7 +106,7 @@ func TestShareJourney(t *testing.T) {
 	guest := strings.Join(append(append([]string{"env", "TERM=xterm-256color"}, sshOpts...), "-i", key, "localhost", ";", "echo", "SSH-EXIT=$?", ";", "sleep", "600"), " ")
 	tmux("new-session", "-d", "-s", "guest", "-x", "100", "-y", "30", "sh", "-c", guest)
 	screen := wait("guest", "following the presenter (decoder:L1:H2:B0:q5:k5)")
-	for _, w := range []string{"Map", "forbidden with mass"} {
+	for _, w := range []string{"Map", "■ leak"} {
 		if !strings.Contains(screen, w) {
 			t.Errorf("the guest's TUI lacks %q:\n%s", w, screen)
 		}
