@@ -395,6 +395,7 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 			m.cmpErr = msg.err
 		} else {
 			m.cmp[msg.block] = msg.heads
+			m.screens[ScreenCompare].(*compareScreen).land()
 		}
 		return nil
 	case traceMsg:
@@ -566,6 +567,9 @@ func (m *Model) nextScreen(dir int) int {
 func (m *Model) switchTo(i int) {
 	m.active = i
 	m.showHelp = false
+	if i == ScreenCompare {
+		m.screens[ScreenCompare].(*compareScreen).land()
+	}
 }
 
 func (m *Model) screenNames() []string {

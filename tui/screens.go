@@ -663,7 +663,8 @@ type compareScreen struct {
 	memoErr error
 	made    bool
 	layout  views.CompareLayout
-	next    int // table row the last enter went to
+	next    int  // table row the last enter went to
+	landed  bool // opened on the most changed head already
 }
 
 func newCompare(m *Model) *compareScreen { return &compareScreen{base: base{m: m}, next: -1} }
@@ -710,8 +711,26 @@ func (s *compareScreen) Update(msg tea.Msg) tea.Cmd {
 func (s *compareScreen) goHead(h views.HeadChange) {
 	m := s.m
 	m.layer, m.head, m.q, m.k = h.Layer, h.Head, h.Q, h.K
-	m.setMsg(fmt.Sprintf("L%d H%d: mean total variation %s, largest |A−B| %s at q%d k%d", h.Layer, h.Head,
+	rank := "most changed head"
+	if s.next > 0 {
+		rank = fmt.Sprintf("changed head %d", s.next+1)
+	}
+	m.setMsg(fmt.Sprintf("%s: L%d H%d, mean total variation %s (0 = same, 1 = disjoint), largest |A−B| %s at q%d k%d · enter: the next", rank, h.Layer, h.Head,
 		views.FormatValue(h.TV), views.FormatValue(h.MaxAbs), h.Q, h.K), m.st.Accent)
+}
+
+// land opens Compare on the most changed head the first time its table is
+// there (not on layer 0 head 0, which often did not change at all).
+func (s *compareScreen) land() {
+	m := s.m
+	if s.landed || m.active != ScreenCompare {
+		return
+	}
+	if heads := m.cmp[m.block]; len(heads) > 0 {
+		s.landed = true
+		s.next = 0
+		s.goHead(heads[0])
+	}
 }
 
 func (s *compareScreen) Refresh() {
@@ -746,7 +765,7 @@ func (s *compareScreen) Refresh() {
 		return
 	}
 	cd := &views.CompareData{NameA: strings.Join(m.set.Examples[0], " "), NameB: strings.Join(m.set.Examples[1], " "),
-		Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Diff: s.memoMD}
+		Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Diff: s.memoMD, Explain: analysis.TVDoc}
 	heads, done := m.cmp[m.block]
 	cd.Heads, cd.Done = heads, done
 	switch {

@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"sort"
 	"strconv"
 	"sync/atomic"
 	"time"
@@ -131,60 +130,15 @@ func compareHeads(j *job, set *loader.Set, blockName string, batch int) ([]views
 	if ba == nil || bb == nil {
 		return nil, errors.New("block " + blockName + " missing")
 	}
-	Q, K := ba.Queries, ba.Keys
-	wa, wb := make([]float32, Q*K), make([]float32, Q*K)
-	total := int64(ba.Layers * ba.Heads)
-	var out []views.HeadChange
-	for l := 0; l < ba.Layers; l++ {
-		for h := 0; h < ba.Heads; h++ {
-			if err := j.ctx.Err(); err != nil {
-				return nil, err
-			}
-			if err := ba.ReadAttn(l, batch, h, wa); err != nil {
-				return nil, err
-			}
-			if err := bb.ReadAttn(l, batch, h, wb); err != nil {
-				return nil, err
-			}
-			out = append(out, headChange(l, h, Q, K, wa, wb))
-			j.report(int64(len(out)), total)
-		}
+	hs, err := analysis.CompareBlocks(j.ctx, ba, bb, batch, j.report)
+	if err != nil {
+		return nil, err
 	}
-	sortChanges(out)
+	out := make([]views.HeadChange, len(hs))
+	for i, h := range hs {
+		out[i] = views.HeadChange{Layer: h.Layer, Head: h.Head, TV: h.TV, MaxAbs: h.MaxAbs, Q: h.Q, K: h.K}
+	}
 	return out, nil
-}
-
-// headChange is the mean total variation distance over rows, 0.5 sum_k
-// |A-B| (common practice for comparing distributions), and the largest
-// |A-B|. A NaN cell makes both NaN, which sorts first: NaN is a change.
-func headChange(l, h, Q, K int, a, b []float32) views.HeadChange {
-	hc := views.HeadChange{Layer: l, Head: h}
-	var tv float64
-	for q := 0; q < Q; q++ {
-		var row float64
-		for k := 0; k < K; k++ {
-			d := math.Abs(float64(a[q*K+k]) - float64(b[q*K+k]))
-			row += d
-			if d > hc.MaxAbs || (math.IsNaN(d) && !math.IsNaN(hc.MaxAbs)) {
-				hc.MaxAbs, hc.Q, hc.K = d, q, k
-			}
-		}
-		tv += 0.5 * row
-	}
-	if Q > 0 {
-		hc.TV = tv / float64(Q)
-	}
-	return hc
-}
-
-func sortChanges(hs []views.HeadChange) {
-	key := func(v float64) float64 {
-		if math.IsNaN(v) {
-			return math.Inf(1)
-		}
-		return v
-	}
-	sort.SliceStable(hs, func(i, j int) bool { return key(hs[i].TV) > key(hs[j].TV) })
 }
 
 // traceMethods are the methods the Trace screen shows, in column order.

@@ -28,6 +28,9 @@ type CompareData struct {
 	Heads    []HeadChange
 	Done     bool
 	Progress string
+	// Explain says what TV measures (shown under the table when there is
+	// room, else in short in its title).
+	Explain string
 }
 
 // CompareLayout is where the map and the table went.
@@ -84,6 +87,19 @@ func Compare(d *CompareData, w, h int, opt MapOptions, sel int, st Styles) (*Can
 	cols := []column{{"head", 9, false}, {"TV", 7, true}, {"max|Δ|", 7, true}, {"at", 11, false}}
 	drawRow(c, l.TableX, ty, cols, func(col column) string { return col.title }, st.Faint)
 	l.TableH = min(l.TableH, max(0, h-l.TableY))
+	if d.Explain != "" {
+		if side {
+			lines := wrap("TV: "+d.Explain, compareTableW)
+			if len(lines)+3 < l.TableH {
+				l.TableH -= len(lines) + 1
+				for i, ln := range lines {
+					c.Text(l.TableX, h-len(lines)+i, ln, st.Faint, -1)
+				}
+			}
+		} else {
+			c.Text(l.TableX+StringWidth(head)+2, ty-1, "TV: 0 = same rows, 1 = no key in common", st.Faint, -1)
+		}
+	}
 	vis := min(len(d.Heads), l.TableH)
 	l.Start = scrollStart(sel, len(d.Heads), vis)
 	for i := 0; i < vis; i++ {
