@@ -23,6 +23,7 @@ type KeyMap struct {
 	Colormap                 key.Binding
 	Order                    key.Binding
 	Numbers                  key.Binding
+	Inspect                  key.Binding
 	Jump                     key.Binding
 	Help, Back, Quit         key.Binding
 }
@@ -64,6 +65,8 @@ func DefaultKeyMap() KeyMap {
 		Sink:        b("z", "hide/show sink column", "z"),
 		Colormap:    b("c", "next colormap", "c"),
 		Order:       b("o", "order by position/share", "o"),
+		Numbers:     b("#", "values in the cells", "#"),
+		Inspect:     b("i", "row inspector", "i"),
 		Jump:        b("1-5", "go to screen", "1", "2", "3", "4", "5"),
 		Help:        b("?", "help", "?"),
 		Back:        b("esc", "back", "esc"),

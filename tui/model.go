@@ -748,6 +748,7 @@ func (m *Model) syncKeys() {
 	k.Stat.SetEnabled(s == ScreenSurvey)
 	k.Order.SetEnabled(s == ScreenTrace || s == ScreenSurvey)
 	k.Numbers.SetEnabled(s == ScreenSurvey)
+	k.Inspect.SetEnabled(s == ScreenMap)
 	k.FindNext.SetEnabled(len(m.matches) > 0)
 	k.FindPrev.SetEnabled(len(m.matches) > 0)
 	k.Find.SetEnabled(s != ScreenFindings)

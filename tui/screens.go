@@ -277,8 +277,9 @@ type mapMemo struct {
 
 type mapScreen struct {
 	base
-	memo   mapMemo
-	layout views.MapLayout
+	memo    mapMemo
+	layout  views.MapLayout
+	inspect bool // the row inspector beside (or under) the map
 }
 
 func newMapScreen(m *Model) *mapScreen { return &mapScreen{base: base{m: m}} }
@@ -293,8 +294,10 @@ func mapFull(k KeyMap) []key.Binding {
 	return []key.Binding{k.Up, k.Down, k.Left, k.Right, k.PageUp, k.PageDown, k.ZoomIn, k.ZoomOut, k.Agg, k.Scale, k.Sink}
 }
 
-func (s *mapScreen) ShortHelp() []key.Binding  { return mapShort(s.m.keys) }
-func (s *mapScreen) FullHelp() [][]key.Binding { return [][]key.Binding{mapFull(s.m.keys)} }
+func (s *mapScreen) ShortHelp() []key.Binding { return append(mapShort(s.m.keys), s.m.keys.Inspect) }
+func (s *mapScreen) FullHelp() [][]key.Binding {
+	return [][]key.Binding{append(mapFull(s.m.keys), s.m.keys.Inspect)}
+}
 
 // mapUpdate handles the keys and mouse of a heat map (Map and Compare).
 func mapUpdate(m *Model, l views.MapLayout, msg tea.Msg) (handled bool) {
@@ -360,8 +363,65 @@ func mapUpdate(m *Model, l views.MapLayout, msg tea.Msg) (handled bool) {
 }
 
 func (s *mapScreen) Update(msg tea.Msg) tea.Cmd {
+	if km, ok := msg.(tea.KeyPressMsg); ok && key.Matches(km, s.m.keys.Inspect) {
+		s.inspect = !s.inspect
+		return nil
+	}
 	mapUpdate(s.m, s.layout, msg)
 	return nil
+}
+
+// rowPanelW is the row inspector's width beside the map; below
+// rowPanelMinW columns of body it goes under the map instead.
+const (
+	rowPanelW    = 40
+	rowPanelMinW = 110
+)
+
+// rowData prepares the row inspector of the cursor's query.
+func (m *Model) rowData(md *views.MapData, top int) *views.RowData {
+	bi := m.bi()
+	b := bi.blk
+	q := m.q
+	row := make([]float32, b.Keys)
+	for k := range row {
+		row[k] = md.At(q, k)
+	}
+	var rules []analysis.Rule
+	judged := true
+	if r := bi.rules; r != nil && len(r.Active()) > 0 {
+		judged = r.Judged(m.batch, q)
+		if judged {
+			rules = make([]analysis.Rule, b.Keys)
+			if err := r.CellRow(m.batch, m.head, q, rules); err != nil {
+				rules = nil
+			}
+		}
+	}
+	sum := analysis.SummarizeRow(row, rules, top, float32(m.anaOpt.Tol))
+	qt, kt := bi.tokens(m.batch)
+	d := &views.RowData{Query: q, Position: q + b.QueryOffset, Judged: judged, Sum: sum.Sum, Entropy: sum.Entropy,
+		Forbidden: sum.Forbidden, ForbidKeys: sum.ForbiddenKeys, Keys: b.Keys}
+	if bi.rules != nil {
+		d.Position = bi.rules.Pos(m.batch, q)
+	}
+	if q < len(qt) {
+		d.QueryToken = qt[q]
+	}
+	for _, rk := range sum.Top {
+		k := views.RowKey{Key: rk.Key, Weight: rk.Weight, Status: "allowed"}
+		if rk.Key < len(kt) {
+			k.Token = kt[rk.Key]
+		}
+		switch {
+		case !judged:
+			k.Status = "not judged"
+		case rk.Rule != analysis.RuleNone:
+			k.Status, k.Forbidden = "forbidden by "+rk.Rule.String(), true
+		}
+		d.Top = append(d.Top, k)
+	}
+	return d
 }
 
 // mapData returns the MapData of the current head of example 0, memoised.
@@ -420,9 +480,27 @@ func (s *mapScreen) Refresh() {
 		s.canvas, s.view = nil, m.st.Bad.Lip().Render("cannot read this head: "+err.Error())
 		return
 	}
-	c, l := m.drawMap(md, m.headKey(0), false, s.w, s.h)
+	if !s.inspect {
+		c, l := m.drawMap(md, m.headKey(0), false, s.w, s.h)
+		s.layout = l
+		s.show(c)
+		return
+	}
+	// the map beside the inspector when wide, above it when not; the
+	// map keeps the top-left corner, so mouse positions stay its own
+	mw, mh := s.w-rowPanelW-1, s.h
+	px, py, pw, ph := mw+1, 0, rowPanelW, s.h
+	if s.w < rowPanelMinW {
+		ph = min(16, max(6, s.h/3))
+		mw, mh = s.w, s.h-ph-1
+		px, py, pw = 0, mh+1, s.w
+	}
+	c, l := m.drawMap(md, m.headKey(0), false, mw, mh)
 	s.layout = l
-	s.show(c)
+	all := views.NewCanvas(s.w, s.h)
+	all.Blit(0, 0, c)
+	all.Blit(px, py, views.RowPanel(m.rowData(md, max(3, ph-5)), pw, ph, m.st))
+	s.show(all)
 }
 
 // --- Findings -------------------------------------------------------------

@@ -9,6 +9,7 @@ import (
 	"github.com/heed-dev/heed/internal/words"
 	"os/exec"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"sync"
 	"testing"
@@ -482,5 +483,55 @@ func TestFlowSurveyShowsOneLeakingCell(t *testing.T) {
 	f.see("leak mass (per row)")
 	f.key("o")
 	f.see("rank  layer  head", "     1      7     5")
+	f.quit()
+}
+
+// rowTopScript gives numpy's heaviest keys of one row of decoder/attn
+// [layer, batch, head, q, k] (argv: file layer batch head q).
+const rowTopScript = `
+import json, sys
+import numpy as np
+a = np.load(sys.argv[1])["decoder/attn"].astype(np.float32)
+l, b, h, q = (int(x) for x in sys.argv[2:6])
+row = a[l, b, h, q]
+top = np.argsort(-row, kind="stable")[:3]
+print(json.dumps({"keys": [int(k) for k in top], "sum": float(row.sum())}))
+`
+
+// The row inspector (i on the Map) lists the cursor row's heaviest keys
+// as numpy orders them, the leaking one marked with its rule; # writes the
+// Survey's values in its cells.
+func TestFlowRowInspectorAndNumbers(t *testing.T) {
+	file := makeExport(t, "leak.npz", "--leak")
+	var want struct{ Layer, Batch, Head, Q, K int }
+	numpyRef(t, worstLeakScript, &want, file)
+	var top struct {
+		Keys []int
+		Sum  float64
+	}
+	numpyRef(t, rowTopScript, &top, file, strconv.Itoa(want.Layer), strconv.Itoa(want.Batch), strconv.Itoa(want.Head), strconv.Itoa(want.Q))
+	f := start(t, 120, 40, Options{}, file)
+	f.see("1 finding")
+	f.key("#")
+	f.see(" 0.") // a value written in a cell
+	f.key("n")
+	f.see("finding 1 of 1")
+	f.key("i")
+	f.see("row q"+strconv.Itoa(want.Q), "heaviest keys:", fmt.Sprintf("k%d", want.K))
+	frame := f.rec.latest()
+	prev := -1
+	for _, k := range top.Keys {
+		i := strings.Index(frame, fmt.Sprintf("\nk%d ", k))
+		if i < 0 {
+			i = strings.Index(frame, fmt.Sprintf(" k%d ", k))
+		}
+		if i < prev {
+			t.Errorf("key %d out of numpy's order %v:\n%s", k, top.Keys, frame)
+		}
+		prev = i
+	}
+	if !strings.Contains(frame, "forbidden by causal") {
+		t.Errorf("the leaking key is not marked:\n%s", frame)
+	}
 	f.quit()
 }
