@@ -173,7 +173,7 @@ func TestLeakJourney(t *testing.T) {
 			s := tm.see("Survey · decoder", "1 finding")
 			checkWidth(t, s, tc.w)
 			tm.keys("3")
-			s = tm.see("Findings · 1, worst first", "Causal mask shifted by +1", "causal", "L1 H2 B0 q2 k3")
+			s = tm.see("Findings · 1, worst first", "Causal mask shifted by +1", "causal", "decoder:L1:H2:B0:q2:k3")
 			checkWidth(t, s, tc.w)
 			tm.keys("Enter")
 			// The worst cell: query 2 " quiet" attends to key 3 " river".
@@ -191,10 +191,10 @@ func TestLeakJourney(t *testing.T) {
 			checkWidth(t, s, tc.w)
 			tm.keys("Escape")
 			tm.tmux("resize-window", "-t", "heed", "-x", "200", "-y", "60")
-			s = tm.see("forbidden with mass", "15  lake")
+			s = tm.see(" leak", "15  lake")
 			checkWidth(t, s, 200)
 			tm.keys("y")
-			tm.see("copied decoder:L1:H2:q2")
+			tm.see("copied decoder:L1:H2:q2:k3")
 			tm.keys("q")
 			if st := tm.exited(); st != "0" {
 				t.Errorf("exit status %s", st)
@@ -241,7 +241,7 @@ func TestCompareTwoExports(t *testing.T) {
 	tm := run(t, 200, 60, colourEnv, a, b)
 	tm.see("5 Compare")
 	tm.keys("5")
-	tm.see("most changed heads", "L1 H2")
+	tm.see("most changed heads", "most changed head: L1 H", "TV: mean total variation")
 	tm.keys("q")
 	if st := tm.exited(); st != "0" {
 		t.Errorf("exit status %s", st)
@@ -260,4 +260,64 @@ func TestBadInput(t *testing.T) {
 		t.Errorf("exit status %s, want 2", st)
 	}
 	tm.see("heed: ", "bad.npz")
+}
+
+// oneCellScript writes a 12 x 12-head causal export of 300 tokens whose one
+// leaking cell is layer 7, head 5, query 150, key 201 (weight 0.01).
+const oneCellScript = `
+import json, sys
+import numpy as np
+rng = np.random.default_rng(3)
+L, H, T = 12, 12, 300
+s = rng.normal(size=(L, 1, H, T, T)).astype(np.float32)
+s[..., np.triu(np.ones((T, T), dtype=bool), k=1)] = -np.inf
+a = np.exp(s - s.max(-1, keepdims=True)); a /= a.sum(-1, keepdims=True)
+a[7, 0, 5, 150, :151] *= 0.99; a[7, 0, 5, 150, 201] = 0.01
+meta = {"format": "heed-export/1", "blocks": {"decoder": {"kind": "causal", "axes": "layer batch head query key"}}}
+np.savez(sys.argv[1], **{"decoder/attn": a.astype(np.float16), "meta": np.array(json.dumps(meta))})
+`
+
+// TestOneKeyToTheLeak: on a 12 x 12-head export with one leaking cell, the
+// Survey marks the head, and one key (n) reaches the cell, centred on the
+// Map, with its rule and mass on screen; i shows its row.
+func TestOneKeyToTheLeak(t *testing.T) {
+	needTools(t)
+	file := filepath.Join(t.TempDir(), "one.npz")
+	if out, err := exec.Command("/usr/bin/python3", "-c", oneCellScript, file).CombinedOutput(); err != nil {
+		t.Fatalf("numpy: %v\n%s", err, out)
+	}
+	for _, tc := range []struct {
+		name string
+		env  []string
+	}{{"colour", colourEnv}, {"no_colour", plainEnv}} {
+		t.Run(tc.name, func(t *testing.T) {
+			tm := run(t, 120, 40, tc.env, file)
+			s := tm.see("Survey · decoder", "1 finding", "forbidden mass (any amount)")
+			for _, ln := range strings.Split(s, "\n") {
+				if f := strings.Fields(ln); len(f) > 0 && f[0] == "L7" && !strings.Contains(ln, "!") {
+					t.Errorf("the Survey does not mark layer 7:\n%s", s)
+				}
+			}
+			tm.keys("n")
+			s = tm.see("[2 Map]", "finding 1 of 1", "causal leak", `q 150 → k 201`, "forbidden by causal", "decoder  L7  H5  q150  k201")
+			checkWidth(t, s, 120)
+			// centred: the row label of query 150 is in the middle third of the map
+			lines := strings.Split(s, "\n")
+			row := -1
+			for i, ln := range lines {
+				if strings.HasPrefix(strings.TrimSpace(ln), "150") {
+					row = i
+				}
+			}
+			if row < len(lines)/4 || row > 3*len(lines)/4 {
+				t.Errorf("query 150 is on line %d of %d, not near the middle:\n%s", row, len(lines), s)
+			}
+			tm.keys("i")
+			tm.see("row q150", "heaviest keys:", "forbidden mass 0.01")
+			tm.keys("q")
+			if st := tm.exited(); st != "0" {
+				t.Errorf("exit status %s", st)
+			}
+		})
+	}
 }

@@ -897,25 +897,48 @@ func (m *Model) View() tea.View {
 }
 
 // fullHelp lays the help groups out in as many rows of columns as the
-// width needs, so that no key is cut off.
+// width needs, so that no key is cut off; columns are cut to fewer keys
+// until the whole help fits the height.
 func (m *Model) fullHelp() string {
 	hm := help.New()
 	hm.Styles = m.help.Styles
-	var rows []string
-	var cur [][]key.Binding
-	for _, g := range m.helpKeys().groups {
-		try := append(append([][]key.Binding(nil), cur...), g)
-		if len(cur) > 0 && lipgloss.Width(hm.FullHelpView(try)) > m.w {
-			rows = append(rows, hm.FullHelpView(cur))
-			cur = [][]key.Binding{g}
-			continue
+	_, bh := m.bodySize()
+	var out string
+	for rows := 16; rows >= 3; rows-- {
+		var cols [][]key.Binding
+		for _, g := range m.helpKeys().groups {
+			var on []key.Binding
+			for _, b := range g {
+				if b.Enabled() {
+					on = append(on, b)
+				}
+			}
+			for len(on) > 0 {
+				n := min(rows, len(on))
+				cols = append(cols, on[:n])
+				on = on[n:]
+			}
 		}
-		cur = try
+		var lines []string
+		var cur [][]key.Binding
+		for _, c := range cols {
+			try := append(append([][]key.Binding(nil), cur...), c)
+			if len(cur) > 0 && lipgloss.Width(hm.FullHelpView(try)) > m.w {
+				lines = append(lines, hm.FullHelpView(cur))
+				cur = [][]key.Binding{c}
+				continue
+			}
+			cur = try
+		}
+		if len(cur) > 0 {
+			lines = append(lines, hm.FullHelpView(cur))
+		}
+		out = strings.Join(lines, "\n\n")
+		if strings.Count(out, "\n")+1 <= bh-2 {
+			break
+		}
 	}
-	if len(cur) > 0 {
-		rows = append(rows, hm.FullHelpView(cur))
-	}
-	return strings.Join(rows, "\n\n")
+	return out
 }
 
 // tabIndex is the active screen's position among the shown tabs.

@@ -147,11 +147,12 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 		return c, l
 	}
 	y++
-	cols := []column{{"rule", 9, false}, {"block", 8, false}, {"layers", 7, false}, {"heads", 7, false},
-		{"batch", 5, false}, {"mass", 9, true}, {"cells", 7, true}, {"max", 7, true}, {"worst", 20, false}, {"offsets", 12, false}}
+	// the worst cell's location names the block: no column of its own
+	cols := []column{{"rule", 9, false}, {"layers", 7, false}, {"heads", 7, false},
+		{"batch", 5, false}, {"mass", 9, true}, {"cells", 7, true}, {"max", 7, true}, {"worst", 24, false}, {"offsets", 12, false}}
 	// Narrow terminals drop the least needed columns first.
 	for width(cols) > w && len(cols) > 6 {
-		drop := map[string]bool{"offsets": true, "block": true, "cells": true, "batch": true}
+		drop := map[string]bool{"offsets": true, "cells": true, "batch": true}
 		for i := len(cols) - 1; i >= 0; i-- {
 			if drop[cols[i].title] {
 				cols = append(cols[:i], cols[i+1:]...)
