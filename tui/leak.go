@@ -50,7 +50,7 @@ func (m *Model) showFinding(i int) {
 	m.screens[ScreenFindings].(*findingsScreen).sel = i
 	m.switchTo(ScreenMap)
 	if w.Key < 0 {
-		m.k = 0
+		m.sel.K = 0
 	}
 	bi := m.bi()
 	b := bi.blk
@@ -66,14 +66,14 @@ func (m *Model) showFinding(i int) {
 			}
 			return nil
 		}
-		if e, ok, err := analysis.LeakExtent(bi.rules, f.Rule, m.batch, m.head, float32(m.anaOpt.Tol), row); err == nil && ok {
+		if e, ok, err := analysis.LeakExtent(bi.rules, f.Rule, m.sel.Batch, m.sel.Head, float32(m.anaOpt.Tol), row); err == nil && ok {
 			box = e
 			extent = fmt.Sprintf(" · in this head: %s in q %s, k %s, mass %s",
 				words.Count(e.Cells, "cell", "cells"), span(e.Q0, e.Q1), span(e.K0, e.K1), views.FormatValue(e.Mass))
 		}
 	}
 	if err == nil {
-		m.mapOpt.Zoom = m.zoomFor(md, box)
+		m.sel.Map.Zoom = m.zoomFor(md, box)
 		m.centre(md)
 	}
 	what := f.Rule.String()
@@ -99,8 +99,8 @@ func (m *Model) zoomFor(md *views.MapData, box analysis.Extent) int {
 	bw, bh := m.bodySize()
 	best := 0
 	for z := 0; z < 64; z++ {
-		opt := m.mapOpt
-		opt.Zoom, opt.CursorQ, opt.CursorK = z, m.q, m.k
+		opt := m.sel.Map
+		opt.Zoom, opt.CursorQ, opt.CursorK = z, m.sel.Q, m.sel.K
 		l := views.LayoutMap(md, bw, bh, opt, m.st)
 		if l.TooSmall || l.Zoom != z {
 			break
@@ -120,9 +120,9 @@ func (m *Model) zoomFor(md *views.MapData, box analysis.Extent) int {
 // the view (LayoutMap keeps it inside the matrix).
 func (m *Model) centre(md *views.MapData) {
 	bw, bh := m.bodySize()
-	opt := m.mapOpt
-	opt.CursorQ, opt.CursorK = m.q, m.k
+	opt := m.sel.Map
+	opt.CursorQ, opt.CursorK = m.sel.Q, m.sel.K
 	l := views.LayoutMap(md, bw, bh, opt, m.st)
-	m.mapOpt.Q0 = max(0, m.q-l.PageRows()/2)
-	m.mapOpt.K0 = max(l.KeyStart, m.k-l.PageCols()/2)
+	m.sel.Map.Q0 = max(0, m.sel.Q-l.PageRows()/2)
+	m.sel.Map.K0 = max(l.KeyStart, m.sel.K-l.PageCols()/2)
 }

@@ -129,10 +129,8 @@ type Model struct {
 	// Survey then shows that item's statistics
 	batchPicked bool
 
-	// location
-	block, layer, head, batch int
-	q, k                      int
-	mapOpt                    views.MapOptions
+	// sel is the one selection every screen shows
+	sel Selection
 }
 
 // New opens the first example of set (and the second, for Compare, when the
@@ -251,9 +249,9 @@ func (m *Model) Close() error {
 // Location is where the model is: block, layer, head, the batch item (when
 // the block has more than one), and the cursor's query and key.
 func (m *Model) Location() words.Loc {
-	l := words.Loc{Block: m.bi().blk.Name, Layer: m.layer, Head: m.head, Batch: -1, Query: m.q, Key: m.k}
+	l := words.Loc{Block: m.bi().blk.Name, Layer: m.sel.Layer, Head: m.sel.Head, Batch: -1, Query: m.sel.Q, Key: m.sel.K}
 	if m.bi().blk.Batch > 1 {
-		l.Batch = m.batch
+		l.Batch = m.sel.Batch
 	}
 	return l
 }
@@ -273,7 +271,7 @@ func (m *Model) Screen() int { return m.active }
 // Result returns the analysis once it has finished (nil before).
 func (m *Model) Result() *analysis.Result { return m.res }
 
-func (m *Model) bi() *blockInfo { return m.d.blocks[m.block] }
+func (m *Model) bi() *blockInfo { return m.d.blocks[m.sel.Block] }
 
 func (m *Model) restyle() {
 	cm := views.Colormaps()[m.cmIndex]
@@ -353,6 +351,9 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 			m.dark = msg.IsDark()
 			m.restyle()
 		}
+		return nil
+	case selectMsg:
+		m.applySelect(msg)
 		return nil
 	case GotoMsg:
 		if err := m.gotoLoc(msg.Loc, false); err != nil {
@@ -529,15 +530,15 @@ func (m *Model) key(msg tea.KeyPressMsg) tea.Cmd {
 	case key.Matches(msg, k.PrevHead):
 		m.moveHead(-1)
 	case key.Matches(msg, k.NextBatch):
-		m.batch = (m.batch + 1) % m.bi().blk.Batch
+		m.sel.Batch = (m.sel.Batch + 1) % m.bi().blk.Batch
 		m.batchPicked = true
 	case key.Matches(msg, k.PrevBatch):
-		m.batch = (m.batch + m.bi().blk.Batch - 1) % m.bi().blk.Batch
+		m.sel.Batch = (m.sel.Batch + m.bi().blk.Batch - 1) % m.bi().blk.Batch
 		m.batchPicked = true
 	case key.Matches(msg, k.NextBlock):
-		m.setBlock((m.block + 1) % len(m.d.blocks))
+		m.setBlock((m.sel.Block + 1) % len(m.d.blocks))
 	case key.Matches(msg, k.PrevBlock):
-		m.setBlock((m.block + len(m.d.blocks) - 1) % len(m.d.blocks))
+		m.setBlock((m.sel.Block + len(m.d.blocks) - 1) % len(m.d.blocks))
 	default:
 		return m.screens[m.active].Update(msg)
 	}
@@ -598,20 +599,20 @@ func (m *Model) clickTab(x int) {
 
 func (m *Model) moveLayer(d int) {
 	n := m.bi().blk.Layers
-	m.layer = (m.layer + d + n) % n
+	m.selectSet(func(s *Selection) { s.Layer = (s.Layer + d + n) % n })
 }
 
 func (m *Model) moveHead(d int) {
 	n := m.bi().blk.Heads
-	m.head = (m.head + d + n) % n
+	m.selectSet(func(s *Selection) { s.Head = (s.Head + d + n) % n })
 }
 
 func (m *Model) setBlock(i int) {
-	m.block = i
+	m.sel.Block = i
 	b := m.bi().blk
-	m.layer, m.head, m.batch = min(m.layer, b.Layers-1), min(m.head, b.Heads-1), min(m.batch, b.Batch-1)
-	m.q, m.k = min(m.q, b.Queries-1), min(m.k, b.Keys-1)
-	m.mapOpt.Q0, m.mapOpt.K0, m.mapOpt.Zoom = 0, 0, 0
+	m.sel.Layer, m.sel.Head, m.sel.Batch = min(m.sel.Layer, b.Layers-1), min(m.sel.Head, b.Heads-1), min(m.sel.Batch, b.Batch-1)
+	m.sel.Q, m.sel.K = min(m.sel.Q, b.Queries-1), min(m.sel.K, b.Keys-1)
+	m.sel.Map.Q0, m.sel.Map.K0, m.sel.Map.Zoom = 0, 0, 0
 	if m.active == ScreenCompare && !m.hasCompare() {
 		m.active = ScreenMap
 	}
@@ -641,16 +642,16 @@ func (m *Model) gotoLoc(s string, start bool) error {
 		return fmt.Errorf("tui: location %s is outside block %s (layers %d, heads %d, batch %d, queries %d, keys %d)",
 			s, b.Name, b.Layers, b.Heads, b.Batch, b.Queries, b.Keys)
 	}
-	if bi != m.block {
+	if bi != m.sel.Block {
 		m.setBlock(bi)
 	}
-	m.layer, m.head, m.batch = l.Layer, l.Head, l.Batch
+	m.sel.Layer, m.sel.Head, m.sel.Batch = l.Layer, l.Head, l.Batch
 	if l.Query >= 0 {
-		m.q = l.Query
+		m.sel.Q = l.Query
 		if l.Key >= 0 {
-			m.k = l.Key
+			m.sel.K = l.Key
 		} else if b.Kind != loader.KindCross {
-			m.k = min(l.Query+b.QueryOffset, b.Keys-1)
+			m.sel.K = min(l.Query+b.QueryOffset, b.Keys-1)
 		}
 		if start {
 			m.active = ScreenMap
@@ -667,7 +668,7 @@ func (m *Model) search(text string) {
 	if m.query == "" {
 		return
 	}
-	_, ktoks := m.bi().tokens(m.batch)
+	_, ktoks := m.bi().tokens(m.sel.Batch)
 	if ktoks == nil {
 		m.setMsg("this export has no tokens", m.st.Warn)
 		return
@@ -684,7 +685,7 @@ func (m *Model) search(text string) {
 	}
 	m.matchAt = 0
 	for i, p := range m.matches {
-		if p >= m.k {
+		if p >= m.sel.K {
 			m.matchAt = i
 			break
 		}
@@ -706,16 +707,16 @@ func (m *Model) stepMatch(d int) {
 func (m *Model) showMatch() {
 	p := m.matches[m.matchAt]
 	b := m.bi().blk
-	m.k = p
+	m.sel.K = p
 	if b.Kind != loader.KindCross && b.QuerySide == b.KeySide {
 		if q := p - b.QueryOffset; q >= 0 && q < b.Queries {
-			m.q = q
+			m.sel.Q = q
 		}
 	}
 	if tr, ok := m.screens[ScreenTrace].(*traceScreen); ok {
 		tr.sel = p
 	}
-	_, ktoks := m.bi().tokens(m.batch)
+	_, ktoks := m.bi().tokens(m.sel.Batch)
 	m.setMsg(fmt.Sprintf("%q: match %d of %d, position %d %q · ctrl+n/ctrl+p for more", m.query, m.matchAt+1, len(m.matches), p, ktoks[p]), m.st.Accent)
 }
 
@@ -772,7 +773,7 @@ func (m *Model) ensureWork() tea.Cmd {
 	switch m.active {
 	case ScreenTrace:
 		b := m.bi().blk
-		tk := traceKey{m.block, m.batch, m.q}
+		tk := traceKey{m.sel.Block, m.sel.Batch, m.sel.Q}
 		if _, ok := m.traces[tk]; ok || m.tracing[tk] {
 			return nil
 		}
@@ -782,13 +783,13 @@ func (m *Model) ensureWork() tea.Cmd {
 		if !m.hasCompare() || m.cmpJob != nil {
 			return nil
 		}
-		if _, ok := m.cmp[m.block]; ok {
+		if _, ok := m.cmp[m.sel.Block]; ok {
 			return nil
 		}
 		m.cmpJob = newJob(m.ctx, "compare")
-		m.cmpBlock = m.block
+		m.cmpBlock = m.sel.Block
 		m.cmpFrac = 0
-		return tea.Batch(runCompare(m.cmpJob, m.set, m.block, m.bi().blk.Name, m.batch), m.cmpJob.wait())
+		return tea.Batch(runCompare(m.cmpJob, m.set, m.sel.Block, m.bi().blk.Name, m.sel.Batch), m.cmpJob.wait())
 	}
 	return nil
 }
@@ -815,9 +816,9 @@ func (m *Model) helpKeys() keyHelp {
 
 func (m *Model) statusFields() []views.Field {
 	b := m.bi().blk
-	f := []views.Field{{Value: b.Name}, {Value: "L" + itoa(m.layer)}, {Value: "H" + itoa(m.head)}}
+	f := []views.Field{{Value: b.Name}, {Value: "L" + itoa(m.sel.Layer)}, {Value: "H" + itoa(m.sel.Head)}}
 	if b.Batch > 1 {
-		f = append(f, views.Field{Value: "B" + itoa(m.batch)})
+		f = append(f, views.Field{Value: "B" + itoa(m.sel.Batch)})
 	}
 	if b.AxesFrom == "rank" && b.AxesOther != "" {
 		// how the array was read, until someone says (Findings has the words)
@@ -827,11 +828,11 @@ func (m *Model) statusFields() []views.Field {
 		f = append(f, views.Field{Name: "inferred", Value: string(b.Kind)})
 	}
 	if m.active == ScreenMap || m.active == ScreenCompare || m.active == ScreenTrace {
-		f = append(f, views.Field{Value: "q" + itoa(m.q)})
+		f = append(f, views.Field{Value: "q" + itoa(m.sel.Q)})
 	}
 	if m.active == ScreenMap || m.active == ScreenCompare {
-		f = append(f, views.Field{Value: "k" + itoa(m.k)})
-		if w, err := m.d.weight(m.headKey(0), m.q*b.Keys+m.k); err == nil {
+		f = append(f, views.Field{Value: "k" + itoa(m.sel.K)})
+		if w, err := m.d.weight(m.headKey(0), m.sel.Q*b.Keys+m.sel.K); err == nil {
 			f = append(f, views.Field{Name: "w", Value: views.FormatWeight(w)})
 		}
 	}
@@ -839,7 +840,7 @@ func (m *Model) statusFields() []views.Field {
 }
 
 func (m *Model) headKey(example int) headKey {
-	return headKey{example: example, block: m.block, layer: m.layer, batch: m.batch, head: m.head}
+	return headKey{example: example, block: m.sel.Block, layer: m.sel.Layer, batch: m.sel.Batch, head: m.sel.Head}
 }
 
 // View draws the tab bar, the focused screen (or the help), the status bar

@@ -46,7 +46,7 @@ func TestMapFromFloat16Patterns(t *testing.T) {
 	if err := blk.ReadAttn(1, 0, 1, w); err != nil {
 		t.Fatal(err)
 	}
-	want := "w " + views.FormatWeight(w[m.q*blk.Keys+m.k])
+	want := "w " + views.FormatWeight(w[m.sel.Q*blk.Keys+m.sel.K])
 	if !strings.Contains(v, want) {
 		t.Errorf("status bar lacks %q:\n%s", want, v)
 	}
@@ -76,11 +76,11 @@ func TestRawBuffersReused(t *testing.T) {
 			reused++
 		}
 		want := make([]uint16, n)
-		if _, err := blk.ReadRaw16(m.layer, m.batch, m.head, want); err != nil {
+		if _, err := blk.ReadRaw16(m.sel.Layer, m.sel.Batch, m.sel.Head, want); err != nil {
 			t.Fatal(err)
 		}
 		if !slices.Equal(md.Raw, want) {
-			t.Fatalf("step %d (L%d H%d): the Map's patterns are not that head's", i, m.layer, m.head)
+			t.Fatalf("step %d (L%d H%d): the Map's patterns are not that head's", i, m.sel.Layer, m.sel.Head)
 		}
 	}
 	if reused == 0 {

@@ -254,8 +254,8 @@ func TestFlowLeakToWorstCell(t *testing.T) {
 	f.loc(words.Loc{Block: "decoder", Layer: want.Layer, Head: want.Head, Batch: -1, Query: want.Q, Key: want.K}.String())
 	f.see("forbidden by causal")
 	m := f.quit()
-	if m.Screen() != ScreenMap || m.k != want.K || m.batch != want.Batch {
-		t.Errorf("after enter: screen %d, k %d, batch %d; want Map at k %d batch %d", m.Screen(), m.k, m.batch, want.K, want.Batch)
+	if m.Screen() != ScreenMap || m.sel.K != want.K || m.sel.Batch != want.Batch {
+		t.Errorf("after enter: screen %d, k %d, batch %d; want Map at k %d batch %d", m.Screen(), m.sel.K, m.sel.Batch, want.K, want.Batch)
 	}
 }
 
@@ -443,8 +443,8 @@ func TestFlowNextFindingShowsExtent(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			opt := m.mapOpt
-			opt.CursorQ, opt.CursorK = m.q, m.k
+			opt := m.sel.Map
+			opt.CursorQ, opt.CursorK = m.sel.Q, m.sel.K
 			l := views.LayoutMap(md, bw, bh, opt, m.st)
 			if l.Q0 > want.Q0 || l.Q0+l.PageRows() <= want.Q1 || l.K0 > want.K0 || l.K0+l.PageCols() <= want.K1 {
 				t.Errorf("view q %d+%d k %d+%d does not hold numpy's leak box q %d-%d k %d-%d", l.Q0, l.PageRows(), l.K0, l.PageCols(), want.Q0, want.Q1, want.K0, want.K1)
@@ -454,11 +454,11 @@ func TestFlowNextFindingShowsExtent(t *testing.T) {
 				if l.Block != 1 {
 					t.Errorf("one leaking cell shown at %d cells a pixel, want 1", l.Block)
 				}
-				if dq := m.q - (l.Q0 + l.PageRows()/2); dq < -1 || dq > 1 {
-					t.Errorf("cursor row %d not centred in q %d+%d", m.q, l.Q0, l.PageRows())
+				if dq := m.sel.Q - (l.Q0 + l.PageRows()/2); dq < -1 || dq > 1 {
+					t.Errorf("cursor row %d not centred in q %d+%d", m.sel.Q, l.Q0, l.PageRows())
 				}
-				if dk := m.k - (l.K0 + l.PageCols()/2); dk < -1 || dk > 1 {
-					t.Errorf("cursor key %d not centred in k %d+%d", m.k, l.K0, l.PageCols())
+				if dk := m.sel.K - (l.K0 + l.PageCols()/2); dk < -1 || dk > 1 {
+					t.Errorf("cursor key %d not centred in k %d+%d", m.sel.K, l.K0, l.PageCols())
 				}
 			}
 		})
