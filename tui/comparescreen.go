@@ -79,7 +79,8 @@ func (s *compareScreen) goHead(h views.HeadChange) {
 // there (not on layer 0 head 0, which often did not change at all).
 func (s *compareScreen) land() {
 	m := s.m
-	if s.landed || m.active != ScreenCompare {
+	if s.landed || m.active != ScreenCompare || m.opts.At != "" {
+		// a location given at the start (--at, a render) is kept
 		return
 	}
 	if heads := m.cmp[m.sel.Block]; len(heads) > 0 {

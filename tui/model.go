@@ -59,6 +59,9 @@ type Options struct {
 	// Result, when set, is the finished statistics of set: no background
 	// pass runs (heed share computes them once for every session).
 	Result *analysis.Result
+	// NoStatistics runs no statistics pass at all (heed render of a screen
+	// that does not show them).
+	NoStatistics bool
 }
 
 // GotoMsg moves the model to a location string (see ParseLoc); an invalid
@@ -268,6 +271,22 @@ func (m *Model) Canvas() *views.Canvas { return m.screens[m.active].Canvas() }
 // Screen returns the index of the focused screen.
 func (m *Model) Screen() int { return m.active }
 
+// Busy reports whether the focused screen still waits for background work
+// (the statistics on the Survey and Findings, the trace, the comparison).
+func (m *Model) Busy() bool {
+	switch m.active {
+	case ScreenSurvey, ScreenFindings:
+		return !m.anaDone && !m.opts.NoStatistics
+	case ScreenTrace:
+		_, ok := m.traces[traceKey{m.sel.Block, m.sel.Batch, m.sel.Q}]
+		return !ok && m.tracing[traceKey{m.sel.Block, m.sel.Batch, m.sel.Q}]
+	case ScreenCompare:
+		_, ok := m.cmp[m.sel.Block]
+		return m.hasCompare() && !ok && m.cmpErr == nil
+	}
+	return false
+}
+
 // Result returns the analysis once it has finished (nil before).
 func (m *Model) Result() *analysis.Result { return m.res }
 
@@ -289,7 +308,7 @@ func (m *Model) Init() tea.Cmd {
 	var cmds []tea.Cmd
 	if res := m.opts.Result; res != nil {
 		cmds = append(cmds, func() tea.Msg { return analysisMsg{res: res} })
-	} else {
+	} else if !m.opts.NoStatistics {
 		m.anaJob = newJob(m.ctx, "statistics")
 		cmds = append(cmds, runAnalysis(m.anaJob, m.set, m.anaOpt), m.anaJob.wait())
 	}

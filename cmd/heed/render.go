@@ -4,9 +4,9 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"strings"
-	"sync"
 
 	tea "charm.land/bubbletea/v2"
 	"github.com/charmbracelet/colorprofile"
@@ -127,7 +127,9 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		profile = colorprofile.Ascii
 	}
 	dark := rf.background == "dark"
-	m, err := tui.New(set, tui.Options{At: rf.at, Colormap: cm.Name, Background: rf.background, Profile: profile, Context: ctx})
+	// the statistics only for the screens that show them
+	noStats := scr.index != tui.ScreenSurvey && scr.index != tui.ScreenFindings
+	m, err := tui.New(set, tui.Options{At: rf.at, Colormap: cm.Name, Background: rf.background, Profile: profile, Context: ctx, NoStatistics: noStats})
 	if err != nil {
 		return err
 	}
@@ -242,66 +244,62 @@ func autoSize(b *loader.Block, screen string) (w, h int) {
 	return max(80, min(w, 320)), max(24, min(h, 200))
 }
 
-// drawScreen drives the TUI's model without a terminal: it gives it a size,
-// switches to the screen with its jump key and runs the model's commands
-// (statistics, trace) as a tea.Program would, each in its own goroutine,
-// until none is left, then returns the screen's cells.
+// drawScreen runs the TUI's model in a tea.Program without a terminal or a
+// renderer, the program that heed FILE runs: it gets the size, the screen's
+// jump key, and its background work (statistics, trace, comparison) runs
+// as in the terminal; when the focused screen has nothing left to wait for,
+// the program quits and the screen's cells are returned.
 func drawScreen(ctx context.Context, m *tui.Model, screen int, jump rune, w, h int) (*views.Canvas, error) {
-	msgs := make(chan tea.Msg)
-	var wg sync.WaitGroup
-	pending := 0
-	run := func(cmd tea.Cmd) {
-		if cmd == nil {
-			return
-		}
-		pending++
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			select {
-			case msgs <- cmd():
-			case <-ctx.Done():
-			}
-		}()
-	}
-	update := func(msg tea.Msg) {
-		_, cmd := m.Update(msg)
-		run(cmd)
-	}
-	// The statistics are only needed by the screens that show them.
-	if screen == tui.ScreenSurvey || screen == tui.ScreenFindings {
-		run(m.Init())
-	}
-	// The TUI's body is its height less the tab bar, status and key lines.
-	update(tea.WindowSizeMsg{Width: w, Height: h + 3})
-	if m.Screen() != screen {
-		update(tea.KeyPressMsg{Code: jump, Text: string(jump)})
-		if m.Screen() != screen {
-			return nil, fmt.Errorf("render: the %s screen is not available here", strings.ToLower([]string{"Survey", "Map", "Findings", "Trace", "Compare"}[screen]))
-		}
-	}
-	for pending > 0 {
-		select {
-		case msg := <-msgs:
-			pending--
-			switch msg := msg.(type) {
-			case nil, tea.QuitMsg:
-			case tea.BatchMsg:
-				for _, c := range msg {
-					run(c)
-				}
-			default:
-				update(msg)
-			}
-		case <-ctx.Done():
-			wg.Wait()
+	rm := &renderModel{m: m, screen: screen, jump: jump}
+	// the TUI's body is its height less the tab bar, status and key lines
+	p := tea.NewProgram(rm, tea.WithContext(ctx), tea.WithInput(nil), tea.WithOutput(io.Discard), tea.WithoutRenderer(),
+		tea.WithoutSignalHandler(), tea.WithWindowSize(w, h+3))
+	if _, err := p.Run(); err != nil {
+		if errors.Is(err, tea.ErrProgramKilled) && ctx.Err() != nil {
 			return nil, ctx.Err()
 		}
+		return nil, err
 	}
-	wg.Wait()
+	if rm.err != nil {
+		return nil, rm.err
+	}
 	c := m.Canvas()
 	if c == nil {
 		return nil, fmt.Errorf("render: nothing to draw at %s: %s", m.LocationString(), strings.TrimSpace(ansi.Strip(m.View().Content)))
 	}
 	return c, nil
 }
+
+// renderModel wraps the TUI's model for drawScreen: it presses the
+// screen's jump key once the size is known and quits when the screen is
+// no longer busy.
+type renderModel struct {
+	m      *tui.Model
+	screen int
+	jump   rune
+	sized  bool
+	err    error
+}
+
+func (r *renderModel) Init() tea.Cmd { return r.m.Init() }
+
+func (r *renderModel) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
+	_, cmd := r.m.Update(msg)
+	if _, ok := msg.(tea.WindowSizeMsg); ok && !r.sized {
+		r.sized = true
+		if r.m.Screen() != r.screen {
+			_, c := r.m.Update(tea.KeyPressMsg{Code: r.jump, Text: string(r.jump)})
+			cmd = tea.Batch(cmd, c)
+			if r.m.Screen() != r.screen {
+				r.err = fmt.Errorf("render: the %s screen is not available here", strings.ToLower([]string{"Survey", "Map", "Findings", "Trace", "Compare"}[r.screen]))
+				return r, tea.Quit
+			}
+		}
+	}
+	if r.sized && !r.m.Busy() {
+		return r, tea.Quit
+	}
+	return r, cmd
+}
+
+func (r *renderModel) View() tea.View { return r.m.View() }
