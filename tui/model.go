@@ -323,7 +323,11 @@ func (m *Model) Init() tea.Cmd {
 
 func (m *Model) setMsg(s string, st views.Style) { m.msg, m.msgStyle = s, st }
 
-func (m *Model) bodySize() (int, int) { return m.w, max(1, m.h-3) }
+// ChromeLines is how many lines the TUI takes around a screen's body: the
+// tab bar, the status line and the key line.
+const ChromeLines = 3
+
+func (m *Model) bodySize() (int, int) { return m.w, max(1, m.h-ChromeLines) }
 
 // Update handles a message.
 func (m *Model) Update(msg tea.Msg) (tea.Model, tea.Cmd) {

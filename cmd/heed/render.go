@@ -251,9 +251,9 @@ func autoSize(b *loader.Block, screen string) (w, h int) {
 // the program quits and the screen's cells are returned.
 func drawScreen(ctx context.Context, m *tui.Model, screen int, jump rune, w, h int) (*views.Canvas, error) {
 	rm := &renderModel{m: m, screen: screen, jump: jump}
-	// the TUI's body is its height less the tab bar, status and key lines
+	// the body gets w x h: the window has room for the TUI's chrome too
 	p := tea.NewProgram(rm, tea.WithContext(ctx), tea.WithInput(nil), tea.WithOutput(io.Discard), tea.WithoutRenderer(),
-		tea.WithoutSignalHandler(), tea.WithWindowSize(w, h+3))
+		tea.WithoutSignalHandler(), tea.WithWindowSize(w, h+tui.ChromeLines))
 	if _, err := p.Run(); err != nil {
 		if errors.Is(err, tea.ErrProgramKilled) && ctx.Err() != nil {
 			return nil, ctx.Err()
