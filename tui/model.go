@@ -295,9 +295,14 @@ func (m *Model) bi() *blockInfo { return m.d.blocks[m.sel.Block] }
 func (m *Model) restyle() {
 	cm := views.Colormaps()[m.cmIndex]
 	m.st = views.NewStyles(m.profile, m.dark, cm)
+	// the help in heed's own styles: the library's faint grey reads at
+	// about 2:1 on a dark background
 	m.help.Styles = help.DefaultStyles(m.dark)
 	m.help.Styles.ShortKey = m.st.Key.Lip()
 	m.help.Styles.FullKey = m.st.Key.Lip()
+	faint := m.st.Faint.Lip()
+	m.help.Styles.ShortDesc, m.help.Styles.FullDesc = faint, faint
+	m.help.Styles.ShortSeparator, m.help.Styles.FullSeparator, m.help.Styles.Ellipsis = faint, faint, faint
 	m.find.SetStyles(textinput.DefaultStyles(m.dark))
 }
 

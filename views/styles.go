@@ -27,7 +27,10 @@ type Styles struct {
 
 // NewStyles returns the styles for a profile, a background and a colormap.
 func NewStyles(p colorprofile.Profile, dark bool, cm Colormap) Styles {
-	if cm.LowIsLight && dark {
+	// the low end sits near the background in both themes, so that more
+	// weight always means more ink: light-low maps turn round on a dark
+	// background, dark-low ones (viridis, magma, cividis) on a light one
+	if cm.LowIsLight == dark {
 		cm = cm.Reversed()
 	}
 	s := Styles{Profile: p, Dark: dark, Colormap: cm, NaN: MustHex("#999999")}
@@ -40,14 +43,16 @@ func NewStyles(p colorprofile.Profile, dark bool, cm Colormap) Styles {
 		return MustHex(light)
 	}
 	s.Text = Style{}
-	s.Faint = Style{FG: pick("#6E6E6E", "#8C8C8C")}
+	// every text colour reads at 4.5:1 or more on common backgrounds of its
+	// theme (WCAG 2.x; TestTextContrast)
+	s.Faint = Style{FG: pick("#6E6E6E", "#A0A0A0")}
 	s.Title = Style{FG: pick("#004488", "#77AADD"), Attr: Bold}
 	s.Accent = Style{FG: pick("#004488", "#66CCEE")}
 	s.Label = Style{FG: pick("#505050", "#B0B0B0")}
 	s.LabelHi = Style{Attr: Reverse | Bold}
 	s.Selected = Style{Attr: Reverse}
-	s.Warn = Style{FG: pick("#997700", "#CCBB44"), Attr: Bold}
-	s.Bad = Style{FG: pick("#BB5566", "#EE6677"), Attr: Bold}
+	s.Warn = Style{FG: pick("#7A5F00", "#CCBB44"), Attr: Bold}
+	s.Bad = Style{FG: pick("#A63D50", "#F7848F"), Attr: Bold}
 	s.Good = Style{FG: pick("#117733", "#44BB99")}
 	s.Key = Style{FG: pick("#004488", "#77AADD"), Attr: Bold}
 	s.Bar = Style{FG: pick("#202020", "#E0E0E0"), BG: pick("#D8D8D8", "#303030")}
