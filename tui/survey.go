@@ -153,7 +153,7 @@ func (s *surveyScreen) Refresh() {
 	stats := surveyStats(b.HasGrad)
 	st := stats[m.statIndex%len(stats)]
 	d := &views.SurveyData{Block: b.Name, Layers: b.Layers, Heads: b.Heads, Stat: st.name, Unit: st.unit, Hint: st.hint,
-		Values: make([]float64, b.Layers*b.Heads), Log: st.log, Numbers: s.numbers}
+		Values: make([]float64, b.Layers*b.Heads), Log: st.log, Numbers: s.numbers, Pending: !m.anaDone}
 	var br *analysis.BlockResult
 	if m.res != nil {
 		br = m.res.Block(b.Name)

@@ -15,8 +15,11 @@ type SurveyData struct {
 	Stat, Unit, Hint string
 	// Scope says what the values are over ("all batch items", "batch item 2").
 	Scope string
-	// Values is layer-major, Layers x Heads; NaN = not computed yet.
+	// Values is layer-major, Layers x Heads; NaN = not known (drawn blank).
 	Values []float64
+	// Pending says the statistics are still being computed (the blank
+	// cells are "not yet", not "not defined").
+	Pending bool
 	// Lo and Hi fix the colour scale; when Lo >= Hi they come from Values.
 	Lo, Hi float64
 	// Log colours by log10 of the value over LogDecades below Hi, so that
@@ -158,7 +161,11 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), name, legendLo, hi, st)
 	for _, v := range d.Values {
 		if math.IsNaN(v) {
-			x += c.Text(x, y, "   · not computed yet", st.Faint, -1)
+			what := "   blank: not defined for that head"
+			if d.Pending {
+				what = "   blank: not computed yet"
+			}
+			x += c.Text(x, y, what, st.Faint, -1)
 			break
 		}
 	}
@@ -292,7 +299,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64,
 				case d.marked(la*d.Heads+hh) || (lb < d.Layers && d.marked(lb*d.Heads+hh)):
 					ch, cell = GlyphMark, markStyle(st, fg)
 				case math.IsNaN(d.Values[la*d.Heads+hh]):
-					ch, cell = '·', st.Faint
+					ch, cell = ' ', Style{}
 				}
 				for g := 0; g < glyphsOf(l.CellW); g++ {
 					c.Set(x+g, l.GridY+r, ch, cell)
@@ -356,7 +363,13 @@ func surveyCell(c *Canvas, d *SurveyData, x, y, cw, ll, hh int, cur bool, lo, hi
 		var cell Style
 		switch {
 		case math.IsNaN(v):
-			ch, cell = '·', st.Faint
+			ch, cell = ' ', Style{}
+			if cur {
+				ch = '<'
+				if g == glyphs-1 && glyphs > 1 {
+					ch = '>'
+				}
+			}
 		case st.HalfBlocks():
 			ch, cell = '█', Style{FG: col}
 			if cur {

@@ -122,6 +122,7 @@ func TestSurvey(t *testing.T) {
 		x.Stat, x.Unit, x.Hint, x.Marks, x.Log = "leak mass", "per row", "0 = clean", marks, log
 		return x
 	}
+	pending := func(x *SurveyData) *SurveyData { x.Pending = true; return x }
 	numbers := d(vals, 6, 12)
 	numbers.Numbers = true
 	numbers.Marks = make([]bool, 72)
@@ -143,7 +144,7 @@ func TestSurvey(t *testing.T) {
 	}{
 		{"full_truecolor_80x21", d(vals, 6, 12), 80, 21, 2, 5, colorprofile.TrueColor},
 		{"full_ascii_80x21", d(vals, 6, 12), 80, 21, 2, 5, colorprofile.ASCII},
-		{"partial_ansi256_80x21", d(partial, 6, 12), 80, 21, 0, 0, colorprofile.ANSI256},
+		{"partial_ansi256_80x21", pending(d(partial, 6, 12)), 80, 21, 0, 0, colorprofile.ANSI256},
 		{"scroll_ascii_80x21", d(wide, 40, 32), 80, 21, 30, 31, colorprofile.ASCII},
 		{"scroll_ascii_200x57", d(wide, 40, 32), 200, 57, 30, 31, colorprofile.ASCII},
 		{"leak_marks_truecolor_80x21", leaky(false), 80, 21, 7, 5, colorprofile.TrueColor},
