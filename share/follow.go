@@ -10,9 +10,10 @@ import (
 	"charm.land/lipgloss/v2"
 )
 
-// Hub carries the presenter's location (a LOC string such as
-// "decoder:L3:H7:q12") to every guest that follows it. The latest location
-// wins: a slow guest skips intermediate ones.
+// Hub carries the presenter's view to every guest that follows it: a line
+// whose first word is a location (a LOC such as "decoder:L3:H7:q12"),
+// followed by whatever else the TUI needs to show the same (its screen and
+// zoom). The latest one wins: a slow guest skips intermediate ones.
 type Hub struct {
 	mu   sync.Mutex
 	loc  string
@@ -156,6 +157,11 @@ func (f *Framed) forward(msg tea.Msg) tea.Cmd {
 func (f *Framed) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 	switch msg := msg.(type) {
 	case tea.WindowSizeMsg:
+		if msg.Width <= 0 || msg.Height <= 0 {
+			// a client that reports no size (ssh -tt from a script): the
+			// classic terminal's, rather than nothing at all
+			msg.Width, msg.Height = 80, 24
+		}
 		f.w, f.h = msg.Width, msg.Height
 		return f, f.forward(tea.WindowSizeMsg{Width: msg.Width, Height: max(msg.Height-1, 1)})
 	case StatusMsg:
@@ -196,7 +202,10 @@ func (f *Framed) statusText() string {
 	if f.hub == nil {
 		return f.status
 	}
-	loc := f.hub.Location()
+	loc := ""
+	if w := strings.Fields(f.hub.Location()); len(w) > 0 {
+		loc = w[0] // the location; the rest is for the TUI
+	}
 	if loc == "" {
 		loc = "not moved yet"
 	}

@@ -107,3 +107,22 @@ func TestPresenterStatus(t *testing.T) {
 		t.Errorf("status not on the last of 10 rows: %q", lines)
 	}
 }
+
+// A client that reports no terminal size (ssh -tt from a script sends 0 x 0)
+// gets the classic 80 x 24 rather than nothing, and the status line shows
+// only the location word of what the presenter published.
+func TestZeroSizeAndStatusWord(t *testing.T) {
+	hub := NewHub()
+	hub.Publish("decoder:L2:H5:q3:k3 screen=2 scale=1:1 origin=0,0")
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	inner := &standIn{guest: Guest{User: "bob"}}
+	f := NewFollower(ctx, hub, inner, func(loc string) tea.Msg { return gotoLoc(loc) })
+	f.Update(tea.WindowSizeMsg{Width: 0, Height: 0})
+	if len(inner.sizes) == 0 || inner.sizes[len(inner.sizes)-1] != "size#1 80x23" {
+		t.Errorf("inner sizes %q after a 0x0 window, want 80x23 (80x24 less the status row)", inner.sizes)
+	}
+	if v := f.View().Content; !strings.Contains(v, "following the presenter (decoder:L2:H5:q3:k3)") {
+		t.Errorf("status line: %q", v)
+	}
+}

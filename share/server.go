@@ -45,8 +45,14 @@ const (
 	// DefaultRate and DefaultBurst: sessions per address, a token bucket.
 	DefaultRate  = rate.Limit(1.0 / 3) // one new session every 3 s on average
 	DefaultBurst = 5
-	// handshakeTimeout bounds how long an unauthenticated connection may stay.
-	handshakeTimeout = 30 * time.Second
+	// handshakeTimeout bounds how long an unauthenticated connection may
+	// stay: long enough for a person to type a key's passphrase (OpenSSH
+	// sshd's LoginGraceTime default, 120 s, from memory).
+	handshakeTimeout = 2 * time.Minute
+	// maxPending caps the connections that have not authenticated yet, so
+	// that the longer grace cannot be used to hold many open (OpenSSH
+	// sshd's MaxStartups begins refusing at 10, from memory).
+	maxPending = 10
 	// maxAuthTries is OpenSSH sshd's default MaxAuthTries.
 	maxAuthTries = 6
 )
@@ -106,8 +112,10 @@ type Server struct {
 	sem      chan struct{}
 	sessions atomic.Int64
 	conns    atomic.Int64
-	guests   sync.Map // ssh.Session -> context.Context
-	fps      sync.Map // remote address string -> fingerprint
+	pending  atomic.Int64 // connections not authenticated yet
+	unauth   sync.Map     // remote address string -> struct{} while not authenticated
+	guests   sync.Map     // ssh.Session -> context.Context
+	fps      sync.Map     // remote address string -> fingerprint
 
 	mu       sync.Mutex
 	ln       net.Listener
@@ -392,12 +400,27 @@ func (s *Server) onConnect(_ ssh.Context, conn net.Conn) net.Conn {
 		s.log.Warn("refused", "why", "too many open connections", "addr", conn.RemoteAddr().String(), "limit", limit)
 		return nil
 	}
+	if n := s.pending.Add(1); n > maxPending {
+		s.pending.Add(-1)
+		s.conns.Add(-1)
+		s.log.Warn("refused", "why", "too many connections still authenticating", "addr", conn.RemoteAddr().String(), "limit", maxPending)
+		return nil
+	}
+	s.unauth.Store(conn.RemoteAddr().String(), struct{}{})
 	s.log.Info("connect", "addr", conn.RemoteAddr().String())
 	return conn
 }
 
+// authenticated takes the connection from addr off the pending count.
+func (s *Server) authenticated(addr string) {
+	if _, ok := s.unauth.LoadAndDelete(addr); ok {
+		s.pending.Add(-1)
+	}
+}
+
 func (s *Server) onClose(conn net.Conn) {
 	s.conns.Add(-1)
+	s.authenticated(conn.RemoteAddr().String()) // or it never did
 	addr := conn.RemoteAddr().String()
 	fp, _ := s.fps.LoadAndDelete(addr)
 	fps, _ := fp.(string)
@@ -410,6 +433,7 @@ func (s *Server) onClose(conn net.Conn) {
 func (s *Server) sessionChannel(srv *ssh.Server, conn *gossh.ServerConn, newChan gossh.NewChannel, ctx ssh.Context) {
 	// The connection is authenticated: its key is known for the disconnect log.
 	s.fps.Store(ctx.RemoteAddr().String(), ctxFingerprint(ctx))
+	s.authenticated(ctx.RemoteAddr().String())
 	ssh.DefaultSessionHandler(srv, conn, &filteredChannel{NewChannel: newChan, s: s, ctx: ctx}, ctx)
 }
 

@@ -984,3 +984,48 @@ func TestTimeouts(t *testing.T) {
 		t.Errorf("the busy session saw no traffic before it was closed: %q", busy.output())
 	}
 }
+
+// Connections that have not authenticated are capped (maxPending), so the
+// two minutes a person has to type a passphrase cannot be used to hold the
+// server: the next one is closed at once, and an authenticated guest still
+// gets in once the pending ones go.
+func TestPendingConnectionsCapped(t *testing.T) {
+	ts := startServer(t, nil)
+	var held []net.Conn
+	defer func() {
+		for _, c := range held {
+			c.Close()
+		}
+	}()
+	for i := 0; i < maxPending; i++ {
+		c, err := net.Dial("tcp", ts.Addr().String())
+		if err != nil {
+			t.Fatal(err)
+		}
+		held = append(held, c)
+	}
+	// wait until the server has counted them (no timing is asserted)
+	deadline := time.Now().Add(10 * time.Second)
+	for ts.pending.Load() < maxPending && time.Now().Before(deadline) {
+		time.Sleep(10 * time.Millisecond)
+	}
+	c, err := net.Dial("tcp", ts.Addr().String())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	c.SetReadDeadline(time.Now().Add(10 * time.Second))
+	if n, err := c.Read(make([]byte, 64)); err == nil {
+		t.Errorf("connection %d past the cap got %d bytes of a handshake, want it closed", maxPending+1, n)
+	}
+	for _, c := range held {
+		c.Close()
+	}
+	held = nil
+	for ts.pending.Load() > 0 && time.Now().Before(deadline) {
+		time.Sleep(10 * time.Millisecond)
+	}
+	if n := ts.pending.Load(); n != 0 {
+		t.Errorf("%d connections still counted as pending after they closed", n)
+	}
+}

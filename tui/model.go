@@ -44,6 +44,13 @@ type Options struct {
 	// OnLocation, when set, is called with the new location string each time
 	// the location changes (from the Update goroutine; keep it quick).
 	OnLocation func(loc string)
+	// OnFollow, when set, is called with the new FollowState each time the
+	// location, the screen or the Map's zoom or origin changes (heed share's
+	// presenter publishes it to the guests, who apply it with FollowMsg).
+	OnFollow func(state string)
+	// ExtraHelp are keys a wrapper handles (heed share's follow key), listed
+	// in the help with the global keys.
+	ExtraHelp []key.Binding
 	// Context cancels the background work when done (the program's quit
 	// cancels it too).
 	Context context.Context
@@ -97,37 +104,38 @@ type Model struct {
 	prog   progress.Model
 	find   textinput.Model
 
-	w, h      int
-	profile   colorprofile.Profile
-	dark      bool
-	cmIndex   int
-	st        views.Styles
-	screens   []screen
-	active    int
-	showHelp  bool
-	finding   bool
-	query     string
-	matches   []int
-	matchAt   int
-	msg       string
-	msgStyle  views.Style
-	lastLoc   string
-	quitting  bool
-	anaOpt    analysis.Options
-	anaJob    *job
-	anaDone   bool
-	anaErr    error
-	anaFrac   float64
-	res       *analysis.Result
-	cmpJob    *job
-	cmpBlock  int
-	cmpFrac   float64
-	cmp       map[int][]views.HeadChange
-	cmpErr    error
-	traces    map[traceKey]*views.TraceData
-	tracing   map[traceKey]bool
-	statIndex int
-	findAt    int // the finding n/N showed last, -1 before the first
+	w, h       int
+	profile    colorprofile.Profile
+	dark       bool
+	cmIndex    int
+	st         views.Styles
+	screens    []screen
+	active     int
+	showHelp   bool
+	finding    bool
+	query      string
+	matches    []int
+	matchAt    int
+	msg        string
+	msgStyle   views.Style
+	lastLoc    string
+	lastFollow string
+	quitting   bool
+	anaOpt     analysis.Options
+	anaJob     *job
+	anaDone    bool
+	anaErr     error
+	anaFrac    float64
+	res        *analysis.Result
+	cmpJob     *job
+	cmpBlock   int
+	cmpFrac    float64
+	cmp        map[int][]views.HeadChange
+	cmpErr     error
+	traces     map[traceKey]*views.TraceData
+	tracing    map[traceKey]bool
+	statIndex  int
+	findAt     int // the finding n/N showed last, -1 before the first
 	// batchPicked is set once the user picks a batch item (b / B): the
 	// Survey then shows that item's statistics
 	batchPicked bool
@@ -354,6 +362,12 @@ func (m *Model) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 			m.opts.OnLocation(loc)
 		}
 	}
+	if st := m.FollowState(); st != m.lastFollow {
+		m.lastFollow = st
+		if m.opts.OnFollow != nil {
+			m.opts.OnFollow(st)
+		}
+	}
 	return m, cmd
 }
 
@@ -382,6 +396,11 @@ func (m *Model) update(msg tea.Msg) tea.Cmd {
 		return nil
 	case selectMsg:
 		m.applySelect(msg)
+		return nil
+	case FollowMsg:
+		if err := m.follow(msg.State); err != nil {
+			m.setMsg(strings.TrimPrefix(err.Error(), "tui: "), m.st.Bad)
+		}
 		return nil
 	case GotoMsg:
 		if err := m.gotoLoc(msg.Loc, false); err != nil {
@@ -836,6 +855,7 @@ func (m *Model) helpKeys() keyHelp {
 	k := m.keys
 	sk := m.screens[m.active]
 	global := []key.Binding{k.NextFinding, k.PrevFinding, k.NextScreen, k.PrevScreen, k.Jump, k.Find, k.FindNext, k.FindPrev, k.Copy, k.Colormap, k.Help, k.Quit}
+	global = append(global, m.opts.ExtraHelp...)
 	loc := []key.Binding{k.PrevLayer, k.NextLayer, k.PrevHead, k.NextHead, k.PrevBatch, k.NextBatch, k.PrevBlock, k.NextBlock}
 	groups := append(sk.FullHelp(), loc, global)
 	short := append(sk.ShortHelp(), k.NextFinding, k.NextScreen, k.Help, k.Quit)

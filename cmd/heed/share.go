@@ -1,6 +1,7 @@
 package main
 
 import (
+	"charm.land/bubbles/v2/key"
 	"context"
 	"errors"
 	"fmt"
@@ -214,9 +215,10 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 				o.Background = tf.background
 			}
 			if hub != nil {
-				if loc := hub.Location(); loc != "" {
-					o.At = loc
+				if st := hub.Location(); st != "" {
+					o.At = tui.FollowLoc(st)
 				}
+				o.ExtraHelp = []key.Binding{share.FollowKey}
 			}
 			m, err := tui.New(set, o)
 			if err != nil {
@@ -228,7 +230,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 			if hub == nil {
 				return m
 			}
-			return share.NewFollower(g.Ctx, hub, m, func(loc string) tea.Msg { return tui.GotoMsg{Loc: loc} })
+			return share.NewFollower(g.Ctx, hub, m, func(st string) tea.Msg { return tui.FollowMsg{State: st} })
 		},
 		OnChange: func(n int, event string) { send(share.StatusMsg(status(n, event))) },
 	})
@@ -239,7 +241,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 		return err
 	}
 	statusMu.Lock()
-	listenLine = "sharing on " + srv.Addr().String()
+	listenLine = "sharing on " + srv.Addr().String() + " · host key " + srv.HostKeyFingerprint()
 	statusMu.Unlock()
 	port := portOf(srv.Addr().String())
 	intro := fmt.Sprintf("heed share: serving %s on %s to the keys in %s\n  host key %s%s\n  guests: ssh -p %s localhost\n",
@@ -253,7 +255,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	if presenter {
 		o := tuiOpts(topts, ex, res, ctx)
 		if hub != nil {
-			o.OnLocation = hub.Publish
+			o.OnFollow = hub.Publish // screen, cursor and zoom, not only the location
 		}
 		m, err := tui.New(set, o)
 		if err != nil {
@@ -261,7 +263,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 			return err
 		}
 		if hub != nil {
-			hub.Publish(m.Location().String())
+			hub.Publish(m.FollowState())
 		}
 		p := tea.NewProgram(share.NewPresenter(m, status(0, "ssh -p "+port+" localhost")), tea.WithContext(ctx))
 		progMu.Lock()

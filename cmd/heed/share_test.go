@@ -11,6 +11,8 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"regexp"
+	"strconv"
 	"strings"
 	"syscall"
 	"testing"
@@ -125,6 +127,52 @@ func TestShareJourney(t *testing.T) {
 	}
 	tmux("send-keys", "-t", "guest", "F")
 	wait("guest", "following the presenter (decoder:L0:H3:B0:q5:k5)")
+
+	// The guest follows the screen and the zoom too, not only the location:
+	// the presenter goes to the Survey and back to the Map zoomed in.
+	tmux("send-keys", "-t", "presenter", "1")
+	wait("guest", "Survey · decoder")
+	// The terminals differ in size, so the guest shows the nearest scale it
+	// can draw: each zoom of the presenter's zooms the guest in too.
+	zoomRe := regexp.MustCompile(`zoom (\d+):(\d+)`)
+	ratio := func(screen string) float64 {
+		m := zoomRe.FindStringSubmatch(screen)
+		if m == nil {
+			return 0
+		}
+		a, _ := strconv.ParseFloat(m[1], 64)
+		b, _ := strconv.ParseFloat(m[2], 64)
+		return a / b
+	}
+	tmux("send-keys", "-t", "presenter", "2")
+	prev := ratio(wait("guest", "[2 Map]"))
+	for i := 0; i < 1; i++ { // the export is small: one step in reaches the largest zoom
+		tmux("send-keys", "-t", "presenter", "+")
+		deadline := time.Now().Add(30 * time.Second) // only against a hang
+		for ratio(tmux("capture-pane", "-t", "guest", "-p")) <= prev && time.Now().Before(deadline) {
+			time.Sleep(50 * time.Millisecond)
+		}
+		now := ratio(tmux("capture-pane", "-t", "guest", "-p"))
+		if now <= prev {
+			t.Fatalf("the presenter zoomed in, the guest stayed at %v:\n%s", prev, tmux("capture-pane", "-t", "guest", "-p"))
+		}
+		prev = now
+	}
+	// The guest's help lists the follow key.
+	tmux("send-keys", "-t", "guest", "F", "?")
+	wait("guest", "follow the presenter / look around alone")
+	tmux("send-keys", "-t", "guest", "Escape")
+	wait("guest", "→ k 5") // the Map again: the help closed (ESC and F at once would read as alt+F)
+	tmux("send-keys", "-t", "guest", "F")
+	wait("guest", "following the presenter (")
+
+	// The presenter's status line carries the host key's fingerprint, as
+	// ssh-keygen -l prints it for the key heed created.
+	hk, err := exec.Command("ssh-keygen", "-l", "-f", filepath.Join(home, ".config", "heed", "ssh_host_ed25519_key")).Output()
+	if err != nil {
+		t.Fatal(err)
+	}
+	wait("presenter", "host key "+strings.Fields(string(hk))[1])
 
 	// A wrong key is refused.
 	out, err := exec.Command(sshOpts[0], append(append(sshOpts[1:], "-o", "BatchMode=yes", "-i", wrong), "localhost", "true")...).CombinedOutput()
