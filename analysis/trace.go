@@ -5,6 +5,8 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"sort"
+	"strings"
 
 	"github.com/heed-dev/heed/loader"
 )
@@ -82,6 +84,26 @@ type TokenShare struct {
 	Index int     `json:"index"`
 	Token string  `json:"token"`
 	Share float64 `json:"share"`
+	// Status is "" for a key the query may see, else why it may not:
+	// "future" (after the query under a causal mask, or outside its
+	// window), "padding" (a padding key), "other document" (packed
+	// sequences). Such a key's share is what leaked through, not an
+	// explanation.
+	Status string `json:"status,omitempty"`
+}
+
+// Prediction is what the model predicted at the explained position.
+type Prediction struct {
+	// From is "logits" (the exported logits' largest entry), "next token"
+	// (the input token after the query: what a model trained with teacher
+	// forcing was asked to predict there) or "" when neither is known.
+	From string `json:"from"`
+	// ID is the vocabulary index (logits), -1 otherwise.
+	ID int `json:"id"`
+	// Token is its text ("" when the export has no vocab array).
+	Token string `json:"token"`
+	// Prob is its softmax probability (logits only; absent otherwise).
+	Prob *float64 `json:"prob,omitempty"`
 }
 
 // TraceResult is the explanation of one query position: the input tokens
@@ -95,6 +117,14 @@ type TraceResult struct {
 	Tokens []TokenShare `json:"tokens"`
 	// Normalised tells whether the shares sum to 1 (rollout on self-attention).
 	Normalised bool `json:"normalised"`
+	// QueryToken is the explained position's own token, Position its key
+	// position (the row plus the decode offset).
+	QueryToken string `json:"query_token"`
+	Position   int    `json:"position"`
+	// Predicted is what the model predicted there.
+	Predicted Prediction `json:"predicted"`
+	// Scale says how the shares are scaled, in words.
+	Scale string `json:"scale"`
 }
 
 // ResidualRows overwrites the n x n matrix a with 0.5 a + 0.5 I, each row
@@ -530,10 +560,126 @@ func Trace(ctx context.Context, ex *loader.Export, opt TraceOptions) (*TraceResu
 		return nil, err
 	}
 	side := ex.Side(blk.KeySide)
+	status := keyStatus(ex, blk, opt.Batch, opt.Query)
 	for i, s := range shares {
-		res.Tokens = append(res.Tokens, TokenShare{Index: i, Token: side.Token(opt.Batch, i), Share: s})
+		res.Tokens = append(res.Tokens, TokenShare{Index: i, Token: side.Token(opt.Batch, i), Share: s, Status: status(i)})
+	}
+	res.Position = opt.Query + blk.QueryOffset
+	res.QueryToken = ex.Side(blk.QuerySide).Token(opt.Batch, res.Position)
+	res.Predicted = Predicted(ex, blk, opt.Batch, opt.Query)
+	switch {
+	case res.Normalised:
+		res.Scale = "shares sum to 1 over the input tokens"
+	case method == MethodGrad && blk.Kind != loader.KindCross:
+		res.Scale = "relevance the layers add (Chefer et al.'s R less its identity start), not normalised: % is of the total"
+	default:
+		res.Scale = "not normalised: % is of the total"
 	}
 	return res, nil
+}
+
+// Summary is one sentence on what the explanation says: the positions
+// with the largest shares among the keys the query may see, and how much
+// of the total they hold.
+func (r *TraceResult) Summary() string {
+	var total float64
+	var seen []TokenShare
+	for _, t := range r.Tokens {
+		if t.Status == "" && !math.IsNaN(t.Share) && t.Share > 0 {
+			total += t.Share
+			seen = append(seen, t)
+		}
+	}
+	if total <= 0 {
+		return "no input token carries a share"
+	}
+	sort.SliceStable(seen, func(i, j int) bool { return seen[i].Share > seen[j].Share })
+	n := min(3, len(seen))
+	var parts []string
+	var top float64
+	for _, t := range seen[:n] {
+		name := fmt.Sprintf("position %d", t.Index)
+		if t.Token != "" {
+			name = fmt.Sprintf("%q (%d)", t.Token, t.Index)
+		}
+		parts = append(parts, fmt.Sprintf("%s %.0f%%", name, 100*t.Share/total))
+		top += t.Share
+	}
+	what := fmt.Sprintf("query %d", r.Query)
+	if r.QueryToken != "" {
+		what = fmt.Sprintf("query %d %q", r.Query, r.QueryToken)
+	}
+	return fmt.Sprintf("by %s, %s draws %.0f%% on %s", r.Method, what, 100*top/total, strings.Join(parts, ", "))
+}
+
+// keyStatus says, for each key of the explained query, why the query may
+// not see it ("" when it may), by the block's positional and padding
+// rules (head-independent: an explicit per-head mask is not consulted).
+func keyStatus(ex *loader.Export, blk *loader.Block, batch, q int) func(k int) string {
+	r, err := BlockRules(ex, blk, nil)
+	if err != nil || r == nil || len(r.Active()) == 0 || !r.Judged(batch, q) {
+		return func(int) string { return "" }
+	}
+	row := make([]Rule, r.Keys)
+	r.Row(batch, q, nil, row)
+	return func(k int) string {
+		if k < 0 || k >= len(row) {
+			return ""
+		}
+		switch row[k] {
+		case RuleNone:
+			return ""
+		case RulePadding:
+			return "padding"
+		case RuleSegments:
+			return "other document"
+		}
+		return "future"
+	}
+}
+
+// Predicted returns what the model predicted at query q of blk (batch
+// item batch): the exported logits' argmax at the query's position with its
+// softmax probability, else the next input token of the query's side.
+func Predicted(ex *loader.Export, blk *loader.Block, batch, q int) Prediction {
+	pos := q + blk.QueryOffset
+	if a := ex.Logits; a != nil {
+		sh := a.Shape()
+		v := sh[len(sh)-1]
+		idx := []int{pos}
+		if len(sh) == 3 {
+			idx = []int{batch, pos}
+		}
+		if pos < sh[len(sh)-2] && (len(sh) == 2 || batch < sh[0]) {
+			row := make([]float32, v)
+			if err := a.ReadFloat32(idx, row); err == nil && v > 0 {
+				best := 0
+				for i, x := range row {
+					if x > row[best] {
+						best = i
+					}
+				}
+				// softmax of the best: 1 / sum_i exp(x_i - x_best)
+				var z float64
+				for _, x := range row {
+					z += math.Exp(float64(x) - float64(row[best]))
+				}
+				p := 1 / z
+				pr := Prediction{From: "logits", ID: best, Prob: &p}
+				if best < len(ex.Vocab) {
+					pr.Token = ex.Vocab[best]
+				}
+				return pr
+			}
+		}
+	}
+	side := ex.Side(blk.QuerySide)
+	if blk.Kind != loader.KindCross && blk.QuerySide == blk.KeySide || blk.Kind == loader.KindCross {
+		if t := side.Token(batch, pos+1); t != "" && side.IsValid(batch, pos+1) {
+			return Prediction{From: "next token", ID: -1, Token: t}
+		}
+	}
+	return Prediction{ID: -1}
 }
 
 func traceSelf(ctx context.Context, blk *loader.Block, batch, q int, method Method) ([]float64, error) {
@@ -547,7 +693,12 @@ func traceSelf(ctx context.Context, blk *loader.Block, batch, q int, method Meth
 	}
 	switch method {
 	case MethodGrad:
-		return SelfRelevanceRow(mats, n, q), nil
+		// R starts as I, so row q of R holds 1 at q itself whatever the
+		// attention did: report what the layers added, R - I (row q less
+		// its identity start), or the query explains itself by 100%
+		r := SelfRelevanceRow(mats, n, q)
+		r[q]--
+		return r, nil
 	case MethodRollout, MethodFlow:
 		for _, m := range mats {
 			ResidualRows(m, n)

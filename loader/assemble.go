@@ -73,6 +73,7 @@ const (
 	roleValid
 	roleSegments
 	roleLogits
+	roleVocab
 	roleMeta
 )
 
@@ -84,6 +85,8 @@ func classify(name string) (owner string, r role, layer int) {
 	switch name {
 	case "logits":
 		return "", roleLogits, -1
+	case "vocab":
+		return "", roleVocab, -1
 	case "meta":
 		return "", roleMeta, -1
 	}
@@ -215,6 +218,15 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 			s[int(r-roleTokens)] = a
 		case roleLogits:
 			ex.Logits = a
+		case roleVocab:
+			if a.DType() != String || len(a.Shape()) != 1 {
+				return nil, ferr(a, "vocab must be a 1-d string array (the text of each vocabulary index), got %s %v", a.DType(), a.Shape())
+			}
+			v, err := a.ReadStrings()
+			if err != nil {
+				return nil, err
+			}
+			ex.Vocab = v
 		case roleMeta:
 			if a.DType() != String || prod(a.Shape()) != 1 {
 				return nil, ferr(a, "meta must be one string (a 0-d string array holding the JSON)")
@@ -333,6 +345,9 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		a := ex.Logits
 		if !a.DType().IsFloat() || len(a.Shape()) < 2 || len(a.Shape()) > 3 {
 			return nil, ferr(a, "logits must be a floating-point [batch, position, vocab] or [position, vocab] array, got %s %v", a.DType(), a.Shape())
+		}
+		if sh := a.Shape(); ex.Vocab != nil && len(ex.Vocab) != sh[len(sh)-1] {
+			return nil, ferr(a, "logits have %d vocabulary entries, the vocab array %d", sh[len(sh)-1], len(ex.Vocab))
 		}
 	}
 	for _, b := range ex.Blocks {

@@ -19,6 +19,9 @@ type Export struct {
 	Sides map[string]*Side
 	// Logits is the optional `logits` array [batch, position, vocab].
 	Logits Array
+	// Vocab is the optional `vocab` array: the text of each vocabulary
+	// index of Logits.
+	Vocab []string
 	// Warnings are things a user should know that are not errors (e.g. head
 	// axis of length 1: heads were averaged at export).
 	Warnings []string

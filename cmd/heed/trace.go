@@ -102,37 +102,61 @@ func writeTraceText(w io.Writer, r *analysis.TraceResult) {
 	var top, total float64
 	width := 5
 	for _, t := range r.Tokens {
-		top = max(top, t.Share)
-		total += t.Share
+		if t.Status == "" {
+			top = max(top, t.Share)
+			total += t.Share
+		}
 		width = max(width, len([]rune(t.Token)))
 	}
+	q := fmt.Sprintf("query %d", r.Query)
+	if r.QueryToken != "" {
+		q += fmt.Sprintf(" %q", r.QueryToken)
+	}
+	fmt.Fprintf(w, "heed trace: %s %s (batch %d) by %s tokens, method %s: %s\n", r.Block, q, r.Batch, r.Side, r.Method, r.Scale)
+	fmt.Fprintf(w, "predicted: %s\n", predictedText(r.Predicted))
 	// Unnormalised shares (grad relevance from an exported dL/dA of a whole
 	// loss, flow, cross rollout) can be tiny or above 1: print them with
-	// significant digits and as a percentage of their total.
-	norm := "shares sum to 1"
-	if !r.Normalised {
-		norm = fmt.Sprintf("shares are not normalised: they sum to %.4g; %% is of that total", total)
-	}
-	fmt.Fprintf(w, "heed trace: %s query %d (batch %d) by %s tokens, method %s (%s)\n", r.Block, r.Query, r.Batch, r.Side, r.Method, norm)
+	// significant digits and as a percentage of their total; keys the query
+	// may not see are marked, not given a bar.
 	const bar = 40
 	for _, t := range r.Tokens {
 		n := 0
-		if top > 0 && t.Share > 0 {
+		if top > 0 && t.Share > 0 && t.Status == "" {
 			n = int(t.Share/top*bar + 0.5)
 		}
 		tok := t.Token
 		if tok == "" {
 			tok = "-"
 		}
+		b := strings.Repeat("█", n)
+		if t.Status != "" {
+			b = "(" + t.Status + ": not seen)"
+		}
 		if r.Normalised {
-			fmt.Fprintf(w, "%5d  %-*s  %-*s  %.4f\n", t.Index, width, tok, bar, strings.Repeat("█", n), t.Share)
+			fmt.Fprintf(w, "%5d  %-*s  %-*s  %.4f\n", t.Index, width, tok, bar, b, t.Share)
 			continue
 		}
 		pct := "-"
-		if total > 0 {
+		if total > 0 && t.Status == "" {
 			pct = fmt.Sprintf("%.1f%%", 100*t.Share/total)
 		}
-		fmt.Fprintf(w, "%5d  %-*s  %-*s  %10s  %6s\n", t.Index, width, tok, bar, strings.Repeat("█", n), strconv.FormatFloat(t.Share, 'g', 4, 64), pct)
+		fmt.Fprintf(w, "%5d  %-*s  %-*s  %10s  %6s\n", t.Index, width, tok, bar, b, strconv.FormatFloat(t.Share, 'g', 4, 64), pct)
 	}
+	fmt.Fprintf(w, "summary: %s.\n", r.Summary())
 	fmt.Fprintln(w, analysis.Caveat)
+}
+
+// predictedText says what the model predicted at the explained position.
+func predictedText(p analysis.Prediction) string {
+	switch p.From {
+	case "logits":
+		tok := fmt.Sprintf("vocabulary index %d", p.ID)
+		if p.Token != "" {
+			tok = fmt.Sprintf("%q (index %d)", p.Token, p.ID)
+		}
+		return fmt.Sprintf("%s with probability %.3g (the exported logits)", tok, *p.Prob)
+	case "next token":
+		return fmt.Sprintf("%q, the next input token (no logits in the export: what the model was trained to predict there)", p.Token)
+	}
+	return "unknown (no logits and no next token in the export)"
 }

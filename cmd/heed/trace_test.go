@@ -5,7 +5,9 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"math"
+	"os/exec"
 	"path/filepath"
 	"strconv"
 	"strings"
@@ -55,7 +57,14 @@ func TestTraceTextUnnormalised(t *testing.T) {
 	if !strings.Contains(lines[0], "not normalised") {
 		t.Errorf("header does not say the shares are not normalised: %s", lines[0])
 	}
-	rows := lines[1 : len(lines)-1]
+	var rows []string // the token lines: after the header and prediction, before the summary and caveat
+	for _, l := range lines[2:] {
+		if f := strings.Fields(l); len(f) > 0 {
+			if _, err := strconv.Atoi(f[0]); err == nil {
+				rows = append(rows, l)
+			}
+		}
+	}
 	if len(rows) != len(res.Tokens) {
 		t.Fatalf("%d token lines, JSON has %d tokens\n%s", len(rows), len(res.Tokens), out)
 	}
@@ -81,6 +90,9 @@ func TestTraceTextUnnormalised(t *testing.T) {
 	}
 	// normalised shares keep their plain form
 	out, _ = run(t, "trace", "--query", "5", filepath.Join(casesDir, "stats.npz"))
+	if i := strings.Index(out, "summary:"); i > 0 {
+		out = out[:i] // the summary sentence speaks in percentages
+	}
 	if !strings.Contains(strings.SplitN(out, "\n", 2)[0], "shares sum to 1") || strings.Contains(out, "%") {
 		t.Errorf("rollout on self-attention: want \"shares sum to 1\" and no percentages\n%s", out)
 	}
@@ -117,5 +129,80 @@ func TestTraceFlowAdvice(t *testing.T) {
 	}
 	if got := traceAdvice(err).Error(); got != err.Error()+": use --method rollout" {
 		t.Errorf("heed trace beyond the flow limit: %q", got)
+	}
+}
+
+// predictScript writes a causal export with logits and a vocabulary and
+// prints numpy's argmax and softmax probability at position 5, and the
+// input token after it.
+const predictScript = `
+import json, sys
+import numpy as np
+rng = np.random.default_rng(11)
+L, H, T, V = 2, 2, 8, 12
+s = rng.normal(size=(L, H, T, T))
+s[..., np.triu(np.ones((T, T), dtype=bool), k=1)] = -np.inf
+a = np.exp(s - s.max(-1, keepdims=True)); a /= a.sum(-1, keepdims=True)
+logits = rng.normal(size=(1, T, V)).astype(np.float32) * 3
+vocab = np.array(["v%d" % i for i in range(V)])
+toks = np.array([["t%d" % i for i in range(T)]])
+meta = {"format": "heed-export/1", "blocks": {"decoder": {"kind": "causal", "query": "target", "key": "target"}}}
+np.savez(sys.argv[1], **{"decoder/attn": a.astype(np.float32), "logits": logits, "vocab": vocab, "tokens/target": toks,
+                         "meta": np.array(json.dumps(meta))})
+z = logits[0, 5].astype(np.float64)
+p = np.exp(z - z.max()); p /= p.sum()
+print(json.dumps({"id": int(np.argmax(z)), "prob": float(p.max())}))
+`
+
+// heed trace names what the explained position predicted: the logits'
+// argmax with its probability (numpy's softmax) and its vocabulary text,
+// or without logits the next input token; keys after the query are marked
+// future, not given a share of 0.
+func TestTracePrediction(t *testing.T) {
+	file := filepath.Join(t.TempDir(), "pred.npz")
+	out, err := exec.Command(heedPython(), "-c", predictScript, file).Output()
+	if err != nil {
+		t.Fatalf("numpy: %v", err)
+	}
+	var want struct {
+		ID   int
+		Prob float64
+	}
+	if err := json.Unmarshal(out, &want); err != nil {
+		t.Fatal(err)
+	}
+	js, code := run(t, "trace", "--json", "--query", "5", file)
+	if code != 0 {
+		t.Fatalf("exit %d\n%s", code, js)
+	}
+	var res struct {
+		QueryToken string `json:"query_token"`
+		Predicted  struct {
+			From  string   `json:"from"`
+			ID    int      `json:"id"`
+			Token string   `json:"token"`
+			Prob  *float64 `json:"prob"`
+		} `json:"predicted"`
+		Tokens []struct {
+			Index  int    `json:"index"`
+			Status string `json:"status"`
+		} `json:"tokens"`
+	}
+	if err := json.Unmarshal([]byte(js), &res); err != nil {
+		t.Fatal(err)
+	}
+	p := res.Predicted
+	if p.From != "logits" || p.ID != want.ID || p.Token != fmt.Sprintf("v%d", want.ID) || p.Prob == nil || math.Abs(*p.Prob-want.Prob) > 1e-6 || res.QueryToken != "t5" {
+		t.Errorf("predicted %+v (query token %q), numpy says id %d p %v", p, res.QueryToken, want.ID, want.Prob)
+	}
+	for _, tk := range res.Tokens {
+		if future := tk.Index > 5; future != (tk.Status == "future") {
+			t.Errorf("token %d status %q", tk.Index, tk.Status)
+		}
+	}
+	// without logits: the next input token, no probability
+	js, _ = run(t, "trace", "--json", "--query", "4", filepath.Join(casesDir, "shift_good.npz"))
+	if !strings.Contains(js, `"from": "next token"`) || strings.Contains(js, `"prob"`) {
+		t.Errorf("without logits, want the next token and no probability:\n%s", js[:min(len(js), 800)])
 	}
 }
