@@ -86,7 +86,7 @@ func newVersionCmd() *cobra.Command {
 		RunE: func(cmd *cobra.Command, args []string) error {
 			hdf5 := "yes"
 			if !loader.HDF5Supported {
-				hdf5 = "no (built without cgo; rebuild with cgo and libhdf5-dev to read .h5 files)"
+				hdf5 = "no (built without cgo, or with -tags nohdf5: rebuild with cgo and libhdf5-dev to read .h5 files)"
 			}
 			fmt.Fprintf(cmd.OutOrStdout(), "heed version %s\n%s %s/%s, HDF5 support: %s\n", versionString(), runtime.Version(), runtime.GOOS, runtime.GOARCH, hdf5)
 			return nil

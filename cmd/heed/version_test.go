@@ -107,3 +107,16 @@ func TestVersionStampedFromGit(t *testing.T) {
 		t.Errorf("after a change: heed --version = %q", got)
 	}
 }
+
+// The completion scripts README documents exist, and --group completes to its values.
+func TestCompletion(t *testing.T) {
+	for _, sh := range []string{"bash", "zsh", "fish", "powershell"} {
+		if out, _, code := runSplit(t, "completion", sh); code != 0 || !strings.Contains(out, "heed") || len(out) < 1000 {
+			t.Errorf("completion %s: exit %d, %d bytes", sh, code, len(out))
+		}
+	}
+	out, _, _ := runSplit(t, "__complete", "rank", "--group", "")
+	if strings.Join(strings.Fields(out), " ") != "auto examples layers one :4" {
+		t.Errorf("completion of --group: %q", out)
+	}
+}
