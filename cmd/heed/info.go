@@ -26,7 +26,10 @@ arrays are present (grad, allow, valid, segments, out) and what "heed check"
 will run on it: the mask rules (the list of check's "rules checked:") and
 the row checks (nan_rows, row_sum, negative on every block; cut on a cross
 block and on a causal block with a prefix). Several files, a directory or @LIST open as one set
-of examples; info describes the first and checks that the others match it.`,
+of examples; info describes the first and checks that the others match it.
+Its first line sums the set up and names the rule that grouped the files
+into examples ("grouped by: array names", "numbered files are examples",
+or the --group given); a grouping heed had to guess is also a warning.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			set, err := openSetChecked(args, lf)
