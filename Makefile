@@ -4,8 +4,10 @@ PYTHON ?= /usr/bin/python3
 GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
+# Stamp the binary with the commit it is built from (heed version), whatever GOFLAGS says.
+BUILDVCS ?= -buildvcs=auto
 
-.PHONY: all build demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
+.PHONY: all build install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
 
 all: build
 
@@ -13,7 +15,21 @@ deps:
 	@scripts/install-deps.sh
 
 build: deps
-	$(GO) build -o $(BIN) ./cmd/heed
+	$(GO) build $(BUILDVCS) -o $(BIN) ./cmd/heed
+
+# Installs heed into GOBIN (default GOPATH/bin, i.e. ~/go/bin) from this clone, stamped with its
+# commit. Needs only Go (1.26.8 or later); with cgo and libhdf5-dev + pkg-config it reads HDF5 too,
+# without them it is built without HDF5 support (and says so). Installs no packages.
+install:
+	@if [ "$$($(GO) env CGO_ENABLED)" = 1 ] && pkg-config --exists hdf5 2>/dev/null; then \
+		echo "$(GO) install $(BUILDVCS) ./cmd/heed"; $(GO) install $(BUILDVCS) ./cmd/heed; \
+	else \
+		echo "make install: no cgo or no HDF5 library (pkg-config hdf5): building heed without HDF5 support"; \
+		echo "CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed"; CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed; \
+	fi
+	@bin=$$($(GO) env GOBIN); [ -n "$$bin" ] || bin=$$($(GO) env GOPATH)/bin; \
+	echo "installed $$bin/heed: $$($$bin/heed --version)"; \
+	case ":$$PATH:" in *":$$bin:"*) ;; *) echo "$$bin is not on your PATH: add it, e.g. export PATH=\"$$bin:\$$PATH\"";; esac
 
 # The main job on the export embedded in the binary.
 demo: build

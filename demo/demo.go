@@ -134,11 +134,62 @@ func (e *ExistsError) Error() string {
 	return fmt.Sprintf("%s already %s (use --force to overwrite)", strings.Join(e.Paths, ", "), verb)
 }
 
+// SourceError reports a directory Export refused because it holds source
+// files: a source tree (a Go module or package, a Python project...) is no
+// place for data files, with or without force. (The repository's own demo/
+// is such a directory: "heed demo --export demo/" from a clone would write
+// the exports beside demo.go.)
+type SourceError struct {
+	Dir   string
+	Files []string // the first few source files found
+}
+
+func (e *SourceError) Error() string {
+	return fmt.Sprintf("%s holds source files (%s): write the demo exports to a directory of their own, e.g. heed-demo/", e.Dir, strings.Join(e.Files, ", "))
+}
+
+// sourceExts are the extensions of the source files that make a directory
+// a source tree; go.mod and go.work count too.
+var sourceExts = map[string]bool{".go": true, ".py": true, ".c": true, ".h": true, ".cc": true, ".cpp": true,
+	".rs": true, ".java": true, ".js": true, ".ts": true}
+
+// sourceFiles lists up to three source files directly in dir (none when
+// dir does not exist yet).
+func sourceFiles(dir string) ([]string, error) {
+	ents, err := os.ReadDir(dir)
+	if errors.Is(err, fs.ErrNotExist) {
+		return nil, nil
+	}
+	if err != nil {
+		return nil, err
+	}
+	var out []string
+	for _, e := range ents {
+		n := e.Name()
+		if n == "go.mod" || n == "go.work" || !e.IsDir() && sourceExts[strings.ToLower(filepath.Ext(n))] {
+			out = append(out, n)
+			if len(out) == 3 {
+				break
+			}
+		}
+	}
+	return out, nil
+}
+
 // Export writes the export files and results.json into dir (created when
-// missing) and returns the paths written, in Exports order. Without force it
-// writes nothing when any of them exists (an *ExistsError lists them); with
-// force each file is replaced atomically (written beside it, then renamed).
+// missing) and returns the paths written, in Exports order. It writes
+// nothing into a directory that holds source files (a *SourceError names
+// some). Without force it writes nothing when any of the files exists (an
+// *ExistsError lists them); with force each file is replaced atomically
+// (written beside it, then renamed).
 func Export(dir string, force bool) ([]string, error) {
+	src, err := sourceFiles(dir)
+	if err != nil {
+		return nil, err
+	}
+	if len(src) > 0 {
+		return nil, &SourceError{Dir: dir, Files: src}
+	}
 	names := append(append([]string(nil), Exports...), ResultsFile)
 	paths := make([]string, len(names))
 	for i, n := range names {

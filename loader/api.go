@@ -117,6 +117,9 @@ type Options struct {
 	// QueryStart is the key position of query row 0 of every block (-1 = not
 	// set): a decode step written from a static (pre-allocated) KV cache.
 	QueryStart int
+	// Group is how OpenSet groups files into examples (see Set); the other
+	// fields apply to every example.
+	Group GroupMode
 }
 
 // NewOptions returns Options with nothing overridden.

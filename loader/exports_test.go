@@ -5,6 +5,7 @@ import (
 	"path/filepath"
 	"reflect"
 	"strconv"
+	"strings"
 	"testing"
 )
 
@@ -118,10 +119,17 @@ func TestOpenSetGrouping(t *testing.T) {
 	if set.Len() != 1 || len(set.Examples[0]) != 5 {
 		t.Errorf("decode_step: %d examples %v", set.Len(), set.Examples)
 	}
-	// Different layouts are refused.
-	_, err = OpenSet([]string{filepath.Join(e, "causal.npz"), filepath.Join(e, "lone.npy"), filepath.Join(e, "lone.npy")}, NewOptions())
-	if err == nil {
-		t.Error("mixed layouts: no error")
+	// Different layouts are refused: when the example is opened, and by
+	// Check, which opens every example (OpenSet assembles only the first).
+	set, err = OpenSet([]string{filepath.Join(e, "causal.npz"), filepath.Join(e, "lone.npy"), filepath.Join(e, "lone.npy")}, NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := set.Check(); err == nil || !strings.Contains(err.Error(), "lone.npy") {
+		t.Errorf("mixed layouts: Check: %v, want an error naming lone.npy", err)
+	}
+	if _, err := set.Open(1); err == nil {
+		t.Error("mixed layouts: Open(1): no error")
 	}
 	// Open joins files whose names do not collide.
 	ex, err = Open([]string{filepath.Join(e, "lone.npy"), filepath.Join(e, "causal.npz")}, NewOptions())

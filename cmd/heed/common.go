@@ -15,6 +15,7 @@ type loadFlags struct {
 	window, prefix, kvHeads int
 	computeDType            string
 	queryStart              int
+	group                   string
 }
 
 func (lf *loadFlags) register(cmd *cobra.Command) {
@@ -27,6 +28,8 @@ func (lf *loadFlags) register(cmd *cobra.Command) {
 	f.IntVar(&lf.kvHeads, "kv-heads", -1, "number of key/value heads (grouped-query attention)")
 	f.StringVar(&lf.computeDType, "compute-dtype", "", `dtype the model computed attention in (float32, bfloat16, float16), e.g. "bfloat16" for a bf16 model saved as float32: row-sum tolerances follow it`)
 	f.IntVar(&lf.queryStart, "query-start", -1, "key position of query row 0, e.g. 17 for a decode step at position 17 written from a static (pre-allocated) KV cache")
+	f.StringVar(&lf.group, "group", "auto", `how files group into examples: auto (names decide; bare NPY files named with numbers, ex0000.npy ..., are examples), examples (one file each), layers (numbered files are the layers of one export), one (all files one export); heed info says which was used`)
+	_ = cmd.RegisterFlagCompletionFunc("group", cobra.FixedCompletions([]string{"auto", "examples", "layers", "one"}, cobra.ShellCompDirectiveNoFileComp))
 }
 
 // options turns the flags into loader options, refusing values that
@@ -41,6 +44,7 @@ func (lf *loadFlags) options() (loader.Options, error) {
 	if lf.window < -1 || lf.prefix < -1 || lf.kvHeads < -1 || lf.queryStart < -1 {
 		return o, errors.New("--window, --prefix, --kv-heads and --query-start must not be negative")
 	}
+	var err error
 	if lf.computeDType != "" {
 		d, err := loader.ParseComputeDType(lf.computeDType)
 		if err != nil {
@@ -55,12 +59,17 @@ func (lf *loadFlags) options() (loader.Options, error) {
 	o.Prefix = lf.prefix
 	o.KVHeads = lf.kvHeads
 	o.QueryStart = lf.queryStart
+	if o.Group, err = loader.ParseGroupMode(lf.group); err != nil {
+		return o, fmt.Errorf("--group: %w", err)
+	}
 	return o, nil
 }
 
-// openSet opens the examples named by args (files, directories, @LIST
-// files) with the overrides of lf. Every example is checked up front, so a
-// bad input fails here with one line naming the file and the array.
+// openSet opens the set of examples named by args (files, directories,
+// @LIST files) with the overrides of lf. Only the first example is read
+// here: the others are opened, and checked against it, when a pass reaches
+// them (a bad one still fails with one line naming the file and the array),
+// so a shard opens only its own examples' files.
 func openSet(args []string, lf *loadFlags) (*loader.Set, error) {
 	if len(args) == 0 {
 		return nil, errors.New("no export files given")
@@ -70,4 +79,18 @@ func openSet(args []string, lf *loadFlags) (*loader.Set, error) {
 		return nil, err
 	}
 	return loader.OpenSet(args, o)
+}
+
+// openSetChecked is openSet with every example opened and checked up front:
+// for heed info, which vouches for the whole set, and the terminal UI, which
+// should fail before it takes the screen rather than in the middle of it.
+func openSetChecked(args []string, lf *loadFlags) (*loader.Set, error) {
+	set, err := openSet(args, lf)
+	if err != nil {
+		return nil, err
+	}
+	if err := set.Check(); err != nil {
+		return nil, err
+	}
+	return set, nil
 }

@@ -175,3 +175,31 @@ func TestDemoTUI(t *testing.T) {
 		t.Errorf("after quitting, the screen lacks the hint %q:\n%s", res.Demo.Hint, screen)
 	}
 }
+
+// heed demo --export refuses a directory of source files (this repository's
+// demo/ package, a module root, a Go package) with one line and exit 2, and
+// writes nothing there, even with --force.
+func TestDemoExportRefusesSourceDir(t *testing.T) {
+	mod := t.TempDir()
+	os.WriteFile(filepath.Join(mod, "go.mod"), []byte("module example.com/x\n"), 0o644)
+	pkg := t.TempDir()
+	os.WriteFile(filepath.Join(pkg, "main.go"), []byte("package main\n"), 0o644)
+	for _, dir := range []string{"../../demo", mod, pkg} {
+		before, _ := os.ReadDir(dir)
+		for _, force := range []bool{false, true} {
+			args := []string{"demo", "--export", dir}
+			if force {
+				args = append(args, "--force")
+			}
+			out, errOut, code := runSplit(t, args...)
+			var se *demo.SourceError
+			_, err := demo.Export(dir, force)
+			if code != 2 || out != "" || strings.Count(strings.TrimSpace(errOut), "\n") != 0 || !strings.Contains(errOut, "source files") || !errors.As(err, &se) {
+				t.Errorf("%v: exit %d, stdout %q, stderr %q; want exit 2 and one line", args, code, out, errOut)
+			}
+		}
+		if after, _ := os.ReadDir(dir); len(after) != len(before) {
+			t.Errorf("%s: %d entries before, %d after: something was written", dir, len(before), len(after))
+		}
+	}
+}

@@ -26,10 +26,13 @@ arrays are present (grad, allow, valid, segments, out) and what "heed check"
 will run on it: the mask rules (the list of check's "rules checked:") and
 the row checks (nan_rows, row_sum, negative on every block; cut on a cross
 block and on a causal block with a prefix). Several files, a directory or @LIST open as one set
-of examples; info describes the first and checks that the others match it.`,
+of examples; info describes the first and checks that the others match it.
+Its first line sums the set up and names the rule that grouped the files
+into examples ("grouped by: array names", "numbered files are examples",
+or the --group given); a grouping heed had to guess is also a warning.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
-			set, err := openSet(args, lf)
+			set, err := openSetChecked(args, lf)
 			if err != nil {
 				return err
 			}
@@ -65,6 +68,7 @@ const firstTokens = 8
 type infoReport struct {
 	Files    []string    `json:"files"`
 	Examples int         `json:"examples"`
+	Grouping infoGroup   `json:"grouping"`
 	Format   string      `json:"format"`
 	Blocks   []infoBlock `json:"blocks"`
 	Sides    []infoSide  `json:"sides"`
@@ -72,6 +76,13 @@ type infoReport struct {
 	Warnings []string    `json:"warnings"`
 	files    [][]string  // per example, for the text form
 	ex       *loader.Export
+}
+
+// infoGroup says how the files were grouped into examples (loader.Grouping).
+type infoGroup struct {
+	Rule    string `json:"rule"`    // "numbered files are examples", "array names", "--group examples", ...
+	Guessed bool   `json:"guessed"` // nothing in the files or flags said it
+	Files   []int  `json:"files"`   // the smallest and largest number of files in an example
 }
 
 type infoBlock struct {
@@ -147,8 +158,11 @@ func kindName(k loader.Kind) string {
 func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	r := &infoReport{Examples: set.Len(), Format: ex.Format, Blocks: []infoBlock{}, Sides: []infoSide{},
 		files: set.Examples, ex: ex}
+	r.Grouping = infoGroup{Rule: set.Grouping.Rule, Guessed: set.Grouping.Guessed, Files: []int{len(set.Examples[0]), len(set.Examples[0])}}
 	for _, e := range set.Examples {
 		r.Files = append(r.Files, e...)
+		r.Grouping.Files[0] = min(r.Grouping.Files[0], len(e))
+		r.Grouping.Files[1] = max(r.Grouping.Files[1], len(e))
 	}
 	for _, b := range ex.Blocks {
 		qs, ks := ex.Side(b.QuerySide), ex.Side(b.KeySide)
@@ -204,7 +218,11 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 	if ex.Logits != nil {
 		r.Logits = &infoLogits{DType: ex.Logits.DType().String(), Shape: ex.Logits.Shape()}
 	}
-	r.Warnings = append([]string{}, ex.Warnings...)
+	r.Warnings = []string{}
+	if set.Grouping.Warning != "" {
+		r.Warnings = append(r.Warnings, set.Grouping.Warning)
+	}
+	r.Warnings = append(r.Warnings, ex.Warnings...)
 	return r
 }
 
@@ -230,6 +248,15 @@ func blockChecks(b *loader.Block, qs, ks *loader.Side) (rules, rows []string) {
 		rows = append(rows, x.String())
 	}
 	return rules, rows
+}
+
+// fileList names the files of one example: all of them when there are a
+// few, else the first two and the last with their number.
+func fileList(files []string) string {
+	if len(files) <= 4 {
+		return strings.Join(files, ", ")
+	}
+	return fmt.Sprintf("%s, %s … %s (%d files)", files[0], files[1], files[len(files)-1], len(files))
 }
 
 func sortedSides(ex *loader.Export) []string {
@@ -260,10 +287,23 @@ func yesNo(b bool) string {
 }
 
 func (r *infoReport) writeText(w io.Writer) {
+	by := "(grouped by: " + r.Grouping.Rule + ")"
+	if r.Grouping.Guessed {
+		by = "(grouped by: " + r.Grouping.Rule + ", guessed: see warnings)"
+	}
 	if len(r.files) == 1 {
-		fmt.Fprintf(w, "export    %s\n", strings.Join(r.files[0], ", "))
+		fmt.Fprintf(w, "export    %s %s\n", fileList(r.files[0]), by)
 	} else {
-		fmt.Fprintf(w, "examples  %d (the first, %s, is described; every example shares its layout)\n", len(r.files), strings.Join(r.files[0], ", "))
+		last := r.files[len(r.files)-1]
+		each := fmt.Sprintf("%d files each", r.Grouping.Files[0])
+		switch {
+		case r.Grouping.Files[0] != r.Grouping.Files[1]:
+			each = fmt.Sprintf("%d to %d files each", r.Grouping.Files[0], r.Grouping.Files[1])
+		case r.Grouping.Files[0] == 1:
+			each = "one file each"
+		}
+		fmt.Fprintf(w, "examples  %d from %s … %s, %s %s\n", len(r.files), r.files[0][0], last[len(last)-1], each, by)
+		fmt.Fprintf(w, "          the first (%s) is described; every example shares its layout\n", fileList(r.files[0]))
 	}
 	format := r.Format
 	if format == "" {

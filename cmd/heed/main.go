@@ -9,10 +9,14 @@ import (
 	"fmt"
 	"os"
 	"os/signal"
+	"regexp"
+	"runtime"
 	"runtime/debug"
+	"strings"
 	"sync/atomic"
 	"syscall"
 
+	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
 
@@ -20,13 +24,74 @@ import (
 var version = ""
 
 func versionString() string {
-	if version != "" {
-		return version
+	bi, _ := debug.ReadBuildInfo()
+	return versionFrom(version, bi)
+}
+
+// pseudoVersion matches the version the go command gives a build of a commit
+// that carries no release tag (v0.0.0-20251204040700-f53f4b693b59, with
+// +dirty for uncommitted changes): the commit says more.
+var pseudoVersion = regexp.MustCompile(`[0-9]{14}-[0-9a-f]{12}(\+dirty)?$`)
+
+// versionFrom says which heed this is: the version set at link time, or the
+// module's version (a release installed with go install MODULE@VERSION),
+// and, for a build from a git checkout, the commit, its time and whether
+// the tree had uncommitted changes, from the VCS information the go command
+// stamps (vcs.revision, vcs.time, vcs.modified; go help buildvcs).
+func versionFrom(ldflags string, bi *debug.BuildInfo) string {
+	if ldflags != "" {
+		return ldflags
 	}
-	if bi, ok := debug.ReadBuildInfo(); ok && bi.Main.Version != "" {
-		return bi.Main.Version
+	v := "devel"
+	if bi == nil {
+		return v + " (no build information)"
 	}
-	return "devel"
+	if mv := bi.Main.Version; mv != "" && mv != "(devel)" && !pseudoVersion.MatchString(mv) {
+		v = strings.TrimSuffix(mv, "+dirty")
+	}
+	var rev, at, modified string
+	for _, s := range bi.Settings {
+		switch s.Key {
+		case "vcs.revision":
+			rev = s.Value
+		case "vcs.time":
+			at = s.Value
+		case "vcs.modified":
+			modified = s.Value
+		}
+	}
+	if rev == "" {
+		if v == "devel" {
+			v += " (no VCS information: built outside a git clone, e.g. in a git worktree, or with -buildvcs=false)"
+		}
+		return v
+	}
+	v += " (commit " + rev[:min(12, len(rev))]
+	if at != "" {
+		v += ", " + at
+	}
+	if modified == "true" {
+		v += ", with uncommitted changes"
+	}
+	return v + ")"
+}
+
+// newVersionCmd returns "heed version": what --version prints, and how the
+// binary was built.
+func newVersionCmd() *cobra.Command {
+	return &cobra.Command{
+		Use:   "version",
+		Short: "Print heed's version (the commit it was built from) and how it was built",
+		Args:  cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, args []string) error {
+			hdf5 := "yes"
+			if !loader.HDF5Supported {
+				hdf5 = "no (built without cgo, or with -tags nohdf5: rebuild with cgo and libhdf5-dev to read .h5 files)"
+			}
+			fmt.Fprintf(cmd.OutOrStdout(), "heed version %s\n%s %s/%s, HDF5 support: %s\n", versionString(), runtime.Version(), runtime.GOOS, runtime.GOARCH, hdf5)
+			return nil
+		},
+	}
 }
 
 func newRootCmd() *cobra.Command {
@@ -55,6 +120,7 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newMergeCmd())
 	root.AddCommand(newRenderCmd())
 	root.AddCommand(newShareCmd())
+	root.AddCommand(newVersionCmd())
 	return root
 }
 

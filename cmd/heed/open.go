@@ -87,7 +87,7 @@ func runTUI(cmd *cobra.Command, args []string, lf *loadFlags, tf *tuiFlags) erro
 	if err != nil {
 		return err
 	}
-	set, err := openSet(args, lf)
+	set, err := openSetChecked(args, lf)
 	if err != nil {
 		return err
 	}

@@ -116,7 +116,7 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		}
 	}
 
-	set, err := openSet(args, lf)
+	set, err := openSetChecked(args, lf)
 	if err != nil {
 		return err
 	}

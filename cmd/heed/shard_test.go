@@ -9,7 +9,9 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
+	"os/exec"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 )
@@ -249,5 +251,140 @@ func TestShardFlagErrors(t *testing.T) {
 	}
 	if code != 0 || json.Unmarshal([]byte(out), &rep) != nil || rep.Examples != 1 {
 		t.Errorf("rank --shard 0/2 --json: exit %d, examples %d, want 1 (file 0 of 2)\n%s", code, rep.Examples, out)
+	}
+}
+
+// numberedSet has numpy write n per-example files dir/ex0000.npy ... each
+// [2 layers, 4 heads, 16, 16] float32 without metadata (causal softmax rows
+// of seeded normal scores), as a user's export loop would, and returns the
+// directory and numpy's mean row entropy per layer and head over all files
+// (-sum p ln p with 0 ln 0 = 0, in float64 of the stored float32 values; the
+// definition heed documents, Clark et al. 2019).
+func numberedSet(t *testing.T, n int) (string, [][]float64) {
+	t.Helper()
+	py := heedPython()
+	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
+		t.Skipf("%s cannot import numpy (set HEED_PYTHON)", py)
+	}
+	dir := filepath.Join(t.TempDir(), "exports")
+	b, err := exec.Command(py, "-c", `
+import json, os, sys, numpy as np
+d, n = sys.argv[1], int(sys.argv[2])
+os.makedirs(d)
+rng = np.random.default_rng(20)
+ent = np.zeros((2, 4))
+rows = 0
+for i in range(n):
+    x = rng.standard_normal((2, 4, 16, 16)) * 2
+    x[..., np.triu(np.ones((16, 16), bool), 1)] = -np.inf
+    p = np.exp(x - x.max(-1, keepdims=True))
+    p = (p / p.sum(-1, keepdims=True)).astype(np.float32)
+    np.save(os.path.join(d, "ex%04d.npy" % i), p)
+    q = p.astype(np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = np.where(q > 0, -q * np.log(q), 0.0)
+    ent += t.sum(-1).sum(-1)
+    rows += 16
+print(json.dumps((ent / rows).tolist()))
+`, dir, strconv.Itoa(n)).Output()
+	if err != nil {
+		t.Fatalf("numpy: %v", err)
+	}
+	var ent [][]float64
+	if err := json.Unmarshal(b, &ent); err != nil {
+		t.Fatal(err)
+	}
+	return dir, ent
+}
+
+// A directory of numbered per-example files (issue 20): as many examples
+// as files, statistics over all of them as numpy computes them, shards
+// that share the files, and a merge equal to the single run byte for byte.
+func TestShardNumberedSet(t *testing.T) {
+	const n = 64
+	dir, ent := numberedSet(t, n)
+	single, _, code := runSplit(t, "rank", dir, "--json")
+	var rep struct {
+		Examples int
+		Heads    []rankHead
+		Warnings []string
+	}
+	if err := json.Unmarshal([]byte(single), &rep); err != nil || code != 0 {
+		t.Fatalf("rank: exit %d %v\n%s", code, err, single)
+	}
+	if rep.Examples != n || len(rep.Heads) != 8 || len(rep.Warnings) == 0 || !strings.Contains(rep.Warnings[0], "--group layers") {
+		t.Fatalf("rank: %d examples, %d heads, warnings %q; want %d examples of 2 layers x 4 heads and the guess said first", rep.Examples, len(rep.Heads), rep.Warnings, n)
+	}
+	for _, h := range rep.Heads {
+		want := ent[h.Layer][h.Head]
+		if h.Entropy == nil || math.Abs(*h.Entropy-want) > 1e-9*want || h.Rows != n*16 {
+			t.Errorf("L%d H%d: entropy %v over %d rows, numpy %v over %d", h.Layer, h.Head, h.Entropy, h.Rows, want, n*16)
+		}
+	}
+	parts := t.TempDir()
+	for _, out := range [][]string{{"--json"}, nil} {
+		want, _, _ := runSplit(t, append([]string{"rank", dir}, out...)...)
+		var files []string
+		seen := map[int]int{}
+		for i := 0; i < 4; i++ {
+			f := filepath.Join(parts, fmt.Sprintf("r%d.json", i))
+			if _, e, code := runSplit(t, "rank", dir, "--shard", fmt.Sprintf("%d/4", i), "--partial", f); code != 0 || !strings.Contains(e, fmt.Sprintf("%d of %d examples", n/4, n)) {
+				t.Fatalf("shard %d/4: exit %d, %q; want %d of %d examples", i, code, e, n/4, n)
+			}
+			pf, err := readPartial(f)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for _, x := range pf.Shard.Examples {
+				seen[x]++
+			}
+			files = append(files, f)
+		}
+		for i := 0; i < n; i++ {
+			if seen[i] != 1 {
+				t.Errorf("example %d is in %d shards, want 1", i, seen[i])
+			}
+		}
+		got, e, code := runSplit(t, append(append([]string{"merge"}, files...), out...)...)
+		if code != 0 || got != want {
+			t.Errorf("merge %v: exit %d %s, same as the single run: %v", out, code, e, got == want)
+		}
+	}
+	// --group layers: the old reading, one export whose layers are the files
+	if out, _, code := runSplit(t, "rank", dir, "--group", "layers", "--json"); code != 0 || !strings.Contains(out, `"examples": 1,`) || !strings.Contains(out, `"layer": 63,`) {
+		t.Errorf("--group layers: exit %d, want 1 example of 64 layers\n%.400s", code, out)
+	}
+	if _, e, code := runSplit(t, "rank", dir, "--group", "pairs"); code != 2 || !strings.Contains(e, "--group") {
+		t.Errorf("--group pairs: exit %d %q, want 2", code, e)
+	}
+}
+
+// heed info sums the set up in a line, never one name per file, and says
+// how it grouped them.
+func TestInfoSetSummary(t *testing.T) {
+	dir, _ := numberedSet(t, 40)
+	out, _, code := runSplit(t, "info", dir)
+	first := strings.SplitN(out, "\n", 2)[0]
+	want := fmt.Sprintf("examples  40 from %s … %s, one file each (grouped by: numbered files are examples, guessed: see warnings)",
+		filepath.Join(dir, "ex0000.npy"), filepath.Join(dir, "ex0039.npy"))
+	if code != 0 || first != want {
+		t.Errorf("info: exit %d, first line\n%s\nwant\n%s", code, first, want)
+	}
+	if strings.Count(out, "ex0017") != 0 {
+		t.Errorf("info names every file:\n%s", out)
+	}
+	js, _, _ := runSplit(t, "info", "--json", "--group", "layers", dir)
+	var rep struct {
+		Examples int
+		Grouping infoGroup
+		Files    []string
+	}
+	if err := json.Unmarshal([]byte(js), &rep); err != nil || rep.Examples != 1 || rep.Grouping.Rule != "--group layers" || rep.Grouping.Guessed ||
+		len(rep.Files) != 40 || rep.Grouping.Files[0] != 40 {
+		t.Errorf("info --json --group layers: %v %+v", err, rep)
+	}
+	out, _, _ = runSplit(t, "info", "--group", "layers", dir)
+	if first := strings.SplitN(out, "\n", 2)[0]; !strings.Contains(first, "… "+filepath.Join(dir, "ex0039.npy")+" (40 files) (grouped by: --group layers)") {
+		t.Errorf("info --group layers: %s", first)
 	}
 }

@@ -150,7 +150,7 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 	defer charmlog.SetDefault(prevCharm)
 
 	// The export, opened once and only read by every session.
-	set, err := openSet(args, lf)
+	set, err := openSetChecked(args, lf)
 	if err != nil {
 		return err
 	}
