@@ -598,18 +598,18 @@ func (r *TraceResult) Summary() string {
 	var parts []string
 	var top float64
 	for _, t := range seen[:n] {
-		name := fmt.Sprintf("position %d", t.Index)
+		name := fmt.Sprintf("position %d (%.0f%%)", t.Index, 100*t.Share/total)
 		if t.Token != "" {
-			name = fmt.Sprintf("%q (%d)", t.Token, t.Index)
+			name = fmt.Sprintf("%q (%d, %.0f%%)", t.Token, t.Index, 100*t.Share/total)
 		}
-		parts = append(parts, fmt.Sprintf("%s %.0f%%", name, 100*t.Share/total))
+		parts = append(parts, name)
 		top += t.Share
 	}
 	what := fmt.Sprintf("query %d", r.Query)
 	if r.QueryToken != "" {
 		what = fmt.Sprintf("query %d %q", r.Query, r.QueryToken)
 	}
-	return fmt.Sprintf("by %s, %s draws %.0f%% on %s", r.Method, what, 100*top/total, strings.Join(parts, ", "))
+	return fmt.Sprintf("by %s, %s draws most on %s: %.0f%% together", r.Method, what, strings.Join(parts, ", "), 100*top/total)
 }
 
 // keyStatus says, for each key of the explained query, why the query may

@@ -615,8 +615,11 @@ func (m *Model) nextScreen(dir int) int {
 func (m *Model) switchTo(i int) {
 	m.active = i
 	m.showHelp = false
-	if i == ScreenCompare {
+	switch i {
+	case ScreenCompare:
 		m.screens[ScreenCompare].(*compareScreen).land()
+	case ScreenTrace:
+		m.screens[ScreenTrace].(*traceScreen).land()
 	}
 }
 

@@ -5,6 +5,8 @@ package tui
 import (
 	"charm.land/bubbles/v2/key"
 	tea "charm.land/bubbletea/v2"
+	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/views"
 )
 
@@ -13,6 +15,47 @@ type traceScreen struct {
 	sel     int
 	byShare bool
 	layout  views.TraceLayout
+	landed  bool // chose its own query on the first visit
+}
+
+// land chooses the query Trace explains on its first visit, on its own
+// terms rather than wherever the Map's cursor was: the first finding's
+// query in this block (what leaked there), else the last real position
+// (the prediction a model makes at the end of its input). A location given
+// at the start with a query (--at) is kept.
+func (s *traceScreen) land() {
+	m := s.m
+	if s.landed {
+		return
+	}
+	s.landed = true
+	if l, err := words.ParseLoc(m.opts.At); err == nil && l.Query >= 0 {
+		return
+	}
+	b := m.bi().blk
+	q, why := -1, ""
+	if m.res != nil {
+		for _, f := range m.res.Findings {
+			if f.Block == b.Name && f.Worst.Query >= 0 && f.Worst.Batch == m.sel.Batch {
+				q, why = f.Worst.Query, "the worst cell of the first finding"
+				break
+			}
+		}
+	}
+	if q < 0 {
+		qside := m.d.ex.Side(b.QuerySide)
+		for p := b.Queries - 1; p >= 0; p-- {
+			if qside.IsValid(m.sel.Batch, p+b.QueryOffset) {
+				q, why = p, "the last real position"
+				break
+			}
+		}
+	}
+	if q < 0 {
+		return
+	}
+	m.selectSet(func(sel *Selection) { sel.Q = q })
+	m.setMsg(fmt.Sprintf("Trace explains query %d (%s) · ←/→ another query", q, why), m.st.Accent)
 }
 
 func newTrace(m *Model) *traceScreen { return &traceScreen{base: base{m: m}} }

@@ -535,3 +535,23 @@ func TestFlowRowInspectorAndNumbers(t *testing.T) {
 	}
 	f.quit()
 }
+
+// Trace chooses its own query on the first visit: the first finding's worst
+// query (numpy's worst forbidden cell), else the last position; keys after
+// the query are marked as not seen, not given a share of 0.
+func TestFlowTraceChoosesItsQuery(t *testing.T) {
+	leak := makeExport(t, "leak.npz", "--leak")
+	var want struct{ Layer, Batch, Head, Q, K int }
+	numpyRef(t, worstLeakScript, &want, leak)
+	f := start(t, 100, 30, Options{}, leak)
+	f.see("1 finding")
+	f.key("4")
+	f.see(fmt.Sprintf("Trace explains query %d (the worst cell of the first finding)", want.Q), "predicted: ", "future: not seen by this query")
+	f.quit()
+	clean := makeExport(t, "clean.npz", "--seq", "12")
+	f = start(t, 100, 30, Options{}, clean)
+	f.see("checks clean")
+	f.key("4")
+	f.see("Trace explains query 11 (the last real position)", "Trace · decoder · q 11")
+	f.quit()
+}

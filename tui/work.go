@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"strconv"
+	"strings"
 	"sync/atomic"
 	"time"
 
@@ -188,6 +189,16 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 			}
 			if td.Tokens == nil {
 				td.Side = res.Side
+				td.Predicted = predictedWords(res.Predicted)
+				td.Summary = res.Summary()
+				for _, t := range res.Tokens {
+					if t.Status != "" {
+						if td.Status == nil {
+							td.Status = make([]string, len(res.Tokens))
+						}
+						td.Status[t.Index] = t.Status
+					}
+				}
 				n := 0
 				for _, t := range res.Tokens {
 					n = max(n, t.Index+1)
@@ -214,11 +225,29 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 			// unnormalised shares (flow, grad, rollout through
 			// cross-attention) show as % of their total (views.TraceMethod)
 			tm.Normalised = res.Normalised
+			if m == analysis.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
+				tm.Note = "relevance the layers add (R less its identity start)"
+			}
 			td.Methods = append(td.Methods, tm)
 		}
 		msg.data = td
 		return msg
 	}
+}
+
+// predictedWords says what the model predicted at the traced position.
+func predictedWords(p analysis.Prediction) string {
+	switch p.From {
+	case "logits":
+		tok := fmt.Sprintf("index %d", p.ID)
+		if p.Token != "" {
+			tok = strconv.Quote(p.Token)
+		}
+		return fmt.Sprintf("%s, p %.3g (logits)", tok, *p.Prob)
+	case "next token":
+		return strconv.Quote(p.Token) + " (the next input token; no logits exported)"
+	}
+	return "not known (no logits exported, and no input token after this one)"
 }
 
 // holdFor is how long the background statistics stand still after a key or

@@ -57,6 +57,14 @@ type TraceData struct {
 	Block      string
 	Query      int
 	QueryToken string
+	// Predicted says what the model predicted at the query, in words ("" =
+	// unknown).
+	Predicted string
+	// Status per input position: "" when the query may see it, else why
+	// not ("future", "padding", "other document"); drawn instead of a bar.
+	Status []string
+	// Summary is one sentence on the top sources.
+	Summary string
 	// Side names the input tokens ("target", or "source" through cross-attention).
 	Side    string
 	Tokens  []string
@@ -136,6 +144,18 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	}
 	c.Text(x, 0, " · shares of the "+side+" tokens", st.Faint, -1)
 	y := 1
+	if d.Predicted != "" {
+		c.Text(0, y, "predicted: "+d.Predicted, st.Accent, w)
+		y++
+	}
+	if d.Summary != "" && y < h-3 {
+		for _, ln := range wrap(d.Summary, w) {
+			if y < h-4 {
+				c.Text(0, y, ln, st.Text, w)
+				y++
+			}
+		}
+	}
 	for _, m := range d.Methods {
 		if n := m.note(); n != "" && y < h-3 {
 			c.Text(0, y, m.Name+": "+n, st.Faint, w)
@@ -164,13 +184,25 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	barW := max(1, colW-valW-2)
 	order := TraceOrder(d, opt.ByShare)
 	c.Text(0, y, padLeft("#", posW)+" "+padRight("token", tokW), st.Faint, -1)
-	// bars are scaled to each method's largest share; percentages of
-	// unnormalised shares are of their total
+	// bars are scaled to each method's largest share among the keys the
+	// query may see; percentages of unnormalised shares are of their total
 	maxes := make([]float64, len(d.Methods))
 	totals := make([]float64, len(d.Methods))
+	seen := func(p int) bool { return p >= len(d.Status) || d.Status[p] == "" }
 	for i, m := range d.Methods {
-		c.Text(labelW+1+i*colW, y, ellipsize(m.Name, colW-1), st.Faint, -1)
-		maxes[i], totals[i], _ = shareSums(m.Shares)
+		name := m.Name + " (bar: ÷ largest)"
+		if StringWidth(name) > colW-1 {
+			name = m.Name
+		}
+		c.Text(labelW+1+i*colW, y, ellipsize(name, colW-1), st.Faint, -1)
+		vis := make([]float64, len(m.Shares))
+		for p, v := range m.Shares {
+			vis[p] = v
+			if !seen(p) {
+				vis[p] = math.NaN()
+			}
+		}
+		maxes[i], totals[i], _ = shareSums(vis)
 	}
 	if opt.ByShare {
 		c.Text(max(0, w-18), y, "sorted by "+d.Methods[0].Name, st.Faint, -1)
@@ -194,6 +226,18 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 			style = st.LabelHi
 		}
 		c.Text(0, yy, padLeft(strconv.Itoa(p), posW)+" "+padRight(d.Tokens[p], tokW), style, labelW)
+		if !seen(p) {
+			// a key the query may not see: what leaked there is not an
+			// explanation, and 0 would read as "no influence"
+			msg := d.Status[p] + ": not seen by this query"
+			style := st.Faint
+			if len(d.Methods) > 0 && p < len(d.Methods[0].Shares) && d.Methods[0].Shares[p] > 1e-6 {
+				msg += fmt.Sprintf(" (yet %s %s reaches it: a leak)", d.Methods[0].Name, strconv.FormatFloat(d.Methods[0].Shares[p], 'g', 3, 64))
+				style = st.Bad
+			}
+			c.Text(labelW+1, yy, msg, style, w-labelW-1)
+			continue
+		}
 		for mi, m := range d.Methods {
 			v := math.NaN()
 			if p < len(m.Shares) {
