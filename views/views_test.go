@@ -310,6 +310,20 @@ func TestTrace(t *testing.T) {
 		long.Methods[1].Shares[i] = math.NaN()
 	}
 	long.Methods[1].Note = "needs decoder/grad in the export"
+	// the query at position 9 of 16: keys after it are future, one of them
+	// reached by a leak; with what the model predicted and a summary
+	answered := &TraceData{Block: "decoder", Query: 9, QueryToken: " was", Side: "target", Tokens: demoTokens,
+		Predicted: `" warm", p 0.62 (logits)`, Summary: `by rollout, query 9 " was" draws most on " was" (9, 31%), " It" (8, 20%): 51% together`,
+		Status:  make([]string, 16),
+		Methods: []TraceMethod{{Name: "rollout", Shares: make([]float64, 16), Normalised: true}}}
+	for i := range answered.Tokens {
+		if i > 9 {
+			answered.Status[i] = "future"
+		} else {
+			answered.Methods[0].Shares[i] = float64(i+1) / 56
+		}
+	}
+	answered.Methods[0].Shares[10] = 0.02 // leaked
 	cases := []struct {
 		name string
 		d    *TraceData
@@ -323,6 +337,7 @@ func TestTrace(t *testing.T) {
 		{"long_ascii_200x57", long, 200, 57, TraceOptions{Selected: 3}, colorprofile.ASCII},
 		{"unnormalised_ascii_80x21", traceUnnormalised(), 80, 21, TraceOptions{Selected: 1}, colorprofile.ASCII},
 		{"unnormalised_byshare_truecolor_80x21", traceUnnormalised(), 80, 21, TraceOptions{Selected: 1, ByShare: true}, colorprofile.TrueColor},
+		{"answered_ascii_100x24", answered, 100, 24, TraceOptions{Selected: 9}, colorprofile.ASCII},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
