@@ -457,45 +457,109 @@ func headMean(blk *loader.Block, layer, batch int, buf []float32) ([]float64, er
 }
 
 // layerAbar returns per layer the matrix a method propagates: the head mean
-// of A (rollout) or GradAbar (grad).
+// of A (rollout) or GradAbar (grad). Only attention flow and the
+// encoder-decoder rules need every layer at once; a self-attention rollout
+// or relevance row streams one layer at a time (traceSelf).
 func layerAbar(blk *loader.Block, batch int, grad bool) ([][]float64, error) {
 	if grad && !blk.HasGrad {
-		return nil, fmt.Errorf("analysis: block %s has no gradients (%s/grad): --method grad needs them; use rollout or flow", blk.Name, blk.Name)
+		return nil, noGrad(blk)
 	}
-	n := blk.Queries * blk.Keys
 	out := make([][]float64, blk.Layers)
-	buf := make([]float32, n)
+	var lb layerBufs
 	for l := range out {
-		if !grad {
-			m, err := headMean(blk, l, batch, buf)
-			if err != nil {
-				return nil, err
-			}
-			out[l] = m
-			continue
+		m, err := lb.layer(blk, l, batch, grad)
+		if err != nil {
+			return nil, err
 		}
-		as := make([][]float32, blk.Heads)
-		gs := make([][]float32, blk.Heads)
-		for h := range as {
-			as[h], gs[h] = make([]float32, n), make([]float32, n)
-			if err := blk.ReadAttn(l, batch, h, as[h]); err != nil {
-				return nil, err
-			}
-			if err := blk.ReadGrad(l, batch, h, gs[h]); err != nil {
-				return nil, err
-			}
-		}
-		out[l] = make([]float64, n)
-		GradAbar(out[l], as, gs)
+		out[l] = m
 	}
-	for _, m := range out {
-		for _, x := range m {
-			if math.IsNaN(x) || math.IsInf(x, 0) {
-				return nil, errors.New("analysis: the attention holds NaN or Inf in the rows traced: run heed check")
+	return out, nil
+}
+
+func noGrad(blk *loader.Block) error {
+	return fmt.Errorf("analysis: block %s has no gradients (%s/grad): --method grad needs them; use rollout or flow", blk.Name, blk.Name)
+}
+
+// layerBufs are the head buffers of layerBufs.layer, reused across layers.
+type layerBufs struct{ a, g []float32 }
+
+// layer returns one layer's matrix (a new n x n slice): the head mean of A
+// or, with grad, GradAbar, reading one head at a time (the sums run in the
+// same order as headMean's and GradAbar's over all heads at once).
+func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float64, error) {
+	n := blk.Queries * blk.Keys
+	if lb.a == nil {
+		lb.a = make([]float32, n)
+	}
+	var out []float64
+	if !grad {
+		m, err := headMean(blk, l, batch, lb.a)
+		if err != nil {
+			return nil, err
+		}
+		out = m
+	} else {
+		if lb.g == nil {
+			lb.g = make([]float32, n)
+		}
+		out = make([]float64, n)
+		for h := 0; h < blk.Heads; h++ {
+			if err := blk.ReadAttn(l, batch, h, lb.a); err != nil {
+				return nil, err
 			}
+			if err := blk.ReadGrad(l, batch, h, lb.g); err != nil {
+				return nil, err
+			}
+			for i := range out {
+				if v := -float64(lb.g[i]) * float64(lb.a[i]); v > 0 {
+					out[i] += v
+				}
+			}
+		}
+		inv := 1 / float64(blk.Heads)
+		for i := range out {
+			out[i] *= inv
+		}
+	}
+	for _, x := range out {
+		if math.IsNaN(x) || math.IsInf(x, 0) {
+			return nil, errors.New("analysis: the attention holds NaN or Inf in the rows traced: run heed check")
 		}
 	}
 	return out, nil
+}
+
+// streamRow returns row q of the product M_{L-1} ... M_0 of the layers'
+// matrices (rollout: the residual-augmented head means; grad: I + Abar),
+// reading the layers from the top down, one at a time: one pass over the
+// attention (and gradients) in O(n^2) memory rather than O(layers n^2).
+// The arithmetic is RolloutRow's and SelfRelevanceRow's.
+func streamRow(blk *loader.Block, batch, q int, grad bool) ([]float64, error) {
+	if grad && !blk.HasGrad {
+		return nil, noGrad(blk)
+	}
+	n := blk.Keys
+	v := make([]float64, n)
+	w := make([]float64, n)
+	v[q] = 1
+	var lb layerBufs
+	for l := blk.Layers - 1; l >= 0; l-- {
+		m, err := lb.layer(blk, l, batch, grad)
+		if err != nil {
+			return nil, err
+		}
+		if !grad {
+			ResidualRows(m, n)
+		}
+		vecMat(w, v, m, n, n)
+		if grad {
+			for j := range w {
+				w[j] += v[j]
+			}
+		}
+		v, w = w, v
+	}
+	return v, nil
 }
 
 func defaultBlock(ex *loader.Export) *loader.Block {
@@ -687,29 +751,37 @@ func traceSelf(ctx context.Context, blk *loader.Block, batch, q int, method Meth
 		return nil, fmt.Errorf("analysis: block %s has %d queries over %d keys (a decode step): propagation through layers needs square self-attention", blk.Name, blk.Queries, blk.Keys)
 	}
 	n := blk.Keys
-	mats, err := layerAbar(blk, batch, method == MethodGrad)
-	if err != nil {
-		return nil, err
-	}
 	switch method {
 	case MethodGrad:
 		// R starts as I, so row q of R holds 1 at q itself whatever the
 		// attention did: report what the layers added, R - I (row q less
 		// its identity start), or the query explains itself by 100%
-		r := SelfRelevanceRow(mats, n, q)
+		r, err := streamRow(blk, batch, q, true)
+		if err != nil {
+			return nil, err
+		}
 		r[q]--
 		return r, nil
-	case MethodRollout, MethodFlow:
-		for _, m := range mats {
-			ResidualRows(m, n)
-		}
-		if method == MethodRollout {
-			return RolloutRow(mats, n, q), nil
-		}
+	case MethodRollout:
+		return streamRow(blk, batch, q, false)
+	case MethodFlow:
 		// only positions reachable from q matter; under a causal mask that is 0..q
 		reach := n
 		if blk.Kind == loader.KindCausal {
 			reach = q + 1
+		}
+		// refused beyond the limit before anything is read
+		if w := int64(blk.Layers) * int64(reach) * int64(reach) * int64(reach); w > FlowLimit {
+			return nil, &FlowTooLargeError{Layers: blk.Layers, Positions: reach, Work: w}
+		}
+		mats, err := layerAbar(blk, batch, false)
+		if err != nil {
+			return nil, err
+		}
+		for _, m := range mats {
+			ResidualRows(m, n)
+		}
+		if blk.Kind == loader.KindCausal {
 			for l, m := range mats {
 				sub := make([]float64, reach*reach)
 				for i := 0; i < reach; i++ {

@@ -218,7 +218,7 @@ func TestCleanSurveyAndScreens(t *testing.T) {
 	tm.keys("3")
 	tm.see("Findings · clean", "No forbidden cell carries mass")
 	tm.keys("4")
-	tm.see("Trace · decoder · q 0", "rollout", "flow")
+	tm.see("Trace · decoder · q 15", "Trace explains query 15 (the last real position)", "rollout", "flow")
 	tm.keys("Tab")
 	tm.see("[1 Survey]")
 	tm.keys("BTab")
