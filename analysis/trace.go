@@ -5,8 +5,10 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"runtime"
 	"sort"
 	"strings"
+	"sync"
 
 	"github.com/heed-dev/heed/loader"
 )
@@ -480,43 +482,132 @@ func noGrad(blk *loader.Block) error {
 	return fmt.Errorf("analysis: block %s has no gradients (%s/grad): --method grad needs them; use rollout or flow", blk.Name, blk.Name)
 }
 
-// layerBufs are the head buffers of layerBufs.layer, reused across layers.
-type layerBufs struct{ a, g []float32 }
+// layerBufs are the head buffers of layerBufs.layer, reused across layers:
+// two of each, so that the next head is read (converted from its stored
+// dtype) while the previous one is added in.
+type layerBufs struct {
+	a, g [2][]float32
+	raw  [2][]uint16 // stored float16/bfloat16 patterns (the head mean's fast path)
+}
+
+// rawMean adds the heads of layer l into out (not yet divided) through
+// their stored 16-bit patterns and the 65,536-entry value table, one loop
+// instead of a conversion and an addition: the values are those ReadAttn
+// gives (loader.ReadRaw16), so the sums are headMean's bit for bit. ok is
+// false when the block is not held that way.
+func (lb *layerBufs) rawMean(blk *loader.Block, l, batch int, out []float64) (ok bool, err error) {
+	n := len(out)
+	if lb.raw[0] == nil {
+		lb.raw[0] = make([]uint16, n)
+	}
+	dt, err := blk.ReadRaw16(l, batch, 0, lb.raw[0])
+	if err != nil || dt == loader.Invalid {
+		return false, err
+	}
+	tab := rawTablesFor(dt).val
+	// the cells split over the processors: each adds its own cells in
+	// head order, so the sums are the same whatever the split
+	parts := max(1, min(runtime.GOMAXPROCS(0), n/traceSplitCells))
+	for h := 0; h < blk.Heads; h++ {
+		if h > 0 {
+			if _, err := blk.ReadRaw16(l, batch, h, lb.raw[0]); err != nil {
+				return false, err
+			}
+		}
+		raw := lb.raw[0]
+		var wg sync.WaitGroup
+		for p := range parts {
+			lo, hi := p*n/parts, (p+1)*n/parts
+			wg.Go(func() {
+				o, r := out[lo:hi], raw[lo:hi]
+				for i, x := range r {
+					o[i] += float64(tab[x])
+				}
+			})
+		}
+		wg.Wait()
+	}
+	return true, nil
+}
+
+// eachHead calls add(h, a, g) for every head of layer l in head order, with
+// the head's attention (and gradients, with grad) read by a second
+// goroutine one head ahead: on two processors reading and adding overlap,
+// and the sums keep their order (the result is headMean's, bit for bit).
+func (lb *layerBufs) eachHead(blk *loader.Block, l, batch int, grad bool, add func(h int, a, g []float32)) error {
+	n := blk.Queries * blk.Keys
+	for i := range 2 {
+		if lb.a[i] == nil {
+			lb.a[i] = make([]float32, n)
+		}
+		if grad && lb.g[i] == nil {
+			lb.g[i] = make([]float32, n)
+		}
+	}
+	read := func(h int) error {
+		if err := blk.ReadAttn(l, batch, h, lb.a[h%2]); err != nil {
+			return err
+		}
+		if grad {
+			return blk.ReadGrad(l, batch, h, lb.g[h%2])
+		}
+		return nil
+	}
+	if err := read(0); err != nil {
+		return err
+	}
+	for h := 0; h < blk.Heads; h++ {
+		next := make(chan error, 1)
+		if h+1 < blk.Heads {
+			go func() { next <- read(h + 1) }()
+		} else {
+			next <- nil
+		}
+		add(h, lb.a[h%2], lb.g[h%2])
+		if err := <-next; err != nil {
+			return err
+		}
+	}
+	return nil
+}
 
 // layer returns one layer's matrix (a new n x n slice): the head mean of A
 // or, with grad, GradAbar, reading one head at a time (the sums run in the
 // same order as headMean's and GradAbar's over all heads at once).
 func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float64, error) {
-	n := blk.Queries * blk.Keys
-	if lb.a == nil {
-		lb.a = make([]float32, n)
-	}
-	var out []float64
+	out := make([]float64, blk.Queries*blk.Keys)
+	fast := false
 	if !grad {
-		m, err := headMean(blk, l, batch, lb.a)
-		if err != nil {
+		var err error
+		if fast, err = lb.rawMean(blk, l, batch, out); err != nil {
 			return nil, err
 		}
-		out = m
-	} else {
-		if lb.g == nil {
-			lb.g = make([]float32, n)
-		}
-		out = make([]float64, n)
-		for h := 0; h < blk.Heads; h++ {
-			if err := blk.ReadAttn(l, batch, h, lb.a); err != nil {
-				return nil, err
-			}
-			if err := blk.ReadGrad(l, batch, h, lb.g); err != nil {
-				return nil, err
+	}
+	err := error(nil)
+	if !fast {
+		err = lb.eachHead(blk, l, batch, grad, func(_ int, a, g []float32) {
+			if !grad {
+				for i, x := range a {
+					out[i] += float64(x)
+				}
+				return
 			}
 			for i := range out {
-				if v := -float64(lb.g[i]) * float64(lb.a[i]); v > 0 {
+				if v := -float64(g[i]) * float64(a[i]); v > 0 {
 					out[i] += v
 				}
 			}
+		})
+	}
+	if err != nil {
+		return nil, err
+	}
+	if !grad {
+		for i := range out {
+			out[i] /= float64(blk.Heads) // as headMean
 		}
-		inv := 1 / float64(blk.Heads)
+	} else {
+		inv := 1 / float64(blk.Heads) // as GradAbar
 		for i := range out {
 			out[i] *= inv
 		}
@@ -528,6 +619,10 @@ func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float6
 	}
 	return out, nil
 }
+
+// traceSplitCells is the fewest cells a processor takes in rawMean (tests
+// lower it to split small heads too).
+var traceSplitCells = 1 << 16
 
 // streamRow returns row q of the product M_{L-1} ... M_0 of the layers'
 // matrices (rollout: the residual-augmented head means; grad: I + Abar),

@@ -208,3 +208,84 @@ func TestStreamRowMatchesFullProduct(t *testing.T) {
 		ex.Close()
 	}
 }
+
+// The head mean through the stored float16 patterns equals the plain loop
+// over converted heads bit for bit (documents_good.npz is float16).
+func TestRawMeanMatchesPlainLoop(t *testing.T) {
+	ex, err := loader.Open([]string{filepath.Join(casesDir, "documents_good.npz")}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	blk := ex.Blocks[0]
+	n := blk.Queries * blk.Keys
+	if dt, err := blk.ReadRaw16(0, 0, 0, make([]uint16, n)); err != nil || dt != loader.Float16 {
+		t.Fatalf("the fixture is not read as float16 patterns: %v %v", dt, err)
+	}
+	var lb layerBufs
+	defer func(v int) { traceSplitCells = v }(traceSplitCells)
+	traceSplitCells = 7 // split even these small heads over the processors
+	for b := 0; b < blk.Batch; b++ {
+		for l := 0; l < blk.Layers; l++ {
+			want, err := headMean(blk, l, b, make([]float32, n))
+			if err != nil {
+				t.Fatal(err)
+			}
+			got, err := lb.layer(blk, l, b, false)
+			if err != nil {
+				t.Fatal(err)
+			}
+			for i := range want {
+				if got[i] != want[i] {
+					t.Fatalf("batch %d layer %d cell %d: %v, plain loop %v", b, l, i, got[i], want[i])
+				}
+			}
+		}
+	}
+}
+
+// The layer matrices read a head ahead on a second goroutine equal the plain
+// loops over the heads (headMean, GradAbar) bit for bit.
+func TestLayerMatchesPlainLoops(t *testing.T) {
+	ex, err := loader.Open([]string{filepath.Join(casesDir, "importance", "ex0.npz")}, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ex.Close()
+	blk := defaultBlock(ex)
+	n := blk.Queries * blk.Keys
+	var lb layerBufs
+	for l := 0; l < blk.Layers; l++ {
+		want, err := headMean(blk, l, 0, make([]float32, n))
+		if err != nil {
+			t.Fatal(err)
+		}
+		as, gs := make([][]float32, blk.Heads), make([][]float32, blk.Heads)
+		for h := range as {
+			as[h], gs[h] = make([]float32, n), make([]float32, n)
+			if err := blk.ReadAttn(l, 0, h, as[h]); err != nil {
+				t.Fatal(err)
+			}
+			if err := blk.ReadGrad(l, 0, h, gs[h]); err != nil {
+				t.Fatal(err)
+			}
+		}
+		wantG := make([]float64, n)
+		GradAbar(wantG, as, gs)
+		for _, grad := range []bool{false, true} {
+			got, err := lb.layer(blk, l, 0, grad)
+			if err != nil {
+				t.Fatal(err)
+			}
+			w := want
+			if grad {
+				w = wantG
+			}
+			for i := range w {
+				if got[i] != w[i] {
+					t.Fatalf("layer %d grad=%v cell %d: %v, plain loop %v", l, grad, i, got[i], w[i])
+				}
+			}
+		}
+	}
+}
