@@ -299,7 +299,7 @@ func TestOneKeyToTheLeak(t *testing.T) {
 				}
 			}
 			tm.keys("n")
-			s = tm.see("[2 Map]", "finding 1 of 1", "causal leak", `q 150 → k 201`, "forbidden by causal", "decoder  L7  H5  q150  k201")
+			s = tm.see("[2 Map]", "finding 1 of 1", "causal leak", `q 150 → k 201`, "forbidden by causal", "decoder:L7:H5:q150:k201")
 			checkWidth(t, s, 120)
 			// centred: the row label of query 150 is in the middle third of the map
 			lines := strings.Split(s, "\n")

@@ -867,10 +867,16 @@ func (m *Model) helpKeys() keyHelp {
 
 func (m *Model) statusFields() []views.Field {
 	b := m.bi().blk
-	f := []views.Field{{Value: b.Name}, {Value: "L" + itoa(m.sel.Layer)}, {Value: "H" + itoa(m.sel.Head)}}
-	if b.Batch > 1 {
-		f = append(f, views.Field{Value: "B" + itoa(m.sel.Batch)})
+	// the location in the one syntax --at takes and y copies, with the
+	// query and key where the screen has a cursor
+	loc := m.Location()
+	switch m.active {
+	case ScreenSurvey, ScreenFindings:
+		loc.Query, loc.Key = -1, -1
+	case ScreenTrace:
+		loc.Key = -1
 	}
+	f := []views.Field{{Value: loc.String()}}
 	if b.AxesFrom == "rank" && b.AxesOther != "" {
 		// how the array was read, until someone says (Findings has the words)
 		f = append(f, views.Field{Name: "axes guessed", Value: strings.ReplaceAll(b.Axes, " ", "·")})
@@ -878,11 +884,7 @@ func (m *Model) statusFields() []views.Field {
 	if b.KindFrom == "inferred" {
 		f = append(f, views.Field{Name: "inferred", Value: string(b.Kind)})
 	}
-	if m.active == ScreenMap || m.active == ScreenCompare || m.active == ScreenTrace {
-		f = append(f, views.Field{Value: "q" + itoa(m.sel.Q)})
-	}
 	if m.active == ScreenMap || m.active == ScreenCompare {
-		f = append(f, views.Field{Value: "k" + itoa(m.sel.K)})
 		if w, err := m.d.weight(m.headKey(0), m.sel.Q*b.Keys+m.sel.K); err == nil {
 			f = append(f, views.Field{Name: "w", Value: views.FormatWeight(w)})
 		}

@@ -156,7 +156,7 @@ func TestDemoTUI(t *testing.T) {
 	if !strings.Contains(first, "[2 Map]") || !strings.Contains(first, "+1 leak: right of the diagonal") {
 		t.Errorf("tab bar %q: want the Map active and the hint", first)
 	}
-	if !strings.Contains(screen, fmt.Sprintf("q%d  k%d", loc.Query, loc.Key)) || !strings.Contains(screen, "forbidden by causal") {
+	if !strings.Contains(screen, fmt.Sprintf(":q%d:k%d", loc.Query, loc.Key)) || !strings.Contains(screen, "forbidden by causal") {
 		t.Errorf("the Map does not start on the leaking cell q%d k%d (forbidden by causal):\n%s", loc.Query, loc.Key, screen)
 	}
 	tmux("send-keys", "-t", session, "q")

@@ -122,7 +122,7 @@ func TestShareJourney(t *testing.T) {
 	wait("guest", "on your own  ·") // the status of a guest on their own
 	tmux("send-keys", "-t", "presenter", ">")
 	screen = wait("guest", "F: follow the presenter again (at decoder:L0:H3:B0:q5:k5)")
-	if !strings.Contains(screen, " decoder  L0  H2 ") {
+	if !strings.Contains(screen, " decoder:L0:H2:B0:q5:k5 ") {
 		t.Errorf("a guest on their own was moved:\n%s", screen)
 	}
 	tmux("send-keys", "-t", "guest", "F")
