@@ -210,7 +210,9 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64,
 	case d.Numbers:
 		l.CellW = numW // scrolls across heads
 	case 3*d.Heads <= avail:
-		l.CellW = 3
+		// wider cells when there is room (a few heads read better as
+		// blocks than as thin bars), up to six columns
+		l.CellW = min(6, avail/d.Heads)
 	case 2*d.Heads <= avail:
 		l.CellW = 2
 	default:
@@ -373,8 +375,11 @@ func surveyCell(c *Canvas, d *SurveyData, x, y, cw, ll, hh int, cur bool, lo, hi
 		case st.HalfBlocks():
 			ch, cell = '█', Style{FG: col}
 			if cur {
-				ch, cell = '<', Style{FG: contrast(col), BG: col, Attr: Bold}
-				if g == glyphs-1 && glyphs > 1 {
+				ch, cell = ' ', Style{FG: contrast(col), BG: col, Attr: Bold}
+				switch {
+				case g == 0:
+					ch = '<'
+				case g == glyphs-1:
 					ch = '>'
 				}
 			}
