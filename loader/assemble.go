@@ -4,8 +4,10 @@ import (
 	"bytes"
 	"encoding/json"
 	"fmt"
+	"maps"
 	"os"
 	"regexp"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -313,7 +315,7 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 	for _, a := range others {
 		ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: %s: ignored: not a name of the heed-export/1 convention", a.File(), a.Name()))
 	}
-	for name := range md.Blocks {
+	for _, name := range slices.Sorted(maps.Keys(md.Blocks)) {
 		if blocks[name] == nil {
 			ex.Warnings = append(ex.Warnings, fmt.Sprintf("metadata describes block %q, which has no arrays", name))
 		}
@@ -390,7 +392,8 @@ func mergeMeta(metas []metaSource) (metaDoc, error) {
 			}
 			out.ComputeDType = d.ComputeDType
 		}
-		for name, b := range d.Blocks {
+		for _, name := range slices.Sorted(maps.Keys(d.Blocks)) {
+			b := d.Blocks[name]
 			if prev, ok := out.Blocks[name]; ok {
 				pj, _ := json.Marshal(prev)
 				bj, _ := json.Marshal(b)
@@ -566,6 +569,18 @@ func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array
 
 // layerArrays returns the arrays of a whole-or-per-layer role in layer order,
 // checking that per-layer indices run 0..L-1.
+// lowestLayer is the per-layer array of the lowest layer: the one messages
+// name, the same from one run to the next (a map's order is not).
+func lowestLayer(per map[int]Array) Array {
+	best := -1
+	for l := range per {
+		if best < 0 || l < best {
+			best = l
+		}
+	}
+	return per[best]
+}
+
 func layerArrays(block, role string, whole Array, per map[int]Array) ([]Array, bool, error) {
 	if whole != nil {
 		return []Array{whole}, false, nil
@@ -574,7 +589,8 @@ func layerArrays(block, role string, whole Array, per map[int]Array) ([]Array, b
 		return nil, false, nil
 	}
 	out := make([]Array, len(per))
-	for l, a := range per {
+	for _, l := range slices.Sorted(maps.Keys(per)) {
+		a := per[l]
 		if l >= len(per) {
 			return nil, true, ferr(a, "layer %d given but only %d %s/%s/N arrays: per-layer arrays must be numbered 0..%d without gaps", l, len(per), block, role, len(per)-1)
 		}
@@ -742,17 +758,14 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 	} else if p.out != nil {
 		first = p.out
 	} else if len(p.outL) > 0 {
-		for _, a := range p.outL {
-			first = a
-			break
-		}
+		first = lowestLayer(p.outL)
 	} else {
 		a := p.grad
 		if a == nil {
 			a = p.allow
 		}
-		for _, g := range p.gradL {
-			a = g
+		if len(p.gradL) > 0 {
+			a = lowestLayer(p.gradL)
 		}
 		return nil, ferr(a, "block %q has no attention (%s/attn or %s/attn/N)", p.name, p.name, p.name)
 	}
@@ -869,8 +882,8 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 			if a == nil {
 				a = p.allow
 			}
-			for _, g := range p.gradL {
-				a = g
+			if len(p.gradL) > 0 {
+				a = lowestLayer(p.gradL)
 			}
 			return nil, ferr(a, "block %q has gradients or a mask but no attention (%s/attn)", p.name, p.name)
 		}
