@@ -1,6 +1,7 @@
 package analysis
 
 import (
+	"encoding/json"
 	"fmt"
 	"slices"
 	"sort"
@@ -444,4 +445,69 @@ func cloneBlock(b *BlockPartial) *BlockPartial {
 		c.Geometry[i].merge(&b.Geometry[i])
 	}
 	return &c
+}
+
+// maxPartialUnits bounds the (layer, head, batch item) accumulators a
+// partial may declare: far above any model (64 layers x 128 heads x 2048
+// batch items), far below what would exhaust memory.
+const maxPartialUnits = 1 << 24
+
+// DecodePartial reads a Partial from its JSON (a shard's file, which may be
+// damaged or not heed's) and checks that it hangs together: the version,
+// every block's shape against its accumulators, names, rules and counts. A
+// Partial it returns can be merged and reported without surprises.
+func DecodePartial(b []byte) (*Partial, error) {
+	var p Partial
+	if err := json.Unmarshal(b, &p); err != nil {
+		return nil, err
+	}
+	if err := p.Validate(); err != nil {
+		return nil, err
+	}
+	return &p, nil
+}
+
+// Validate checks that p hangs together (see DecodePartial).
+func (p *Partial) Validate() error {
+	if p.Version != PartialVersion {
+		return fmt.Errorf("partial version %q, want %q", p.Version, PartialVersion)
+	}
+	if p.Examples < 0 {
+		return fmt.Errorf("partial counts %d examples", p.Examples)
+	}
+	seen := map[string]bool{}
+	for i, bp := range p.Blocks {
+		if bp == nil {
+			return fmt.Errorf("partial block %d is empty", i)
+		}
+		switch {
+		case bp.Name == "" || seen[bp.Name]:
+			return fmt.Errorf("partial block %d: name %q missing or repeated", i, bp.Name)
+		case bp.Layers < 1 || bp.Heads < 1 || bp.Batch < 0 || bp.Queries < 0 || bp.Keys < 0:
+			return fmt.Errorf("partial block %s: shape %d layers, %d heads, %d batch items, %d x %d", bp.Name, bp.Layers, bp.Heads, bp.Batch, bp.Queries, bp.Keys)
+		case int64(bp.Layers)*int64(bp.Heads)*int64(max(bp.Batch, 1)) > maxPartialUnits:
+			return fmt.Errorf("partial block %s: %d x %d x %d units is more than heed reads", bp.Name, bp.Layers, bp.Heads, bp.Batch)
+		case len(bp.Units) != bp.Layers*bp.Heads:
+			return fmt.Errorf("partial block %s: %d units for %d layers x %d heads", bp.Name, len(bp.Units), bp.Layers, bp.Heads)
+		case len(bp.Geometry) != bp.Batch:
+			return fmt.Errorf("partial block %s: geometry of %d batch items, %d declared", bp.Name, len(bp.Geometry), bp.Batch)
+		}
+		seen[bp.Name] = true
+		for j, u := range bp.Units {
+			if len(u) != bp.Batch {
+				return fmt.Errorf("partial block %s: unit %d holds %d batch items, %d declared", bp.Name, j, len(u), bp.Batch)
+			}
+			for k := range u {
+				if a := &u[k]; a.Rows < 0 || a.NaNRows < 0 || a.PadRows < 0 || a.GradExamples < 0 {
+					return fmt.Errorf("partial block %s: unit %d batch %d has negative counts", bp.Name, j, k)
+				}
+			}
+		}
+		for _, n := range bp.Rules {
+			if r, err := ParseRule(n); err != nil || !r.IsMask() {
+				return fmt.Errorf("partial block %s: rule %q", bp.Name, n)
+			}
+		}
+	}
+	return nil
 }
