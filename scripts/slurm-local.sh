@@ -114,6 +114,9 @@ TaskPlugin=task/none
 SelectType=select/cons_tres
 SelectTypeParameters=CR_CPU
 SchedulerType=sched/builtin
+# Start jobs at the next scheduling pass (about a second) instead of up to
+# 3 s later: a test submits many short jobs.
+SchedulerParameters=batch_sched_delay=0,sched_min_interval=0
 MpiDefault=none
 JobAcctGatherType=jobacct_gather/none
 AccountingStorageType=accounting_storage/none
