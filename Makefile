@@ -7,7 +7,7 @@ BIN ?= ./heed
 # Stamp the binary with the commit it is built from (heed version), whatever GOFLAGS says.
 BUILDVCS ?= -buildvcs=auto
 
-.PHONY: all build install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
+.PHONY: all build install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck slurm-test bench clean
 
 all: build
 
@@ -72,6 +72,20 @@ crosscheck:
 	$(PYTHON) testdata/gen_fixtures.py --check
 	$(PYTHON) testdata/demo/generate.py --check
 	$(PYTHON) testdata/hostile/gen.py --check
+
+# The Slurm recipe of docs/scale.md run as written on a one-node cluster on this machine
+# (cmd/heed/slurm_test.go; CI runs it after make test). As root it installs slurm-wlm and munge,
+# brings the cluster up with scripts/slurm-local.sh and stops it afterwards (unless it was up
+# before). When the packages or the cluster cannot be had, it says why and skips the test
+# (SLURM_REQUIRED=1 makes that an error); once the cluster is up, a failing test fails.
+slurm-test:
+	@scripts/install-deps.sh slurm || { \
+		echo "slurm-test: SKIPPED: slurm-wlm and munge are missing and could not be installed (above)"; exit $${SLURM_REQUIRED:-0}; }
+	@up=0; scripts/slurm-local.sh status >/dev/null 2>&1 && up=1; \
+	scripts/slurm-local.sh start || { \
+		echo "slurm-test: SKIPPED: no local Slurm cluster: scripts/slurm-local.sh start failed (above)"; exit $${SLURM_REQUIRED:-0}; }; \
+	HEED_SLURM=1 HEED_PYTHON=$(PYTHON) $(GO) test -count=1 -timeout 15m -v -run '^TestSlurm' ./cmd/heed; rc=$$?; \
+	[ $$up = 1 ] || scripts/slurm-local.sh stop; exit $$rc
 
 # Whole-process timing and memory figures (bench/main.go says what is measured).
 # Exports are written once with numpy into HEED_BENCH_DIR or /tmp/heed-bench

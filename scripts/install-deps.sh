@@ -3,13 +3,21 @@
 # libhdf5-dev and pkg-config (HDF5 through cgo), tmux (end-to-end TUI tests),
 # openssh-client (tests of `heed share`), and Debian's python3 with numpy, h5py,
 # scipy, torch and matplotlib (the reference libraries the tests compare against).
+# `install-deps.sh slurm` adds slurm-wlm and munge (make slurm-test: a one-node
+# Slurm cluster, scripts/slurm-local.sh).
 # As root (or with passwordless sudo) it installs them with apt-get; otherwise
 # it lists what is missing and exits 1.
 set -euo pipefail
 
 need=()
+extra=()
+case ${1:-} in
+"") ;;
+slurm) extra=(slurm-wlm munge) ;;
+*) echo "usage: $0 [slurm]" >&2; exit 2 ;;
+esac
 have_pkg() { dpkg-query -W -f='${Status}' "$1" 2>/dev/null | grep -q "install ok installed"; }
-for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib python3-pil; do
+for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib python3-pil ${extra[@]+"${extra[@]}"}; do
   have_pkg "$p" || need+=("$p")
 done
 if ! command -v go >/dev/null 2>&1; then

@@ -7,7 +7,8 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
-	"github.com/heed-dev/heed/internal/words"
+	"io/fs"
+	"math/rand/v2"
 	"os"
 	"path/filepath"
 	"sort"
@@ -15,6 +16,7 @@ import (
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 	"github.com/spf13/pflag"
@@ -208,13 +210,16 @@ func notAnInput(out string, set *loader.Set) error {
 }
 
 // writePartial writes the file next to its final name and renames it, so a
-// killed task leaves no half-written partial for merge to trip on.
+// killed task leaves no half-written partial for merge to trip on. The file
+// is created with mode 0666 less the umask, as a shell redirection would
+// make it, so that a colleague's merge on shared storage can read it (a
+// temporary file from os.CreateTemp would stay 0600).
 func writePartial(path string, pf *partialFile) error {
 	b, err := json.Marshal(pf)
 	if err != nil {
 		return fmt.Errorf("partial %s: %w", path, err)
 	}
-	tmp, err := os.CreateTemp(filepath.Dir(path), "."+filepath.Base(path)+".*")
+	tmp, err := createBeside(path)
 	if err != nil {
 		return fmt.Errorf("partial: %w", err)
 	}
@@ -230,6 +235,20 @@ func writePartial(path string, pf *partialFile) error {
 		return fmt.Errorf("partial %s: %w", path, err)
 	}
 	return nil
+}
+
+// createBeside creates a new hidden file in path's directory, named after
+// it, with mode 0666 less the umask.
+func createBeside(path string) (*os.File, error) {
+	dir, base := filepath.Dir(path), filepath.Base(path)
+	for try := 0; ; try++ {
+		name := filepath.Join(dir, fmt.Sprintf(".%s.%d-%08x", base, os.Getpid(), rand.Uint32()))
+		f, err := os.OpenFile(name, os.O_WRONLY|os.O_CREATE|os.O_EXCL, 0o666)
+		if errors.Is(err, fs.ErrExist) && try < 100 {
+			continue
+		}
+		return f, err
+	}
 }
 
 // readPartial reads and checks the envelope of one partial file.

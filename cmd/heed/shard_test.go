@@ -13,6 +13,7 @@ import (
 	"path/filepath"
 	"strconv"
 	"strings"
+	"syscall"
 	"testing"
 )
 
@@ -386,5 +387,41 @@ func TestInfoSetSummary(t *testing.T) {
 	out, _, _ = runSplit(t, "info", "--group", "layers", dir)
 	if first := strings.SplitN(out, "\n", 2)[0]; !strings.Contains(first, "… "+filepath.Join(dir, "ex0039.npy")+" (40 files) (grouped by: --group layers)") {
 		t.Errorf("info --group layers: %s", first)
+	}
+}
+
+// A partial is created as any output redirected by a shell is: mode 0666
+// less the umask (POSIX, sh "Redirecting Output"), so a colleague can merge
+// partials on shared storage (issue 20: they were 0600). The shell's own
+// file under the same umask is the reference.
+func TestPartialFollowsUmask(t *testing.T) {
+	data := shardSet(t, 2)
+	dir := t.TempDir()
+	old := syscall.Umask(0o022)
+	defer syscall.Umask(old)
+	for _, mask := range []int{0o022, 0o002, 0o027} {
+		syscall.Umask(mask)
+		f := filepath.Join(dir, fmt.Sprintf("r-%03o.json", mask))
+		if _, e, code := runSplit(t, "rank", data, "--shard", "0/2", "--partial", f); code != 0 {
+			t.Fatalf("umask %03o: exit %d %s", mask, code, e)
+		}
+		ref := filepath.Join(dir, fmt.Sprintf("sh-%03o", mask))
+		if b, err := exec.Command("/bin/sh", "-c", `: > "$1"`, "sh", ref).CombinedOutput(); err != nil {
+			t.Fatalf("sh: %v %s", err, b)
+		}
+		got, err1 := os.Stat(f)
+		want, err2 := os.Stat(ref)
+		if err1 != nil || err2 != nil {
+			t.Fatal(err1, err2)
+		}
+		if got.Mode().Perm() != want.Mode().Perm() || got.Mode().Perm() != os.FileMode(0o666&^mask) {
+			t.Errorf("umask %03o: partial has mode %v, the shell's file %v, want %v", mask, got.Mode().Perm(), want.Mode().Perm(), os.FileMode(0o666&^mask))
+		}
+	}
+	ents, _ := os.ReadDir(dir)
+	for _, e := range ents {
+		if strings.HasPrefix(e.Name(), ".") {
+			t.Errorf("temporary file left behind: %s", e.Name())
+		}
 	}
 }
