@@ -66,6 +66,7 @@ fuzz:
 	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzTorch$$' -fuzztime $(FUZZTIME) ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzPartial$$' -fuzztime $(FUZZTIME) ./analysis
 
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:

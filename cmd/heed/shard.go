@@ -269,6 +269,9 @@ func readPartial(path string) (*partialFile, error) {
 	case pf.Shard.Count < 1 || pf.Shard.Index < 0 || pf.Shard.Index >= pf.Shard.Count:
 		return nil, fmt.Errorf("%s: shard %d/%d is not valid", path, pf.Shard.Index, pf.Shard.Count)
 	}
+	if err := pf.Partial.Validate(); err != nil {
+		return nil, fmt.Errorf("%s: a damaged partial: %w", path, err)
+	}
 	return &pf, nil
 }
 

@@ -425,3 +425,32 @@ func TestPartialFollowsUmask(t *testing.T) {
 		}
 	}
 }
+
+// A damaged partial (its accumulators not matching its shape) is refused
+// with one line naming the file, exit 2, not merged or panicked on.
+func TestMergeRefusesDamagedPartial(t *testing.T) {
+	dir := t.TempDir()
+	p := filepath.Join(dir, "p0.json")
+	if out, code := run(t, "check", "--shard", "0/1", "--partial", p, filepath.Join(casesDir, "shift_bad.npz")); code != 0 {
+		t.Fatalf("partial: exit %d\n%s", code, out)
+	}
+	b, err := os.ReadFile(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// the block says 3 layers while its units are those of 2
+	bad := bytes.Replace(b, []byte(`"layers":2,`), []byte(`"layers":3,`), 1)
+	if bytes.Equal(bad, b) {
+		t.Fatal("the partial has no \"layers\":2 to damage")
+	}
+	if err := os.WriteFile(p, bad, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if out, code := run(t, "merge", p); code != 2 {
+		t.Errorf("merge of a damaged partial: exit %d, want 2\n%s", code, out)
+	}
+	_, err = readPartial(p)
+	if err == nil || err.Error() != p+": a damaged partial: partial block decoder: 8 units for 3 layers x 4 heads" {
+		t.Errorf("error %v: want one line naming the file and the damage", err)
+	}
+}
