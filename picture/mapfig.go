@@ -168,7 +168,7 @@ func MapFigure(d *views.MapData, o MapFigureOptions) (*Figure, error) {
 	if o.RuleName != "" {
 		rule = "the " + o.RuleName + " rule"
 	}
-	sw = append(sw, swatch{c: k.st.Colormap.Alarm, text: fmt.Sprintf("forbidden by %s yet weight > %s (a leak)", rule, views.FormatWeight(d.Tol))})
+	sw = append(sw, swatch{c: k.st.Colormap.Alarm, text: fmt.Sprintf("forbidden by %s yet %s > %s (a leak)", rule, measure, views.FormatWeight(d.Tol))})
 	if has["masked"] {
 		sw = append(sw, swatch{framed: true, text: "forbidden by " + rule + ", no weight"})
 	}
