@@ -284,9 +284,9 @@ func TestSurveyFigure(t *testing.T) {
 	}
 }
 
-// TestRotatedText: text turned by 90 degrees covers a tall, narrow box,
+// TestFigureRotatedText: text turned by 90 degrees covers a tall, narrow box,
 // level text a wide, low one, of the same size.
-func TestRotatedText(t *testing.T) {
+func TestFigureRotatedText(t *testing.T) {
 	box := func(angle float64) image.Rectangle {
 		f := NewFigure(200, 200, false)
 		f.Text("heed heed", 100, 100, 15, angle, Middle, Regular, views.RGB(0, 0, 0))

@@ -198,8 +198,8 @@ func (e *figureEnv) mapFigure(md *views.MapData, ruleNames string, what string, 
 	})
 }
 
-// renderFigure draws the screen of rf as a figure; survey is the analysis
-// result for the Survey (nil for the others).
+// figure draws a screen as a figure; res is the analysis result for the
+// Survey (nil for the others).
 func (e *figureEnv) figure(screen string, res *analysis.Result) (*picture.Figure, error) {
 	switch screen {
 	case "map":

@@ -47,20 +47,28 @@ func newRenderCmd() *cobra.Command {
 	cmd := &cobra.Command{
 		Use:   "render FILE... --at LOC -o OUT.{png,svg,txt}",
 		Short: "Write a picture of one screen (PNG, SVG or text) for a chat or a report",
-		Long: `render draws one screen of the terminal UI at a location and writes it to a
-file: PNG or SVG (drawn with the Go Mono font built into heed, so the picture is
-the same on every machine) or text (plain, or with ANSI colours with --color),
-chosen by the extension of -o.
+		Long: `render writes one screen at a location to a file, chosen by the extension
+of -o: a PNG or SVG figure for a slide or a report, or the terminal screen as
+text (plain, or with ANSI colours with --color).
 
-The Map (default) shows one head's query x key weights with token labels on
-both axes, forbidden cells that carry mass marked as in the TUI, the colour
-scale and the cursor readout; --screen picks the Survey, Findings, Trace or
-(with two exports) Compare instead. Findings are evidence to confirm by
-re-evaluating the model, not verdicts.
+A figure is drawn with the Go Mono font built into heed (the same picture on
+every machine), at most 1600 pixels wide, with the location as its title. The
+Map (default) plots one head's query x key weights with token labels on both
+axes (the keys' turned to read upwards), a colour bar "attention weight" from
+0 to the head's largest weight, and forbidden cells that carry weight in the
+alarm colour; --screen picks the Survey (entropy of every head, layers x
+heads), Findings, Trace (bars of each input token's share, by rollout, flow
+and gradient relevance) or, with two exports, Compare (|A−B|) instead.
+Findings are evidence to confirm by re-evaluating the model, not verdicts.
+
+A Map, Compare or Trace figure shows at most 64 positions unless told: for a
+longer sequence, the 64 ending at the query, with a note saying so; --from
+and --to (inclusive, up to 256 positions) pick others.
 
 The file is written atomically. An existing file is replaced only when it is
 a previous heed render, or with --force.`,
 		Example: `  heed render run.npz --at decoder:L3:H7:q12 -o leak.png
+  heed render run.npz --at decoder:L3:H7:q700 --from 640 --to 703 -o late.svg
   heed render run.npz --at decoder:L3:H7 --screen survey -o survey.svg
   heed render run.npz --at decoder:L0:H0 --screen findings -o findings.txt`,
 		Args: cobra.MinimumNArgs(1),
