@@ -10,7 +10,12 @@
 // without seams; so are the light box-drawing lines, so that they join. A glyph Go Mono lacks is drawn as an empty box.
 //
 // PNG and SVG are built from the same list of rectangles and glyphs, so the
-// two formats show the same thing. picture imports views and nothing above it.
+// two formats show the same thing.
+//
+// A Figure (figure.go) is laid out in pixels instead: the plots of the Map,
+// the Trace and the Survey (MapFigure, TraceFigure, SurveyFigure) drawn from
+// the views' data, with text scaled and rotated as outlines. picture imports
+// views and nothing above it.
 package picture
 
 import (

@@ -11,6 +11,7 @@ import (
 	tea "charm.land/bubbletea/v2"
 	"github.com/charmbracelet/colorprofile"
 	"github.com/charmbracelet/x/ansi"
+	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/picture"
 	"github.com/heed-dev/heed/tui"
@@ -23,6 +24,8 @@ type renderFlags struct {
 	at, out, screen, colormap, background string
 	colour, force                         bool
 	width, height                         int
+	// from, to page the positions of a figure (inclusive; -1 = automatic)
+	from, to int
 }
 
 // renderScreens maps --screen to the TUI's screen and its jump key.
@@ -44,20 +47,28 @@ func newRenderCmd() *cobra.Command {
 	cmd := &cobra.Command{
 		Use:   "render FILE... --at LOC -o OUT.{png,svg,txt}",
 		Short: "Write a picture of one screen (PNG, SVG or text) for a chat or a report",
-		Long: `render draws one screen of the terminal UI at a location and writes it to a
-file: PNG or SVG (drawn with the Go Mono font built into heed, so the picture is
-the same on every machine) or text (plain, or with ANSI colours with --color),
-chosen by the extension of -o.
+		Long: `render writes one screen at a location to a file, chosen by the extension
+of -o: a PNG or SVG figure for a slide or a report, or the terminal screen as
+text (plain, or with ANSI colours with --color).
 
-The Map (default) shows one head's query x key weights with token labels on
-both axes, forbidden cells that carry mass marked as in the TUI, the colour
-scale and the cursor readout; --screen picks the Survey, Findings, Trace or
-(with two exports) Compare instead. Findings are evidence to confirm by
-re-evaluating the model, not verdicts.
+A figure is drawn with the Go Mono font built into heed (the same picture on
+every machine), at most 1600 pixels wide, with the location as its title. The
+Map (default) plots one head's query x key weights with token labels on both
+axes (the keys' turned to read upwards), a colour bar "attention weight" from
+0 to the head's largest weight, and forbidden cells that carry weight in the
+alarm colour; --screen picks the Survey (entropy of every head, layers x
+heads), Findings, Trace (bars of each input token's share, by rollout, flow
+and gradient relevance) or, with two exports, Compare (|A−B|) instead.
+Findings are evidence to confirm by re-evaluating the model, not verdicts.
+
+A Map, Compare or Trace figure shows at most 64 positions unless told: for a
+longer sequence, the 64 ending at the query, with a note saying so; --from
+and --to (inclusive, up to 256 positions) pick others.
 
 The file is written atomically. An existing file is replaced only when it is
 a previous heed render, or with --force.`,
 		Example: `  heed render run.npz --at decoder:L3:H7:q12 -o leak.png
+  heed render run.npz --at decoder:L3:H7:q700 --from 640 --to 703 -o late.svg
   heed render run.npz --at decoder:L3:H7 --screen survey -o survey.svg
   heed render run.npz --at decoder:L0:H0 --screen findings -o findings.txt`,
 		Args: cobra.MinimumNArgs(1),
@@ -73,8 +84,10 @@ a previous heed render, or with --force.`,
 	f.BoolVar(&rf.force, "force", false, "replace OUT even when it is not a previous heed render")
 	f.StringVar(&rf.colormap, "colormap", views.DefaultColormap, "colormap: "+strings.Join(views.ColormapNames(), ", "))
 	f.StringVar(&rf.background, "background", "light", "page background of PNG and SVG: light or dark")
-	f.IntVar(&rf.width, "width", 0, "width in terminal columns (0: enough for the screen, up to 320)")
-	f.IntVar(&rf.height, "height", 0, "height in terminal lines (0: enough for the screen, up to 200)")
+	f.IntVar(&rf.width, "width", 0, "width in terminal columns of a text render or the Findings picture (0: enough for the screen, up to 320)")
+	f.IntVar(&rf.height, "height", 0, "height in terminal lines of a text render or the Findings picture (0: enough for the screen, up to 200)")
+	f.IntVar(&rf.from, "from", -1, "first position a PNG/SVG of the map, compare or trace shows (default: the 64 ending at the query)")
+	f.IntVar(&rf.to, "to", -1, "last position it shows (inclusive; at most 256 positions)")
 	lf.register(cmd)
 	return cmd
 }
@@ -106,6 +119,13 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 	}
 	if rf.width < 0 || rf.height < 0 || (rf.width > 0 && rf.width < 40) || (rf.height > 0 && rf.height < 12) || rf.width > 2000 || rf.height > 2000 {
 		return fmt.Errorf("render: --width %d --height %d: want 0 (automatic) or 40..2000 columns and 12..2000 lines", rf.width, rf.height)
+	}
+	figure := format != picture.FormatTXT && rf.screen != "findings"
+	if (rf.from != -1 || rf.to != -1) && !figure {
+		return fmt.Errorf("render: --from/--to page the positions of a PNG or SVG of the map, compare or trace, not of %s", rf.out)
+	}
+	if rf.from < -1 || rf.to < -1 || (rf.from >= 0 && rf.to >= 0 && rf.to < rf.from) {
+		return fmt.Errorf("render: --from %d --to %d: want positions with --from <= --to", rf.from, rf.to)
 	}
 	// Refuse early, before any work, to replace a file that is not ours.
 	if !rf.force {
@@ -161,23 +181,31 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		h = 40
 	}
 
-	body, err := drawScreen(ctx, m, scr.index, scr.key, w, h)
-	if err != nil {
-		return err
-	}
-	st := views.NewStyles(profile, dark, cm)
 	locStr := m.LocationString()
 	if scr.index == tui.ScreenSurvey || scr.index == tui.ScreenFindings {
 		l := m.Location() // these screens show a head, not a query
 		l.Query, l.Key = -1, -1
 		locStr = l.String()
 	}
+	name := strings.Join(set.Examples[0], " ")
+	if figure {
+		return renderFigure(ctx, set, m, rf, scr.index, scr.key, scr.what, w, h, format, views.NewStyles(profile, dark, cm), locStr, name)
+	}
+
+	body, err := drawScreen(ctx, m, scr.index, scr.key, w, h)
+	if err != nil {
+		return err
+	}
+	st := views.NewStyles(profile, dark, cm)
 	title := fmt.Sprintf("heed · %s · %s · %s", rf.screen, locStr, scr.what)
 	body = crop(body)
 	c := views.NewCanvas(max(body.W, views.StringWidth(title)), body.H+2)
 	c.Text(0, 0, title, st.Title, -1)
 	c.Blit(0, 2, body)
-	name := strings.Join(set.Examples[0], " ")
+	if format != picture.FormatTXT {
+		// a picture of a screen (Findings): no cursor, no empty band
+		c = tidy(c)
+	}
 	opt := picture.Options{
 		Dark:        dark,
 		Title:       title,
@@ -303,3 +331,80 @@ func (r *renderModel) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 }
 
 func (r *renderModel) View() tea.View { return r.m.View() }
+
+// renderFigure writes a PNG or SVG figure of the Map, Compare, Trace or
+// Survey (figure.go); the Survey's statistics come from the TUI's own pass.
+func renderFigure(ctx context.Context, set *loader.Set, m *tui.Model, rf *renderFlags, screen int, jump rune, what string, w, h int,
+	format picture.Format, st views.Styles, locStr, name string) error {
+	var res *analysis.Result
+	if screen == tui.ScreenSurvey {
+		if _, err := drawScreen(ctx, m, screen, jump, w, h); err != nil {
+			return err
+		}
+		res = m.Result()
+	}
+	ex, err := set.Open(0)
+	if err != nil {
+		return err
+	}
+	defer ex.Close()
+	// the mask rules as the TUI and the checks infer them
+	if err := analysis.InferExport(ctx, ex); err != nil {
+		return err
+	}
+	loc := m.Location()
+	blk := ex.Block(loc.Block)
+	if blk == nil {
+		return fmt.Errorf("render: no block %s", loc.Block)
+	}
+	env := &figureEnv{ctx: ctx, set: set, ex: ex, blk: blk, loc: loc, batch: max(0, loc.Batch), rf: rf, st: st, locStr: locStr}
+	fig, err := env.figure(rf.screen, res)
+	if err != nil {
+		return err
+	}
+	opt := picture.Options{
+		Dark:        st.Dark,
+		Title:       fmt.Sprintf("heed · %s · %s · %s", rf.screen, env.locStr, what),
+		Description: "heed " + versionString() + " render of " + name,
+		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, env.locStr, rf.screen, versionString()),
+	}
+	data, err := picture.EncodeFigure(fig, format, opt)
+	if err != nil {
+		return err
+	}
+	return picture.WriteFile(rf.out, data, rf.force)
+}
+
+// tidy makes a screen's cells a picture: the cursor's reverse video goes
+// (a picture has no cursor) and a run of empty lines is closed up to one.
+func tidy(c *views.Canvas) *views.Canvas {
+	var keep []int
+	empty := 0
+	for y := 0; y < c.H; y++ {
+		blankLine := true
+		for x := 0; x < c.W; x++ {
+			if !blank(c.At(x, y)) {
+				blankLine = false
+				break
+			}
+		}
+		if blankLine {
+			empty++
+			if empty > 1 {
+				continue
+			}
+		} else {
+			empty = 0
+		}
+		keep = append(keep, y)
+	}
+	out := views.NewCanvas(c.W, len(keep))
+	for i, y := range keep {
+		for x := 0; x < c.W; x++ {
+			cell := c.At(x, y)
+			cell.Attr &^= views.Reverse
+			out.Cells[i*c.W+x] = cell
+		}
+	}
+	return out
+}

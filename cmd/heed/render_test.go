@@ -13,7 +13,6 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/charmbracelet/x/ansi"
 	"github.com/heed-dev/heed/picture"
 )
 
@@ -119,62 +118,172 @@ func equalInts(a, b []int) bool {
 	return true
 }
 
-// TestRenderFormatsAgree: the PNG and the SVG are the colour text render's
-// cells, CellW x CellH pixels each plus the margin.
-func TestRenderFormatsAgree(t *testing.T) {
-	file := filepath.Join(casesDir, "shift_bad.npz")
+// svgText parses an SVG render: its title, its <desc>, and its text runs
+// (aria-label -> transform).
+func svgText(t *testing.T, data []byte) (title, desc string, runs map[string]string) {
+	t.Helper()
+	dec := xml.NewDecoder(bytes.NewReader(data))
+	runs = map[string]string{}
+	var in string
+	for {
+		tok, err := dec.Token()
+		if err != nil {
+			break
+		}
+		switch e := tok.(type) {
+		case xml.StartElement:
+			in = e.Name.Local
+			if e.Name.Local == "g" {
+				var label, tf string
+				for _, a := range e.Attr {
+					switch a.Name.Local {
+					case "aria-label":
+						label = a.Value
+					case "transform":
+						tf = a.Value
+					}
+				}
+				if label != "" {
+					runs[label] = tf
+				}
+			}
+		case xml.CharData:
+			switch in {
+			case "title":
+				title += string(e)
+			case "desc":
+				desc += string(e)
+			}
+		case xml.EndElement:
+			in = ""
+		}
+	}
+	return title, desc, runs
+}
+
+// TestRenderFigures: the PNG and SVG of every screen are at most
+// picture.MaxFigureWidth wide, carry the location in their title and
+// marker, show no cursor glyph, and label the Map's keys with whole tokens
+// turned to read upwards.
+func TestRenderFigures(t *testing.T) {
+	bad, good := filepath.Join(casesDir, "shift_bad.npz"), filepath.Join(casesDir, "shift_good.npz")
 	dir := t.TempDir()
-	at := "decoder:L0:H1:q4"
-	shown := "decoder:L0:H1:B0:q4:k4" // the block has two batch items: the title names the item, and the cursor's cell
-	for _, ext := range []string{"png", "svg", "txt"} {
-		args := []string{"render", file, "--at", at, "-o", filepath.Join(dir, "m."+ext)}
-		if ext == "txt" {
-			args = append(args, "--color")
+	for _, tc := range []struct {
+		screen string
+		files  []string
+		shown  string
+		want   []string
+	}{
+		{"map", []string{bad}, "decoder:L0:H1:B0:q4:k4", []string{"query (target token, row)", "key (target token, position)", "attention weight"}},
+		{"compare", []string{good, bad}, "decoder:L0:H1:B0:q4:k4", []string{"|A−B| of the attention weights"}},
+		{"trace", []string{good}, "decoder:L0:H1:B0:q4", []string{"rollout", "flow", "grad"}},
+		{"survey", []string{bad}, "decoder:L0:H1:B0", []string{"head", "layer", "entropy (nats)"}},
+		{"findings", []string{bad}, "decoder:L0:H1:B0", nil},
+	} {
+		for _, ext := range []string{"png", "svg"} {
+			out := filepath.Join(dir, tc.screen+"."+ext)
+			args := append(append([]string{"render"}, tc.files...), "--at", "decoder:L0:H1:q4", "--screen", tc.screen, "-o", out)
+			if msg, code := run(t, args...); code != 0 {
+				t.Fatalf("%s %s: exit %d: %s", tc.screen, ext, code, msg)
+			}
+			data := mustRead(t, out)
+			if ext == "png" {
+				img, err := png.Decode(bytes.NewReader(data))
+				if err != nil {
+					t.Fatalf("%s: image/png: %v", tc.screen, err)
+				}
+				if b := img.Bounds(); b.Dx() > picture.MaxFigureWidth {
+					t.Errorf("%s: PNG %d px wide, want at most %d", tc.screen, b.Dx(), picture.MaxFigureWidth)
+				}
+				meta, err := picture.PNGText(data)
+				if err != nil || !strings.HasPrefix(meta["Software"], "heed render "+tc.shown+" "+tc.screen) || !strings.Contains(meta["Title"], tc.shown) {
+					t.Errorf("%s: PNG tEXt %v %v, want %s", tc.screen, meta, err, tc.shown)
+				}
+				continue
+			}
+			title, desc, runs := svgText(t, data)
+			if !strings.Contains(title, tc.shown) {
+				t.Errorf("%s: SVG title %q, want %s", tc.screen, title, tc.shown)
+			}
+			for _, w := range tc.want {
+				if _, ok := runs[w]; !ok {
+					t.Errorf("%s: no text run %q", tc.screen, w)
+				}
+			}
+			for r := range runs {
+				if strings.ContainsAny(r, "+▼") {
+					t.Errorf("%s: text run %q looks like a cursor", tc.screen, r)
+				}
+			}
+			switch tc.screen {
+			case "map":
+				// shift_bad's target tokens label the keys, one run each, turned
+				turned := 0
+				for r, tf := range runs {
+					if strings.Contains(tf, "rotate(-90)") && regexp.MustCompile(` \d+$`).MatchString(r) {
+						turned++
+					}
+				}
+				if turned < 8 {
+					t.Errorf("map: %d key labels turned to read upwards; runs %v", turned, runs)
+				}
+			case "findings":
+				if !strings.Contains(desc, "shifted by +1") {
+					t.Errorf("findings: desc lacks the finding: %q", desc)
+				}
+			}
 		}
-		if msg, code := run(t, args...); code != 0 {
-			t.Fatalf("render %s: exit %d: %s", ext, code, msg)
+	}
+}
+
+// TestRenderPagesLongSequences: a 300-token export's Map and Trace show 64
+// positions ending at the query, and say so; --from/--to pick others.
+func TestRenderPagesLongSequences(t *testing.T) {
+	py := heedPython()
+	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
+		t.Skipf("skipping: %s cannot import numpy", py)
+	}
+	dir := t.TempDir()
+	file := filepath.Join(dir, "long.npz")
+	if out, err := exec.Command(py, "../../tui/testdata/make_export.py", file, "--leak", "--seq", "300").CombinedOutput(); err != nil {
+		t.Fatalf("make_export.py: %v: %s", err, out)
+	}
+	const how = " shown; --from/--to pick the positions"
+	for _, tc := range []struct {
+		args []string
+		note string
+	}{
+		{[]string{"--at", "decoder:L1:H2:q200"}, "queries and keys 137–200 of 300" + how},
+		{[]string{"--at", "decoder:L1:H2:q10"}, "queries and keys 0–63 of 300" + how},
+		{[]string{"--at", "decoder:L1:H2:q200", "--from", "100", "--to", "149"}, "queries and keys 100–149 of 300" + how},
+		{[]string{"--at", "decoder:L1:H2:q200", "--screen", "trace"}, "target tokens 137–200 of 300" + how},
+	} {
+		out := filepath.Join(dir, "fig.svg")
+		if msg, code := run(t, append(append([]string{"render", file}, tc.args...), "-o", out)...); code != 0 {
+			t.Fatalf("%v: exit %d: %s", tc.args, code, msg)
+		}
+		_, _, runs := svgText(t, mustRead(t, out))
+		if _, ok := runs[tc.note]; !ok {
+			t.Errorf("%v: no note %q", tc.args, tc.note)
 		}
 	}
-	txt, _ := os.ReadFile(filepath.Join(dir, "m.txt"))
-	lines := strings.Split(strings.TrimSuffix(string(txt), "\n"), "\n")[1:]
-	if !strings.Contains(string(txt), "\x1b[") {
-		t.Error("--color text has no escape sequences")
+	for _, args := range [][]string{
+		{"--at", "decoder:L1:H2", "--from", "0", "--to", "299"}, // over 256 positions
+		{"--at", "decoder:L1:H2", "--from", "300"},              // past the end
+		{"--at", "decoder:L1:H2", "--from", "20", "--to", "10"}, // backwards
+		{"--at", "decoder:L1:H2", "--from", "0", "--screen", "findings"},
+	} {
+		out := filepath.Join(dir, "bad.png")
+		if msg, code := run(t, append(append([]string{"render", file}, args...), "-o", out)...); code != 2 {
+			t.Errorf("%v: exit %d, want 2: %s", args, code, msg)
+		}
+		if _, err := os.Stat(out); err == nil {
+			t.Errorf("%v: wrote %s", args, out)
+			os.Remove(out)
+		}
 	}
-	cols := 0
-	for _, l := range lines {
-		cols = max(cols, ansi.StringWidth(l))
-	}
-	wantW, wantH := 2*picture.Pad+cols*picture.CellW, 2*picture.Pad+len(lines)*picture.CellH
-
-	pngData, _ := os.ReadFile(filepath.Join(dir, "m.png"))
-	img, err := png.Decode(bytes.NewReader(pngData))
-	if err != nil {
-		t.Fatalf("image/png: %v", err)
-	}
-	if b := img.Bounds(); b.Dx() != wantW || b.Dy() != wantH {
-		t.Errorf("PNG %dx%d, want %dx%d (%d x %d cells)", b.Dx(), b.Dy(), wantW, wantH, cols, len(lines))
-	}
-	meta, err := picture.PNGText(pngData)
-	if err != nil || !strings.HasPrefix(meta["Software"], "heed render "+shown+" map") || !strings.Contains(meta["Title"], shown) {
-		t.Errorf("PNG tEXt %v %v", meta, err)
-	}
-
-	svgData, _ := os.ReadFile(filepath.Join(dir, "m.svg"))
-	var root struct {
-		XMLName xml.Name
-		Width   string `xml:"width,attr"`
-		Height  string `xml:"height,attr"`
-		Title   string `xml:"title"`
-		Desc    string `xml:"desc"`
-	}
-	if err := xml.Unmarshal(svgData, &root); err != nil {
-		t.Fatalf("encoding/xml: %v", err)
-	}
-	if root.XMLName.Local != "svg" || root.Width != strconv.Itoa(wantW) || root.Height != strconv.Itoa(wantH) {
-		t.Errorf("SVG %s %sx%s, want svg %dx%d", root.XMLName.Local, root.Width, root.Height, wantW, wantH)
-	}
-	if !strings.Contains(root.Title, shown) || !strings.Contains(root.Desc, "■ leak") {
-		t.Errorf("SVG title %q, desc lacks the legend", root.Title)
+	if msg, code := run(t, "render", file, "--at", "decoder:L1:H2", "--from", "0", "-o", filepath.Join(dir, "a.txt")); code != 2 {
+		t.Errorf("--from with a text render: exit %d: %s", code, msg)
 	}
 }
 
