@@ -163,76 +163,97 @@ func traceNote(err error) string {
 func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string, hasGrad bool) tea.Cmd {
 	return func() tea.Msg {
 		msg := traceMsg{key: k, results: map[analysis.Method]error{}}
-		td := &views.TraceData{Block: blockName, Query: k.query}
 		ex, err := set.Open(0)
 		if err != nil {
-			td.Note = err.Error()
-			msg.data = td
+			msg.data = &views.TraceData{Block: blockName, Query: k.query, Note: err.Error()}
 			return msg
 		}
 		defer ex.Close()
-		for _, m := range traceMethods {
-			tm := views.TraceMethod{Name: string(m)}
-			if m == analysis.MethodGrad && !hasGrad {
-				tm.Note = "needs " + blockName + "/grad in the export"
-				td.Methods = append(td.Methods, tm)
-				continue
-			}
-			res, err := analysis.Trace(ctx, ex, analysis.TraceOptions{Method: m, Block: blockName, Batch: k.batch, Query: k.query})
-			if err != nil {
-				if ctx.Err() != nil {
-					return nil
-				}
-				tm.Note = traceNote(err)
-				td.Methods = append(td.Methods, tm)
-				continue
-			}
-			if td.Tokens == nil {
-				td.Side = res.Side
-				td.Predicted = predictedWords(res.Predicted)
-				td.Summary = res.Summary()
-				for _, t := range res.Tokens {
-					if t.Status != "" {
-						if td.Status == nil {
-							td.Status = make([]string, len(res.Tokens))
-						}
-						td.Status[t.Index] = t.Status
-					}
-				}
-				n := 0
-				for _, t := range res.Tokens {
-					n = max(n, t.Index+1)
-				}
-				td.Tokens = make([]string, n)
-				for i := range td.Tokens {
-					td.Tokens[i] = "#" + strconv.Itoa(i)
-				}
-				for _, t := range res.Tokens {
-					if t.Token != "" {
-						td.Tokens[t.Index] = t.Token
-					}
-				}
-			}
-			tm.Shares = make([]float64, len(td.Tokens))
-			for i := range tm.Shares {
-				tm.Shares[i] = math.NaN()
-			}
-			for _, t := range res.Tokens {
-				if t.Index >= 0 && t.Index < len(tm.Shares) {
-					tm.Shares[t.Index] = t.Share
-				}
-			}
-			// unnormalised shares (flow, grad, rollout through
-			// cross-attention) show as % of their total (views.TraceMethod)
-			tm.Normalised = res.Normalised
-			if m == analysis.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
-				tm.Note = "relevance the layers add (R less its identity start)"
-			}
-			td.Methods = append(td.Methods, tm)
+		td, err := TraceData(ctx, ex, blockName, k.batch, k.query)
+		if err != nil {
+			return nil // cancelled
 		}
 		msg.data = td
 		return msg
 	}
+}
+
+// TraceData explains query q of block blockName (batch item batch) with
+// every method the Trace screen shows, as the screen's input: the one
+// place that turns analysis.Trace's results into views.TraceData (heed
+// render's trace figure uses it too). A method that cannot explain the
+// query gets a note; err is only the context's.
+func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, q int) (*views.TraceData, error) {
+	td := &views.TraceData{Block: blockName, Query: q}
+	blk := ex.Block(blockName)
+	if blk == nil {
+		td.Note = "no block " + blockName
+		return td, nil
+	}
+	if qt := ex.Side(blk.QuerySide); qt != nil {
+		td.QueryToken = qt.Token(batch, q+blk.QueryOffset)
+	}
+	for _, m := range traceMethods {
+		tm := views.TraceMethod{Name: string(m)}
+		if m == analysis.MethodGrad && !blk.HasGrad {
+			tm.Note = "needs " + blockName + "/grad in the export"
+			td.Methods = append(td.Methods, tm)
+			continue
+		}
+		res, err := analysis.Trace(ctx, ex, analysis.TraceOptions{Method: m, Block: blockName, Batch: batch, Query: q})
+		if err != nil {
+			if ctx.Err() != nil {
+				return nil, ctx.Err()
+			}
+			tm.Note = traceNote(err)
+			td.Methods = append(td.Methods, tm)
+			continue
+		}
+		if td.Tokens == nil {
+			td.Side = res.Side
+			td.Predicted = predictedWords(res.Predicted)
+			td.Summary = res.Summary()
+			n := 0
+			for _, t := range res.Tokens {
+				n = max(n, t.Index+1)
+			}
+			td.Tokens = make([]string, n)
+			for i := range td.Tokens {
+				td.Tokens[i] = "#" + strconv.Itoa(i)
+			}
+			for _, t := range res.Tokens {
+				if t.Token != "" {
+					td.Tokens[t.Index] = t.Token
+				}
+				if t.Status != "" {
+					if td.Status == nil {
+						td.Status = make([]string, n)
+					}
+					td.Status[t.Index] = t.Status
+				}
+			}
+		}
+		tm.Shares = make([]float64, len(td.Tokens))
+		for i := range tm.Shares {
+			tm.Shares[i] = math.NaN()
+		}
+		for _, t := range res.Tokens {
+			if t.Index >= 0 && t.Index < len(tm.Shares) {
+				tm.Shares[t.Index] = t.Share
+			}
+		}
+		// unnormalised shares (flow, grad, rollout through
+		// cross-attention) show as % of their total (views.TraceMethod)
+		tm.Normalised = res.Normalised
+		if m == analysis.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
+			tm.Note = "relevance the layers add (R less its identity start)"
+		}
+		td.Methods = append(td.Methods, tm)
+	}
+	if td.Tokens == nil && td.Note == "" {
+		td.Note = "no method could explain this query"
+	}
+	return td, nil
 }
 
 // predictedWords says what the model predicted at the traced position.

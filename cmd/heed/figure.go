@@ -7,17 +7,16 @@ package main
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"math"
 	"path/filepath"
-	"strconv"
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/picture"
+	"github.com/heed-dev/heed/tui"
 	"github.com/heed-dev/heed/views"
 )
 
@@ -318,74 +317,6 @@ func (e *figureEnv) traceData() (*views.TraceData, error) {
 	// a trace explains a query, whatever the key
 	e.loc.Key = -1
 	e.locStr = e.loc.String()
-	td := &views.TraceData{Block: b.Name, Query: q}
-	if qt, _ := e.tokens(); q < len(qt) {
-		td.QueryToken = qt[q]
-	}
-	for _, m := range []analysis.Method{analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad} {
-		tm := views.TraceMethod{Name: string(m)}
-		if m == analysis.MethodGrad && !b.HasGrad {
-			tm.Note = "needs " + b.Name + "/grad in the export"
-			td.Methods = append(td.Methods, tm)
-			continue
-		}
-		res, err := analysis.Trace(e.ctx, e.ex, analysis.TraceOptions{Method: m, Block: b.Name, Batch: e.batch, Query: q})
-		if err != nil {
-			if e.ctx.Err() != nil {
-				return nil, e.ctx.Err()
-			}
-			var big *analysis.FlowTooLargeError
-			switch {
-			case errors.Is(err, analysis.ErrFlowCross):
-				tm.Note = "defined for self-attention stacks only"
-			case errors.As(err, &big):
-				tm.Note = fmt.Sprintf("too large here (layers*n^3 = %d > %d)", big.Work, analysis.FlowLimit)
-			default:
-				tm.Note = err.Error()
-			}
-			td.Methods = append(td.Methods, tm)
-			continue
-		}
-		if td.Tokens == nil {
-			td.Side, td.Summary = res.Side, res.Summary()
-			td.Predicted = predictedText(res.Predicted)
-			n := 0
-			for _, t := range res.Tokens {
-				n = max(n, t.Index+1)
-			}
-			td.Tokens = make([]string, n)
-			for i := range td.Tokens {
-				td.Tokens[i] = "#" + strconv.Itoa(i)
-			}
-			for _, t := range res.Tokens {
-				if t.Token != "" {
-					td.Tokens[t.Index] = t.Token
-				}
-				if t.Status != "" {
-					if td.Status == nil {
-						td.Status = make([]string, n)
-					}
-					td.Status[t.Index] = t.Status
-				}
-			}
-		}
-		tm.Shares = make([]float64, len(td.Tokens))
-		for i := range tm.Shares {
-			tm.Shares[i] = math.NaN()
-		}
-		for _, t := range res.Tokens {
-			if t.Index >= 0 && t.Index < len(tm.Shares) {
-				tm.Shares[t.Index] = t.Share
-			}
-		}
-		tm.Normalised = res.Normalised
-		if m == analysis.MethodGrad && strings.Contains(res.Scale, "identity") {
-			tm.Note = "relevance the layers add (R less its identity start)"
-		}
-		td.Methods = append(td.Methods, tm)
-	}
-	if td.Tokens == nil {
-		td.Note = "no method could explain this query"
-	}
-	return td, nil
+	// the same data as the Trace screen shows (one place: tui.TraceData)
+	return tui.TraceData(e.ctx, e.ex, b.Name, e.batch, q)
 }
