@@ -741,25 +741,35 @@ func Trace(ctx context.Context, ex *loader.Export, opt TraceOptions) (*TraceResu
 // with the largest shares among the keys the query may see, and how much
 // of the total they hold.
 func (r *TraceResult) Summary() string {
-	var total float64
+	// percentages as the columns show them: of 1 for normalised shares,
+	// of the total over the keys the query may see otherwise
+	var seenTotal, all float64
 	var seen []TokenShare
 	for _, t := range r.Tokens {
-		if t.Status == "" && !math.IsNaN(t.Share) && t.Share > 0 {
-			total += t.Share
+		if math.IsNaN(t.Share) || t.Share <= 0 {
+			continue
+		}
+		all += t.Share
+		if t.Status == "" {
+			seenTotal += t.Share
 			seen = append(seen, t)
 		}
 	}
-	if total <= 0 {
-		return "no input token carries a share"
+	if seenTotal <= 0 {
+		return "no input token the query may see carries a share"
+	}
+	denom := seenTotal
+	if r.Normalised {
+		denom = all
 	}
 	sort.SliceStable(seen, func(i, j int) bool { return seen[i].Share > seen[j].Share })
 	n := min(3, len(seen))
 	var parts []string
 	var top float64
 	for _, t := range seen[:n] {
-		name := fmt.Sprintf("position %d (%.0f%%)", t.Index, 100*t.Share/total)
+		name := fmt.Sprintf("position %d (%.0f%%)", t.Index, 100*t.Share/denom)
 		if t.Token != "" {
-			name = fmt.Sprintf("%q (%d, %.0f%%)", t.Token, t.Index, 100*t.Share/total)
+			name = fmt.Sprintf("%q (%d, %.0f%%)", t.Token, t.Index, 100*t.Share/denom)
 		}
 		parts = append(parts, name)
 		top += t.Share
@@ -768,7 +778,11 @@ func (r *TraceResult) Summary() string {
 	if r.QueryToken != "" {
 		what = fmt.Sprintf("query %d %q", r.Query, r.QueryToken)
 	}
-	return fmt.Sprintf("by %s, %s draws most on %s: %.0f%% together", r.Method, what, strings.Join(parts, ", "), 100*top/total)
+	s := fmt.Sprintf("by %s, %s draws most on %s: %.0f%% together", r.Method, what, strings.Join(parts, ", "), 100*top/denom)
+	if leak := all - seenTotal; all > 0 && leak/all > 0.005 {
+		s += fmt.Sprintf("; %.0f%% reaches keys the query may not see (a leak)", 100*leak/all)
+	}
+	return s
 }
 
 // keyStatus says, for each key of the explained query, why the query may
