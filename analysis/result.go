@@ -382,7 +382,7 @@ func notes(bp *BlockPartial) []string {
 }
 
 // Location is a place in an export, printed as a LOC a person can paste:
-// BLOCK:L<layer>:H<head>:B<batch>:q<query> (see DESIGN.md).
+// BLOCK:L<layer>:H<head>:B<batch>:q<query> (see the README).
 type Location struct {
 	Block   string  `json:"block"`
 	Layer   int     `json:"layer"`

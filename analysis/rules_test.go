@@ -10,7 +10,7 @@ import (
 	"github.com/heed-dev/heed/loader"
 )
 
-// TestRulesGeometry checks the mask rules of DESIGN.md's convention on small
+// TestRulesGeometry checks the mask rules of the README's export convention (heed-export/1) on small
 // cases written out by hand: causal k <= p; window W: p-W < k <= p; prefix P:
 // the first P positions see each other both ways; KV-cache offset K-Q.
 func TestRulesGeometry(t *testing.T) {
@@ -115,7 +115,7 @@ func TestGeneratorReproducible(t *testing.T) {
 }
 
 // TestRowChecks: the row checks of issue 3 on rows written out by hand
-// (definitions: DESIGN.md's convention, rows of probabilities summing to 1):
+// (definitions: the README's export convention (heed-export/1), rows of probabilities summing to 1):
 // a negative value, a row summing to 0.9, and --sum-below accepting it.
 func TestRowChecks(t *testing.T) {
 	meta := `{"format":"heed-export/1","blocks":{"enc":{"kind":"bidirectional","query":"s","key":"s"}}}`
@@ -166,7 +166,7 @@ func mustAnalyze(t *testing.T, ex *loader.Export, opt Options) *Result {
 func TestLocationString(t *testing.T) {
 	l := Location{Block: "decoder", Layer: 3, Head: 7, Batch: 1, Query: 12, Key: -1}
 	if got := l.String(); got != "decoder:L3:H7:B1:q12" {
-		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12 (DESIGN.md's LOC form)", got)
+		t.Errorf("Location.String() = %q, want decoder:L3:H7:B1:q12 (the README's LOC form)", got)
 	}
 	l.Key = 13
 	if got := l.String(); got != "decoder:L3:H7:B1:q12:k13" {

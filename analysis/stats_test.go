@@ -148,7 +148,7 @@ func TestMergeExact(t *testing.T) {
 	}
 }
 
-// TestUniformRows: invariants stated in methods.md: uniform rows over n keys
+// TestUniformRows: invariants stated in docs/methods.md: uniform rows over n keys
 // have entropy ln n (ln 64 = 4.158883, ln 128 = 4.852030) and normalised 1.
 func TestUniformRows(t *testing.T) {
 	for _, n := range []int{64, 128} {
@@ -168,7 +168,7 @@ func TestUniformRows(t *testing.T) {
 			t.Errorf("uniform n=%d: entropy %v norm %v, want %v and 1", n, hs.Entropy, hs.EntropyNorm, want)
 		}
 	}
-	// [.5,.25,.25] -> 1.039721 nats, normalised 0.946395 (methods.md, derived)
+	// [.5,.25,.25] -> 1.039721 nats, normalised 0.946395 (docs/methods.md, derived)
 	ex := memExport(t, `{"format":"heed-export/1","blocks":{"enc":{"kind":"bidirectional","query":"s","key":"s"}}}`,
 		loader.NewMemArray("enc/attn", loader.Float64, []int{1, 1, 3}, []float64{.5, .25, .25}))
 	p, err := Analyze(context.Background(), ex, DefaultOptions())

@@ -11,7 +11,7 @@ import (
 	"github.com/heed-dev/heed/loader"
 )
 
-// The worked example of methods.md (derived from Abnar & Zuidema 2020's
+// The worked example of docs/methods.md (derived from Abnar & Zuidema 2020's
 // definitions): A1 = [[1,0],[.5,.5]], A2 = [[1,0],[.2,.8]] give the rollout
 // [[1,0],[0.325,0.675]] and the flow from top token 1 to the inputs [0.35, 0.75].
 func TestRolloutFlowWorkedExample(t *testing.T) {

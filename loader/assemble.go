@@ -52,7 +52,7 @@ type attrReader interface {
 // Assemble builds an export from arrays named by the heed-export/1
 // convention and the metadata JSON meta ("" when there is none); opt
 // overrides both. See the package documentation of the convention in
-// DESIGN.md and the README. Errors are *FormatError naming the array.
+// the README. Errors are *FormatError naming the array.
 // The arrays are not closed by Export.Close: their owner closes them.
 func Assemble(arrays []Array, meta string, opt Options) (*Export, error) {
 	var metas []metaSource

@@ -9,7 +9,7 @@ import (
 	"testing"
 )
 
-// The expectations below follow the heed-export/1 convention as DESIGN.md
+// The expectations below follow the heed-export/1 convention as the README
 // states it (names, axes by rank, kinds, KV-cache query offset). Values are
 // built from a formula of their indices so every read can be checked.
 

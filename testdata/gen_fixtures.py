@@ -18,7 +18,7 @@ Data is built from arithmetic on indices (no random generator), so it does
 not depend on numpy's RNG streams. Safetensors files are written by hand
 from the format's specification (u64 LE header size, JSON header padded with
 spaces to 8 bytes, little-endian C-order data); no safetensors package is
-used. Exports follow heed-export/1 (see DESIGN.md and the README).
+used. Exports follow heed-export/1 (see the README).
 """
 
 import argparse

@@ -207,7 +207,7 @@ func TestFindings(t *testing.T) {
 }
 
 func traceFixture() *TraceData {
-	// Rollout of the worked example in notes/methods.md (Abnar & Zuidema
+	// Rollout of the worked example in docs/methods.md (Abnar & Zuidema
 	// 2020, eq. 1, derived there): query 1 -> [0.325, 0.675]; flow of the
 	// same example -> [0.35, 0.75], not normalised: they sum to 1.1, so the
 	// view shows 0.35/1.1 = 31.8% and 0.75/1.1 = 68.2%.

@@ -227,7 +227,7 @@ func TestShareRefusesWithoutKeys(t *testing.T) {
 
 // TestShareHeadlessInterrupt runs the real binary headless, as under nohup,
 // in an empty working directory with a fresh HOME and XDG directories:
-// ctrl-c (SIGINT) stops it with exit status 0 (DESIGN.md's contract for
+// ctrl-c (SIGINT) stops it with exit status 0 (the README's command contract for
 // share: 0, or 2 on bad input) after its shutdown line; the host key is
 // created 0600 under $XDG_CONFIG_HOME/heed and reused by a second run; and no
 // file appears in the working directory.
