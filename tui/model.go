@@ -1028,4 +1028,3 @@ func fitLines(s string, h int) string {
 	return strings.Join(lines, "\n")
 }
 
-func itoa(i int) string { return fmt.Sprint(i) }
