@@ -1027,4 +1027,3 @@ func fitLines(s string, h int) string {
 	}
 	return strings.Join(lines, "\n")
 }
-
