@@ -5,7 +5,7 @@ GO ?= go
 FUZZTIME ?= 20s
 BIN ?= ./heed
 
-.PHONY: all build demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
+.PHONY: all build build-simd demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck bench clean
 
 all: build
 
@@ -14,6 +14,11 @@ deps:
 
 build: deps
 	$(GO) build -o $(BIN) ./cmd/heed
+
+# The same with Go's experimental SIMD package (internal/kernels/*_simd.go):
+# vector kernels on processors with AVX-512; the default build needs no experiment.
+build-simd: deps
+	GOEXPERIMENT=simd $(GO) build -o $(BIN) ./cmd/heed
 
 # The main job on the export embedded in the binary.
 demo: build
