@@ -157,6 +157,15 @@ type Sums struct {
 // float32 values, to the bit. S is exact (Add16Ref's bits); Ent and Dist
 // are within a few ulps of the key-order sums (the test's bound).
 func (rs *Sums) Add16(t *Half, run []uint16, d, step float64) uint64 {
+	if simdHalf && len(run) >= 8 {
+		return rs.add16AVX2(t, run, d, step)
+	}
+	return rs.add16Scalar(t, run, d, step)
+}
+
+// add16Scalar is Add16 in scalar registers (the default build's, and
+// every build's on processors without AVX2).
+func (rs *Sums) add16Scalar(t *Half, run []uint16, d, step float64) uint64 {
 	val, xl := t.Val, t.XL
 	e := uint64(t.Exp) * 0x0001000100010001
 	low := uint64(t.Exp&-t.Exp) * 0x0001000100010001

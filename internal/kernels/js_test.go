@@ -44,6 +44,12 @@ func TestMlogmSum(t *testing.T) {
 		if got := MlogmSum(a, b); math.Abs(got-want) > 6e-11 {
 			t.Errorf("n=%d: MlogmSum = %.17g, want %.17g (math.Log), off by %g", n, got, want, got-want)
 		}
+		if got := mlogmSumScalar(a, b); math.Abs(got-want) > 6e-11 { // the default build's loop
+			t.Errorf("n=%d: mlogmSumScalar = %.17g, want %.17g (math.Log), off by %g", n, got, want, got-want)
+		}
+		if got := MlogmSumRef(a, b); math.Abs(got-want) > 1e-13 {
+			t.Errorf("n=%d: MlogmSumRef = %.17g, want %.17g", n, got, want)
+		}
 		if got := MlogmSumSlow(a, b); math.Abs(got-want) > 1e-13 {
 			t.Errorf("n=%d: MlogmSumSlow = %.17g, want %.17g", n, got, want)
 		}

@@ -39,22 +39,27 @@ var sink float64
 
 func BenchmarkAdd16(b *testing.B) {
 	rows, _, t := benchRows(64)
-	b.Run("ref", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
-		for i := range b.N {
-			var s Sums
-			s.Add16Ref(t, rows[i&63], 0, 1)
-			sink += s.Ent
-		}
-	})
-	b.Run("fast", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
-		for i := range b.N {
-			var s Sums
-			s.Add16(t, rows[i&63], 0, 1)
-			sink += s.Ent
-		}
-	})
+	for _, c := range []struct {
+		name string
+		simd bool
+		fn   func(s *Sums, row []uint16)
+	}{
+		{"ref", false, func(s *Sums, row []uint16) { s.Add16Ref(t, row, 0, 1) }},
+		{"scalar", false, func(s *Sums, row []uint16) { s.add16Scalar(t, row, 0, 1) }},
+		{"simd", true, func(s *Sums, row []uint16) { s.add16AVX2(t, row, 0, 1) }},
+	} {
+		b.Run(c.name, func(b *testing.B) {
+			if c.simd && !simdHalf {
+				b.Skip("no vector loop in this build (GOEXPERIMENT=simd)")
+			}
+			b.SetBytes(2 * benchKeys)
+			for i := range b.N {
+				var s Sums
+				c.fn(&s, rows[i&63])
+				sink += s.Ent
+			}
+		})
+	}
 }
 
 func BenchmarkSum16(b *testing.B) {
