@@ -69,7 +69,8 @@ func randomRow(rng *rand.Rand, n int, enc func(float32) uint16, exp uint16, odd 
 // sameSum compares a fast sum of row's values with the reference's: to
 // the bit when exact (float16: multiples of 2^-24 below 2^16, fewer than
 // 2^13 of them, so every order gives the exact sum), else within n ulps of
-// the sum of magnitudes (recursive summation, Higham 2002, sec. 4.2).
+// the sum of magnitudes (recursive summation, Higham 2002, sec. 4.2, from
+// memory).
 func sameSum(exact bool, got, want float64, row []uint16, t *Half) bool {
 	if exact {
 		return math.Float64bits(got) == math.Float64bits(want)
@@ -91,7 +92,7 @@ var lengths = []int{0, 1, 2, 3, 4, 5, 7, 8, 9, 15, 16, 17, 31, 64, 127, 1000, 10
 // finite is exact whatever the order), the nonzero count, the largest
 // magnitude and the flag; Add16's entropy and distance sums, whose lanes
 // add the terms in another order, within n ulps of their sum of
-// magnitudes (the bound of recursive summation, Higham, Accuracy and
+// magnitudes (the bound of recursive summation, cited from memory: Higham, Accuracy and
 // Stability of Numerical Algorithms, 2002, sec. 4.2).
 func TestHalfKernelsEqualReference(t *testing.T) {
 	rng := rand.New(rand.NewPCG(5, 6))
