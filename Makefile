@@ -7,7 +7,7 @@ BIN ?= ./heed
 # Stamp the binary with the commit it is built from (heed version), whatever GOFLAGS says.
 BUILDVCS ?= -buildvcs=auto
 
-.PHONY: all build install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck slurm-test bench clean
+.PHONY: all build build-simd install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck slurm-test bench clean
 
 all: build
 
@@ -30,6 +30,11 @@ install:
 	@bin=$$($(GO) env GOBIN); [ -n "$$bin" ] || bin=$$($(GO) env GOPATH)/bin; \
 	echo "installed $$bin/heed: $$($$bin/heed --version)"; \
 	case ":$$PATH:" in *":$$bin:"*) ;; *) echo "$$bin is not on your PATH: add it, e.g. export PATH=\"$$bin:\$$PATH\"";; esac
+
+# The same with Go's experimental SIMD package (internal/kernels/*_simd.go):
+# vector kernels on processors with AVX-512; the default build needs no experiment.
+build-simd: deps
+	GOEXPERIMENT=simd $(GO) build -o $(BIN) ./cmd/heed
 
 # The main job on the export embedded in the binary.
 demo: build

@@ -90,7 +90,7 @@ func underflowTiny(d loader.DType) float64 {
 func rowReachesUnderflow(row []float32, row16 []uint16, rt *rawTables, tiny float64) bool {
 	if row16 != nil && rt != nil {
 		for _, hb := range row16 {
-			if v := float64(rt.val[hb]); v != 0 && math.Abs(v) <= tiny {
+			if v := float64(rt.Val[hb]); v != 0 && math.Abs(v) <= tiny {
 				return true
 			}
 		}

@@ -9,6 +9,7 @@ import (
 	"sync"
 
 	"github.com/heed-dev/heed/internal/bigmem"
+	"github.com/heed-dev/heed/internal/kernels"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -497,7 +498,7 @@ type layerStore struct {
 
 func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reader, rules *Rules, example string, opt Options, prog *progress) error {
 	Q, K, H := blk.Queries, blk.Keys, blk.Heads
-	initXlogx() // x ln x tables for float16/bfloat16 values (xlogx.go)
+	kernels.InitXlogx() // x ln x tables for float16/bfloat16 values (internal/kernels)
 	nw := opt.Workers
 	if nw <= 0 {
 		nw = runtime.GOMAXPROCS(0)
@@ -755,7 +756,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	var row16 []uint16
 	at := func(k int) float64 { // float64(row[k]) on either path
 		if rt != nil {
-			return float64(rt.val[row16[k]])
+			return float64(rt.Val[row16[k]])
 		}
 		return float64(row[k])
 	}
@@ -767,7 +768,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		var badK int
 		var fin, negRow bool
 		// a judged row of patterns is scanned for non-finite and negative
-		// values on the way (cells16Clean), and with finite16 only when it
+		// values on the way (cells16Clean), and with kernels.Finite16 only when it
 		// has some: until then it counts as finite and without negatives
 		judged := rules.Judged(b, q)
 		clean := rt != nil && judged
@@ -775,7 +776,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			row16 = r16[q*K : (q+1)*K]
 			badK, fin, negRow = -1, true, false
 			if !clean {
-				badK, fin, negRow = finite16(row16, rt.exp)
+				badK, fin, negRow = kernels.Finite16(row16, rt.Exp)
 			}
 		} else {
 			row = w.a[q*K : (q+1)*K]
@@ -819,7 +820,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		if rt != nil { // rawpass.go
 			if !clean || !w.cells16Clean(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) {
 				if clean {
-					if badK, fin, negRow = finite16(row16, rt.exp); !fin {
+					if badK, fin, negRow = kernels.Finite16(row16, rt.Exp); !fin {
 						u.nanRow(cfg.example, q, badK)
 						continue
 					}
@@ -908,7 +909,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			if rt != nil {
 				dst := st.vals[i*K : (i+1)*K]
 				for k, hb := range row16 {
-					dst[k] = rt.val[hb]
+					dst[k] = rt.Val[hb]
 				}
 			} else {
 				copy(st.vals[i*K:(i+1)*K], row)
@@ -1035,9 +1036,9 @@ func (st *layerStore) js(i, j int) (float64, int64) {
 		if lo >= 0 {
 			pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
 			if st.neg[a] || st.neg[b] {
-				hm = mlogmSumSlow(pa, pb)
+				hm = kernels.MlogmSumSlow(pa, pb)
 			} else {
-				hm = mlogmSum(pa, pb) // jsrow.go
+				hm = kernels.MlogmSum(pa, pb)
 			}
 		}
 		d := hm - 0.5*(st.ent[a]+st.ent[b])

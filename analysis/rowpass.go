@@ -1,6 +1,10 @@
 package analysis
 
-import "math"
+import (
+	"math"
+
+	"github.com/heed-dev/heed/internal/kernels"
+)
 
 // The per-cell loop of worker.head, split by runs of keys that share a rule.
 // Rules.Row gives each key of a row the rule that forbids it; the keys form
@@ -28,23 +32,18 @@ type rowAcc struct {
 // latency of floating-point addition). The sums are therefore in another
 // order than key by key, but in a fixed one: the same matrix gives the same
 // bits whatever the sharding, and the float32 and pattern paths share the
-// order (runSums.add32 and add16), so they still agree to the last bit.
+// order (kernels.Sums.Add32 and Add16), so they still agree to the last bit.
 
-// runSums holds the sums of one allowed run.
-type runSums struct {
-	s, ent, dist float64 // sum of x, of x ln x, of x |k - p|
-	mx16         uint16  // the largest magnitude pattern (add16)
-	mx32         uint32  // the largest magnitude bits (add32)
-	nz           int64   // nonzero values
-}
+// runSums holds the sums of one allowed run (internal/kernels).
+type runSums = kernels.Sums
 
 // addRun adds an allowed run's sums to the row: mx the largest value, n the
 // run's length, lo and hi its first and last nonzero key (-1 when none).
 func (ra *rowAcc) addRun(rs *runSums, mx float64, n int64, lo, hi int) {
-	ra.s += rs.s
-	ra.amass += rs.s
-	ra.ent -= rs.ent
-	ra.dist += rs.dist
+	ra.s += rs.S
+	ra.amass += rs.S
+	ra.ent -= rs.Ent
+	ra.dist += rs.Dist
 	if mx > ra.mx {
 		ra.mx = mx
 	}
@@ -55,7 +54,7 @@ func (ra *rowAcc) addRun(rs *runSums, mx float64, n int64, lo, hi int) {
 		ra.nzHi = hi
 	}
 	ra.nAllow += n
-	ra.zeros += n - rs.nz
+	ra.zeros += n - rs.NZ
 }
 
 // allowedFast is allowedRun for a row without negative values; without
@@ -64,14 +63,14 @@ func allowedFast(ra *rowAcc, row []float32, a, b, p int, stats bool) {
 	var rs runSums
 	switch {
 	case !stats:
-		rs.sum32(row[a:b])
+		rs.Sum32(row[a:b])
 	default:
 		if a < p {
-			rs.add32(row[a:min(b, p)], float64(p-a), -1)
+			rs.Add32(row[a:min(b, p)], float64(p-a), -1)
 		}
 		if b > p {
 			a0 := max(a, p)
-			rs.add32(row[a0:b], float64(a0-p), 1)
+			rs.Add32(row[a0:b], float64(a0-p), 1)
 		}
 	}
 	lo, hi := -1, -1
@@ -89,80 +88,7 @@ func allowedFast(ra *rowAcc, row []float32, a, b, p int, stats bool) {
 			}
 		}
 	}
-	ra.addRun(&rs, float64(math.Float32frombits(rs.mx32)), int64(b-a), lo, hi)
-}
-
-// sum32 is sum16 (rawpass.go) over float32 values.
-func (rs *runSums) sum32(run []float32) {
-	var s0, s1, s2, s3 float64
-	var nz int64
-	n := len(run) &^ 3
-	for i := 0; i < n; i += 4 {
-		y0, y1, y2, y3 := run[i], run[i+1], run[i+2], run[i+3]
-		s0 += float64(y0)
-		s1 += float64(y1)
-		s2 += float64(y2)
-		s3 += float64(y3)
-		b0, b1, b2, b3 := math.Float32bits(y0)&0x7fffffff, math.Float32bits(y1)&0x7fffffff, math.Float32bits(y2)&0x7fffffff, math.Float32bits(y3)&0x7fffffff
-		nz += int64((b0+0x7fffffff)>>31 + (b1+0x7fffffff)>>31 + (b2+0x7fffffff)>>31 + (b3+0x7fffffff)>>31)
-	}
-	for _, y := range run[n:] {
-		s0 += float64(y)
-		nz += int64((math.Float32bits(y)&0x7fffffff + 0x7fffffff) >> 31)
-	}
-	rs.s += (s0 + s1) + (s2 + s3)
-	rs.nz += nz
-}
-
-// xlogx0 is xlogx with 0 ln 0 = 0, for finite x >= 0.
-func xlogx0(x float32) float64 {
-	if x == 0 {
-		return 0
-	}
-	return xlogx(x)
-}
-
-// add32 is add16 (rawpass.go) over float32 values.
-func (rs *runSums) add32(run []float32, d, step float64) {
-	var s0, s1, s2, s3, e0, e1, e2, e3, t0, t1, t2, t3 float64
-	var m0, m1, m2, m3 uint32
-	var nz int64
-	n := len(run) &^ 3
-	for i := 0; i < n; i += 4 {
-		y0, y1, y2, y3 := run[i], run[i+1], run[i+2], run[i+3]
-		x0, x1, x2, x3 := float64(y0), float64(y1), float64(y2), float64(y3)
-		s0 += x0
-		s1 += x1
-		s2 += x2
-		s3 += x3
-		e0 += xlogx0(y0)
-		e1 += xlogx0(y1)
-		e2 += xlogx0(y2)
-		e3 += xlogx0(y3)
-		t0 += x0 * d
-		t1 += x1 * (d + step)
-		t2 += x2 * (d + 2*step)
-		t3 += x3 * (d + 3*step)
-		d += 4 * step
-		b0, b1, b2, b3 := math.Float32bits(y0)&0x7fffffff, math.Float32bits(y1)&0x7fffffff, math.Float32bits(y2)&0x7fffffff, math.Float32bits(y3)&0x7fffffff
-		m0, m1, m2, m3 = max(m0, b0), max(m1, b1), max(m2, b2), max(m3, b3)
-		nz += int64((b0+0x7fffffff)>>31 + (b1+0x7fffffff)>>31 + (b2+0x7fffffff)>>31 + (b3+0x7fffffff)>>31)
-	}
-	for _, y := range run[n:] {
-		x := float64(y)
-		s0 += x
-		e0 += xlogx0(y)
-		t0 += x * d
-		d += step
-		b := math.Float32bits(y) & 0x7fffffff
-		m0 = max(m0, b)
-		nz += int64((b + 0x7fffffff) >> 31)
-	}
-	rs.s += (s0 + s1) + (s2 + s3)
-	rs.ent += (e0 + e1) + (e2 + e3)
-	rs.dist += (t0 + t1) + (t2 + t3)
-	rs.mx32 = max(rs.mx32, m0, m1, m2, m3)
-	rs.nz += nz
+	ra.addRun(&rs, float64(math.Float32frombits(rs.Mx32)), int64(b-a), lo, hi)
 }
 
 // cells runs over row (query row q at absolute position p) with the runs
@@ -284,7 +210,7 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 		}
 		dist += x * float64(d)
 		if x > 0 {
-			ent -= xlogx(x32)
+			ent -= kernels.Xlogx(x32)
 		} else {
 			neg++
 			negm -= x
@@ -340,7 +266,7 @@ func (w *worker) forbiddenRun(ra *rowAcc, row []float32, a, b, q, p, base int, r
 			}
 			ra.dist += x * float64(d)
 			if x > 0 {
-				ra.ent -= xlogx(x32)
+				ra.ent -= kernels.Xlogx(x32)
 			} else {
 				ra.neg++
 				ra.negm -= x

@@ -504,7 +504,7 @@ func (lb *layerBufs) rawMean(blk *loader.Block, l, batch int, out []float64) (ok
 	if err != nil || dt == loader.Invalid {
 		return false, err
 	}
-	tab := rawTablesFor(dt).val
+	tab := rawTablesFor(dt).Val
 	// the cells split over the processors: each adds its own cells in
 	// head order, so the sums are the same whatever the split
 	parts := max(1, min(runtime.GOMAXPROCS(0), n/traceSplitCells))

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"fmt"
 	"github.com/heed-dev/heed/internal/words"
 	"io"
@@ -129,35 +128,15 @@ Examples:
 Exit status: 0 clean (every block judged, nothing found), 1 findings,
 2 bad input, 3 not judged (nothing found, but some block's mask could not
 be judged: the report names the flag or metadata key that would let heed
-judge it).`,
+judge it).
+
+"heed both" prints this report and heed rank's from one pass over the files.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			if af.active(cmd) {
 				return af.run(cmd, args, lf, pf.tol, asJSON)
 			}
-			p, set, err := runPass(cmd.Context(), args, lf, pf)
-			if err != nil {
-				return err
-			}
-			if pf.shard.wrotePartial() {
-				return nil
-			}
-			res := p.Result()
-			out := cmd.OutOrStdout()
-			if asJSON {
-				if err := writeCheckJSON(out, res, set.Warnings); err != nil {
-					return err
-				}
-			} else {
-				writeCheckText(out, res, set.Warnings)
-			}
-			switch res.Verdict() {
-			case analysis.VerdictFindings:
-				return &findingsError{len(res.Findings)}
-			case analysis.VerdictNotJudged:
-				return &notJudgedError{len(notJudged(res))}
-			}
-			return nil
+			return runReports(cmd, args, lf, pf, reportsWanted{check: true, json: asJSON})
 		},
 	}
 	lf.register(cmd)
@@ -181,8 +160,9 @@ type checkReport struct {
 	Caveat    string               `json:"caveat"`
 }
 
-func writeCheckJSON(w io.Writer, res *analysis.Result, warnings []string) error {
-	rep := checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
+// checkReportOf builds heed check's JSON report from the pass's result.
+func checkReportOf(res *analysis.Result, warnings []string) *checkReport {
+	rep := &checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
 		Rules: map[string][]string{}, Notes: res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
 	if rep.Findings == nil {
 		rep.Findings = []analysis.Finding{}
@@ -203,9 +183,19 @@ func writeCheckJSON(w io.Writer, res *analysis.Result, warnings []string) error 
 		}
 		rep.Rules[b.Name] = rs
 	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(rep)
+	return rep
+}
+
+// checkExit is heed check's exit for its result: nil (0) clean, a
+// findingsError (1) or a notJudgedError (3).
+func checkExit(res *analysis.Result) error {
+	switch res.Verdict() {
+	case analysis.VerdictFindings:
+		return &findingsError{len(res.Findings)}
+	case analysis.VerdictNotJudged:
+		return &notJudgedError{len(notJudged(res))}
+	}
+	return nil
 }
 
 func rulesLine(res *analysis.Result) string {

@@ -115,6 +115,7 @@ Run "heed demo" to try it on an export embedded in the binary.`
 	root.AddCommand(newCheckCmd())
 	root.AddCommand(newCapturePyCmd())
 	root.AddCommand(newRankCmd())
+	root.AddCommand(newBothCmd())
 	root.AddCommand(newTraceCmd())
 	root.AddCommand(newDemoCmd())
 	root.AddCommand(newMergeCmd())

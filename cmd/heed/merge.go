@@ -13,7 +13,7 @@ import (
 var mergeOutputFlags = []string{"json", "csv", "sort", "prune", "prune-frac"}
 
 // newMergeCmd returns "heed merge PARTIAL.json...": the partials of a
-// sharded heed check or heed rank, combined and printed as one run over the
+// sharded heed check, heed rank or heed both, combined and printed as one run over the
 // whole set would print them (docs/scale.md).
 func newMergeCmd() *cobra.Command {
 	var (
@@ -24,8 +24,8 @@ func newMergeCmd() *cobra.Command {
 	)
 	cmd := &cobra.Command{
 		Use:   "merge PARTIAL.json...",
-		Short: "Combine the partial results of sharded check or rank runs",
-		Long: `merge reads the partial files that "heed check" or "heed rank" wrote with
+		Short: "Combine the partial results of sharded check, rank or both runs",
+		Long: `merge reads the partial files that "heed check", "heed rank" or "heed both" wrote with
 --shard I/N --partial OUT.json, checks that they are every shard of one job
 exactly once (same command, flags and set of examples), adds their exact sums
 and counts, and prints what one run over the whole set prints: the same text,
@@ -50,6 +50,8 @@ Exit status: that of the command over the whole set (check: 0 clean,
 				sub = newCheckCmd()
 			case "rank":
 				sub = newRankCmd()
+			case "both":
+				sub = newBothCmd()
 			default:
 				return fmt.Errorf("%s: a partial of %q, which heed merge does not know", args[0], first.Command)
 			}

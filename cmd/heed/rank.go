@@ -137,12 +137,8 @@ type rankScore struct {
 func newRankCmd() *cobra.Command {
 	lf := &loadFlags{}
 	pf := &passFlags{}
-	var (
-		asJSON, asCSV bool
-		sortCol       string
-		prune         int
-		pruneFrac     float64
-	)
+	rf := &rankFlags{}
+	var asJSON bool
 	cmd := &cobra.Command{
 		Use:   "rank FILE...",
 		Short: "Rank heads: statistics, importance, a pruning plan",
@@ -157,99 +153,110 @@ orders heads instead.
 --prune N or --prune-frac F adds a plan {block: {layer: [heads]}}: lowest first
 model-wide, never every head of a layer, whole KV groups when kv_heads is set.
 A plan is a hypothesis to confirm by re-evaluating the model, and masking a
-head saves no compute until the model is rebuilt without it.`,
+head saves no compute until the model is rebuilt without it.
+
+"heed both" prints this report and heed check's from one pass over the files.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
-			if asJSON && asCSV {
-				return fmt.Errorf("--json and --csv exclude each other")
-			}
-			if cmd.Flags().Changed("prune") && cmd.Flags().Changed("prune-frac") {
-				return fmt.Errorf("--prune and --prune-frac exclude each other")
-			}
-			if prune < -1 || (cmd.Flags().Changed("prune-frac") && (pruneFrac < 0 || pruneFrac > 1)) {
-				return fmt.Errorf("--prune must be >= 0 and --prune-frac in [0, 1]")
-			}
-			if c := strings.TrimPrefix(sortCol, "-"); renamedColumns[c] != "" {
-				sortCol = strings.TrimSuffix(sortCol, c) + renamedColumns[c]
-			}
-			if sortCol != "" && !validColumn(strings.TrimPrefix(sortCol, "-")) {
-				return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", sortCol, strings.Join(rankColumns, ", "))
-			}
-			p, set, err := runPass(cmd.Context(), args, lf, pf)
-			if err != nil {
-				return err
-			}
-			if pf.shard.wrotePartial() {
-				return nil
-			}
-			res := p.Result()
-			rep := rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
-				Warnings: append([]string{}, set.Warnings...), Caveat: analysis.Caveat}
-			grad := true
-			for _, b := range res.Blocks {
-				grad = grad && b.HasGrad
-				for _, hs := range b.Stats {
-					rep.Heads = append(rep.Heads, rankHead{Block: b.Name, Layer: hs.Layer, Head: hs.Head,
-						Entropy: num(hs.Entropy), EntropyNorm: num(hs.EntropyNorm), Confidence: num(hs.Confidence),
-						PrevShare: num(hs.PrevShare), SelfShare: num(hs.SelfShare), Distance: num(hs.Distance),
-						Sink: num(hs.Sink), DocSink: num(hs.DocSink), Distinctness: num(hs.Distinctness), OldRedundancy: num(hs.Distinctness),
-						Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score), OldScore: num(hs.Score),
-						LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
-				}
-			}
-			rep.Metric = "importance"
-			if !grad {
-				rep.Metric = analysis.ScoreName
-				rep.Warnings = append(rep.Warnings, noGradients+": no importance; "+analysis.ScoreDoc)
-			}
-			for _, c := range res.Coverage {
-				if c.KindFrom == "inferred" {
-					rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: kind inferred from the data (%s); masked keys and leak mass follow it (--kind or meta blocks.%s.kind to say otherwise)", c.Block, c.Evidence, c.Block))
-				}
-				for _, g := range c.NotJudged {
-					rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: %s not judged: %s. To judge it: %s", g.Block, g.What, g.Why, g.Fix))
-				}
-			}
-			if !res.Clean() {
-				rep.Warnings = append(rep.Warnings, fmt.Sprintf("heed check finds %d problems in these exports (leaks or bad rows): statistics of a buggy export describe the bug too; run heed check", len(res.Findings)))
-			}
-			if cmd.Flags().Changed("prune") || cmd.Flags().Changed("prune-frac") {
-				n := prune
-				if cmd.Flags().Changed("prune-frac") {
-					n = -1
-				}
-				plan, err := res.MakePlan(n, pruneFrac, pf.blocks)
-				if err != nil {
-					return err
-				}
-				rep.Plan = plan
-			}
-			sortHeads(rep.Heads, sortCol)
-			out := cmd.OutOrStdout()
-			switch {
-			case asJSON:
-				if rep.Heads == nil {
-					rep.Heads = []rankHead{}
-				}
-				enc := json.NewEncoder(out)
-				enc.SetIndent("", "  ")
-				return enc.Encode(rep)
-			case asCSV:
-				return writeRankCSV(out, rep.Heads)
-			}
-			writeRankText(out, &rep)
-			return nil
+			return runReports(cmd, args, lf, pf, reportsWanted{rank: rf, json: asJSON})
 		},
 	}
 	lf.register(cmd)
 	pf.register(cmd, false)
-	f := cmd.Flags()
-	f.BoolVar(&asJSON, "json", false, "print JSON (see docs/json.md)")
-	f.BoolVar(&asCSV, "csv", false, "print the head table as CSV")
-	f.StringVar(&sortCol, "sort", "", "sort heads by this column, ascending (prefix - for descending): "+strings.Join(rankColumns[1:], ", "))
-	f.IntVar(&prune, "prune", -1, "plan pruning N heads")
-	f.Float64Var(&pruneFrac, "prune-frac", 0, "plan pruning this fraction of all heads (e.g. 0.2)")
+	cmd.Flags().BoolVar(&asJSON, "json", false, "print JSON (see docs/json.md)")
+	rf.register(cmd, true)
 	return cmd
+}
+
+// rankFlags are the flags of the head report (heed rank, heed both).
+type rankFlags struct {
+	cmd       *cobra.Command
+	asCSV     bool
+	sortCol   string
+	prune     int
+	pruneFrac float64
+}
+
+func (rf *rankFlags) register(cmd *cobra.Command, csv bool) {
+	rf.cmd = cmd
+	f := cmd.Flags()
+	if csv {
+		f.BoolVar(&rf.asCSV, "csv", false, "print the head table as CSV")
+	}
+	f.StringVar(&rf.sortCol, "sort", "", "sort heads by this column, ascending (prefix - for descending): "+strings.Join(rankColumns[1:], ", "))
+	f.IntVar(&rf.prune, "prune", -1, "plan pruning N heads")
+	f.Float64Var(&rf.pruneFrac, "prune-frac", 0, "plan pruning this fraction of all heads (e.g. 0.2)")
+}
+
+// validate refuses flags that cannot be meant, before anything is read.
+func (rf *rankFlags) validate(asJSON bool) error {
+	f := rf.cmd.Flags()
+	if asJSON && rf.asCSV {
+		return fmt.Errorf("--json and --csv exclude each other")
+	}
+	if f.Changed("prune") && f.Changed("prune-frac") {
+		return fmt.Errorf("--prune and --prune-frac exclude each other")
+	}
+	if rf.prune < -1 || (f.Changed("prune-frac") && (rf.pruneFrac < 0 || rf.pruneFrac > 1)) {
+		return fmt.Errorf("--prune must be >= 0 and --prune-frac in [0, 1]")
+	}
+	if c := strings.TrimPrefix(rf.sortCol, "-"); renamedColumns[c] != "" {
+		rf.sortCol = strings.TrimSuffix(rf.sortCol, c) + renamedColumns[c]
+	}
+	if rf.sortCol != "" && !validColumn(strings.TrimPrefix(rf.sortCol, "-")) {
+		return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", rf.sortCol, strings.Join(rankColumns, ", "))
+	}
+	return nil
+}
+
+// report builds heed rank's report from the pass's result.
+func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []string) (*rankReport, error) {
+	rep := &rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
+		Warnings: append([]string{}, warnings...), Caveat: analysis.Caveat}
+	grad := true
+	for _, b := range res.Blocks {
+		grad = grad && b.HasGrad
+		for _, hs := range b.Stats {
+			rep.Heads = append(rep.Heads, rankHead{Block: b.Name, Layer: hs.Layer, Head: hs.Head,
+				Entropy: num(hs.Entropy), EntropyNorm: num(hs.EntropyNorm), Confidence: num(hs.Confidence),
+				PrevShare: num(hs.PrevShare), SelfShare: num(hs.SelfShare), Distance: num(hs.Distance),
+				Sink: num(hs.Sink), DocSink: num(hs.DocSink), Distinctness: num(hs.Distinctness), OldRedundancy: num(hs.Distinctness),
+				Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score), OldScore: num(hs.Score),
+				LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
+		}
+	}
+	rep.Metric = "importance"
+	if !grad {
+		rep.Metric = analysis.ScoreName
+		rep.Warnings = append(rep.Warnings, noGradients+": no importance; "+analysis.ScoreDoc)
+	}
+	for _, c := range res.Coverage {
+		if c.KindFrom == "inferred" {
+			rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: kind inferred from the data (%s); masked keys and leak mass follow it (--kind or meta blocks.%s.kind to say otherwise)", c.Block, c.Evidence, c.Block))
+		}
+		for _, g := range c.NotJudged {
+			rep.Warnings = append(rep.Warnings, fmt.Sprintf("%s: %s not judged: %s. To judge it: %s", g.Block, g.What, g.Why, g.Fix))
+		}
+	}
+	if !res.Clean() {
+		rep.Warnings = append(rep.Warnings, fmt.Sprintf("heed check finds %d problems in these exports (leaks or bad rows): statistics of a buggy export describe the bug too; run heed check", len(res.Findings)))
+	}
+	if f := rf.cmd.Flags(); f.Changed("prune") || f.Changed("prune-frac") {
+		n := rf.prune
+		if f.Changed("prune-frac") {
+			n = -1
+		}
+		plan, err := res.MakePlan(n, rf.pruneFrac, blocks)
+		if err != nil {
+			return nil, err
+		}
+		rep.Plan = plan
+	}
+	sortHeads(rep.Heads, rf.sortCol)
+	if rep.Heads == nil {
+		rep.Heads = []rankHead{}
+	}
+	return rep, nil
 }
 
 // noGradients starts the warning heed rank gives without gradients; a

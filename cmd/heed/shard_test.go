@@ -133,6 +133,8 @@ func TestShardMergeEqualsSingleRun(t *testing.T) {
 		{"check", nil, []string{"--json"}},
 		{"check", nil, nil},
 		{"check", []string{"--tol", "0.05", "--rule", "causal", "--rule", "nan_rows"}, []string{"--json"}},
+		{"both", nil, []string{"--json"}},
+		{"both", []string{"--prune", "4", "--sort", "-entropy"}, nil},
 	}
 	for ci, c := range cases {
 		single := append(append([]string{c.cmd, data}, c.flags...), c.out...)
@@ -140,7 +142,7 @@ func TestShardMergeEqualsSingleRun(t *testing.T) {
 		if wantCode == 2 {
 			t.Fatalf("%v: exit 2: %s", single, want)
 		}
-		if c.cmd == "check" && wantCode != 1 {
+		if c.cmd != "rank" && wantCode != 1 {
 			t.Fatalf("%v: exit %d, want 1 (the set has a leak and a NaN row)", single, wantCode)
 		}
 		for _, n := range []int{1, 2, 3, 5, 8} { // 8 shards of 7 examples: one is empty

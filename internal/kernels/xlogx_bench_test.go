@@ -1,4 +1,4 @@
-package analysis
+package kernels
 
 import (
 	"math/rand/v2"
@@ -7,9 +7,9 @@ import (
 	"github.com/x448/float16"
 )
 
-// BenchmarkXlogx compares the table with fastLog on float16 values in [0, 1).
+// BenchmarkXlogx compares the table with FastLog on float16 values in [0, 1).
 func BenchmarkXlogx(b *testing.B) {
-	initXlogx()
+	InitXlogx()
 	xs := make([]float32, 4096)
 	rng := rand.New(rand.NewPCG(3, 4))
 	for i := range xs {
@@ -19,12 +19,12 @@ func BenchmarkXlogx(b *testing.B) {
 		var s float64
 		for range b.N {
 			for _, x := range xs {
-				s += xlogx(x)
+				s += Xlogx(x)
 			}
 		}
 		_ = s
 	})
-	b.Run("fastLog", func(b *testing.B) {
+	b.Run("FastLog", func(b *testing.B) {
 		var s float64
 		for range b.N {
 			for _, x := range xs {

@@ -1,4 +1,4 @@
-package analysis
+package kernels
 
 import (
 	"math"
@@ -6,7 +6,7 @@ import (
 	"testing"
 )
 
-// TestFastLog compares fastLog with the standard library's math.Log.
+// TestFastLog compares FastLog with the standard library's math.Log.
 func TestFastLog(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 4))
 	xs := []float64{1, 2, 0.5, math.E, 1e-38, 1.1754944e-38, 3.4e38, 1 - 1e-16, 1 + 1e-15, 1.0 / 256, 0.9999}
@@ -14,15 +14,15 @@ func TestFastLog(t *testing.T) {
 		xs = append(xs, math.Ldexp(1+r.Float64(), r.IntN(260)-200))
 	}
 	for _, x := range xs {
-		got, want := fastLog(x), math.Log(x)
+		got, want := FastLog(x), math.Log(x)
 		if math.Abs(got-want) > 1e-15*math.Max(1, math.Abs(want)) {
-			t.Fatalf("fastLog(%v) = %v, math.Log = %v", x, got, want)
+			t.Fatalf("FastLog(%v) = %v, math.Log = %v", x, got, want)
 		}
 	}
 	for _, x := range []float64{0, -1, math.Inf(1), math.NaN(), 5e-324} {
-		got, want := fastLog(x), math.Log(x)
+		got, want := FastLog(x), math.Log(x)
 		if !(got == want || math.IsNaN(got) && math.IsNaN(want)) {
-			t.Errorf("fastLog(%v) = %v, want %v", x, got, want)
+			t.Errorf("FastLog(%v) = %v, want %v", x, got, want)
 		}
 	}
 }

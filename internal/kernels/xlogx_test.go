@@ -1,4 +1,4 @@
-package analysis
+package kernels
 
 import (
 	"math"
@@ -9,19 +9,19 @@ import (
 )
 
 // The table must give exactly what the pass computed before it existed,
-// float64(x) * fastLog(float64(x)), for every positive float16 and
+// float64(x) * FastLog(float64(x)), for every positive float16 and
 // bfloat16 value (all 65,536 bit patterns of each are tried) and for any
 // other float32.
 func TestXlogxTableIsExact(t *testing.T) {
-	initXlogx()
+	InitXlogx()
 	check := func(what string, x float32) {
 		if !(x > 0) || math.IsInf(float64(x), 0) {
 			return
 		}
 		v := float64(x)
-		want := v * fastLog(v)
-		if got := xlogx(x); math.Float64bits(got) != math.Float64bits(want) {
-			t.Fatalf("%s: xlogx(%g) = %v, want %v", what, x, got, want)
+		want := v * FastLog(v)
+		if got := Xlogx(x); math.Float64bits(got) != math.Float64bits(want) {
+			t.Fatalf("%s: Xlogx(%g) = %v, want %v", what, x, got, want)
 		}
 	}
 	for i := 0; i < 1<<16; i++ {
@@ -38,7 +38,7 @@ func TestXlogxTableIsExact(t *testing.T) {
 // Derived values: 0.5 ln 0.5 = -ln(2)/2; 1 ln 1 = 0; 2^-24 ln 2^-24 =
 // -24 ln(2) 2^-24 (the smallest float16, from the table).
 func TestXlogxValues(t *testing.T) {
-	initXlogx()
+	InitXlogx()
 	tiny := math.Ldexp(1, -24)
 	for _, c := range []struct {
 		x    float32
@@ -48,8 +48,8 @@ func TestXlogxValues(t *testing.T) {
 		{1, 0},
 		{float32(tiny), -24 * math.Ln2 * tiny},
 	} {
-		if got := xlogx(c.x); math.Abs(got-c.want) > 1e-15*math.Max(1, math.Abs(c.want)) {
-			t.Errorf("xlogx(%g) = %v, want %v", c.x, got, c.want)
+		if got := Xlogx(c.x); math.Abs(got-c.want) > 1e-15*math.Max(1, math.Abs(c.want)) {
+			t.Errorf("Xlogx(%g) = %v, want %v", c.x, got, c.want)
 		}
 	}
 }

@@ -1,9 +1,9 @@
-package analysis
+package kernels
 
 import "math"
 
 // logTable holds ln(1 + i/256), 1/(1 + i/256) and 1 + i/256 for the
-// reduction of fastLog.
+// reduction of FastLog.
 var logTable = func() (t [256][3]float64) {
 	for i := range t {
 		c := 1 + float64(i)/256
@@ -12,13 +12,13 @@ var logTable = func() (t [256][3]float64) {
 	return
 }()
 
-// fastLog returns ln x for x > 0 to within a few ulps (relative error about
+// FastLog returns ln x for x > 0 to within a few ulps (relative error about
 // 1e-15, checked against math.Log in the tests), about three times faster
 // than math.Log: x = 2^e f with f in [1, 2), f = c (1 + r) with c the 8-bit
 // truncation of f so that 0 <= r < 2^-8, and ln(1+r) from its Taylor series
 // to r^5 (the first term left out, r^6/6 < 1e-15). Zero, subnormal, infinite
 // and NaN arguments go to math.Log.
-func fastLog(x float64) float64 {
+func FastLog(x float64) float64 {
 	b := math.Float64bits(x)
 	ex := int(b>>52) & 0x7ff
 	if ex == 0 || ex == 0x7ff || b>>63 != 0 {

@@ -1,4 +1,4 @@
-package analysis
+package kernels
 
 import (
 	"math"
@@ -6,11 +6,11 @@ import (
 	"testing"
 )
 
-// mlogmSum against the definition -sum m ln m, m = (a+b)/2, with math.Log
+// MlogmSum against the definition -sum m ln m, m = (a+b)/2, with math.Log
 // (the Go standard library's logarithm, correctly rounded to within 1 ulp):
 // within the bound its doc states (6e-11 per unit of mass) on random rows
 // of float16-like and float32 values, including zeros and keys where only
-// one row is nonzero; and mlogmSumSlow (rows with negative values) skips
+// one row is nonzero; and MlogmSumSlow (rows with negative values) skips
 // keys whose m <= 0.
 func TestMlogmSum(t *testing.T) {
 	rng := rand.New(rand.NewSource(3))
@@ -41,14 +41,20 @@ func TestMlogmSum(t *testing.T) {
 				want -= m * math.Log(m)
 			}
 		}
-		if got := mlogmSum(a, b); math.Abs(got-want) > 6e-11 {
-			t.Errorf("n=%d: mlogmSum = %.17g, want %.17g (math.Log), off by %g", n, got, want, got-want)
+		if got := MlogmSum(a, b); math.Abs(got-want) > 6e-11 {
+			t.Errorf("n=%d: MlogmSum = %.17g, want %.17g (math.Log), off by %g", n, got, want, got-want)
 		}
-		if got := mlogmSumSlow(a, b); math.Abs(got-want) > 1e-13 {
-			t.Errorf("n=%d: mlogmSumSlow = %.17g, want %.17g", n, got, want)
+		if got := mlogmSumScalar(a, b); math.Abs(got-want) > 6e-11 { // the default build's loop
+			t.Errorf("n=%d: mlogmSumScalar = %.17g, want %.17g (math.Log), off by %g", n, got, want, got-want)
+		}
+		if got := MlogmSumRef(a, b); math.Abs(got-want) > 1e-13 {
+			t.Errorf("n=%d: MlogmSumRef = %.17g, want %.17g", n, got, want)
+		}
+		if got := MlogmSumSlow(a, b); math.Abs(got-want) > 1e-13 {
+			t.Errorf("n=%d: MlogmSumSlow = %.17g, want %.17g", n, got, want)
 		}
 	}
-	if got := mlogmSumSlow([]float32{-0.5, 0.5, 0.25}, []float32{0.25, -0.5, 0.25}); math.Abs(got-(-0.25*math.Log(0.25))) > 1e-15 {
-		t.Errorf("mlogmSumSlow with negatives = %v, want %v (only m = 0.25 counts)", got, -0.25*math.Log(0.25))
+	if got := MlogmSumSlow([]float32{-0.5, 0.5, 0.25}, []float32{0.25, -0.5, 0.25}); math.Abs(got-(-0.25*math.Log(0.25))) > 1e-15 {
+		t.Errorf("MlogmSumSlow with negatives = %v, want %v (only m = 0.25 counts)", got, -0.25*math.Log(0.25))
 	}
 }

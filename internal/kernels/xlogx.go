@@ -1,4 +1,4 @@
-package analysis
+package kernels
 
 import (
 	"math"
@@ -10,7 +10,7 @@ import (
 // mantissa bits are zero, and every bfloat16 value one whose low 16 bits are
 // zero, so in (0, 1] there are only 24,577 and 16,256 of them: a lookup
 // replaces the logarithm in the pass (the profile's largest cost) and gives the
-// very same float64 as computing float64(x) * fastLog(float64(x)), so
+// very same float64 as computing float64(x) * FastLog(float64(x)), so
 // results do not change by a bit. Other values (float32 and float64 exports,
 // anything above 1) are computed.
 
@@ -37,17 +37,17 @@ func xlogxTables() {
 	}
 }
 
-// xlogxCompute is x ln x in float64 with fastLog, the product rounded on
+// xlogxCompute is x ln x in float64 with FastLog, the product rounded on
 // its own (the conversion keeps a compiler from fusing it into a caller's
 // subtraction).
 func xlogxCompute(x float32) float64 {
 	v := float64(x)
-	return float64(v * fastLog(v))
+	return float64(v * FastLog(v))
 }
 
-// xlogx returns x ln x for x > 0 (the caller handles 0 ln 0 = 0 and
+// Xlogx returns x ln x for x > 0 (the caller handles 0 ln 0 = 0 and
 // negative values).
-func xlogx(x float32) float64 {
+func Xlogx(x float32) float64 {
 	b := math.Float32bits(x)
 	if b&0x1fff == 0 {
 		if i := int(b>>13) - xlogxF16Lo; uint(i) < uint(len(xlogxF16)) {
@@ -60,5 +60,6 @@ func xlogx(x float32) float64 {
 	return xlogxCompute(x)
 }
 
-// initXlogx builds the tables once; the pass calls it before starting workers.
-func initXlogx() { xlogxOnce.Do(xlogxTables) }
+// InitXlogx builds the tables once; call it before the first Xlogx (the
+// pass does, before starting workers).
+func InitXlogx() { xlogxOnce.Do(xlogxTables) }

@@ -1,0 +1,130 @@
+//go:build goexperiment.simd && amd64
+
+package kernels
+
+import (
+	"math/bits"
+	"simd/archsimd"
+)
+
+// simdHalf: Add16 takes its AVX2 loop (the build with GOEXPERIMENT=simd
+// only). Sum16 has none: a vector loop measured within 15% of the scalar
+// one (BenchmarkSum16, medians of 6 runs: 685 against 789 ns a 1,024-key
+// row), not worth a second loop to keep equal.
+var simdHalf = archsimd.X86.AVX2()
+
+// halfToFloat32 converts eight patterns to their float32 values without
+// the table (IEEE 754 binary16 and binary32 layouts). float16: the
+// magnitude shifted left by 13 puts its exponent in the low five bits of
+// float32's, so the value is 2^112 too small, and the product by 2^112 is
+// exact for normal and subnormal values; the sign bit moves to bit 31.
+// bfloat16: the pattern shifted left by 16 is the float32. Inf and NaN
+// patterns come out wrong, but the flag word then tells the caller to
+// throw the sums away.
+func halfToFloat32(h archsimd.Uint16x8, f16 bool) archsimd.Float32x8 {
+	w := h.ExtendToUint32()
+	if !f16 {
+		return w.ShiftAllLeft(16).AsFloat32x8()
+	}
+	sign := w.And(archsimd.BroadcastUint32x8(0x8000)).ShiftAllLeft(16)
+	mag := w.And(archsimd.BroadcastUint32x8(0x7fff)).ShiftAllLeft(13)
+	return mag.Or(sign).AsFloat32x8().Mul(archsimd.BroadcastFloat32x8(0x1p112))
+}
+
+// add16AVX2 is add16Scalar with the values, their sum and their distance
+// terms in vector registers, eight patterns a step as two groups of four,
+// so that lane j adds keys j, j+4, j+8, ... in the order of the scalar
+// loop's lane j: the sums are add16Scalar's to the bit (the test checks
+// it). The entropy terms stay a table lookup (package archsimd has no
+// gather) in four scalar lanes, the flags and counts in words as there.
+// Whatever is left after the last eight goes through the scalar loop's
+// steps.
+func (rs *Sums) add16AVX2(t *Half, run []uint16, d, step float64) uint64 {
+	xl := t.XL
+	e := uint64(t.Exp) * 0x0001000100010001
+	low := uint64(t.Exp&-t.Exp) * 0x0001000100010001
+	f16 := t.Exp == 0x7c00
+	magv := archsimd.BroadcastUint16x8(0x7fff)
+	d4 := archsimd.LoadFloat64x4(&[4]float64{d, d + step, d + 2*step, d + 3*step})
+	step4 := archsimd.BroadcastFloat64x4(4 * step)
+	var s4, t4 archsimd.Float64x4
+	var mx archsimd.Uint16x8
+	var e0, e1, e2, e3 float64
+	var nz int
+	var flags uint64
+	n := len(run) &^ 7
+	for i := 0; i < n; i += 8 {
+		h := archsimd.LoadUint16x8Slice(run[i:])
+		mx = mx.Max(h.And(magv))
+		f := halfToFloat32(h, f16)
+		lo, hi := f.GetLo().ConvertToFloat64(), f.GetHi().ConvertToFloat64()
+		s4 = s4.Add(lo)
+		t4 = t4.Add(lo.Mul(d4))
+		d4 = d4.Add(step4)
+		s4 = s4.Add(hi)
+		t4 = t4.Add(hi.Mul(d4))
+		d4 = d4.Add(step4)
+		v, u := load4(run, i), load4(run, i+4)
+		e0 += xl[uint16(v)]
+		e1 += xl[uint16(v>>16)]
+		e2 += xl[uint16(v>>32)]
+		e3 += xl[uint16(v>>48)]
+		e0 += xl[uint16(u)]
+		e1 += xl[uint16(u>>16)]
+		e2 += xl[uint16(u>>32)]
+		e3 += xl[uint16(u>>48)]
+		flags |= bad4(v, e, low) | bad4(u, e, low)
+		nz += bits.OnesCount64((((v&lanes16Mag)+lanes16Mag)&lanes16Top)>>15 | ((u&lanes16Mag)+lanes16Mag)&lanes16Top)
+	}
+	var sv, tv [4]float64
+	s4.Store(&sv)
+	t4.Store(&tv)
+	var mv [8]uint16
+	mx.Store(&mv)
+	s0, s1, s2, s3 := sv[0], sv[1], sv[2], sv[3]
+	t0, t1, t2, t3 := tv[0], tv[1], tv[2], tv[3]
+	m0 := max(mv[0], mv[1], mv[2], mv[3], mv[4], mv[5], mv[6], mv[7])
+	d += float64(n) * step
+	// the rest as in add16Scalar: a group of four, then single keys into lane 0
+	val := t.Val
+	m := len(run) &^ 3
+	for i := n; i < m; i += 4 {
+		v := load4(run, i)
+		h0, h1, h2, h3 := uint16(v), uint16(v>>16), uint16(v>>32), uint16(v>>48)
+		x0, x1, x2, x3 := float64(val[h0]), float64(val[h1]), float64(val[h2]), float64(val[h3])
+		s0 += x0
+		s1 += x1
+		s2 += x2
+		s3 += x3
+		e0 += xl[h0]
+		e1 += xl[h1]
+		e2 += xl[h2]
+		e3 += xl[h3]
+		t0 += x0 * d
+		t1 += x1 * (d + step)
+		t2 += x2 * (d + 2*step)
+		t3 += x3 * (d + 3*step)
+		d += 4 * step
+		flags |= bad4(v, e, low)
+		mv := v & lanes16Mag
+		nz += bits.OnesCount64((mv + lanes16Mag) & lanes16Top)
+		m0 = max(m0, uint16(mv), uint16(mv>>16), uint16(mv>>32), uint16(mv>>48))
+	}
+	for _, h := range run[m:] {
+		x := float64(val[h])
+		s0 += x
+		e0 += xl[h]
+		t0 += x * d
+		d += step
+		flags |= bad4(uint64(h), e, low)
+		h &= 0x7fff
+		m0 = max(m0, h)
+		nz += int((uint32(h) + 0x7fff) >> 15)
+	}
+	rs.S += (s0 + s1) + (s2 + s3)
+	rs.Ent += (e0 + e1) + (e2 + e3)
+	rs.Dist += (t0 + t1) + (t2 + t3)
+	rs.Mx16 = max(rs.Mx16, m0)
+	rs.NZ += int64(nz)
+	return flags
+}
