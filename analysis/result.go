@@ -154,7 +154,12 @@ type Gap struct {
 	// row was judged).
 	What string `json:"what"`
 	Why  string `json:"why"`
-	Fix  string `json:"fix"`
+	// Fix says how to let heed judge it in the export convention's terms
+	// (a metadata key, an array); Setting names the setting that does it
+	// ("kind", "query_start"), which the command line and the UI word as
+	// their own option (words.WithOption) before showing Fix.
+	Fix     string `json:"fix"`
+	Setting string `json:"-"`
 }
 
 // Coverage says, for one block, what a verdict judged and what it did not.
@@ -223,28 +228,40 @@ func coverageOf(bp *BlockPartial) Coverage {
 			}
 		}
 	}
-	gap := func(what, why, fix string) {
+	gap := func(what, why, fix, setting string) {
 		c.Judged = false
-		c.NotJudged = append(c.NotJudged, Gap{Block: bp.Name, What: what, Why: why, Fix: fix})
+		c.NotJudged = append(c.NotJudged, Gap{Block: bp.Name, What: what, Why: why, Fix: fix, Setting: setting})
 	}
 	if bp.Kind == "" && !bp.RulesGiven {
 		why := "kind unknown: no metadata said it"
 		if bp.Evidence != "" {
 			why += "; from the data: " + bp.Evidence
 		}
-		gap("mask", why, fmt.Sprintf("say the kind: --kind causal|bidirectional|cross, or meta blocks.%s.kind", bp.Name))
+		gap("mask", why, fmt.Sprintf("say the kind: meta blocks.%s.kind", bp.Name), "kind")
 	}
 	if bp.PosFrom == "unknown" || bp.PosFrom == "mixed" {
 		why := bp.PosEvidence
 		if why == "" {
 			why = "examples place their queries differently"
 		}
-		gap("positions", why, fmt.Sprintf("give the queries' key positions: meta blocks.%s.query_start (one, or one per batch item), an array %s/qpos [batch, query], or --query-start P", bp.Name, bp.Name))
+		gap("positions", why, fmt.Sprintf("give the queries' key positions: meta blocks.%s.query_start (one, or one per batch item), an array %s/qpos [batch, query]", bp.Name, bp.Name), "query_start")
 	}
 	if c.JudgedRows == 0 {
-		gap("rows", "no query row was judged (every query row is padding, or the block is empty)", "check valid/"+"SIDE of the block's query side")
+		gap("rows", "no query row was judged (every query row is padding, or the block is empty)", "check valid/"+"SIDE of the block's query side", "")
 	}
 	return c
+}
+
+// WordGaps rewrites every not-judged entry's Fix with word(setting, fix):
+// how the command line or the UI names the setting that would let heed
+// judge it (the engine's own words name only the export convention).
+func (r *Result) WordGaps(word func(setting, fix string) string) {
+	for i := range r.Coverage {
+		for j := range r.Coverage[i].NotJudged {
+			g := &r.Coverage[i].NotJudged[j]
+			g.Fix = word(g.Setting, g.Fix)
+		}
+	}
 }
 
 // Block returns the named block's result, or nil.

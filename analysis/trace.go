@@ -478,8 +478,13 @@ func layerAbar(blk *loader.Block, batch int, grad bool) ([][]float64, error) {
 	return out, nil
 }
 
+// ErrNoGrad (test with errors.Is) is the error of gradient relevance asked
+// of a block exported without dL/dA; callers say what to use instead in
+// their own terms (heed trace's --method).
+var ErrNoGrad = errors.New("gradient relevance needs them; rollout and flow do not")
+
 func noGrad(blk *loader.Block) error {
-	return fmt.Errorf("analysis: block %s has no gradients (%s/grad): --method grad needs them; use rollout or flow", blk.Name, blk.Name)
+	return fmt.Errorf("analysis: block %s has no gradients (%s/grad): %w", blk.Name, blk.Name, ErrNoGrad)
 }
 
 // layerBufs are the head buffers of layerBufs.layer, reused across layers:

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"math"
 	"strconv"
 	"strings"
@@ -99,6 +100,7 @@ func runAnalysis(j *job, set *loader.Set, opt analysis.Options) tea.Cmd {
 			msg.err = err
 		} else {
 			msg.res = p.Result()
+			msg.res.WordGaps(words.WithOption)
 		}
 		j.done <- msg
 		return nil

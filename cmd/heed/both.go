@@ -3,6 +3,7 @@ package main
 import (
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"io"
 
 	"github.com/spf13/cobra"
@@ -41,6 +42,7 @@ func runReports(cmd *cobra.Command, args []string, lf *loadFlags, pf *passFlags,
 		return nil
 	}
 	res := p.Result()
+	res.WordGaps(words.WithOption)
 	var both bothReport
 	if want.rank != nil {
 		if both.Rank, err = want.rank.report(res, set.Warnings, pf.blocks); err != nil {

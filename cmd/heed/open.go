@@ -3,6 +3,7 @@ package main
 import (
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/words"
 	"os"
 	"strings"
 
@@ -75,7 +76,9 @@ func textReport(cmd *cobra.Command, set *loader.Set, why string) error {
 	if err != nil {
 		return err
 	}
-	writeCheckText(out, p.Result(), set.Warnings)
+	res := p.Result()
+	res.WordGaps(words.WithOption)
+	writeCheckText(out, res, set.Warnings)
 	fmt.Fprintf(cmd.ErrOrStderr(), "heed: %s, so this is the text report (heed info and heed check); run heed in a terminal for the UI, or heed render for a picture\n", why)
 	return nil
 }

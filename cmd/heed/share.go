@@ -341,5 +341,7 @@ func shareStatistics(ctx context.Context, set *loader.Set) (*analysis.Result, er
 	if err != nil {
 		return nil, err
 	}
-	return p.Result(), nil
+	res := p.Result()
+	res.WordGaps(words.WithOption)
+	return res, nil
 }

@@ -94,6 +94,8 @@ func traceAdvice(err error) error {
 		return fmt.Errorf("%w; through cross-attention use --method rollout or grad", err)
 	case errors.As(err, &big):
 		return fmt.Errorf("%w: use --method rollout", err)
+	case errors.Is(err, analysis.ErrNoGrad):
+		return fmt.Errorf("%w: use --method rollout or flow, or export BLOCK/grad", err)
 	}
 	return err
 }

@@ -129,3 +129,20 @@ func Plural(n int, one, many string) string {
 func Count(n int, one, many string) string {
 	return strconv.Itoa(n) + " " + Plural(n, one, many)
 }
+
+// WithOption words how a person gives heed a setting it lacked: the
+// command-line option beside the export convention's way (fix, e.g. "say
+// the kind: meta blocks.decoder.kind"). Settings it does not know leave fix
+// as it is.
+func WithOption(setting, fix string) string {
+	switch setting {
+	case "kind":
+		if head, rest, ok := strings.Cut(fix, ": "); ok {
+			return head + ": --kind causal|bidirectional|cross, or " + rest
+		}
+		return fix + ", or --kind causal|bidirectional|cross"
+	case "query_start":
+		return fix + ", or --query-start P"
+	}
+	return fix
+}

@@ -64,3 +64,15 @@ func TestCount(t *testing.T) {
 		}
 	}
 }
+
+func TestWithOption(t *testing.T) {
+	for _, tc := range []struct{ setting, fix, want string }{
+		{"kind", "say the kind: meta blocks.decoder.kind", "say the kind: --kind causal|bidirectional|cross, or meta blocks.decoder.kind"},
+		{"query_start", "give the queries' key positions: meta blocks.d.query_start", "give the queries' key positions: meta blocks.d.query_start, or --query-start P"},
+		{"", "check valid/SIDE", "check valid/SIDE"},
+	} {
+		if got := WithOption(tc.setting, tc.fix); got != tc.want {
+			t.Errorf("WithOption(%q, %q) = %q, want %q", tc.setting, tc.fix, got, tc.want)
+		}
+	}
+}
