@@ -11,6 +11,7 @@ package analysis
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"math"
 	"sort"
@@ -346,6 +347,11 @@ func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 // whose tokens agree while another side changed are skipped with a note,
 // since they may legitimately read the changed side (cross-attention).
 // Padding positions of A (valid/SIDE) are not judged.
+// ErrNeedFrom (test with errors.Is) ends the errors of CheckInvariance
+// when the tokens do not tell where the change starts: the caller names
+// its own way to give that position (heed check's --from).
+var ErrNeedFrom = errors.New("give the first changed position P")
+
 func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOptions) (*Invariance, error) {
 	fa, fb := exportFile(a), exportFile(b)
 	res := &Invariance{}
@@ -435,7 +441,7 @@ func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOpt
 		}
 		sort.Strings(names)
 		if len(names) == 0 {
-			return nil, fmt.Errorf("%s and %s: no tokens/SIDE in both to find the first changed position P; give --from P", fa, fb)
+			return nil, fmt.Errorf("%s and %s: no tokens/SIDE in both to find the first changed position P: %w", fa, fb, ErrNeedFrom)
 		}
 		for _, name := range names {
 			if from, ch := sideFrom(a.Side(name), b.Side(name), batch); ch {
@@ -444,7 +450,7 @@ func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOpt
 		}
 		switch len(changedSide) {
 		case 0:
-			return nil, fmt.Errorf("%s and %s: the tokens are the same, so nothing tells where the change starts; export B with the tokens from P on replaced, or give --from P", fa, fb)
+			return nil, fmt.Errorf("%s and %s: the tokens are the same, so nothing tells where the change starts; export B with the tokens from P on replaced, or %w", fa, fb, ErrNeedFrom)
 		case 1:
 			for name, from := range changedSide {
 				res.Side, res.From = name, from
@@ -455,7 +461,7 @@ func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOpt
 				ch = append(ch, name)
 			}
 			sort.Strings(ch)
-			return nil, fmt.Errorf("%s and %s: tokens differ on more than one side (%v); change one side only, or give --from P", fa, fb, ch)
+			return nil, fmt.Errorf("%s and %s: tokens differ on more than one side (%v); change one side only, or %w", fa, fb, ch, ErrNeedFrom)
 		}
 	} else {
 		res.From = make([]int, batch)

@@ -163,7 +163,7 @@ func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules
 			continue
 		}
 		if !can[x] {
-			return nil, fmt.Errorf("analysis: block %s: rule %s needs %s", blk.Name, x, ruleNeeds[x])
+			return nil, &RuleNeedsError{Block: blk.Name, Rule: x}
 		}
 		r.active[x] = true
 	}
@@ -173,9 +173,22 @@ func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules
 	return r, nil
 }
 
+// RuleNeedsError is the error of a mask rule asked for (Options.Rules) on a
+// block that lacks what the rule needs; it says what, in the export
+// convention's terms, and callers add their own option for it (heed
+// check's --prefix, --window).
+type RuleNeedsError struct {
+	Block string
+	Rule  Rule
+}
+
+func (e *RuleNeedsError) Error() string {
+	return fmt.Sprintf("analysis: block %s: rule %s needs %s", e.Block, e.Rule, ruleNeeds[e.Rule])
+}
+
 var ruleNeeds = [numMask]string{
-	RulePrefix:   "a prefix length (meta \"prefix\" or --prefix)",
-	RuleWindow:   "a window (meta \"window\" or --window)",
+	RulePrefix:   "a prefix length (meta \"prefix\")",
+	RuleWindow:   "a window (meta \"window\")",
 	RuleSegments: "document ids (segments/SIDE) on a self-attention block",
 	RulePadding:  "a padding mask (valid/SIDE)",
 	RuleExplicit: "an explicit mask (BLOCK/allow)",

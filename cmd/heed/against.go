@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"github.com/heed-dev/heed/internal/words"
 	"io"
@@ -78,6 +79,9 @@ func runAgainst(ctx context.Context, w io.Writer, args []string, af *againstFlag
 	o.From = af.from
 	o.Tol = tol
 	res, err := analysis.CheckInvariance(ctx, a, b, o)
+	if errors.Is(err, analysis.ErrNeedFrom) {
+		err = fmt.Errorf("%w with --from P", err)
+	}
 	if err != nil {
 		return err
 	}

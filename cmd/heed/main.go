@@ -7,6 +7,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/analysis"
 	"os"
 	"os/signal"
 	"regexp"
@@ -184,7 +185,17 @@ func exitCode(err error, interrupted bool) int {
 	if errors.As(err, &nj) {
 		return 3
 	}
-	fmt.Fprintln(os.Stderr, "heed: "+err.Error())
+	msg := err.Error()
+	var rn *analysis.RuleNeedsError
+	if errors.As(err, &rn) {
+		switch rn.Rule {
+		case analysis.RulePrefix:
+			msg += " or --prefix P"
+		case analysis.RuleWindow:
+			msg += " or --window W"
+		}
+	}
+	fmt.Fprintln(os.Stderr, "heed: "+msg)
 	return 2
 }
 
