@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"image"
 	"image/draw"
-	"image/png"
 	"math"
 	"strconv"
 	"strings"
@@ -278,26 +277,7 @@ func (f *Figure) PNG(opt Options) ([]byte, error) {
 	if err != nil {
 		return nil, err
 	}
-	var buf bytes.Buffer
-	if err := (&png.Encoder{CompressionLevel: png.BestCompression}).Encode(&buf, img); err != nil {
-		return nil, fmt.Errorf("picture: encode png: %w", err)
-	}
-	return insertText(buf.Bytes(), textChunks(opt))
-}
-
-func textChunks(opt Options) [][2]string {
-	marker := opt.Marker
-	if marker == "" {
-		marker = MarkerPrefix
-	}
-	chunks := [][2]string{{"Software", marker}}
-	if opt.Title != "" {
-		chunks = append(chunks, [2]string{"Title", opt.Title})
-	}
-	if opt.Description != "" {
-		chunks = append(chunks, [2]string{"Description", opt.Description})
-	}
-	return chunks
+	return encodePNG(img, opt)
 }
 
 func fnum(v float64) string { return strconv.FormatFloat(v, 'f', -1, 64) }
@@ -328,28 +308,9 @@ func (f *Figure) SVG(opt Options) ([]byte, error) {
 		}
 		runs = append(runs, r)
 	}
-	marker := opt.Marker
-	if marker == "" {
-		marker = MarkerPrefix
-	}
 	var b bytes.Buffer
-	b.WriteString(`<?xml version="1.0" encoding="UTF-8"?>` + "\n")
-	fmt.Fprintf(&b, "<!-- %s -->\n", strings.ReplaceAll(marker, "--", "- -"))
-	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" version="1.1" width="%d" height="%d" viewBox="0 0 %d %d">`+"\n",
-		f.W, f.H, f.W, f.H)
-	title := opt.Title
-	if title == "" {
-		title = "heed"
-	}
-	b.WriteString("<title>")
-	xmlText(&b, title)
-	b.WriteString("</title>\n<desc>")
-	if opt.Description != "" {
-		xmlText(&b, opt.Description)
-		b.WriteString("\n\n")
-	}
-	xmlText(&b, f.PlainText())
-	b.WriteString("</desc>\n<defs>\n")
+	svgHead(&b, f.W, f.H, opt, f.PlainText())
+	b.WriteString("<defs>\n")
 	defined := map[glyphKey]bool{}
 	for _, r := range runs {
 		for _, p := range r.places {

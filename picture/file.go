@@ -51,12 +51,8 @@ func FormatOf(path string) (Format, error) {
 // canvas should have been drawn for a profile without colour so that its
 // glyph ramp carries the values.
 func Text(c *views.Canvas, colour bool, opt Options) []byte {
-	marker := opt.Marker
-	if marker == "" {
-		marker = MarkerPrefix
-	}
 	var b bytes.Buffer
-	b.WriteString("# " + strings.ReplaceAll(marker, "\n", " ") + "\n")
+	b.WriteString("# " + strings.ReplaceAll(opt.marker(), "\n", " ") + "\n")
 	if colour {
 		b.WriteString(c.Render(colorprofile.TrueColor))
 	} else {

@@ -122,16 +122,16 @@ func PNG(c *views.Canvas, opt Options) ([]byte, error) {
 	if err != nil {
 		return nil, err
 	}
+	return encodePNG(img, opt)
+}
+
+// encodePNG encodes img with the tEXt chunks of opt (PNG, Figure.PNG).
+func encodePNG(img image.Image, opt Options) ([]byte, error) {
 	var buf bytes.Buffer
-	enc := png.Encoder{CompressionLevel: png.BestCompression}
-	if err := enc.Encode(&buf, img); err != nil {
+	if err := (&png.Encoder{CompressionLevel: png.BestCompression}).Encode(&buf, img); err != nil {
 		return nil, fmt.Errorf("picture: encode png: %w", err)
 	}
-	marker := opt.Marker
-	if marker == "" {
-		marker = MarkerPrefix
-	}
-	chunks := [][2]string{{"Software", marker}}
+	chunks := [][2]string{{"Software", opt.marker()}}
 	if opt.Title != "" {
 		chunks = append(chunks, [2]string{"Title", opt.Title})
 	}
@@ -139,6 +139,14 @@ func PNG(c *views.Canvas, opt Options) ([]byte, error) {
 		chunks = append(chunks, [2]string{"Description", opt.Description})
 	}
 	return insertText(buf.Bytes(), chunks)
+}
+
+// marker is the render marker the files carry (MarkerPrefix by default).
+func (o Options) marker() string {
+	if o.Marker == "" {
+		return MarkerPrefix
+	}
+	return o.Marker
 }
 
 var pngSig = []byte("\x89PNG\r\n\x1a\n")

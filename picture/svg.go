@@ -20,29 +20,8 @@ func SVG(c *views.Canvas, opt Options) ([]byte, error) {
 	if err != nil {
 		return nil, err
 	}
-	marker := opt.Marker
-	if marker == "" {
-		marker = MarkerPrefix
-	}
 	var b bytes.Buffer
-	b.WriteString(`<?xml version="1.0" encoding="UTF-8"?>` + "\n")
-	// XML comments may not contain "--".
-	fmt.Fprintf(&b, "<!-- %s -->\n", strings.ReplaceAll(marker, "--", "- -"))
-	fmt.Fprintf(&b, `<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" version="1.1" width="%d" height="%d" viewBox="0 0 %d %d">`+"\n",
-		s.w, s.h, s.w, s.h)
-	title := opt.Title
-	if title == "" {
-		title = "heed"
-	}
-	b.WriteString("<title>")
-	xmlText(&b, title)
-	b.WriteString("</title>\n<desc>")
-	if opt.Description != "" {
-		xmlText(&b, opt.Description)
-		b.WriteString("\n\n")
-	}
-	xmlText(&b, c.Plain())
-	b.WriteString("</desc>\n")
+	svgHead(&b, s.w, s.h, opt, c.Plain())
 
 	// Glyph outlines, once each.
 	b.WriteString("<defs>\n")
@@ -117,4 +96,29 @@ func pathData(segs sfnt.Segments) string {
 		b.WriteString("Z")
 	}
 	return b.String()
+}
+
+// svgHead writes what every SVG of heed starts with: the XML declaration,
+// the render marker, the <svg> element of w x h, the title and a <desc>
+// holding the description and the picture's text.
+func svgHead(b *bytes.Buffer, w, h int, opt Options, text string) {
+	marker := opt.marker()
+	b.WriteString(`<?xml version="1.0" encoding="UTF-8"?>` + "\n")
+	// XML comments may not contain "--".
+	fmt.Fprintf(b, "<!-- %s -->\n", strings.ReplaceAll(marker, "--", "- -"))
+	fmt.Fprintf(b, `<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" version="1.1" width="%d" height="%d" viewBox="0 0 %d %d">`+"\n",
+		w, h, w, h)
+	title := opt.Title
+	if title == "" {
+		title = "heed"
+	}
+	b.WriteString("<title>")
+	xmlText(b, title)
+	b.WriteString("</title>\n<desc>")
+	if opt.Description != "" {
+		xmlText(b, opt.Description)
+		b.WriteString("\n\n")
+	}
+	xmlText(b, text)
+	b.WriteString("</desc>\n")
 }
