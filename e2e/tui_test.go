@@ -262,29 +262,14 @@ func TestBadInput(t *testing.T) {
 	tm.see("heed: ", "bad.npz")
 }
 
-// oneCellScript writes a 12 x 12-head causal export of 300 tokens whose one
-// leaking cell is layer 7, head 5, query 150, key 201 (weight 0.01).
-const oneCellScript = `
-import json, sys
-import numpy as np
-rng = np.random.default_rng(3)
-L, H, T = 12, 12, 300
-s = rng.normal(size=(L, 1, H, T, T)).astype(np.float32)
-s[..., np.triu(np.ones((T, T), dtype=bool), k=1)] = -np.inf
-a = np.exp(s - s.max(-1, keepdims=True)); a /= a.sum(-1, keepdims=True)
-a[7, 0, 5, 150, :151] *= 0.99; a[7, 0, 5, 150, 201] = 0.01
-meta = {"format": "heed-export/1", "blocks": {"decoder": {"kind": "causal", "axes": "layer batch head query key"}}}
-np.savez(sys.argv[1], **{"decoder/attn": a.astype(np.float16), "meta": np.array(json.dumps(meta))})
-`
-
 // TestOneKeyToTheLeak: on a 12 x 12-head export with one leaking cell, the
 // Survey marks the head, and one key (n) reaches the cell, centred on the
 // Map, with its rule and mass on screen; i shows its row.
 func TestOneKeyToTheLeak(t *testing.T) {
 	needTools(t)
 	file := filepath.Join(t.TempDir(), "one.npz")
-	if out, err := exec.Command("/usr/bin/python3", "-c", oneCellScript, file).CombinedOutput(); err != nil {
-		t.Fatalf("numpy: %v\n%s", err, out)
+	if out, err := exec.Command("/usr/bin/python3", "../tui/testdata/one_cell.py", file).CombinedOutput(); err != nil {
+		t.Fatalf("one_cell.py: %v\n%s", err, out)
 	}
 	for _, tc := range []struct {
 		name string

@@ -38,6 +38,18 @@ func makeExport(t *testing.T, name string, args ...string) string {
 	return makeExportB(t, name, args...)
 }
 
+// makeOneCell writes testdata/one_cell.py's export: one leaking cell
+// (layer 7, head 5, query 150, key 201) in 12 x 12 heads of 300 tokens.
+func makeOneCell(t *testing.T) string {
+	t.Helper()
+	python(t)
+	out := filepath.Join(t.TempDir(), "one.npz")
+	if b, err := exec.Command("/usr/bin/python3", "testdata/one_cell.py", out).CombinedOutput(); err != nil {
+		t.Fatalf("one_cell.py: %v\n%s", err, b)
+	}
+	return out
+}
+
 func makeExportB(t testing.TB, name string, args ...string) string {
 	t.Helper()
 	python(t)
@@ -400,28 +412,10 @@ print(json.dumps({"layer": int(l), "batch": int(b), "head": int(h), "q": int(q),
                   "q0": int(qs.min()), "q1": int(qs.max()), "k0": int(ks.min()), "k1": int(ks.max())}))
 `
 
-// oneCellScript writes a 12 x 12-head causal export of 300 tokens whose one
-// leaking cell is layer 7, head 5, query 150, key 201.
-const oneCellScript = `
-import json, sys
-import numpy as np
-rng = np.random.default_rng(3)
-L, H, T = 12, 12, 300
-s = rng.normal(size=(L, 1, H, T, T)).astype(np.float32)
-s[..., np.triu(np.ones((T, T), dtype=bool), k=1)] = -np.inf
-a = np.exp(s - s.max(-1, keepdims=True)); a /= a.sum(-1, keepdims=True)
-a[7, 0, 5, 150, :151] *= 0.99; a[7, 0, 5, 150, 201] = 0.01
-meta = {"format": "heed-export/1", "blocks": {"decoder": {"kind": "causal", "axes": "layer batch head query key"}}}
-np.savez(sys.argv[1], **{"decoder/attn": a.astype(np.float16), "meta": np.array(json.dumps(meta))})
-print("{}")
-`
-
 // From the Survey one key (n) reaches the worst leaking cell, at a zoom
 // whose view holds every leaking cell of that head, and says what it is.
 func TestFlowNextFindingShowsExtent(t *testing.T) {
-	one := filepath.Join(t.TempDir(), "one.npz")
-	var none struct{}
-	numpyRef(t, oneCellScript, &none, one)
+	one := makeOneCell(t)
 	for _, tc := range []struct {
 		name, file string
 	}{
@@ -468,9 +462,7 @@ func TestFlowNextFindingShowsExtent(t *testing.T) {
 // The Survey marks a head with one leaking cell on every statistic, and its
 // ranked list of leak mass puts that head first (numpy writes the export).
 func TestFlowSurveyShowsOneLeakingCell(t *testing.T) {
-	one := filepath.Join(t.TempDir(), "one.npz")
-	var none struct{}
-	numpyRef(t, oneCellScript, &none, one)
+	one := makeOneCell(t)
 	f := start(t, 100, 30, Options{}, one)
 	f.see("Survey · decoder · entropy")
 	f.see("forbidden mass (any amount)") // the legend of the marks, once the statistics are in
