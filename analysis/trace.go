@@ -441,23 +441,6 @@ func eye(n int) []float64 {
 	return m
 }
 
-// headMean reads every head of (layer, batch) and returns their mean as float64.
-func headMean(blk *loader.Block, layer, batch int, buf []float32) ([]float64, error) {
-	out := make([]float64, blk.Queries*blk.Keys)
-	for h := 0; h < blk.Heads; h++ {
-		if err := blk.ReadAttn(layer, batch, h, buf); err != nil {
-			return nil, err
-		}
-		for i, x := range buf {
-			out[i] += float64(x)
-		}
-	}
-	for i := range out {
-		out[i] /= float64(blk.Heads)
-	}
-	return out, nil
-}
-
 // layerAbar returns per layer the matrix a method propagates: the head mean
 // of A (rollout) or GradAbar (grad). Only attention flow and the
 // encoder-decoder rules need every layer at once; a self-attention rollout
@@ -492,7 +475,7 @@ func noGrad(blk *loader.Block) error {
 // dtype) while the previous one is added in.
 type layerBufs struct {
 	a, g [2][]float32
-	raw  [2][]uint16 // stored float16/bfloat16 patterns (the head mean's fast path)
+	raw  []uint16 // stored float16/bfloat16 patterns (the head mean's fast path)
 }
 
 // rawMean adds the heads of layer l into out (not yet divided) through
@@ -502,10 +485,10 @@ type layerBufs struct {
 // false when the block is not held that way.
 func (lb *layerBufs) rawMean(blk *loader.Block, l, batch int, out []float64) (ok bool, err error) {
 	n := len(out)
-	if lb.raw[0] == nil {
-		lb.raw[0] = make([]uint16, n)
+	if lb.raw == nil {
+		lb.raw = make([]uint16, n)
 	}
-	dt, err := blk.ReadRaw16(l, batch, 0, lb.raw[0])
+	dt, err := blk.ReadRaw16(l, batch, 0, lb.raw)
 	if err != nil || dt == loader.Invalid {
 		return false, err
 	}
@@ -515,11 +498,11 @@ func (lb *layerBufs) rawMean(blk *loader.Block, l, batch int, out []float64) (ok
 	parts := max(1, min(runtime.GOMAXPROCS(0), n/traceSplitCells))
 	for h := 0; h < blk.Heads; h++ {
 		if h > 0 {
-			if _, err := blk.ReadRaw16(l, batch, h, lb.raw[0]); err != nil {
+			if _, err := blk.ReadRaw16(l, batch, h, lb.raw); err != nil {
 				return false, err
 			}
 		}
-		raw := lb.raw[0]
+		raw := lb.raw
 		var wg sync.WaitGroup
 		for p := range parts {
 			lo, hi := p*n/parts, (p+1)*n/parts

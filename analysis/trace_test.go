@@ -289,3 +289,20 @@ func TestLayerMatchesPlainLoops(t *testing.T) {
 		}
 	}
 }
+
+// headMean, the plain loop the head mean of rollout is tested against, reads every head of (layer, batch) and returns their mean as float64.
+func headMean(blk *loader.Block, layer, batch int, buf []float32) ([]float64, error) {
+	out := make([]float64, blk.Queries*blk.Keys)
+	for h := 0; h < blk.Heads; h++ {
+		if err := blk.ReadAttn(layer, batch, h, buf); err != nil {
+			return nil, err
+		}
+		for i, x := range buf {
+			out[i] += float64(x)
+		}
+	}
+	for i := range out {
+		out[i] /= float64(blk.Heads)
+	}
+	return out, nil
+}

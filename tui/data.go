@@ -138,7 +138,14 @@ func (bi *blockInfo) tokens(b int) (q, k []string) {
 // forbidding a cell, "" for allowed cells and for padding query rows (which
 // are not judged).
 func (bi *blockInfo) ruleFunc(batch, head int) func(q, k int) string {
-	r := bi.rules
+	return MapRule(bi.rules, batch, head)
+}
+
+// MapRule is the Map's rule lookup (views.MapData.Rule) of rules for
+// (batch, head): the mask rule forbidding a cell, "" for allowed cells and
+// for padding query rows, which are not judged; nil when no rule applies.
+// heed render's map figure marks cells by it too.
+func MapRule(r *analysis.Rules, batch, head int) func(q, k int) string {
 	if r == nil || len(r.Active()) == 0 {
 		return nil
 	}

@@ -134,17 +134,7 @@ func (e *figureEnv) mapData(weights []float32) (*views.MapData, string, error) {
 	for _, r := range rules.Active() {
 		names = append(names, r.String())
 	}
-	batch, head := e.batch, e.loc.Head
-	md.Rule = func(q, k int) string {
-		if !rules.Judged(batch, q) {
-			return ""
-		}
-		r, err := rules.Cell(batch, head, q, k)
-		if err != nil || r == analysis.RuleNone {
-			return ""
-		}
-		return r.String()
-	}
+	md.Rule = tui.MapRule(rules, e.batch, e.loc.Head)
 	return md, strings.Join(names, " + "), nil
 }
 
