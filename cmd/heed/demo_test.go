@@ -105,17 +105,7 @@ func TestDemoOpens(t *testing.T) {
 // the Map on the cell where the +1 leak is strongest, says so in the tab bar,
 // and prints the hint when the user quits.
 func TestDemoTUI(t *testing.T) {
-	if _, err := exec.LookPath("tmux"); err != nil {
-		t.Skip("skipping: tmux is not installed")
-	}
-	if testing.Short() {
-		t.Skip("skipping the terminal test in -short mode")
-	}
-	dir := t.TempDir()
-	bin := filepath.Join(dir, "heed")
-	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
-		t.Fatalf("go build: %v\n%s", err, out)
-	}
+	dir, bin := terminalTest(t)
 	res, err := demo.LoadResults()
 	if err != nil {
 		t.Fatal(err)
@@ -202,4 +192,23 @@ func TestDemoExportRefusesSourceDir(t *testing.T) {
 			t.Errorf("%s: %d entries before, %d after: something was written", dir, len(before), len(after))
 		}
 	}
+}
+
+// terminalTest skips without tmux or in -short mode, else builds heed into
+// a temporary directory for a test in a real terminal: the directory and
+// the binary.
+func terminalTest(t *testing.T) (dir, bin string) {
+	t.Helper()
+	if _, err := exec.LookPath("tmux"); err != nil {
+		t.Skip("skipping: tmux is not installed")
+	}
+	if testing.Short() {
+		t.Skip("skipping the terminal test in -short mode")
+	}
+	dir = t.TempDir()
+	bin = filepath.Join(dir, "heed")
+	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
+		t.Fatalf("go build: %v\n%s", err, out)
+	}
+	return dir, bin
 }

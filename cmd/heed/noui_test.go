@@ -28,17 +28,7 @@ func TestNoTerminalGivesTextReport(t *testing.T) {
 // TERM=dumb in a real terminal (tmux) gives the text report, not the UI,
 // and heed exits by itself.
 func TestDumbTerminalGivesTextReport(t *testing.T) {
-	if _, err := exec.LookPath("tmux"); err != nil {
-		t.Skip("skipping: tmux is not installed")
-	}
-	if testing.Short() {
-		t.Skip("skipping the terminal test in -short mode")
-	}
-	dir := t.TempDir()
-	bin := filepath.Join(dir, "heed")
-	if out, err := exec.Command("go", "build", "-o", bin, ".").CombinedOutput(); err != nil {
-		t.Fatalf("go build: %v\n%s", err, out)
-	}
+	dir, bin := terminalTest(t)
 	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
 	done := filepath.Join(dir, "done")
 	session := fmt.Sprintf("heed-dumb-test-%d", os.Getpid())
