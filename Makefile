@@ -66,12 +66,14 @@ purego:
 	CGO_ENABLED=0 $(GO) build -o /dev/null ./cmd/heed
 	CGO_ENABLED=0 $(GO) test -count=1 -run 'NoHDF5|PureGo' ./loader
 
+# -fuzzminimizetime bounds the shrinking of a newly interesting input (60 s by default):
+# shrinking that outlasts -fuzztime ends the run with "context deadline exceeded".
 fuzz:
-	$(GO) test -run '^$$' -fuzz '^FuzzNPY$$' -fuzztime $(FUZZTIME) ./loader
-	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) ./loader
-	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) ./loader
-	$(GO) test -run '^$$' -fuzz '^FuzzTorch$$' -fuzztime $(FUZZTIME) ./loader
-	$(GO) test -run '^$$' -fuzz '^FuzzPartial$$' -fuzztime $(FUZZTIME) ./analysis
+	$(GO) test -run '^$$' -fuzz '^FuzzNPY$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzTorch$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzPartial$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./analysis
 
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:
