@@ -166,13 +166,35 @@ func (rs *Sums) Add16(t *Half, run []uint16, d, step float64) uint64 {
 // add16Scalar is Add16 in scalar registers (the default build's, and
 // every build's on processors without AVX2).
 func (rs *Sums) add16Scalar(t *Half, run []uint16, d, step float64) uint64 {
+	ln := lanes16{d: d}
+	ln.add(t, run, step)
+	return rs.take(&ln)
+}
+
+// lanes16 are Add16's four lanes (keys i mod 4) between runs of its loop:
+// the sums of x, of x ln x and of x times the distance d, the largest
+// magnitude pattern, the count of nonzero values, the flag word and the
+// next key's distance. The vector loop (add16AVX2) fills them from its
+// registers and ends with add, as the scalar loop does from the start.
+type lanes16 struct {
+	s, e, t [4]float64
+	m       uint16
+	nz      int
+	flags   uint64
+	d       float64
+}
+
+// add adds run to the lanes: groups of four keys, one into each lane, then
+// the keys left over into lane 0.
+func (ln *lanes16) add(t *Half, run []uint16, step float64) {
 	val, xl := t.Val, t.XL
 	e := uint64(t.Exp) * 0x0001000100010001
 	low := uint64(t.Exp&-t.Exp) * 0x0001000100010001
-	var s0, s1, s2, s3, e0, e1, e2, e3, t0, t1, t2, t3 float64
-	var m0, m1, m2, m3 uint16
-	var nz int
-	var flags uint64
+	s0, s1, s2, s3 := ln.s[0], ln.s[1], ln.s[2], ln.s[3]
+	e0, e1, e2, e3 := ln.e[0], ln.e[1], ln.e[2], ln.e[3]
+	t0, t1, t2, t3 := ln.t[0], ln.t[1], ln.t[2], ln.t[3]
+	m0, m1, m2, m3 := ln.m, ln.m, ln.m, ln.m
+	nz, flags, d := ln.nz, ln.flags, ln.d
 	n := len(run) &^ 3
 	for i := 0; i < n; i += 4 {
 		v := load4(run, i)
@@ -207,12 +229,19 @@ func (rs *Sums) add16Scalar(t *Half, run []uint16, d, step float64) uint64 {
 		m0 = max(m0, h)
 		nz += int((uint32(h) + 0x7fff) >> 15)
 	}
-	rs.S += (s0 + s1) + (s2 + s3)
-	rs.Ent += (e0 + e1) + (e2 + e3)
-	rs.Dist += (t0 + t1) + (t2 + t3)
-	rs.Mx16 = max(rs.Mx16, m0, m1, m2, m3)
-	rs.NZ += int64(nz)
-	return flags
+	ln.s, ln.e, ln.t = [4]float64{s0, s1, s2, s3}, [4]float64{e0, e1, e2, e3}, [4]float64{t0, t1, t2, t3}
+	ln.m, ln.nz, ln.flags, ln.d = max(m0, m1, m2, m3), nz, flags, d
+}
+
+// take adds the lanes' totals to rs, lanes in the fixed order (0+1)+(2+3),
+// and returns their flag word.
+func (rs *Sums) take(ln *lanes16) uint64 {
+	rs.S += (ln.s[0] + ln.s[1]) + (ln.s[2] + ln.s[3])
+	rs.Ent += (ln.e[0] + ln.e[1]) + (ln.e[2] + ln.e[3])
+	rs.Dist += (ln.t[0] + ln.t[1]) + (ln.t[2] + ln.t[3])
+	rs.Mx16 = max(rs.Mx16, ln.m)
+	rs.NZ += int64(ln.nz)
+	return ln.flags
 }
 
 // Add16Ref is Add16 one key at a time, in key order, with its flag as a

@@ -76,55 +76,14 @@ func (rs *Sums) add16AVX2(t *Half, run []uint16, d, step float64) uint64 {
 		flags |= bad4(v, e, low) | bad4(u, e, low)
 		nz += bits.OnesCount64((((v&lanes16Mag)+lanes16Mag)&lanes16Top)>>15 | ((u&lanes16Mag)+lanes16Mag)&lanes16Top)
 	}
-	var sv, tv [4]float64
-	s4.Store(&sv)
-	t4.Store(&tv)
+	ln := lanes16{m: 0, nz: nz, flags: flags, d: d + float64(n)*step}
+	s4.Store(&ln.s)
+	t4.Store(&ln.t)
+	ln.e = [4]float64{e0, e1, e2, e3}
 	var mv [8]uint16
 	mx.Store(&mv)
-	s0, s1, s2, s3 := sv[0], sv[1], sv[2], sv[3]
-	t0, t1, t2, t3 := tv[0], tv[1], tv[2], tv[3]
-	m0 := max(mv[0], mv[1], mv[2], mv[3], mv[4], mv[5], mv[6], mv[7])
-	d += float64(n) * step
+	ln.m = max(mv[0], mv[1], mv[2], mv[3], mv[4], mv[5], mv[6], mv[7])
 	// the rest as in add16Scalar: a group of four, then single keys into lane 0
-	val := t.Val
-	m := len(run) &^ 3
-	for i := n; i < m; i += 4 {
-		v := load4(run, i)
-		h0, h1, h2, h3 := uint16(v), uint16(v>>16), uint16(v>>32), uint16(v>>48)
-		x0, x1, x2, x3 := float64(val[h0]), float64(val[h1]), float64(val[h2]), float64(val[h3])
-		s0 += x0
-		s1 += x1
-		s2 += x2
-		s3 += x3
-		e0 += xl[h0]
-		e1 += xl[h1]
-		e2 += xl[h2]
-		e3 += xl[h3]
-		t0 += x0 * d
-		t1 += x1 * (d + step)
-		t2 += x2 * (d + 2*step)
-		t3 += x3 * (d + 3*step)
-		d += 4 * step
-		flags |= bad4(v, e, low)
-		mv := v & lanes16Mag
-		nz += bits.OnesCount64((mv + lanes16Mag) & lanes16Top)
-		m0 = max(m0, uint16(mv), uint16(mv>>16), uint16(mv>>32), uint16(mv>>48))
-	}
-	for _, h := range run[m:] {
-		x := float64(val[h])
-		s0 += x
-		e0 += xl[h]
-		t0 += x * d
-		d += step
-		flags |= bad4(uint64(h), e, low)
-		h &= 0x7fff
-		m0 = max(m0, h)
-		nz += int((uint32(h) + 0x7fff) >> 15)
-	}
-	rs.S += (s0 + s1) + (s2 + s3)
-	rs.Ent += (e0 + e1) + (e2 + e3)
-	rs.Dist += (t0 + t1) + (t2 + t3)
-	rs.Mx16 = max(rs.Mx16, m0)
-	rs.NZ += int64(nz)
-	return flags
+	ln.add(t, run[n:], step)
+	return rs.take(&ln)
 }
