@@ -62,42 +62,39 @@ func BenchmarkAdd16(b *testing.B) {
 	}
 }
 
-func BenchmarkSum16(b *testing.B) {
-	rows, _, t := benchRows(64)
-	b.Run("ref", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
+// refFast names the two sub-benchmarks of a reference loop and its fast path.
+var refFast = [2]string{"ref", "fast"}
+
+// benchEach runs fn(i) b.N times, i counting up, as sub-benchmark name over
+// bytes bytes an op.
+func benchEach(b *testing.B, name string, bytes int64, fn func(i int)) {
+	b.Run(name, func(b *testing.B) {
+		b.SetBytes(bytes)
 		for i := range b.N {
-			var s Sums
-			s.Sum16Ref(t, rows[i&63])
-			sink += s.S
-		}
-	})
-	b.Run("fast", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
-		for i := range b.N {
-			var s Sums
-			s.Sum16(t, rows[i&63])
-			sink += s.S
+			fn(i)
 		}
 	})
 }
 
+func BenchmarkSum16(b *testing.B) {
+	rows, _, t := benchRows(64)
+	for j, sum := range [2]func(*Sums, []uint16){func(s *Sums, r []uint16) { s.Sum16Ref(t, r) }, func(s *Sums, r []uint16) { s.Sum16(t, r) }} {
+		benchEach(b, refFast[j], 2*benchKeys, func(i int) {
+			var s Sums
+			sum(&s, rows[i&63])
+			sink += s.S
+		})
+	}
+}
+
 func BenchmarkFinite16(b *testing.B) {
 	rows, _, t := benchRows(64)
-	b.Run("ref", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
-		for i := range b.N {
-			k, _, _ := Finite16Ref(rows[i&63], t.Exp)
+	for j, finite := range [2]func([]uint16, uint16) (int, bool, bool){Finite16Ref, Finite16} {
+		benchEach(b, refFast[j], 2*benchKeys, func(i int) {
+			k, _, _ := finite(rows[i&63], t.Exp)
 			sink += float64(k)
-		}
-	})
-	b.Run("fast", func(b *testing.B) {
-		b.SetBytes(2 * benchKeys)
-		for i := range b.N {
-			k, _, _ := Finite16(rows[i&63], t.Exp)
-			sink += float64(k)
-		}
-	})
+		})
+	}
 }
 
 // BenchmarkAllZero16 scans the forbidden (all-zero) part of causal rows:
@@ -107,22 +104,13 @@ func BenchmarkAllZero16(b *testing.B) {
 	for i := range rows {
 		rows[i] = make([]uint16, benchKeys/2+i)
 	}
-	b.Run("ref", func(b *testing.B) {
-		b.SetBytes(benchKeys)
-		for i := range b.N {
-			if AllZero16Ref(rows[i&63]) {
+	for j, zero := range [2]func([]uint16) bool{AllZero16Ref, AllZero16} {
+		benchEach(b, refFast[j], benchKeys, func(i int) {
+			if zero(rows[i&63]) {
 				sink++
 			}
-		}
-	})
-	b.Run("fast", func(b *testing.B) {
-		b.SetBytes(benchKeys)
-		for i := range b.N {
-			if AllZero16(rows[i&63]) {
-				sink++
-			}
-		}
-	})
+		})
+	}
 }
 
 // BenchmarkMlogmSum is the Jensen-Shannon term of two causal rows: the
