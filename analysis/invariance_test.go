@@ -12,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -298,17 +299,7 @@ func TestInvarianceFixturesMatchTorch(t *testing.T) {
 
 func pythonWithTorch(t *testing.T) string {
 	t.Helper()
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
-	if err := exec.Command(py, "-c", "import torch, numpy").Run(); err != nil {
-		if os.Getenv("CI") != "" {
-			t.Fatalf("%s cannot import torch and numpy (%v); scripts/install-deps.sh installs them", py, err)
-		}
-		t.Skipf("%s cannot import torch and numpy: %v", py, err)
-	}
-	return py
+	return testpy.Require(t, "torch", "numpy")
 }
 
 func TestInvarianceDiff(t *testing.T) {

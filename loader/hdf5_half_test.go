@@ -4,10 +4,11 @@ package loader
 
 import (
 	"math"
-	"os"
 	"os/exec"
 	"path/filepath"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // TestHDF5Float16AllPatterns: every float16 bit pattern written by h5py (as
@@ -16,10 +17,7 @@ import (
 // conversion (testdata/fixtures/conv/f16_to_f32_numpy.npz, numpy 1.24),
 // NaN payloads included.
 func TestHDF5Float16AllPatterns(t *testing.T) {
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
+	py := testpy.Path()
 	path := filepath.Join(t.TempDir(), "bits.h5")
 	script := `import sys, numpy as np, h5py
 bits = np.arange(65536, dtype=np.uint32).astype(np.uint16)

@@ -9,6 +9,8 @@ import (
 	"strings"
 	"syscall"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // The hostile corpus: testdata/hostile (written by its gen.py with numpy,
@@ -19,19 +21,12 @@ import (
 
 const hostileDir = "../testdata/hostile"
 
-func hostilePython() string {
-	if p := os.Getenv("HEED_PYTHON"); p != "" {
-		return p
-	}
-	return "/usr/bin/python3"
-}
-
 // hostileBig runs testdata/hostile/gen.py --big into a temporary directory
 // and returns the path of the file it wrote (the test is skipped without
 // Debian's python3 and numpy).
 func hostileBig(t *testing.T, only string) string {
 	t.Helper()
-	py := hostilePython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy, h5py").Run(); err != nil {
 		t.Skipf("%s cannot import numpy and h5py (set HEED_PYTHON): %v", py, err)
 	}

@@ -2,29 +2,20 @@ package loader_test
 
 import (
 	"fmt"
-	"os"
 	"os/exec"
 	"path/filepath"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
-
-// benchPython is the interpreter that writes the benchmark files (numpy,
-// h5py): HEED_PYTHON, else Debian's.
-func benchPython() string {
-	if p := os.Getenv("HEED_PYTHON"); p != "" {
-		return p
-	}
-	return "/usr/bin/python3"
-}
 
 // benchContainers writes bench/gen_containers.py's files (one seeded float16
 // causal array [2, 4, seq, seq] in every container) into a new directory.
 func benchContainers(b *testing.B, seq int) string {
 	b.Helper()
 	dir := b.TempDir()
-	out, err := exec.Command(benchPython(), "../bench/gen_containers.py", dir, "--layers", "2", "--heads", "4",
+	out, err := exec.Command(testpy.Path(), "../bench/gen_containers.py", dir, "--layers", "2", "--heads", "4",
 		"--seq", fmt.Sprint(seq)).CombinedOutput()
 	if err != nil {
 		b.Skipf("bench/gen_containers.py (numpy, h5py) failed: %v\n%s", err, out)

@@ -14,6 +14,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/views"
 	"golang.org/x/image/font"
 	"golang.org/x/image/font/gofont/gomono"
@@ -271,10 +272,7 @@ func TestPNGText(t *testing.T) {
 		}
 	}
 	// Pillow, when Debian's python3 has it, reads the same chunks.
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import PIL").Run(); err != nil {
 		t.Logf("skipping the Pillow cross-check: %s has no PIL", py)
 		return

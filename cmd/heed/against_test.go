@@ -207,16 +207,7 @@ for name, leak in (("ok", -1), ("leak", 1)):
 `
 
 func TestAgainstReadmeSnippet(t *testing.T) {
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
-	if err := exec.Command(py, "-c", "import torch, numpy").Run(); err != nil {
-		if os.Getenv("CI") != "" {
-			t.Fatalf("%s cannot import torch and numpy: %v", py, err)
-		}
-		t.Skipf("%s cannot import torch and numpy: %v", py, err)
-	}
+	py := torchPython(t)
 	code, from := snippet(t)
 	dir := t.TempDir()
 	script := filepath.Join(dir, "pair.py")

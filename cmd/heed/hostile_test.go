@@ -10,6 +10,8 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // TestMain lets the test binary stand in for heed: with HEED_TEST_AS_HEED=1
@@ -69,7 +71,7 @@ func TestHostileCommands(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs heed in subprocesses on generated zip bombs")
 	}
-	py := heedPython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy, h5py").Run(); err != nil {
 		t.Skipf("%s cannot import numpy and h5py (set HEED_PYTHON)", py)
 	}

@@ -11,6 +11,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -315,7 +316,7 @@ func TestInfoRulesAreChecks(t *testing.T) {
 	// numpy writes rows that sum to 1 with one negative weight (-0.25 at
 	// query 1, key 0 of head 0); check must report rule negative, which info
 	// lists for the block
-	py := heedPython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
 		t.Skipf("skipping the negative cell: %s cannot import numpy (set HEED_PYTHON)", py)
 	}

@@ -13,15 +13,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/picture"
 )
-
-func heedPython() string {
-	if p := os.Getenv("HEED_PYTHON"); p != "" {
-		return p
-	}
-	return "/usr/bin/python3"
-}
 
 // numpyForbidden asks numpy which cells of one head carry mass although the
 // causal rule forbids them (k > q, weight > heed's default tolerance 1e-6),
@@ -29,7 +23,7 @@ func heedPython() string {
 // head query key" (its metadata).
 func numpyForbidden(t *testing.T, file string, layer, batch, head int) [][]int {
 	t.Helper()
-	py := heedPython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
 		t.Skipf("skipping: %s cannot import numpy (Debian's python3-numpy; set HEED_PYTHON)", py)
 	}
@@ -239,7 +233,7 @@ func TestRenderFigures(t *testing.T) {
 // TestRenderPagesLongSequences: a 300-token export's Map and Trace show 64
 // positions ending at the query, and say so; --from/--to pick others.
 func TestRenderPagesLongSequences(t *testing.T) {
-	py := heedPython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
 		t.Skipf("skipping: %s cannot import numpy", py)
 	}

@@ -15,6 +15,8 @@ import (
 	"strings"
 	"syscall"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // runSplit executes the root command and returns stdout, stderr and the exit code.
@@ -265,7 +267,7 @@ func TestShardFlagErrors(t *testing.T) {
 // definition heed documents, Clark et al. 2019).
 func numberedSet(t *testing.T, n int) (string, [][]float64) {
 	t.Helper()
-	py := heedPython()
+	py := testpy.Path()
 	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
 		t.Skipf("%s cannot import numpy (set HEED_PYTHON)", py)
 	}

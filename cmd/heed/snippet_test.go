@@ -10,6 +10,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -100,17 +101,7 @@ json.dump({"encoder_layer0": w.tolist(), "source": src_words}, open("ref.json", 
 
 func torchPython(t *testing.T) string {
 	t.Helper()
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
-	if err := exec.Command(py, "-c", "import torch, numpy").Run(); err != nil {
-		if os.Getenv("CI") != "" {
-			t.Fatalf("%s cannot import torch and numpy: %v", py, err)
-		}
-		t.Skipf("skipping: %s cannot import torch and numpy (%v); set HEED_PYTHON to a python with PyTorch", py, err)
-	}
-	return py
+	return testpy.Require(t, "torch", "numpy")
 }
 
 // TestExportSnippet runs the README's snippet exactly as printed (with

@@ -14,6 +14,7 @@ import (
 	"testing"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // TestTraceTextUnnormalised: the demo's gradient relevance comes from the
@@ -160,7 +161,7 @@ print(json.dumps({"id": int(np.argmax(z)), "prob": float(p.max())}))
 // future, not given a share of 0.
 func TestTracePrediction(t *testing.T) {
 	file := filepath.Join(t.TempDir(), "pred.npz")
-	out, err := exec.Command(heedPython(), "-c", predictScript, file).Output()
+	out, err := exec.Command(testpy.Path(), "-c", predictScript, file).Output()
 	if err != nil {
 		t.Fatalf("numpy: %v", err)
 	}

@@ -20,6 +20,7 @@ var allowed = map[string][]string{
 	"internal/bigmem":  {},
 	"internal/words":   {},
 	"internal/kernels": {},
+	"internal/testpy":  {},
 	"views":            {},
 	"analysis":         {"loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"picture":          {"views"},
