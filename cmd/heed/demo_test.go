@@ -10,9 +10,9 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
-	"time"
 
 	"github.com/heed-dev/heed/demo"
+	"github.com/heed-dev/heed/internal/termtest"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -121,27 +121,9 @@ func TestDemoTUI(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	session := fmt.Sprintf("heed-demo-test-%d", os.Getpid())
-	done := filepath.Join(dir, "done")
-	script := fmt.Sprintf("%s demo; echo exit=$? > %s; sleep 60", shellQuote(bin), shellQuote(done))
-	tmux := func(args ...string) string {
-		out, err := exec.Command("tmux", args...).CombinedOutput()
-		if err != nil {
-			t.Fatalf("tmux %v: %v\n%s", args, err, out)
-		}
-		return string(out)
-	}
-	tmux("new-session", "-d", "-s", session, "-x", "100", "-y", "30", "env", "TERM=xterm-256color", "sh", "-c", script)
-	defer exec.Command("tmux", "kill-session", "-t", session).Run()
-	// wait for the first frame with the statistics done (no fixed timing is asserted)
-	var screen string
-	for i := 0; i < 200; i++ {
-		screen = tmux("capture-pane", "-t", session, "-p")
-		if strings.Contains(screen, "finding") {
-			break
-		}
-		time.Sleep(100 * time.Millisecond)
-	}
+	tm := termtest.New(t).Start("demo", termtest.Window{W: 100, H: 30, Env: []string{"TERM=xterm-256color"}}, bin, "demo")
+	// the first frame with the statistics done (no fixed timing is asserted)
+	screen := tm.See("finding")
 	first := strings.SplitN(screen, "\n", 2)[0]
 	if !strings.Contains(first, "[2 Map]") || !strings.Contains(first, "+1 leak: right of the diagonal") {
 		t.Errorf("tab bar %q: want the Map active and the hint", first)
@@ -149,18 +131,11 @@ func TestDemoTUI(t *testing.T) {
 	if !strings.Contains(screen, fmt.Sprintf(":q%d:k%d", loc.Query, loc.Key)) || !strings.Contains(screen, "forbidden by causal") {
 		t.Errorf("the Map does not start on the leaking cell q%d k%d (forbidden by causal):\n%s", loc.Query, loc.Key, screen)
 	}
-	tmux("send-keys", "-t", session, "q")
-	for i := 0; i < 100; i++ {
-		if _, err := os.Stat(done); err == nil {
-			break
-		}
-		time.Sleep(100 * time.Millisecond)
+	tm.Keys("q")
+	if st := tm.Exited(); st != "0" {
+		t.Fatalf("heed demo exited %s after q, want 0", st)
 	}
-	b, err := os.ReadFile(done)
-	if err != nil || strings.TrimSpace(string(b)) != "exit=0" {
-		t.Fatalf("heed demo did not exit 0 after q: %q %v", b, err)
-	}
-	screen = strings.Join(strings.Fields(tmux("capture-pane", "-t", session, "-p", "-J")), " ")
+	screen = strings.Join(strings.Fields(tm.History()), " ")
 	if !strings.Contains(screen, strings.Join(strings.Fields(res.Demo.Hint), " ")) {
 		t.Errorf("after quitting, the screen lacks the hint %q:\n%s", res.Demo.Hint, screen)
 	}

@@ -1,13 +1,11 @@
 package main
 
 import (
-	"fmt"
-	"os"
-	"os/exec"
 	"path/filepath"
 	"strings"
 	"testing"
-	"time"
+
+	"github.com/heed-dev/heed/internal/termtest"
 )
 
 // Where no UI can run (output to a pipe, as in run's buffer), heed FILE
@@ -28,26 +26,13 @@ func TestNoTerminalGivesTextReport(t *testing.T) {
 // TERM=dumb in a real terminal (tmux) gives the text report, not the UI,
 // and heed exits by itself.
 func TestDumbTerminalGivesTextReport(t *testing.T) {
-	dir, bin := terminalTest(t)
+	_, bin := terminalTest(t)
 	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
-	done := filepath.Join(dir, "done")
-	session := fmt.Sprintf("heed-dumb-test-%d", os.Getpid())
-	script := fmt.Sprintf("%s %s; echo exit=$? > %s; sleep 60", shellQuote(bin), shellQuote(file), shellQuote(done))
-	if out, err := exec.Command("tmux", "new-session", "-d", "-s", session, "-x", "120", "-y", "60", "env", "TERM=dumb", "sh", "-c", script).CombinedOutput(); err != nil {
-		t.Fatalf("tmux: %v\n%s", err, out)
+	tm := termtest.New(t).Start("dumb", termtest.Window{W: 120, H: 60, Env: []string{"TERM=dumb"}}, bin, file)
+	if st := tm.Exited(); st != "0" {
+		t.Fatalf("heed with TERM=dumb exited %s, want 0 by itself", st)
 	}
-	defer exec.Command("tmux", "kill-session", "-t", session).Run()
-	for i := 0; i < 300; i++ {
-		if _, err := os.Stat(done); err == nil {
-			break
-		}
-		time.Sleep(100 * time.Millisecond)
-	}
-	b, err := os.ReadFile(done)
-	if err != nil || strings.TrimSpace(string(b)) != "exit=0" {
-		t.Fatalf("heed with TERM=dumb did not exit 0 by itself: %q %v", b, err)
-	}
-	screen, _ := exec.Command("tmux", "capture-pane", "-t", session, "-p", "-J", "-S", "-200").Output()
+	screen := tm.History()
 	s := strings.Join(strings.Fields(string(screen)), " ")
 	for _, want := range []string{"heed check: ", "TERM is dumb, so this is the text report", "run heed in a terminal for the UI"} {
 		if !strings.Contains(s, want) {

@@ -20,6 +20,8 @@ import (
 
 	"github.com/spf13/cobra"
 	gossh "golang.org/x/crypto/ssh"
+
+	"github.com/heed-dev/heed/internal/termtest"
 )
 
 // TestShareJourney is the journey of issue 6 as a new user would take it,
@@ -68,70 +70,45 @@ func TestShareJourney(t *testing.T) {
 	port := fmt.Sprint(ln.Addr().(*net.TCPAddr).Port)
 	ln.Close()
 
-	sock := filepath.Join(dir, "tmux.sock") // a tmux server of our own
-	tmux := func(args ...string) string {
-		t.Helper()
-		out, err := exec.Command("tmux", append([]string{"-S", sock}, args...)...).CombinedOutput()
-		if err != nil {
-			t.Fatalf("tmux %v: %v\n%s", args, err, out)
-		}
-		return string(out)
-	}
-	defer exec.Command("tmux", "-S", sock, "kill-server").Run()
-	wait := func(pane, want string) string {
-		t.Helper()
-		deadline := time.Now().Add(60 * time.Second) // only against a hang
-		var screen string
-		for time.Now().Before(deadline) {
-			screen = tmux("capture-pane", "-t", pane, "-p")
-			if strings.Contains(screen, want) {
-				return screen
-			}
-			time.Sleep(50 * time.Millisecond)
-		}
-		t.Fatalf("%s never showed %q; screen:\n%s", pane, want, screen)
-		return ""
-	}
-	env := []string{"env", "HOME=" + home, "XDG_CONFIG_HOME=", "XDG_CACHE_HOME=", "TERM=xterm-256color"}
+	env := []string{"HOME=" + home, "XDG_CONFIG_HOME=", "XDG_CACHE_HOME=", "TERM=xterm-256color"}
 	file, _ := filepath.Abs(filepath.Join(casesDir, "shift_bad.npz"))
-	presenter := strings.Join(append(env, bin, "share", file, "--follow", "--listen", "127.0.0.1:"+port,
-		"--at", "decoder:L1:H2:q5", "--background", "dark", ";", "sleep", "600"), " ")
 	cwd := filepath.Join(dir, "cwd") // the presenter's working directory: heed writes nothing there
 	if err := os.Mkdir(cwd, 0o700); err != nil {
 		t.Fatal(err)
 	}
-	tmux("new-session", "-d", "-s", "presenter", "-c", cwd, "-x", "120", "-y", "36", "sh", "-c", presenter)
-	wait("presenter", "sharing on 127.0.0.1:"+port)
+	srv := termtest.New(t)
+	presenter := srv.Start("presenter", termtest.Window{W: 120, H: 36, Env: env, Dir: cwd}, bin, "share", file, "--follow",
+		"--listen", "127.0.0.1:"+port, "--at", "decoder:L1:H2:q5", "--background", "dark")
+	presenter.See("sharing on 127.0.0.1:" + port)
 
 	sshOpts := []string{"/usr/bin/ssh", "-F", "/dev/null", "-p", port, "-o", "IdentitiesOnly=yes", "-o", "IdentityAgent=none",
 		"-o", "StrictHostKeyChecking=accept-new", "-o", "UserKnownHostsFile=" + filepath.Join(dir, "known_hosts")}
-	guest := strings.Join(append(append([]string{"env", "TERM=xterm-256color"}, sshOpts...), "-i", key, "localhost", ";", "echo", "SSH-EXIT=$?", ";", "sleep", "600"), " ")
-	tmux("new-session", "-d", "-s", "guest", "-x", "100", "-y", "30", "sh", "-c", guest)
-	screen := wait("guest", "following the presenter (decoder:L1:H2:B0:q5:k5)")
+	guest := srv.Start("guest", termtest.Window{W: 100, H: 30, Env: []string{"TERM=xterm-256color"}}, append(sshOpts, "-i", key, "localhost")...)
+	screen := guest.See("following the presenter (decoder:L1:H2:B0:q5:k5)")
 	for _, w := range []string{"Map", "■ leak"} {
 		if !strings.Contains(screen, w) {
 			t.Errorf("the guest's TUI lacks %q:\n%s", w, screen)
 		}
 	}
-	wait("presenter", "1 guest follows you")
+	presenter.See("1 guest follows you")
 	// The presenter moves a layer down: the guest follows.
-	tmux("send-keys", "-t", "presenter", "[")
-	wait("guest", "following the presenter (decoder:L0:H2:B0:q5:k5)")
+	presenter.Keys("[")
+	guest.See("following the presenter (decoder:L0:H2:B0:q5:k5)")
 	// The guest looks around alone, the presenter moves on, the guest rejoins.
-	tmux("send-keys", "-t", "guest", "F")
-	wait("guest", "on your own  ·") // the status of a guest on their own
-	tmux("send-keys", "-t", "presenter", ">")
-	screen = wait("guest", "F: follow the presenter again (at decoder:L0:H3:B0:q5:k5)")
+	guest.Keys("F")
+	guest.See("on your own  ·") // the status of a guest on their own
+	presenter.Keys(">")
+	screen = guest.See("F: follow the presenter again (at decoder:L0:H3:B0:q5:k5)")
 	if !strings.Contains(screen, " decoder:L0:H2:B0:q5:k5 ") {
 		t.Errorf("a guest on their own was moved:\n%s", screen)
 	}
-	tmux("send-keys", "-t", "guest", "F")
-	wait("guest", "following the presenter (decoder:L0:H3:B0:q5:k5)")
+	guest.Keys("F")
+	guest.See("following the presenter (decoder:L0:H3:B0:q5:k5)")
 
 	// The guest follows the screen and the zoom too, not only the location:
 	// the presenter goes to the Survey and back to the Map zoomed in.
-	tmux("send-keys", "-t", "presenter", "1")
-	wait("guest", "Survey · decoder")
+	presenter.Keys("1")
+	guest.See("Survey · decoder")
 	// The terminals differ in size, so the guest shows the nearest scale it
 	// can draw: each zoom of the presenter's zooms the guest in too.
 	zoomRe := regexp.MustCompile(`zoom (\d+):(\d+)`)
@@ -144,27 +121,27 @@ func TestShareJourney(t *testing.T) {
 		b, _ := strconv.ParseFloat(m[2], 64)
 		return a / b
 	}
-	tmux("send-keys", "-t", "presenter", "2")
-	prev := ratio(wait("guest", "[2 Map]"))
+	presenter.Keys("2")
+	prev := ratio(guest.See("[2 Map]"))
 	for i := 0; i < 1; i++ { // the export is small: one step in reaches the largest zoom
-		tmux("send-keys", "-t", "presenter", "+")
+		presenter.Keys("+")
 		deadline := time.Now().Add(30 * time.Second) // only against a hang
-		for ratio(tmux("capture-pane", "-t", "guest", "-p")) <= prev && time.Now().Before(deadline) {
+		for ratio(guest.Screen()) <= prev && time.Now().Before(deadline) {
 			time.Sleep(50 * time.Millisecond)
 		}
-		now := ratio(tmux("capture-pane", "-t", "guest", "-p"))
+		now := ratio(guest.Screen())
 		if now <= prev {
-			t.Fatalf("the presenter zoomed in, the guest stayed at %v:\n%s", prev, tmux("capture-pane", "-t", "guest", "-p"))
+			t.Fatalf("the presenter zoomed in, the guest stayed at %v:\n%s", prev, guest.Screen())
 		}
 		prev = now
 	}
 	// The guest's help lists the follow key.
-	tmux("send-keys", "-t", "guest", "F", "?")
-	wait("guest", "follow the presenter / look around alone")
-	tmux("send-keys", "-t", "guest", "Escape")
-	wait("guest", "→ k 5") // the Map again: the help closed (ESC and F at once would read as alt+F)
-	tmux("send-keys", "-t", "guest", "F")
-	wait("guest", "following the presenter (")
+	guest.Keys("F", "?")
+	guest.See("follow the presenter / look around alone")
+	guest.Keys("Escape")
+	guest.See("→ k 5") // the Map again: the help closed (ESC and F at once would read as alt+F)
+	guest.Keys("F")
+	guest.See("following the presenter (")
 
 	// The presenter's status line carries the host key's fingerprint, as
 	// ssh-keygen -l prints it for the key heed created.
@@ -172,7 +149,7 @@ func TestShareJourney(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	wait("presenter", "host key "+strings.Fields(string(hk))[1])
+	presenter.See("host key " + strings.Fields(string(hk))[1])
 
 	// A wrong key is refused.
 	out, err := exec.Command(sshOpts[0], append(append(sshOpts[1:], "-o", "BatchMode=yes", "-i", wrong), "localhost", "true")...).CombinedOutput()
@@ -181,10 +158,12 @@ func TestShareJourney(t *testing.T) {
 	}
 
 	// Quitting the presenter's TUI ends the guest's session cleanly.
-	tmux("send-keys", "-t", "presenter", "q")
-	wait("guest", "the presenter stopped sharing")
-	wait("guest", "SSH-EXIT=0")
-	wait("presenter", "heed share: stopped (1 session was open)")
+	presenter.Keys("q")
+	guest.See("the presenter stopped sharing")
+	if st := guest.Exited(); st != "0" {
+		t.Errorf("ssh exited %s, want 0", st)
+	}
+	presenter.See("heed share: stopped (1 session was open)")
 
 	// A new user's defaults: host key 0600 under ~/.config/heed, the log
 	// under ~/.cache/heed with the guest's key fingerprint.
