@@ -5,8 +5,6 @@ import (
 	"math"
 	"strconv"
 	"strings"
-
-	"github.com/heed-dev/heed/views"
 )
 
 // FollowState is what a guest of heed share needs to see what the
@@ -81,16 +79,9 @@ func (m *Model) zoomForScale(mag, block int) int {
 	if err != nil {
 		return m.sel.Map.Zoom
 	}
-	bw, bh := m.bodySize()
 	want := math.Log(float64(mag) / float64(block))
 	best, bestD := 0, math.Inf(1)
-	for z := 0; z < 64; z++ {
-		opt := m.sel.Map
-		opt.Zoom, opt.CursorQ, opt.CursorK = z, m.sel.Q, m.sel.K
-		l := views.LayoutMap(md, bw, bh, opt, m.st)
-		if l.TooSmall || l.Zoom != z {
-			break
-		}
+	for z, l := range m.zoomLayouts(md) {
 		if d := math.Abs(math.Log(float64(min(l.MagX, l.MagY))/float64(l.Block)) - want); d < bestD-1e-9 {
 			best, bestD = z, d
 		}

@@ -2,6 +2,7 @@ package tui
 
 import (
 	"fmt"
+	"iter"
 
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/internal/words"
@@ -96,15 +97,8 @@ func span(a, b int) string {
 // zoomFor returns the largest zoom, up to the first at one cell a pixel,
 // at which the Map's view spans box.
 func (m *Model) zoomFor(md *views.MapData, box analysis.Extent) int {
-	bw, bh := m.bodySize()
 	best := 0
-	for z := 0; z < 64; z++ {
-		opt := m.sel.Map
-		opt.Zoom, opt.CursorQ, opt.CursorK = z, m.sel.Q, m.sel.K
-		l := views.LayoutMap(md, bw, bh, opt, m.st)
-		if l.TooSmall || l.Zoom != z {
-			break
-		}
+	for z, l := range m.zoomLayouts(md) {
 		if l.PageRows() < box.Q1-box.Q0+1 || l.PageCols() < box.K1-box.K0+1 {
 			break
 		}
@@ -114,6 +108,23 @@ func (m *Model) zoomFor(md *views.MapData, box analysis.Extent) int {
 		}
 	}
 	return best
+}
+
+// zoomLayouts yields the Map's layout at each zoom step of this terminal,
+// from the first (the whole matrix) to the last it can draw, with the
+// cursor where the selection has it.
+func (m *Model) zoomLayouts(md *views.MapData) iter.Seq2[int, views.MapLayout] {
+	return func(yield func(int, views.MapLayout) bool) {
+		bw, bh := m.bodySize()
+		for z := 0; z < 64; z++ {
+			opt := m.sel.Map
+			opt.Zoom, opt.CursorQ, opt.CursorK = z, m.sel.Q, m.sel.K
+			l := views.LayoutMap(md, bw, bh, opt, m.st)
+			if l.TooSmall || l.Zoom != z || !yield(z, l) {
+				return
+			}
+		}
+	}
 }
 
 // centre asks the Map for an origin that puts the cursor in the middle of
