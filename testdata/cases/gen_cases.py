@@ -379,7 +379,10 @@ class EncDec(torch.nn.Module):
         return {k: torch.stack(v).detach().numpy() for k, v in ws.items()}
 
 
-def case_cross_padding(out, seed):
+def encdec_inputs(seed):
+    """The padded inputs of the cross-attention cases: 10 source and 8 target
+    positions, item 1 with 7 real source tokens and 6 real targets, a seeded
+    EncDec(2) and its inputs and key padding masks."""
     S, Tt = 10, 8
     sv = np.ones((B, S), bool)
     sv[1, -3:] = False
@@ -390,12 +393,13 @@ def case_cross_padding(out, seed):
     g = torch.Generator().manual_seed(seed + 1)
     src, tgt = 1.5 * torch.randn(B, S, E, generator=g), 1.5 * torch.randn(B, Tt, E, generator=g)
     skpm, tkpm = torch.from_numpy(~sv), torch.from_numpy(~tv)
-    with torch.no_grad():
-        bad = m(src, tgt, skpm, tkpm, None)  # the encoder padding mask is not passed to cross-attention
-        good = m(src, tgt, skpm, tkpm, skpm)
-    a = bad["cross"]
-    forb = np.broadcast_to((~sv)[None, :, None, None, :], a.shape)
-    f = leaks(a, forb, tv, "padding", "cross", positional=False)
+    return S, Tt, sv, tv, m, src, tgt, skpm, tkpm
+
+
+def encdec_cases(bad, good, sv, tv):
+    """The bad and good exports of a cross-attention case: every block's
+    weights, both sides' valid masks and tokens, and the metadata."""
+    S, Tt = sv.shape[1], tv.shape[1]
     mb = meta({
         "encoder": {"kind": "bidirectional", "query": "source", "key": "source", "axes": "layer batch head query key"},
         "decoder": {"kind": "causal", "query": "target", "key": "target", "axes": "layer batch head query key"},
@@ -407,6 +411,18 @@ def case_cross_padding(out, seed):
         arr.update({"valid/source": sv.astype(np.uint8), "valid/target": tv.astype(np.uint8),
                     "tokens/source": toks(S, 5), "tokens/target": toks(Tt), "meta": mb})
         cases[n] = arr
+    return cases
+
+
+def case_cross_padding(out, seed):
+    S, Tt, sv, tv, m, src, tgt, skpm, tkpm = encdec_inputs(seed)
+    with torch.no_grad():
+        bad = m(src, tgt, skpm, tkpm, None)  # the encoder padding mask is not passed to cross-attention
+        good = m(src, tgt, skpm, tkpm, skpm)
+    a = bad["cross"]
+    forb = np.broadcast_to((~sv)[None, :, None, None, :], a.shape)
+    f = leaks(a, forb, tv, "padding", "cross", positional=False)
+    cases = encdec_cases(bad, good, sv, tv)
     return cases, [f], [diag("cross_reads_padding", "cross", f)]
 
 
@@ -439,16 +455,7 @@ def case_cross_causal(out, seed):
     """Cross-attention made causal: the decoder's triangular mask is passed to
     the cross-attention call too, on a rectangular [8 target, 10 source] map
     with source padding (item 1 has 7 real source tokens, 6 real targets)."""
-    S, Tt = 10, 8
-    sv = np.ones((B, S), bool)
-    sv[1, -3:] = False
-    tv = np.ones((B, Tt), bool)
-    tv[1, -2:] = False
-    torch.manual_seed(seed)
-    m = EncDec(2).eval()
-    g = torch.Generator().manual_seed(seed + 1)
-    src, tgt = 1.5 * torch.randn(B, S, E, generator=g), 1.5 * torch.randn(B, Tt, E, generator=g)
-    skpm, tkpm = torch.from_numpy(~sv), torch.from_numpy(~tv)
+    S, Tt, sv, tv, m, src, tgt, skpm, tkpm = encdec_inputs(seed)
     tri = torch.triu(torch.ones(Tt, S, dtype=torch.bool), diagonal=1)  # source k > target q blocked
     with torch.no_grad():
         bad = m(src, tgt, skpm, tkpm, skpm, cross_mask=tri)
@@ -458,17 +465,7 @@ def case_cross_causal(out, seed):
     allowed = np.broadcast_to(sv[None, :, None, None, :], a.shape)
     f = cut_finding(a, allowed, tv, "cross")
     assert f["offsets"] == [[0, f["rows"]]], f["offsets"]  # every cut row stops at k = q
-    mb = meta({
-        "encoder": {"kind": "bidirectional", "query": "source", "key": "source", "axes": "layer batch head query key"},
-        "decoder": {"kind": "causal", "query": "target", "key": "target", "axes": "layer batch head query key"},
-        "cross": {"kind": "cross", "query": "target", "key": "source", "axes": "layer batch head query key"},
-    })
-    cases = {}
-    for n, ws in (("bad", bad), ("good", good)):
-        arr = {f"{k}/attn": v for k, v in ws.items()}
-        arr.update({"valid/source": sv.astype(np.uint8), "valid/target": tv.astype(np.uint8),
-                    "tokens/source": toks(S, 5), "tokens/target": toks(Tt), "meta": mb})
-        cases[n] = arr
+    cases = encdec_cases(bad, good, sv, tv)
     # the good twin has no cut row at all
     assert not cut_finding(good["cross"], allowed, tv, "cross")["layer"]
     return cases, [f], [diag("cross_causal", "cross", f, 0)]
