@@ -74,19 +74,6 @@ func numpyRef(t *testing.T, script string, v any, files ...string) {
 	}
 }
 
-// worstLeakScript finds the largest value strictly above the diagonal (the
-// cells a causal mask forbids) of decoder/attn [layer, batch, head, q, k].
-const worstLeakScript = `
-import json, sys
-import numpy as np
-a = np.load(sys.argv[1])["decoder/attn"]
-n = a.shape[-1]
-up = np.triu(np.ones((n, n), dtype=bool), k=1)
-m = np.where(up, a, -1.0)
-l, b, h, q, k = np.unravel_index(np.argmax(m), m.shape)
-print(json.dumps({"layer": int(l), "batch": int(b), "head": int(h), "q": int(q), "k": int(k)}))
-`
-
 // changeScript ranks heads by the mean over rows of the total variation
 // distance 0.5 * sum_k |A - B| (batch item 0).
 const changeScript = `
@@ -255,7 +242,7 @@ func (f *flow) quit() *Model {
 func TestFlowLeakToWorstCell(t *testing.T) {
 	file := makeExport(t, "leak.npz", "--leak")
 	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, worstLeakScript, &want, file)
+	numpyRef(t, leakBoxScript, &want, file)
 	f := start(t, 80, 24, Options{}, file)
 	f.see("Survey · decoder")
 	f.see("1 finding") // the background checks finished
@@ -496,7 +483,7 @@ print(json.dumps({"keys": [int(k) for k in top], "sum": float(row.sum())}))
 func TestFlowRowInspectorAndNumbers(t *testing.T) {
 	file := makeExport(t, "leak.npz", "--leak")
 	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, worstLeakScript, &want, file)
+	numpyRef(t, leakBoxScript, &want, file)
 	var top struct {
 		Keys []int
 		Sum  float64
@@ -534,7 +521,7 @@ func TestFlowRowInspectorAndNumbers(t *testing.T) {
 func TestFlowTraceChoosesItsQuery(t *testing.T) {
 	leak := makeExport(t, "leak.npz", "--leak")
 	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, worstLeakScript, &want, leak)
+	numpyRef(t, leakBoxScript, &want, leak)
 	f := start(t, 100, 30, Options{}, leak)
 	f.see("1 finding")
 	f.key("4")
