@@ -382,7 +382,7 @@ func TestNewErrors(t *testing.T) {
 	m.Close()
 }
 
-// leakBoxScript writes (when argv has a second path) or reads an export and
+// leakBoxScript reads an export (decoder/attn [layer, batch, head, q, k]) and
 // returns numpy's worst forbidden cell and the bounding box of the cells
 // above the diagonal carrying more than 1e-6 in that head (causal rule:
 // k > q, the common definition of a causal mask).
