@@ -74,6 +74,7 @@ fuzz:
 	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzTorch$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzPartial$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./analysis
+	$(GO) test -run '^$$' -fuzz '^FuzzParseLoc$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./internal/words
 
 # Regenerate reference data with numpy / h5py / torch and compare with what is committed.
 crosscheck:

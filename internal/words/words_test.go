@@ -76,3 +76,23 @@ func TestWithOption(t *testing.T) {
 		}
 	}
 }
+
+// FuzzParseLoc: a location that parses prints (String) to text that parses
+// to the same location, and ParseLoc never panics. Seeds: the corpus in
+// testdata/fuzz/FuzzParseLoc (locations of the README and of heed's
+// output, block names with colons and dots, and broken ones).
+func FuzzParseLoc(f *testing.F) {
+	f.Fuzz(func(t *testing.T, s string) {
+		l, err := ParseLoc(s)
+		if err != nil {
+			return
+		}
+		if l.Block == "" || l.Layer < 0 || l.Head < 0 {
+			t.Fatalf("ParseLoc(%q) = %+v without error: block, layer and head are required", s, l)
+		}
+		back, err := ParseLoc(l.String())
+		if err != nil || back != l {
+			t.Fatalf("ParseLoc(%q) = %+v; ParseLoc(%q) = %+v, %v", s, l, l.String(), back, err)
+		}
+	})
+}
