@@ -9,10 +9,8 @@ import (
 	"path/filepath"
 	"strings"
 
-	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/demo"
 	"github.com/heed-dev/heed/loader"
-	"github.com/heed-dev/heed/tui"
 	"github.com/spf13/cobra"
 )
 
@@ -91,18 +89,11 @@ func runDemo(cmd *cobra.Command, res *demo.Results, tf *tuiFlags) error {
 	}
 	// the tab bar's right end: short enough for 80 columns ("+1 leak: ...")
 	opts.Name = strings.TrimPrefix(res.Runs["leaky"].DecoderMask, "k <= q") + " leak: right of the diagonal"
-	opts.Context = cmd.Context()
 	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
 	if err != nil {
 		return err
 	}
-	m, err := tui.New(set, opts)
-	if err != nil {
-		return err
-	}
-	defer m.Close()
-	p := tea.NewProgram(m, tea.WithContext(cmd.Context()), tea.WithFPS(tui.FPS))
-	if _, err := p.Run(); err != nil && !errors.Is(err, tea.ErrProgramKilled) {
+	if err := runModel(cmd, set, opts); err != nil {
 		return err
 	}
 	fmt.Fprintln(cmd.OutOrStdout(), "heed demo: "+res.Demo.Hint+`. Run "heed demo --export DIR" to try every command on the exports.`)

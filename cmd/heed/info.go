@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"encoding/json"
 	"fmt"
 	"io"
@@ -36,16 +37,11 @@ or the --group given); a grouping heed had to guess is also a warning.`,
 			if err != nil {
 				return err
 			}
-			ex, err := set.Open(0)
+			ex, err := openFirst(cmd.Context(), set)
 			if err != nil {
 				return err
 			}
 			defer ex.Close()
-			// the kind heed check would infer from the data, so that the
-			// rules listed are the ones check judges by
-			if err := analysis.InferExport(cmd.Context(), ex); err != nil {
-				return err
-			}
 			rep := newInfoReport(set, ex)
 			if asJSON {
 				enc := json.NewEncoder(cmd.OutOrStdout())
@@ -381,4 +377,19 @@ func (r *infoReport) writeText(w io.Writer) {
 		}
 	}
 	fmt.Fprintf(w, "\nRules listed are what heed check will test; its findings are evidence to confirm by re-evaluating the model, not verdicts.\n")
+}
+
+// openFirst opens the first example of set with the kinds heed check would
+// infer from its data, so that the rules info lists are the ones check
+// judges by.
+func openFirst(ctx context.Context, set *loader.Set) (*loader.Export, error) {
+	ex, err := set.Open(0)
+	if err != nil {
+		return nil, err
+	}
+	if err := analysis.InferExport(ctx, ex); err != nil {
+		ex.Close()
+		return nil, err
+	}
+	return ex, nil
 }

@@ -59,14 +59,11 @@ func noUI(cmd *cobra.Command) string {
 // and heed check's text, and one line on stderr saying how to get the UI.
 func textReport(cmd *cobra.Command, set *loader.Set, why string) error {
 	out := cmd.OutOrStdout()
-	ex, err := set.Open(0)
+	ex, err := openFirst(cmd.Context(), set)
 	if err != nil {
 		return err
 	}
 	defer ex.Close()
-	if err := analysis.InferExport(cmd.Context(), ex); err != nil {
-		return err
-	}
 	newInfoReport(set, ex).writeText(out)
 	fmt.Fprintln(out)
 	p, err := analysis.AnalyzeSet(cmd.Context(), set.Len(), func(i int) (*loader.Export, string, error) {
@@ -97,6 +94,11 @@ func runTUI(cmd *cobra.Command, args []string, lf *loadFlags, tf *tuiFlags) erro
 	if why := noUI(cmd); why != "" {
 		return textReport(cmd, set, why)
 	}
+	return runModel(cmd, set, opts)
+}
+
+// runModel runs the TUI on set in this terminal until the user quits.
+func runModel(cmd *cobra.Command, set *loader.Set, opts tui.Options) error {
 	opts.Context = cmd.Context()
 	m, err := tui.New(set, opts)
 	if err != nil {
