@@ -17,6 +17,7 @@ type extraAcc struct {
 	allow []bool      // the row's allowed keys
 	sum   []float64   // per statistic: the unit's sum, in row order
 	rows  []int64     // per statistic: the rows it counted
+	r     Row         // what the row functions are given (kept here: no allocation per row)
 }
 
 func newExtraAcc(keys int) *extraAcc {
@@ -45,9 +46,9 @@ func (x *extraAcc) row(row []float32, row16 []uint16, rt *rawTables, rw *rowAt) 
 		}
 		a = int(e)
 	}
-	r := Row{Values: x.vals, Query: rw.q, Pos: rw.p, Allowed: x.allow}
+	x.r = Row{Values: x.vals, Query: rw.q, Pos: rw.p, Allowed: x.allow}
 	for i := range x.stats {
-		if v, ok := x.stats[i].Row(&r); ok {
+		if v, ok := x.stats[i].Row(&x.r); ok {
 			x.sum[i] += v
 			x.rows[i]++
 		}
