@@ -39,6 +39,10 @@ type PartialOptions struct {
 	NoRedundancy   bool  `json:"no_redundancy,omitempty"`
 	NoStats        bool  `json:"no_stats,omitempty"`
 	NoInfer        bool  `json:"no_infer,omitempty"`
+	// Extra names the statistics declared with a row function that the
+	// pass computed (statistic.go); partials computing other ones cannot
+	// be merged.
+	Extra []string `json:"extra,omitempty"`
 }
 
 // BlockPartial is the state of one block. Examples of a set share its
@@ -199,6 +203,17 @@ type HeadAcc struct {
 	Leaks [numMask]LeakAcc `json:"leaks"` // indexed by Rule; [0] unused
 
 	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (cut.go)
+
+	// Extra holds the statistics declared with a row function
+	// (statistic.go), by name: PartialOptions.Extra lists them.
+	Extra map[string]StatAcc `json:"extra,omitempty"`
+}
+
+// StatAcc accumulates a statistic declared with a row function: the exact
+// sum of its row values and the rows counted.
+type StatAcc struct {
+	Sum  Sum   `json:"sum"`
+	Rows int64 `json:"rows"`
 }
 
 // LeakAcc accumulates the forbidden mass of one mask rule.
@@ -324,6 +339,15 @@ func (a *HeadAcc) Merge(o *HeadAcc) {
 		a.Leaks[r].merge(&o.Leaks[r])
 	}
 	a.Cut.merge(&o.Cut)
+	for n, x := range o.Extra {
+		if a.Extra == nil {
+			a.Extra = make(map[string]StatAcc, len(o.Extra))
+		}
+		y := a.Extra[n]
+		y.Sum.Merge(x.Sum)
+		y.Rows += x.Rows
+		a.Extra[n] = y
+	}
 }
 
 func (l *LeakAcc) merge(o *LeakAcc) {
@@ -500,6 +524,11 @@ func (p *Partial) Validate() error {
 			for k := range u {
 				if a := &u[k]; a.Rows < 0 || a.NaNRows < 0 || a.PadRows < 0 || a.GradExamples < 0 {
 					return fmt.Errorf("partial block %s: unit %d batch %d has negative counts", bp.Name, j, k)
+				}
+				for n, x := range u[k].Extra {
+					if !slices.Contains(p.Options.Extra, n) || x.Rows < 0 {
+						return fmt.Errorf("partial block %s: unit %d batch %d: statistic %q not listed in the options, or negative rows", bp.Name, j, k, n)
+					}
 				}
 			}
 		}

@@ -151,6 +151,9 @@ func NewPartial(opt Options) *Partial {
 	po := PartialOptions{Tol: opt.Tol, SumTol: opt.SumTol, SumBelow: opt.SumBelow,
 		RedundancyRows: opt.RedundancyRows, MaxLayerBytes: opt.MaxLayerBytes, NoRedundancy: opt.NoRedundancy,
 		NoStats: opt.NoStats, NoInfer: opt.NoInfer}
+	if !opt.NoStats {
+		po.Extra = rowStatNames()
+	}
 	for _, r := range opt.Rules {
 		po.Rules = append(po.Rules, r.String())
 	}
@@ -257,7 +260,7 @@ func (p *Partial) add(ctx context.Context, ex *loader.Export, example string, op
 				return err
 			}
 		}
-		if err := p.addBlock(ctx, blk, blk, qs, ks, example, opt, prog); err != nil {
+		if err := p.addBlock(ctx, blockIn{blk: blk, rd: blk, qs: qs, ks: ks, example: example}, opt, prog); err != nil {
 			return err
 		}
 	}
@@ -296,7 +299,18 @@ func rowChecks(rs []Rule) (nan, sum, neg bool) {
 	return
 }
 
-func (p *Partial) addBlock(ctx context.Context, blk *loader.Block, rd reader, qs, ks *loader.Side, example string, opt Options, prog *progress) error {
+// blockIn is one block of one example as the pass reads it: the block, what
+// its matrices are read from (the block itself but in tests), its query and
+// key sides, and the example's name.
+type blockIn struct {
+	blk     *loader.Block
+	rd      reader
+	qs, ks  *loader.Side
+	example string
+}
+
+func (p *Partial) addBlock(ctx context.Context, in blockIn, opt Options, prog *progress) error {
+	blk, qs, ks, example := in.blk, in.qs, in.ks, in.example
 	only := maskRules(opt.Rules)
 	var rules *Rules
 	var err error
@@ -329,7 +343,7 @@ func (p *Partial) addBlock(ctx context.Context, blk *loader.Block, rd reader, qs
 		g := geometry(rules, b)
 		bp.Geometry[b].merge(&g)
 	}
-	return runBlock(ctx, bp, blk, rd, rules, example, opt, prog)
+	return runBlock(ctx, bp, in, rules, opt, prog)
 }
 
 func sortBlocks(bs []*BlockPartial) {
@@ -452,7 +466,16 @@ type worker struct {
 	runs    ruleRuns // the rule runs of every row of one batch item (rowpass.go)
 	one     ruleRuns // the rule runs of one row, with an explicit mask
 	stats   bool     // compute the row statistics (not Options.NoStats)
+	// the block's constants the cell loops read: rules.MaxPos(), the leak
+	// tolerance, the example's name
+	base    int
+	tol     float64
+	example string
+	x       *extraAcc // the statistics declared with a row function (extra.go); nil = none
 }
+
+// unitAt names one (layer, batch item, head) of a block.
+type unitAt struct{ l, b, h int }
 
 // unitAcc holds the float64 sums of one (example, layer, head, batch item),
 // computed in row order by one worker: deterministic, then added exactly.
@@ -496,7 +519,8 @@ type layerStore struct {
 	lo, hi             []int32   // [head][row]: first and last nonzero key
 }
 
-func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reader, rules *Rules, example string, opt Options, prog *progress) error {
+func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, opt Options, prog *progress) error {
+	blk, rd, example := in.blk, in.rd, in.example
 	Q, K, H := blk.Queries, blk.Keys, blk.Heads
 	kernels.InitXlogx() // x ln x tables for float16/bfloat16 values (internal/kernels)
 	nw := opt.Workers
@@ -551,7 +575,11 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 	workers := make([]*worker, nw)
 	base := rules.MaxPos()
 	for i := range workers {
-		w := &worker{a: big(Q * K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats}
+		w := &worker{a: big(Q * K), rr: make([]Rule, K), runs: ruleRuns{batch: -1}, stats: !opt.NoStats,
+			base: base, tol: opt.Tol, example: example}
+		if w.stats && len(extraStats) > 0 {
+			w.x = newExtraAcc(K)
+		}
 		if cfg.grad {
 			w.g = big(Q * K)
 		}
@@ -589,7 +617,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, blk *loader.Block, rd reade
 				return fmt.Errorf("%w: %w", ErrCanceled, err)
 			}
 			err := parallel(ctx, workers, H, opt.Background, opt.Yield, func(w *worker, h int) error {
-				return w.head(rd, rules, cfg, bp.Unit(l, h, b), st, l, b, h)
+				return w.head(rd, rules, cfg, bp.Unit(l, h, b), st, unitAt{l, b, h})
 			})
 			if err != nil {
 				return err
@@ -714,7 +742,8 @@ func finite32(row []float32) (int, bool, bool) {
 // head computes everything about one (layer, batch item, head) in one pass
 // over its matrix and adds it to acc; it also copies the rows the redundancy
 // pass needs into st.
-func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st *layerStore, l, b, h int) error {
+func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st *layerStore, at unitAt) error {
+	l, b, h := at.l, at.b, at.h
 	Q, K := rules.Queries, rules.Keys
 	// the gradient and the explicit mask first: a view of the patterns holds
 	// the file open, and no other read may wait behind a pending Close then
@@ -728,7 +757,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			return err
 		}
 	}
-	rt, r16, release, err := w.readRaw16(rd, cfg, l, b, h) // float16/bfloat16 patterns (rawpass.go)
+	rt, r16, release, err := w.readRaw16(rd, cfg, at) // float16/bfloat16 patterns (rawpass.go)
 	if err != nil {
 		return err
 	}
@@ -745,16 +774,14 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 	for r := range w.lo {
 		w.lo[r], w.hi[r] = math.MaxInt, -1
 	}
-	base := rules.MaxPos()
 	masked := false
 	for r := RuleCausal; r < numMask; r++ {
 		masked = masked || rules.active[r]
 	}
 	self := rules.SelfAttention()
-	tol := cfg.tol
 	var row []float32
 	var row16 []uint16
-	at := func(k int) float64 { // float64(row[k]) on either path
+	val := func(k int) float64 { // float64(row[k]) on either path
 		if rt != nil {
 			return float64(rt.Val[row16[k]])
 		}
@@ -816,9 +843,10 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		}
 		cut := cfg.doCut && cutRow(rules, p)
 		ends, rrs := w.rowRuns(rules, b, q, allowRow, cut)
+		rw := rowAt{q: q, p: p, ends: ends, rules: rrs}
 		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1, negRow: negRow}
 		if rt != nil { // rawpass.go
-			if !clean || !w.cells16Clean(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example) {
+			if !clean || !w.cells16Clean(&ra, rt, row16, &rw) {
 				if clean {
 					if badK, fin, negRow = kernels.Finite16(row16, rt.Exp); !fin {
 						u.nanRow(cfg.example, q, badK)
@@ -826,10 +854,13 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 					}
 					ra.negRow = negRow
 				}
-				w.cells16(&ra, rt, row16, ends, rrs, q, p, base, tol, cfg.example)
+				w.cells16(&ra, rt, row16, &rw)
 			}
 		} else {
-			w.cells(&ra, row, ends, rrs, q, p, base, tol, cfg.example) // rowpass.go
+			w.cells(&ra, row, &rw) // rowpass.go
+		}
+		if w.x != nil {
+			w.x.row(row, row16, rt, &rw) // extra.go
 		}
 		if cut && !(cfg.tiny > 0 && rowReachesUnderflow(row, row16, rt, cfg.tiny)) {
 			w.cut.row(w.rr, p, q, ra.nzHi, cfg.example)
@@ -854,25 +885,25 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		u.dist += dist
 		if self {
 			if p-1 >= 0 && p-1 < K {
-				u.prev += at(p - 1)
+				u.prev += val(p - 1)
 				u.posRows++
 			}
 			if p < K {
-				u.self += at(p)
+				u.self += val(p)
 				u.selfRows++
 			}
 			if p != 0 {
-				u.sink += at(0)
+				u.sink += val(0)
 				u.sinkRows++
 			}
 			if ds := rules.DocStart(b, p); ds != p {
-				u.doc += at(ds)
+				u.doc += val(ds)
 				u.docRows++
 			}
 		} else {
-			u.sink += at(0)
+			u.sink += val(0)
 			u.sinkRows++
-			u.doc += at(0)
+			u.doc += val(0)
 			u.docRows++
 		}
 		u.allowCells += nAllow
@@ -921,6 +952,9 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		}
 	}
 	w.commit(acc, cfg)
+	if w.x != nil {
+		w.x.commit(acc)
+	}
 	return nil
 }
 

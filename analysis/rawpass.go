@@ -42,10 +42,10 @@ func rawTablesFor(d loader.DType) *rawTables {
 }
 
 // cells16 is cells (rowpass.go) over a row of patterns.
-func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, ends []int32, rules []Rule, q, p, base int, tol float64, example string) {
-	a := 0
-	for i, e := range ends {
-		b, r := int(e), rules[i]
+func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, rw *rowAt) {
+	a, p := 0, rw.p
+	for i, e := range rw.ends {
+		b, r := int(e), rw.rules[i]
 		switch {
 		case r == RuleNone && !ra.negRow:
 			allowedFast16(ra, t, row, a, b, p, w.stats)
@@ -54,7 +54,7 @@ func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, ends []int32, r
 		case kernels.AllZero16(row[a:b]):
 			w.zeroRun16(ra, t, row, a, b, r)
 		default:
-			w.forbiddenRun16(ra, t, row, a, b, q, p, base, r, tol, example)
+			w.forbiddenRun16(ra, t, row, rw, a, b, r)
 		}
 		a = b
 	}
@@ -124,7 +124,8 @@ func finish16(ra *rowAcc, rs *runSums, t *rawTables, row []uint16, a, b int) {
 // row is not: the caller then scans it with kernels.Finite16 and takes cells16.
 // When it returns true, ra and w.u hold exactly what cells16 adds for a
 // row without negative values (the same sums in the same order).
-func (w *worker) cells16Clean(ra *rowAcc, t *rawTables, row []uint16, ends []int32, rules []Rule, q, p, base int, tol float64, example string) bool {
+func (w *worker) cells16Clean(ra *rowAcc, t *rawTables, row []uint16, rw *rowAt) bool {
+	ends, rules, p := rw.ends, rw.rules, rw.p
 	if cap(w.sums) < len(ends) {
 		w.sums = make([]runSums, len(ends))
 	}
@@ -158,7 +159,7 @@ func (w *worker) cells16Clean(ra *rowAcc, t *rawTables, row []uint16, ends []int
 		case sums[i].NZ == 0:
 			w.zeroRun16(ra, t, row, a, b, r)
 		default:
-			w.forbiddenRun16(ra, t, row, a, b, q, p, base, r, tol, example)
+			w.forbiddenRun16(ra, t, row, rw, a, b, r)
 		}
 		a = b
 	}
@@ -209,9 +210,8 @@ func (w *worker) allowedRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, p in
 }
 
 // forbiddenRun16 is forbiddenRun over patterns.
-func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q, p, base int, r Rule, tol float64, example string) {
-	lu := &w.u.leak[r]
-	hs := w.hist[r]
+func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, rw *rowAt, a, b int, r Rule) {
+	p := rw.p
 	for k := a; k < b; k++ {
 		h := row[k]
 		x := float64(t.Val[h])
@@ -236,7 +236,7 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q,
 				ra.negm -= x
 			}
 		}
-		w.forbidCell(ra, lu, hs, r, x, q, k, p, base, tol, example)
+		w.forbidCell(ra, rw, r, k, x)
 	}
 }
 
@@ -247,7 +247,8 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, a, b, q,
 // loader reads from the file with one positioned read) and a function to
 // call when done with them
 // (nil when there is nothing to release). nil tables = use ReadAttn.
-func (w *worker) readRaw16(rd reader, cfg passConfig, l, b, h int) (*rawTables, []uint16, func(), error) {
+func (w *worker) readRaw16(rd reader, cfg passConfig, at unitAt) (*rawTables, []uint16, func(), error) {
+	l, b, h := at.l, at.b, at.h
 	rr, ok := rd.(raw16Reader)
 	if !ok || cfg.grad || noRaw16 {
 		return nil, nil, nil, nil

@@ -54,6 +54,10 @@ type Stats struct {
 	LeakCells int64
 	// RowSum is the mean row sum.
 	RowSum float64
+	// Extra holds the statistics of the table declared with a row function
+	// (statistic.go), in table order: each the mean over the rows it
+	// counted; NaN when the pass did not compute it.
+	Extra []float64
 }
 
 // HeadStats are one head's statistics aggregated over batch items and
@@ -305,6 +309,16 @@ func statsOf(a *HeadAcc, grad, self, rowStats bool) Stats {
 		s.LeakCells += a.Leaks[r].Cells
 	}
 	s.LeakMass = mean(leak, a.Rows)
+	if len(extraStats) > 0 {
+		s.Extra = make([]float64, len(extraStats))
+		for i := range extraStats {
+			x, ok := a.Extra[extraStats[i].Name]
+			s.Extra[i] = math.NaN()
+			if ok && rowStats {
+				s.Extra[i] = mean(x.Sum, x.Rows)
+			}
+		}
+	}
 	return s
 }
 

@@ -91,13 +91,20 @@ func allowedFast(ra *rowAcc, row []float32, a, b, p int, stats bool) {
 	ra.addRun(&rs, float64(math.Float32frombits(rs.Mx32)), int64(b-a), lo, hi)
 }
 
-// cells runs over row (query row q at absolute position p) with the runs
-// of keys sharing a rule (ends, rules: rowRuns), adding into ra and into the
-// leak accumulators of w.u.
-func (w *worker) cells(ra *rowAcc, row []float32, ends []int32, rules []Rule, q, p, base int, tol float64, example string) {
-	a := 0
-	for i, e := range ends {
-		b, r := int(e), rules[i]
+// rowAt is the row the cell loops are in: query row q at absolute position
+// p, and its runs of keys sharing a rule (ends, rules: rowRuns).
+type rowAt struct {
+	q, p  int
+	ends  []int32
+	rules []Rule
+}
+
+// cells runs over row (rw: where it is and its runs of keys sharing a
+// rule), adding into ra and into the leak accumulators of w.u.
+func (w *worker) cells(ra *rowAcc, row []float32, rw *rowAt) {
+	a, p := 0, rw.p
+	for i, e := range rw.ends {
+		b, r := int(e), rw.rules[i]
 		switch {
 		case r == RuleNone && !ra.negRow:
 			allowedFast(ra, row, a, b, p, w.stats)
@@ -109,7 +116,7 @@ func (w *worker) cells(ra *rowAcc, row []float32, ends []int32, rules []Rule, q,
 				ra.mx = x
 			}
 		default:
-			w.forbiddenRun(ra, row, a, b, q, p, base, r, tol, example)
+			w.forbiddenRun(ra, row, rw, a, b, r)
 		}
 		a = b
 	}
@@ -223,20 +230,21 @@ func (w *worker) allowedRun(ra *rowAcc, row []float32, a, b, p int) {
 	ra.neg += neg
 }
 
-// forbidCell counts key k of query row q (position p), forbidden by rule r
-// and holding x, into the rule's leak accumulators lu and offset histogram
-// hs: a leak when x > tol. Both paths' forbidden runs call it.
-func (w *worker) forbidCell(ra *rowAcc, lu *leakUnit, hs []int64, r Rule, x float64, q, k, p, base int, tol float64, example string) {
+// forbidCell counts key k of row rw, forbidden by rule r and holding x,
+// into the rule's leak accumulators and offset histogram: a leak when x >
+// w.tol. Both paths' forbidden runs call it.
+func (w *worker) forbidCell(ra *rowAcc, rw *rowAt, r Rule, k int, x float64) {
+	lu := &w.u.leak[r]
 	lu.forb++
-	if x > tol {
+	if x > w.tol {
 		lu.cells++
 		lu.mass += x
 		ra.hit[r] = true
 		if !lu.worst.Set || x > lu.worst.Value {
-			lu.worst = Cell{Set: true, Example: example, Query: q, Key: k, Value: x}
+			lu.worst = Cell{Set: true, Example: w.example, Query: rw.q, Key: k, Value: x}
 		}
-		if hs != nil {
-			i := k - p + base
+		if hs := w.hist[r]; hs != nil {
+			i := k - rw.p + w.base
 			hs[i]++
 			w.lo[r] = min(w.lo[r], i)
 			w.hi[r] = max(w.hi[r], i)
@@ -244,10 +252,10 @@ func (w *worker) forbidCell(ra *rowAcc, lu *leakUnit, hs []int64, r Rule, x floa
 	}
 }
 
-// forbiddenRun is the loop body of a key forbidden by rule r, for keys [a, b).
-func (w *worker) forbiddenRun(ra *rowAcc, row []float32, a, b, q, p, base int, r Rule, tol float64, example string) {
-	lu := &w.u.leak[r]
-	hs := w.hist[r]
+// forbiddenRun is the loop body of a key forbidden by rule r, for keys [a, b)
+// of row rw.
+func (w *worker) forbiddenRun(ra *rowAcc, row []float32, rw *rowAt, a, b int, r Rule) {
+	p := rw.p
 	for k := a; k < b; k++ {
 		x32 := row[k]
 		x := float64(x32)
@@ -272,6 +280,6 @@ func (w *worker) forbiddenRun(ra *rowAcc, row []float32, a, b, q, p, base int, r
 				ra.negm -= x
 			}
 		}
-		w.forbidCell(ra, lu, hs, r, x, q, k, p, base, tol, example)
+		w.forbidCell(ra, rw, r, k, x)
 	}
 }

@@ -26,35 +26,28 @@ type stat struct {
 	get func(*analysis.Stats, *analysis.HeadStats) float64
 }
 
-// surveyStats are the Survey's statistics; get reads the per-batch Stats
-// (s) or, for what exists only over every batch item, the head's (h, nil
-// for a batch item alone).
+// surveyStats are the Survey's statistics: those of the table of
+// statistics (analysis.Statistics) with a Survey look offered for a block
+// with or without gradients, in their Survey order; get reads the
+// per-batch Stats (s) or, for what exists only over every batch item, the
+// head's (h, nil for a batch item alone).
 func surveyStats(hasGrad bool) []stat {
-	imp := stat{"importance", "", "Michel et al. 2019, normalised per layer; low = prunable", true, false,
-		func(_ *analysis.Stats, h *analysis.HeadStats) float64 {
-			if h == nil {
-				return math.NaN()
-			}
-			return h.ImportanceNorm
-		}}
-	if !hasGrad {
-		imp = stat{analysis.ScoreName, "", "no gradients: confidence × distinctness, a heuristic; low = prunable", true, false,
-			func(_ *analysis.Stats, h *analysis.HeadStats) float64 {
-				if h == nil {
-					return math.NaN()
-				}
-				return h.Score
-			}}
+	type offered struct {
+		order int
+		stat
 	}
-	return []stat{
-		{"entropy", "nats", "low = focused, high = spread", false, false, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.Entropy }},
-		{"confidence", "", "mean row maximum; high = peaked", false, false, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.Confidence }},
-		imp,
-		{"leak mass", "per row", "forbidden mass, log scale; 0 = clean, ! = any leak", false, true, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.LeakMass }},
-		{"sink", "", "mass on key 0; > 0.3 = sink head", false, false, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.Sink }},
-		{"distance", "positions", "mean |k - q| weighted by attention", false, false, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.Distance }},
-		{"distinctness", "nats", "mean JS divergence to the layer's other heads; low = a duplicate", true, false, func(s *analysis.Stats, _ *analysis.HeadStats) float64 { return s.Distinctness }},
+	var out []offered
+	for _, st := range analysis.Statistics() {
+		if look := st.Survey; look != nil && look.When.With(hasGrad) {
+			out = append(out, offered{look.Order, stat{look.Label, look.Unit, look.Hint, st.LowFirst, look.Log, st.Value}})
+		}
 	}
+	slices.SortStableFunc(out, func(a, b offered) int { return cmp.Compare(a.order, b.order) })
+	stats := make([]stat, len(out))
+	for i := range out {
+		stats[i] = out[i].stat
+	}
+	return stats
 }
 
 type surveyScreen struct {

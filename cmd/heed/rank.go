@@ -7,6 +7,7 @@ import (
 	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -16,103 +17,122 @@ import (
 	"github.com/spf13/cobra"
 )
 
-// rankColumns are the per-head columns of heed rank, in output order; the
-// JSON field names are the same (docs/json.md).
-var rankColumns = []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share",
-	"distance", "sink", "doc_sink", "distinctness", "importance", "importance_norm", analysis.ScoreName, "leak_mass", "rows", "nan_rows"}
+// The columns of heed rank (JSON fields, CSV header, text table, --sort
+// keys) come from the table of statistics (analysis.Statistics,
+// analysis/statistic.go): a statistic added there shows up here by itself.
 
-// renamedColumns are the names --sort still takes for one version, and the
-// JSON fields still written beside the new ones (docs/json.md).
-var renamedColumns = map[string]string{"redundancy": "distinctness", "confidence_x_js": analysis.ScoreName}
+// rankColumns returns the per-head columns of heed rank, in output order.
+func rankColumns() []string { return analysis.HeadColumns() }
 
-// rankHead is one head's row of heed rank; nil = not defined (no gradients, no rows).
+// rankHead is one head's row of heed rank: its place, and the value of
+// every statistic of stats (NaN = not defined: no gradients, no rows).
 type rankHead struct {
-	Block          string   `json:"block"`
-	Layer          int      `json:"layer"`
-	Head           int      `json:"head"`
-	Entropy        *float64 `json:"entropy"`
-	EntropyNorm    *float64 `json:"entropy_norm"`
-	Confidence     *float64 `json:"confidence"`
-	PrevShare      *float64 `json:"prev_share"`
-	SelfShare      *float64 `json:"self_share"`
-	Distance       *float64 `json:"distance"`
-	Sink           *float64 `json:"sink"`
-	DocSink        *float64 `json:"doc_sink"`
-	Distinctness   *float64 `json:"distinctness"`
-	Importance     *float64 `json:"importance"`
-	ImportanceNorm *float64 `json:"importance_norm"`
-	Score          *float64 `json:"keep_score"`
-	LeakMass       *float64 `json:"leak_mass"`
-	Rows           int64    `json:"rows"`
-	NaNRows        int64    `json:"nan_rows"`
-	// the names of distinctness and keep_score before December 2026,
-	// written for one more version (renamedColumns)
-	OldRedundancy *float64 `json:"redundancy"`
-	OldScore      *float64 `json:"confidence_x_js"`
+	Block       string
+	Layer, Head int
+	stats       []analysis.Statistic
+	vals        []float64
 }
 
-func num(x float64) *float64 {
-	if math.IsNaN(x) || math.IsInf(x, 0) {
-		return nil
+func newRankHead(stats []analysis.Statistic, block string, hs *analysis.HeadStats) rankHead {
+	r := rankHead{Block: block, Layer: hs.Layer, Head: hs.Head, stats: stats, vals: make([]float64, len(stats))}
+	for i := range stats {
+		r.vals[i] = stats[i].Of(&hs.Stats, hs)
 	}
-	return &x
+	return r
+}
+
+// MarshalJSON writes the head's fields in column order, then the aliases
+// (former names) of the statistics that have them; undefined values are null.
+func (r rankHead) MarshalJSON() ([]byte, error) {
+	b := []byte("{")
+	field := func(name string, v any) error {
+		if len(b) > 1 {
+			b = append(b, ',')
+		}
+		k, err := json.Marshal(name)
+		if err != nil {
+			return err
+		}
+		x, err := json.Marshal(v)
+		b = append(append(append(b, k...), ':'), x...)
+		return err
+	}
+	value := func(i int) any {
+		switch v := r.vals[i]; {
+		case r.stats[i].Count:
+			return int64(v)
+		case math.IsNaN(v) || math.IsInf(v, 0):
+			return nil
+		default:
+			return v
+		}
+	}
+	for _, f := range []struct {
+		name string
+		v    any
+	}{{"block", r.Block}, {"layer", r.Layer}, {"head", r.Head}} {
+		if err := field(f.name, f.v); err != nil {
+			return nil, err
+		}
+	}
+	for i := range r.stats {
+		if err := field(r.stats[i].Name, value(i)); err != nil {
+			return nil, err
+		}
+	}
+	for i := range r.stats {
+		for _, a := range r.stats[i].Aliases {
+			if err := field(a, value(i)); err != nil {
+				return nil, err
+			}
+		}
+	}
+	return append(b, '}'), nil
+}
+
+// column returns the statistic named col (a name or an alias) among stats, or -1.
+func column(stats []analysis.Statistic, col string) int {
+	for i := range stats {
+		if stats[i].Name == col || slices.Contains(stats[i].Aliases, col) {
+			return i
+		}
+	}
+	return -1
 }
 
 func (r *rankHead) value(col string) (float64, bool) {
-	var p *float64
 	switch col {
 	case "layer":
 		return float64(r.Layer), true
 	case "head":
 		return float64(r.Head), true
-	case "rows":
-		return float64(r.Rows), true
-	case "nan_rows":
-		return float64(r.NaNRows), true
-	case "entropy":
-		p = r.Entropy
-	case "entropy_norm":
-		p = r.EntropyNorm
-	case "confidence":
-		p = r.Confidence
-	case "prev_share":
-		p = r.PrevShare
-	case "self_share":
-		p = r.SelfShare
-	case "distance":
-		p = r.Distance
-	case "sink":
-		p = r.Sink
-	case "doc_sink":
-		p = r.DocSink
-	case "distinctness":
-		p = r.Distinctness
-	case "importance":
-		p = r.Importance
-	case "importance_norm":
-		p = r.ImportanceNorm
-	case analysis.ScoreName:
-		p = r.Score
-	case "leak_mass":
-		p = r.LeakMass
 	}
-	if p == nil {
+	i := column(r.stats, col)
+	if i < 0 || math.IsNaN(r.vals[i]) || math.IsInf(r.vals[i], 0) {
 		return math.NaN(), false
 	}
-	return *p, true
+	return r.vals[i], true
+}
+
+// count reports whether col is printed as an integer.
+func (r *rankHead) count(col string) bool {
+	if col == "layer" || col == "head" {
+		return true
+	}
+	i := column(r.stats, col)
+	return i >= 0 && r.stats[i].Count
 }
 
 func (r *rankHead) cell(col string) string {
-	switch col {
-	case "block":
+	if col == "block" {
 		return r.Block
-	case "layer", "head", "rows", "nan_rows":
-		v, _ := r.value(col)
-		return strconv.Itoa(int(v))
 	}
 	v, ok := r.value(col)
-	if !ok {
+	switch {
+	case !ok:
 		return ""
+	case r.count(col):
+		return strconv.Itoa(int(v))
 	}
 	return strconv.FormatFloat(v, 'g', 6, 64)
 }
@@ -183,7 +203,7 @@ func (rf *rankFlags) register(cmd *cobra.Command, csv bool) {
 	if csv {
 		f.BoolVar(&rf.asCSV, "csv", false, "print the head table as CSV")
 	}
-	f.StringVar(&rf.sortCol, "sort", "", "sort heads by this column, ascending (prefix - for descending): "+strings.Join(rankColumns[1:], ", "))
+	f.StringVar(&rf.sortCol, "sort", "", "sort heads by this column, ascending (prefix - for descending): "+strings.Join(rankColumns()[1:], ", "))
 	f.IntVar(&rf.prune, "prune", -1, "plan pruning N heads")
 	f.Float64Var(&rf.pruneFrac, "prune-frac", 0, "plan pruning this fraction of all heads (e.g. 0.2)")
 }
@@ -200,11 +220,14 @@ func (rf *rankFlags) validate(asJSON bool) error {
 	if rf.prune < -1 || (f.Changed("prune-frac") && (rf.pruneFrac < 0 || rf.pruneFrac > 1)) {
 		return fmt.Errorf("--prune must be >= 0 and --prune-frac in [0, 1]")
 	}
-	if c := strings.TrimPrefix(rf.sortCol, "-"); renamedColumns[c] != "" {
-		rf.sortCol = strings.TrimSuffix(rf.sortCol, c) + renamedColumns[c]
+	stats := analysis.Statistics()
+	if c := strings.TrimPrefix(rf.sortCol, "-"); c != "" {
+		if i := column(stats, c); i >= 0 && stats[i].Name != c { // a former name
+			rf.sortCol = strings.TrimSuffix(rf.sortCol, c) + stats[i].Name
+		}
 	}
-	if rf.sortCol != "" && !validColumn(strings.TrimPrefix(rf.sortCol, "-")) {
-		return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", rf.sortCol, strings.Join(rankColumns, ", "))
+	if rf.sortCol != "" && !slices.Contains(rankColumns(), strings.TrimPrefix(rf.sortCol, "-")) {
+		return fmt.Errorf("--sort %q: want one of %s (prefix - for descending)", rf.sortCol, strings.Join(rankColumns(), ", "))
 	}
 	return nil
 }
@@ -214,15 +237,11 @@ func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []st
 	rep := &rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
 		Warnings: append([]string{}, warnings...), Caveat: analysis.Caveat}
 	grad := true
+	stats := analysis.Statistics()
 	for _, b := range res.Blocks {
 		grad = grad && b.HasGrad
-		for _, hs := range b.Stats {
-			rep.Heads = append(rep.Heads, rankHead{Block: b.Name, Layer: hs.Layer, Head: hs.Head,
-				Entropy: num(hs.Entropy), EntropyNorm: num(hs.EntropyNorm), Confidence: num(hs.Confidence),
-				PrevShare: num(hs.PrevShare), SelfShare: num(hs.SelfShare), Distance: num(hs.Distance),
-				Sink: num(hs.Sink), DocSink: num(hs.DocSink), Distinctness: num(hs.Distinctness), OldRedundancy: num(hs.Distinctness),
-				Importance: num(hs.Importance), ImportanceNorm: num(hs.ImportanceNorm), Score: num(hs.Score), OldScore: num(hs.Score),
-				LeakMass: num(hs.LeakMass), Rows: hs.Rows, NaNRows: hs.NaNRows})
+		for i := range b.Stats {
+			rep.Heads = append(rep.Heads, newRankHead(stats, b.Name, &b.Stats[i]))
 		}
 	}
 	rep.Metric = "importance"
@@ -263,15 +282,6 @@ func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []st
 // pruning plan made without them starts its own warning the same way.
 const noGradients = "no gradients in the export"
 
-func validColumn(c string) bool {
-	for _, x := range rankColumns {
-		if x == c {
-			return true
-		}
-	}
-	return false
-}
-
 // sortHeads sorts by a column (ascending, "-col" descending); heads without
 // a value go last; ties keep block, layer, head order.
 func sortHeads(hs []rankHead, col string) {
@@ -295,12 +305,13 @@ func sortHeads(hs []rankHead, col string) {
 
 func writeRankCSV(w io.Writer, hs []rankHead) error {
 	cw := csv.NewWriter(w)
-	if err := cw.Write(rankColumns); err != nil {
+	cols := rankColumns()
+	if err := cw.Write(cols); err != nil {
 		return err
 	}
 	for i := range hs {
-		row := make([]string, len(rankColumns))
-		for j, c := range rankColumns {
+		row := make([]string, len(cols))
+		for j, c := range cols {
 			row[j] = hs[i].cell(c)
 		}
 		if err := cw.Write(row); err != nil {
@@ -312,12 +323,7 @@ func writeRankCSV(w io.Writer, hs []rankHead) error {
 }
 
 func writeRankText(w io.Writer, rep *rankReport) {
-	cols := []string{"block", "layer", "head", "entropy", "entropy_norm", "confidence", "prev_share", "self_share", "distance", "sink", "distinctness"}
-	if rep.Metric == "importance" {
-		cols = append(cols, "importance", "importance_norm")
-	} else {
-		cols = append(cols, analysis.ScoreName)
-	}
+	cols := analysis.TextColumns(rep.Metric == "importance")
 	fmt.Fprintf(w, "heed rank: %d heads over %d %s; ordering metric %s\n", len(rep.Heads), rep.Examples, words.Plural(int(rep.Examples), "example", "examples"), rep.Metric)
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
 	fmt.Fprintln(tw, strings.Join(cols, "\t")+"\t")
@@ -358,4 +364,22 @@ func writeRankText(w io.Writer, rep *rankReport) {
 		fmt.Fprintf(w, "warning: %s\n", x)
 	}
 	fmt.Fprintln(w, analysis.Caveat)
+}
+
+// rankFieldsDoc is the per-head field list of docs/json.md (between its
+// rank-fields markers), derived from the table of statistics: one row per
+// statistic, then one per former name.
+func rankFieldsDoc(stats []analysis.Statistic) string {
+	esc := strings.NewReplacer("|", `\|`)
+	var b strings.Builder
+	b.WriteString("| field | meaning |\n|---|---|\n")
+	for _, st := range stats {
+		fmt.Fprintf(&b, "| `%s` | %s |\n", st.Name, esc.Replace(st.Doc))
+	}
+	for _, st := range stats {
+		for _, a := range st.Aliases {
+			fmt.Fprintf(&b, "| `%s` | the former name of `%s`, still written with the same value (and taken by `--sort`) until the next release |\n", a, st.Name)
+		}
+	}
+	return b.String()
 }

@@ -1,9 +1,13 @@
 package main
 
 import (
+	"flag"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/heed-dev/heed/analysis"
 )
 
 // TestRankNoGradientsWarnsOnce: without gradients heed rank says so once,
@@ -28,5 +32,35 @@ func TestRankNoGradientsWarnsOnce(t *testing.T) {
 		if n := strings.Count(out, noGradients); n != c.want {
 			t.Errorf("%v: %q said %d times, want %d\n%s", c.args, noGradients, n, c.want, out)
 		}
+	}
+}
+
+var update = flag.Bool("update", false, "rewrite docs/json.md's field list of heed rank")
+
+// TestRankFieldsDoc: docs/json.md lists every per-head field of heed rank
+// as the table of statistics declares it (rankFieldsDoc); -update rewrites
+// the list.
+func TestRankFieldsDoc(t *testing.T) {
+	const path = "../../docs/json.md"
+	b, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	doc := string(b)
+	open := strings.Index(doc, "<!-- rank-fields")
+	end := strings.Index(doc, "<!-- /rank-fields -->")
+	if open < 0 || end < open {
+		t.Fatalf("%s: no <!-- rank-fields --> ... <!-- /rank-fields --> markers", path)
+	}
+	open += strings.Index(doc[open:], "-->\n") + len("-->\n")
+	want := rankFieldsDoc(analysis.Statistics())
+	if doc[open:end] == want {
+		return
+	}
+	if !*update {
+		t.Fatalf("%s: the field list of heed rank is not the table of statistics'; run go test ./cmd/heed -run TestRankFieldsDoc -update and review the diff. Want:\n%s", path, want)
+	}
+	if err := os.WriteFile(path, []byte(doc[:open]+want+doc[end:]), 0o644); err != nil {
+		t.Fatal(err)
 	}
 }

@@ -311,7 +311,11 @@ func TestShardNumberedSet(t *testing.T) {
 	single, _, code := runSplit(t, "rank", dir, "--json")
 	var rep struct {
 		Examples int
-		Heads    []rankHead
+		Heads    []struct {
+			Layer, Head int
+			Entropy     *float64
+			Rows        int64
+		}
 		Warnings []string
 	}
 	if err := json.Unmarshal([]byte(single), &rep); err != nil || code != 0 {
