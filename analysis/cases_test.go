@@ -167,7 +167,7 @@ func TestCases(t *testing.T) {
 			}
 			if len(res.Diagnoses) != len(c.Diagnoses) {
 				for _, d := range res.Diagnoses {
-					t.Logf("%s %s L%v H%v B%v value %v: %s", d.Pattern, d.Block, d.Layers, d.Heads, d.Batches, d.Value, d.Text)
+					t.Logf("%s %s L%v H%v B%v value %v: %+v", d.Pattern, d.Block, d.Layers, d.Heads, d.Batches, d.Value, d.Facts)
 				}
 				t.Fatalf("%d diagnoses, want %d", len(res.Diagnoses), len(c.Diagnoses))
 			}
@@ -184,7 +184,7 @@ func TestCases(t *testing.T) {
 				}
 				if !found {
 					for _, d := range res.Diagnoses {
-						t.Logf("got %s %s L%v H%v B%v: %s", d.Pattern, d.Block, d.Layers, d.Heads, d.Batches, d.Text)
+						t.Logf("got %s %s L%v H%v B%v: %+v", d.Pattern, d.Block, d.Layers, d.Heads, d.Batches, d.Facts)
 					}
 					t.Errorf("no diagnosis %s %s L%v H%v B%v", want.Pattern, want.Block, want.Layer, want.Head, want.Batch)
 				}

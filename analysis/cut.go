@@ -1,7 +1,6 @@
 package analysis
 
 import (
-	"fmt"
 	"math"
 	"sort"
 
@@ -104,7 +103,8 @@ func rowReachesUnderflow(row []float32, row16 []uint16, rt *rawTables, tiny floa
 	return false
 }
 
-// cutCheck reports whether the cut check runs with the --rule selection rs.
+// cutCheck reports whether the cut check runs with the rule selection rs
+// (Options.Rules).
 func cutCheck(rs []Rule) bool {
 	if len(rs) == 0 {
 		return true
@@ -240,34 +240,18 @@ func stopsList(stops map[int]int64) []OffsetCount {
 }
 
 // diagnoseCut names a cut finding: cross_causal on a cross block,
-// prefix_causal on the prefix rows of a prefix-LM.
-func diagnoseCut(bp *BlockPartial, f *Finding, d *Diagnosis, where string) {
+// prefix_causal on the prefix rows of a prefix-LM; Value is the offset the
+// rows stop at.
+func diagnoseCut(bp *BlockPartial, f *Finding, d *Diagnosis) {
 	c, n := cutOffset(f.agg.Cut.Stops)
-	could := couldStop(bp, f.Batches, c) * int64(len(f.Layers)*len(f.Heads))
-	at := "k = q"
-	if c != 0 {
-		at = fmt.Sprintf("k = q%+d", c)
-	}
-	share := 0.0
-	if could > 0 {
-		share = 100 * min(1, float64(n)/float64(could))
-	}
 	d.Value = float64(c)
+	d.Facts.Stopped = n
+	d.Facts.Could = couldStop(bp, f.Batches, c) * int64(len(f.Layers)*len(f.Heads))
 	if bp.Kind == string(loader.KindCross) {
-		d.Pattern = "cross_causal"
-		d.Text = fmt.Sprintf("Cross-attention made causal in %s: target query q reads source keys only up to %s, though later source keys are allowed (a triangular cut in the [target, source] map).", where, at)
-		d.Check = "check which mask reaches the cross-attention call: the decoder's causal mask (tgt_mask, is_causal=True, the causal flag of an attention function shared by self- and cross-attention) must not; cross-attention takes only the source padding mask (memory_key_padding_mask / encoder attention mask)"
-		d.Evidence = append(d.Evidence,
-			fmt.Sprintf("%d of %d rows (%.1f%%) that have allowed source keys after %s carry no mass after it (a cross block of %d target x %d source positions)", n, could, share, at, bp.Queries, bp.Keys),
-			fmt.Sprintf("%d allowed source cells left without mass in %d rows of %s; stops by offset k-q: %s", f.Cells, f.Rows, where, offsetSummary(f.Offsets)),
-			fmt.Sprintf("first cut row at %s: key %d and later allowed keys are exactly 0", f.Worst, f.Worst.Key))
+		d.Pattern = PatCrossCausal
+		d.Facts.Queries, d.Facts.Keys = bp.Queries, bp.Keys
 		return
 	}
-	d.Pattern = "prefix_causal"
-	d.Text = fmt.Sprintf("The prefix block is causal in %s: prefix positions (the first %d) do not see later prefix positions (their mass stops at %s), though a prefix-LM lets the prefix see itself both ways.", where, bp.Prefix, at)
-	d.Check = "check that the prefix-LM mask (bidirectional over the first P positions, causal after them) reaches the kernel rather than a plain causal mask or is_causal=True, and that P is each example's prefix length"
-	d.Evidence = append(d.Evidence,
-		fmt.Sprintf("%d of %d prefix rows (%.1f%%) that have later prefix keys carry no mass after %s", n, could, share, at),
-		fmt.Sprintf("%d allowed prefix cells left without mass in %d rows of %s; stops by offset k-q: %s", f.Cells, f.Rows, where, offsetSummary(f.Offsets)),
-		fmt.Sprintf("first cut row at %s: key %d and later prefix keys are exactly 0", f.Worst, f.Worst.Key))
+	d.Pattern = PatPrefixCausal
+	d.Facts.Prefix = bp.Prefix
 }

@@ -12,7 +12,7 @@ import (
 
 // Inferring a block's mask from its exact zeros.
 //
-// When nobody said a block's kind (no metadata, no --kind, no attribute),
+// When nobody said a block's kind (no metadata, no kind setting, no attribute),
 // heed reads a sample of its (layer, head, batch item) matrices and looks at
 // where the exact zeros are: a mask sets the probabilities of the keys it
 // blocks to exactly 0 (softmax of -inf), the same cells in every head,

@@ -15,7 +15,6 @@ import (
 	"fmt"
 	"math"
 	"sort"
-	"strings"
 
 	"github.com/heed-dev/heed/loader"
 )
@@ -88,8 +87,8 @@ type Invariance struct {
 	// Findings has one entry per part (and per attention-only block) whose
 	// positions before P changed, in the order of Parts.
 	Findings []InvarianceFinding
-	// Diagnoses say in words what the findings mean; each text ends with
-	// Caveat.
+	// Diagnoses say what the findings mean, as pattern codes and facts
+	// (see Diagnosis; package internal/prose words them).
 	Diagnoses []Diagnosis
 
 	headCount map[string]int     // heads per block with attention compared
@@ -349,7 +348,7 @@ func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 // Padding positions of A (valid/SIDE) are not judged.
 // ErrNeedFrom (test with errors.Is) ends the errors of CheckInvariance
 // when the tokens do not tell where the change starts: the caller names
-// its own way to give that position (heed check's --from).
+// its own way to give that position (the from setting, InvarianceOptions.From).
 var ErrNeedFrom = errors.New("give the first changed position P")
 
 func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOptions) (*Invariance, error) {
@@ -739,20 +738,14 @@ func compareHeads(xa, xb *loader.Block, from []int, side *loader.Side, tol float
 	return out, nil
 }
 
-// The diagnosis patterns of the invariance check (Diagnosis.Pattern; Value
-// in brackets):
-//
-//	reads_future [layer]   positions before P changed from this layer on: it reads the future
-//	not_causal             every position before P changed at layer 0: the block is not causal
-//	future_heads [layer]   the heads whose rows before P changed first, at that layer
-//	output_reads_future    the logits changed before P (no layer outputs to say where)
-//	rounding_level         the differences are small and scattered: maybe reduced-precision rounding
+// The diagnosis patterns of the invariance check (Diagnosis.Pattern; their
+// Value and facts are listed with Diagnosis).
 const (
-	patReadsFuture  = "reads_future"
-	patNotCausal    = "not_causal"
-	patFutureHeads  = "future_heads"
-	patOutputFuture = "output_reads_future"
-	patRounding     = "rounding_level"
+	PatReadsFuture       = "reads_future"
+	PatNotCausal         = "not_causal"
+	PatFutureHeads       = "future_heads"
+	PatOutputReadsFuture = "output_reads_future"
+	PatRoundingLevel     = "rounding_level"
 )
 
 // finite keeps JSON-bound numbers finite: +Inf (a NaN on one side only)
@@ -762,34 +755,6 @@ func finite(x float64) float64 {
 		return math.MaxFloat64
 	}
 	return x
-}
-
-// span writes sorted positions compactly: "4-5", "0, 2, 7-9".
-func span(xs []int) string {
-	var out []string
-	for i := 0; i < len(xs); {
-		j := i
-		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
-			j++
-		}
-		switch {
-		case j == i:
-			out = append(out, fmt.Sprint(xs[i]))
-		case j == i+1:
-			out = append(out, fmt.Sprint(xs[i]), fmt.Sprint(xs[j]))
-		default:
-			out = append(out, fmt.Sprintf("%d-%d", xs[i], xs[j]))
-		}
-		i = j + 1
-	}
-	return strings.Join(out, ", ")
-}
-
-func positionsWord(n int) string {
-	if n == 1 {
-		return "position"
-	}
-	return "positions"
 }
 
 // judged returns the judged positions before P of a batch item.
@@ -957,18 +922,11 @@ func (r *Invariance) partDiagnoses(p *InvariancePart, f InvarianceFinding) []Dia
 		some = some || p.judged(b) > 1
 	}
 	all = all && some
-	var ev []string
+	inv := &InvFacts{From: from, All: all, Bidirectional: p.Kind == loader.KindBidirectional,
+		Changed: f.Layers, MaxAbs: f.MaxAbs, MaxRel: f.MaxRel, Tol: f.Tol, DType: f.DType}
 	for i, b := range f.Batches {
-		ev = append(ev, fmt.Sprintf("batch item %d: %s %s changed at layer %d (tokens changed from %d on)",
-			b, positionsWord(len(f.Positions[i])), span(f.Positions[i]), p.FirstLayer(b), f.From[i]))
+		inv.Items = append(inv.Items, ItemChange{Batch: b, Positions: f.Positions[i], FirstLayer: p.FirstLayer(b), From: f.From[i]})
 	}
-	if first > 0 {
-		ev = append(ev, fmt.Sprintf("layers %s agree within tolerance before P", span(seq(first))))
-	}
-	if len(f.Layers) > 1 {
-		ev = append(ev, fmt.Sprintf("changed layers: %s", span(f.Layers)))
-	}
-	ev = append(ev, fmt.Sprintf("largest difference before P: %.3g absolute, %.3g relative (tolerance %.3g for %s)", f.MaxAbs, f.MaxRel, f.Tol, f.DType))
 	// The same reach before P in every item suggests a mask that lets a
 	// query see the next n keys.
 	reach := -1
@@ -981,72 +939,36 @@ func (r *Invariance) partDiagnoses(p *InvariancePart, f InvarianceFinding) []Dia
 		}
 		reach = n
 	}
-	if reach > 0 && !all {
-		ev = append(ev, fmt.Sprintf("in every item exactly the last %d %s before P changed: consistent with a mask that lets query q see keys up to q+%d", reach, positionsWord(reach), reach))
-	}
+	inv.Reach = reach
 	d := Diagnosis{Block: p.Block, Rule: RuleInvariance, Layers: []int{first}, Heads: f.Heads, Batches: f.Batches,
-		Value: float64(first), At: w, Evidence: ev}
+		Value: float64(first), At: w, Facts: Facts{PadNaNLayer: -1, Inv: inv}}
 	switch {
 	case p.Block == "logits":
-		d.Pattern = patOutputFuture
-		d.Text = fmt.Sprintf("position %d of the logits changed when only tokens from %d on were changed: the model reads the future; export each layer's output (BLOCK/out) to find the layer where it enters. %s", w.Query, from, Caveat)
-		d.Check = "the attention masks of every layer; export layer outputs with forward hooks to locate it"
+		d.Pattern = PatOutputReadsFuture
 		d.Value = 0
 	case all && first == 0:
-		d.Pattern = patNotCausal
+		d.Pattern = PatNotCausal
 		d.Value = 0
-		if p.Kind == loader.KindBidirectional {
-			d.Text = fmt.Sprintf("every position before P of %s changed already at layer 0 when only tokens from %d on were changed: it is not causal, it reads the whole sequence; its metadata declares it bidirectional, so for an encoder this is expected. %s", p.Block, from, Caveat)
-			d.Check = "nothing if this is an encoder; if it should be causal, whether a causal mask reaches its attention at all"
-		} else {
-			d.Text = fmt.Sprintf("every position before P of %s changed already at layer 0 when only tokens from %d on were changed: it is not causal, it reads the whole sequence (as if it had no causal mask). %s", p.Block, from, Caveat)
-			d.Check = "whether the causal mask (or the kernel's causal flag) reaches this block's attention at all, e.g. dropped when a custom bias or padding mask is passed"
-		}
 	default:
-		d.Pattern = patReadsFuture
-		extra := ""
-		if all {
-			extra = " (every position before P changed there, as if that layer had no causal mask)"
-		}
-		d.Text = fmt.Sprintf("position %d of layer %d changed when only tokens from %d on were changed: something at layer %d reads the future%s. %s", w.Query, first, from, first, extra, Caveat)
-		d.Check = fmt.Sprintf("how layer %d builds its attention mask and which kernel path it takes (fused / flash / sliding-window path, a custom bias that disables the causal flag, an off-by-one in the mask); earlier layers agree", first)
+		d.Pattern = PatReadsFuture
 	}
 	out := []Diagnosis{d}
 	if hl, _ := r.headsAt(p.Block); hl >= 0 {
 		out = append(out, r.headDiagnosis(p.Block, f.From, f.Batches))
 	}
 	if (p.DType == loader.Float32 || p.DType == loader.Float64) && f.MaxRel <= InvarianceTol(loader.BFloat16) && reach < 0 {
-		out = append(out, Diagnosis{Pattern: patRounding, Block: p.Block, Rule: RuleInvariance, Layers: []int{first}, Batches: f.Batches, At: w,
-			Value: f.MaxRel,
-			Text: fmt.Sprintf("the differences before P are small (at most %.3g relative) and do not end at P: if the model ran in bf16, f16 or with TF32 matmuls and was exported as %s, rounding alone can reach this; check again with --tol %.3g before hunting a leak. %s",
-				f.MaxRel, p.DType, InvarianceTol(loader.BFloat16), Caveat),
-			Check:    "the dtype the model computed in (not the one it was exported in)",
-			Evidence: []string{fmt.Sprintf("tolerance %.3g for %s; measured rounding of two correct bf16 passes: up to 1.25e-2", f.Tol, f.DType)}})
+		rinv := &InvFacts{From: from, MaxAbs: f.MaxAbs, MaxRel: f.MaxRel, Tol: f.Tol, DType: f.DType, Suggest: InvarianceTol(loader.BFloat16)}
+		out = append(out, Diagnosis{Pattern: PatRoundingLevel, Block: p.Block, Rule: RuleInvariance, Layers: []int{first}, Batches: f.Batches, At: w,
+			Value: f.MaxRel, Facts: Facts{PadNaNLayer: -1, Inv: rinv}})
 	}
 	return out
-}
-
-func ints(xs []int) string {
-	s := make([]string, len(xs))
-	for i, x := range xs {
-		s[i] = fmt.Sprint(x)
-	}
-	return strings.Join(s, ", ")
-}
-
-func seq(n int) []int {
-	s := make([]int, n)
-	for i := range s {
-		s[i] = i
-	}
-	return s
 }
 
 func (r *Invariance) headDiagnosis(block string, from, batches []int) Diagnosis {
 	hl, hs := r.headsAt(block)
 	heads := 0
 	var rows []int
-	var ev []string
+	var changes []HeadChange
 	var worst HeadChange
 	for _, h := range r.Heads {
 		if h.Block != block {
@@ -1054,7 +976,7 @@ func (r *Invariance) headDiagnosis(block string, from, batches []int) Diagnosis 
 		}
 		heads = max(heads, h.Head+1)
 		if h.Layer == hl {
-			ev = append(ev, fmt.Sprintf("layer %d head %d batch item %d: rows %s changed (largest difference %.3g)", h.Layer, h.Head, h.Batch, span(h.Rows), h.MaxAbs))
+			changes = append(changes, h)
 			if len(rows) == 0 || h.Rows[0] < rows[0] {
 				rows, worst = h.Rows, h
 			}
@@ -1063,21 +985,9 @@ func (r *Invariance) headDiagnosis(block string, from, batches []int) Diagnosis 
 	if r.headCount != nil {
 		heads = r.headCount[block]
 	}
-	d := Diagnosis{Pattern: patFutureHeads, Block: block, Rule: RuleInvariance, Layers: []int{hl}, Heads: hs, Batches: batches,
-		Value: float64(hl), Evidence: ev,
+	return Diagnosis{Pattern: PatFutureHeads, Block: block, Rule: RuleInvariance, Layers: []int{hl}, Heads: hs, Batches: batches,
+		Value: float64(hl), Facts: Facts{PadNaNLayer: -1, Inv: &InvFacts{HeadChanges: changes, HeadTotal: heads}},
 		At: Location{Block: block, Layer: hl, Head: worst.Head, Batch: worst.Batch, Query: worst.Rows[0], Key: -1, Value: finite(worst.MaxRel)}}
-	hw := "head"
-	if len(hs) > 1 {
-		hw = "heads"
-	}
-	if len(hs) < heads {
-		d.Text = fmt.Sprintf("at layer %d only %s %s of %d changed their rows before P: %s the future (the other heads of that layer agree). %s", hl, hw, ints(hs), heads, map[bool]string{true: "it reads", false: "they read"}[len(hs) == 1], Caveat)
-		d.Check = fmt.Sprintf("the mask or bias given to %s %s of layer %d: a per-head mask broadcast wrongly, or a head-specific path", hw, ints(hs), hl)
-	} else {
-		d.Text = fmt.Sprintf("at layer %d every head (%d) changed its rows before P: the layer's mask lets the queries see the future. %s", hl, heads, Caveat)
-		d.Check = fmt.Sprintf("the mask layer %d passes to its attention", hl)
-	}
-	return d
 }
 
 func (r *Invariance) headFinding(block string) InvarianceFinding {

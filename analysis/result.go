@@ -116,8 +116,8 @@ type Result struct {
 	// Diagnoses name the likely bugs behind the findings.
 	Diagnoses []Diagnosis
 	// Notes are things worth knowing that are not findings (e.g. padding
-	// rows that are NaN, which are benign).
-	Notes []string
+	// rows that are NaN, which are benign), as codes and numbers.
+	Notes []Note
 	// Coverage says, per block, what was judged and what was not.
 	Coverage []Coverage
 }
@@ -382,7 +382,34 @@ func (p *Partial) Result() *Result {
 	return res
 }
 
-func notes(bp *BlockPartial) []string {
+// Note is something worth knowing that is not a finding, as a code and
+// the numbers its words need (package internal/prose words it; a new
+// code's words go there):
+//
+//	pad_nan         padding query rows hold NaN (benign unless it spreads): Rows of Of padding rows
+//	sum_low         Rows sum to 1 only within Max: a lower compute precision's rounding, judged
+//	                at SumLoose instead of SumTol for the stored DType (the words name the
+//	                compute_dtype setting)
+//	heads_averaged  the head axis has length 1: heads were probably averaged at export
+type Note struct {
+	Code     string  `json:"code"`
+	Block    string  `json:"block"`
+	Rows     int64   `json:"rows,omitempty"`
+	Of       int64   `json:"of,omitempty"`
+	Max      float64 `json:"max,omitempty"`
+	DType    string  `json:"dtype,omitempty"`
+	SumTol   float64 `json:"sum_tol,omitempty"`
+	SumLoose float64 `json:"sum_loose,omitempty"`
+}
+
+// Note codes (Note.Code).
+const (
+	NotePadNaN        = "pad_nan"
+	NoteSumLow        = "sum_low"
+	NoteHeadsAveraged = "heads_averaged"
+)
+
+func notes(bp *BlockPartial) []Note {
 	var pad, padNaN int64
 	for i := range bp.Units {
 		for j := range bp.Units[i] {
@@ -390,9 +417,9 @@ func notes(bp *BlockPartial) []string {
 			padNaN += bp.Units[i][j].PadNaNRows
 		}
 	}
-	var out []string
+	var out []Note
 	if padNaN > 0 {
-		out = append(out, fmt.Sprintf("%s: %d of %d padding query rows hold NaN; padding rows are not judged (benign unless NaN spreads into real rows)", bp.Name, padNaN, pad))
+		out = append(out, Note{Code: NotePadNaN, Block: bp.Name, Rows: padNaN, Of: pad})
 	}
 	var low int64
 	var lowMax float64
@@ -403,11 +430,10 @@ func notes(bp *BlockPartial) []string {
 		}
 	}
 	if low > 0 {
-		out = append(out, fmt.Sprintf("%s: %d rows sum to 1 only within %.2g (%s rounding allows %.0e): the size of a bfloat16 or float16 softmax's rounding, so the model probably computed attention in lower precision and the export widened it; judged at bfloat16's tolerance %.0e, not reported as a bug. If the model computed in %s, this is a bug: say the compute dtype (meta compute_dtype or --compute-dtype)",
-			bp.Name, low, lowMax, bp.DType, bp.SumTol, bp.SumLoose, bp.DType))
+		out = append(out, Note{Code: NoteSumLow, Block: bp.Name, Rows: low, Max: lowMax, DType: bp.DType, SumTol: bp.SumTol, SumLoose: bp.SumLoose})
 	}
 	if bp.Heads == 1 {
-		out = append(out, fmt.Sprintf("%s: the head axis has length 1: heads were probably averaged at export, so per-head statistics describe the average", bp.Name))
+		out = append(out, Note{Code: NoteHeadsAveraged, Block: bp.Name})
 	}
 	return out
 }

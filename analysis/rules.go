@@ -48,7 +48,8 @@ var ruleNames = [...]string{
 	RuleInvariance: "invariance",
 }
 
-// String returns the rule's name as written in JSON and accepted by --rule.
+// String returns the rule's name as written in JSON and accepted in a rule
+// selection (Options.Rules).
 func (r Rule) String() string {
 	if int(r) < len(ruleNames) {
 		return ruleNames[r]
@@ -100,8 +101,8 @@ type Rules struct {
 
 // NewRules builds the rules of blk. qside and kside are the block's query and
 // key sides (nil when the export has none). only, when not empty, replaces
-// the mask rules that follow from the block's kind and metadata (the --rule
-// flag); row rules in it are ignored here. A rule in only that the block
+// the mask rules that follow from the block's kind and metadata (the rule
+// selection, Options.Rules); row rules in it are ignored here. A rule in only that the block
 // cannot support (window without W, prefix without P, padding without valid,
 // segments without segments, explicit without allow) is an error.
 func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules, error) {
@@ -175,8 +176,8 @@ func NewRules(blk *loader.Block, qside, kside *loader.Side, only []Rule) (*Rules
 
 // RuleNeedsError is the error of a mask rule asked for (Options.Rules) on a
 // block that lacks what the rule needs; it says what, in the export
-// convention's terms, and callers add their own option for it (heed
-// check's --prefix, --window).
+// convention's terms, and callers add their own option for it (the prefix
+// and window settings).
 type RuleNeedsError struct {
 	Block string
 	Rule  Rule
@@ -224,7 +225,7 @@ func (r *Rules) Active() []Rule {
 func (r *Rules) Has(x Rule) bool { return x.IsMask() && r.active[x] }
 
 // RowChecks lists the row rules the attention pass runs on the block of r
-// with the --rule selection selected (nil = none: every row check), as the
+// with the rule selection (Options.Rules) selected (nil = none: every row check), as the
 // pass decides them: nan_rows, row_sum and negative (rowChecks), then cut
 // where it reads rows (cutBlock: a cross block, or the prefix rule applies).
 func (r *Rules) RowChecks(selected []Rule) []Rule {

@@ -9,6 +9,7 @@ import (
 	"charm.land/bubbles/v2/key"
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/views"
 )
@@ -110,11 +111,11 @@ func (s *findingsScreen) Refresh() {
 				Layers: words.Ranges(f.Layers, L), Heads: words.Ranges(f.Heads, H), Batches: words.Ranges(f.Batches, B),
 				Mass: f.Mass, Max: f.Max, Cells: f.Cells, Rows: f.Rows, Worst: worst, Offsets: offsetsText(f.Offsets)})
 		}
-		for _, dg := range m.res.Diagnoses {
-			d.Diagnosis = append(d.Diagnosis, strings.TrimSpace(strings.TrimSuffix(dg.Text, analysis.Caveat)))
+		for _, dg := range prose.Diagnoses(m.res.Diagnoses) {
+			d.Diagnosis = append(d.Diagnosis, strings.TrimSpace(strings.TrimSuffix(dg.Text, prose.Caveat)))
 		}
-		d.Caveat = analysis.Caveat
-		d.Notes = append(d.Notes, m.res.Notes...)
+		d.Caveat = prose.Caveat
+		d.Notes = append(d.Notes, prose.Notes(m.res.Notes)...)
 		for _, c := range m.res.Coverage {
 			for _, g := range c.NotJudged {
 				d.NotJudged = append(d.NotJudged, fmt.Sprintf("%s: %s: %s. To judge it: %s", g.Block, g.What, g.Why, g.Fix))

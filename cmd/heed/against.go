@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
@@ -128,7 +129,7 @@ type invarianceDetailJSON struct {
 type invarianceJSON struct {
 	Clean     bool                         `json:"clean"`
 	Findings  []analysis.InvarianceFinding `json:"findings"`
-	Diagnosis []analysis.Diagnosis         `json:"diagnosis"`
+	Diagnosis []prose.Diagnosis            `json:"diagnosis"`
 	Detail    invarianceDetailJSON         `json:"invariance"`
 	Notes     []string                     `json:"notes"`
 	Warnings  []string                     `json:"warnings"`
@@ -171,14 +172,11 @@ func partJSON(p *analysis.InvariancePart) invariancePartJSON {
 }
 
 func writeInvarianceJSON(w io.Writer, res *analysis.Invariance, warnings []string) error {
-	out := invarianceJSON{Clean: res.Clean(), Findings: res.Findings, Diagnosis: res.Diagnoses,
+	out := invarianceJSON{Clean: res.Clean(), Findings: res.Findings, Diagnosis: prose.Diagnoses(res.Diagnoses),
 		Detail: invarianceDetailJSON{Side: res.Side, From: res.From, Parts: []invariancePartJSON{}, Heads: res.Heads},
-		Notes:  res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
+		Notes:  res.Notes, Warnings: warnings, Caveat: prose.Caveat}
 	if out.Findings == nil {
 		out.Findings = []analysis.InvarianceFinding{}
-	}
-	if out.Diagnosis == nil {
-		out.Diagnosis = []analysis.Diagnosis{}
 	}
 	if out.Detail.Heads == nil {
 		out.Detail.Heads = []analysis.HeadChange{}
@@ -265,8 +263,8 @@ func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB str
 	}
 	if len(res.Diagnoses) > 0 {
 		fmt.Fprintln(w)
-		for i, d := range res.Diagnoses {
-			fmt.Fprintf(w, "%d. %s\n", i+1, strings.TrimSuffix(d.Text, " "+analysis.Caveat))
+		for i, d := range prose.Diagnoses(res.Diagnoses) {
+			fmt.Fprintf(w, "%d. %s\n", i+1, strings.TrimSuffix(d.Text, " "+prose.Caveat))
 			fmt.Fprintf(w, "   look at:  %s\n", lookAt(d.At))
 			if d.Check != "" {
 				fmt.Fprintf(w, "   check:    %s\n", d.Check)
@@ -280,7 +278,7 @@ func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB str
 		fmt.Fprintf(w, "warning: %s\n", n)
 	}
 	if res.Clean() {
-		fmt.Fprintf(w, "\nOne pair tests one change of the input: other inputs or lengths may still leak. %s\n", analysis.Caveat)
+		fmt.Fprintf(w, "\nOne pair tests one change of the input: other inputs or lengths may still leak. %s\n", prose.Caveat)
 	}
 }
 

@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"fmt"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
@@ -148,30 +149,24 @@ judge it).
 
 // checkReport is the JSON of heed check (docs/json.md).
 type checkReport struct {
-	Verdict   string               `json:"verdict"`
-	Clean     bool                 `json:"clean"`
-	Coverage  []analysis.Coverage  `json:"coverage"`
-	Examples  int64                `json:"examples"`
-	Findings  []analysis.Finding   `json:"findings"`
-	Diagnosis []analysis.Diagnosis `json:"diagnosis"`
-	Rules     map[string][]string  `json:"rules"`
-	Notes     []string             `json:"notes"`
-	Warnings  []string             `json:"warnings"`
-	Caveat    string               `json:"caveat"`
+	Verdict   string              `json:"verdict"`
+	Clean     bool                `json:"clean"`
+	Coverage  []analysis.Coverage `json:"coverage"`
+	Examples  int64               `json:"examples"`
+	Findings  []analysis.Finding  `json:"findings"`
+	Diagnosis []prose.Diagnosis   `json:"diagnosis"`
+	Rules     map[string][]string `json:"rules"`
+	Notes     []string            `json:"notes"`
+	Warnings  []string            `json:"warnings"`
+	Caveat    string              `json:"caveat"`
 }
 
 // checkReportOf builds heed check's JSON report from the pass's result.
 func checkReportOf(res *analysis.Result, warnings []string) *checkReport {
-	rep := &checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: res.Diagnoses,
-		Rules: map[string][]string{}, Notes: res.Notes, Warnings: warnings, Caveat: analysis.Caveat}
+	rep := &checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: prose.Diagnoses(res.Diagnoses),
+		Rules: map[string][]string{}, Notes: prose.Notes(res.Notes), Warnings: warnings, Caveat: prose.Caveat}
 	if rep.Findings == nil {
 		rep.Findings = []analysis.Finding{}
-	}
-	if rep.Diagnosis == nil {
-		rep.Diagnosis = []analysis.Diagnosis{}
-	}
-	if rep.Notes == nil {
-		rep.Notes = []string{}
 	}
 	if rep.Warnings == nil {
 		rep.Warnings = []string{}
@@ -264,8 +259,8 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 	default:
 		fmt.Fprintf(w, "heed check: %d %s (%d %s) in %s. %s\n\n", len(res.Diagnoses), words.Plural(len(res.Diagnoses), "likely bug", "likely bugs"),
 			len(res.Findings), words.Plural(len(res.Findings), "finding", "findings"), ex, "These are evidence to confirm by re-evaluating the model, not verdicts.")
-		for i, d := range res.Diagnoses {
-			text := strings.TrimSuffix(d.Text, " "+analysis.Caveat)
+		for i, d := range prose.Diagnoses(res.Diagnoses) {
+			text := strings.TrimSuffix(d.Text, " "+prose.Caveat)
 			fmt.Fprintf(w, "%d. %s\n", i+1, text)
 			at := d.At
 			if d.Rule == analysis.RuleNaNRows {
@@ -296,7 +291,7 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 		fmt.Fprintf(w, "rules checked: %s\n", rulesLine(res))
 		coverageLines(w, res)
 	}
-	for _, n := range res.Notes {
+	for _, n := range prose.Notes(res.Notes) {
 		fmt.Fprintf(w, "note: %s\n", n)
 	}
 	for _, n := range warnings {

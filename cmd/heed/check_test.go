@@ -7,6 +7,8 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/words"
 )
 
 const casesDir = "../../testdata/cases"
@@ -199,5 +201,18 @@ func TestCheckFloat64FromFloat32(t *testing.T) {
 	}
 	if out, code := run(t, "check", "--kind", "bidirectional", "--sum-tol", "1e-9", lone); code != 1 || !strings.Contains(out, "row_sum") {
 		t.Errorf("--sum-tol 1e-9: exit %d, want 1 with a row_sum finding\n%s", code, out)
+	}
+}
+
+// TestCheckOptionsOfSettings: every option the words of a diagnosis, note
+// or gap name for a setting (words.Option, through internal/prose and
+// words.WithOption) is a flag of heed check.
+func TestCheckOptionsOfSettings(t *testing.T) {
+	cmd := newCheckCmd()
+	for _, s := range []string{"kind", "query_start", "compute_dtype", "sum_below", "tol"} {
+		opt := words.Option(s)
+		if opt == "" || cmd.Flags().Lookup(strings.TrimPrefix(opt, "--")) == nil {
+			t.Errorf("setting %s: option %q is not a flag of heed check", s, opt)
+		}
 	}
 }

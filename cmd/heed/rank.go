@@ -4,6 +4,7 @@ import (
 	"encoding/csv"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/heed-dev/heed/internal/words"
 	"io"
 	"math"
@@ -235,7 +236,7 @@ func (rf *rankFlags) validate(asJSON bool) error {
 // report builds heed rank's report from the pass's result.
 func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []string) (*rankReport, error) {
 	rep := &rankReport{Examples: res.Examples, Score: rankScore{analysis.ScoreName, analysis.ScoreDoc},
-		Warnings: append([]string{}, warnings...), Caveat: analysis.Caveat}
+		Warnings: append([]string{}, warnings...), Caveat: prose.Caveat}
 	grad := true
 	stats := analysis.Statistics()
 	for _, b := range res.Blocks {
@@ -363,7 +364,7 @@ func writeRankText(w io.Writer, rep *rankReport) {
 		}
 		fmt.Fprintf(w, "warning: %s\n", x)
 	}
-	fmt.Fprintln(w, analysis.Caveat)
+	fmt.Fprintln(w, prose.Caveat)
 }
 
 // rankFieldsDoc is the per-head field list of docs/json.md (between its

@@ -9,6 +9,7 @@ import (
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/spf13/cobra"
 )
 
@@ -145,7 +146,7 @@ func writeTraceText(w io.Writer, r *analysis.TraceResult) {
 		fmt.Fprintf(w, "%5d  %-*s  %-*s  %10s  %6s\n", t.Index, width, tok, bar, b, strconv.FormatFloat(t.Share, 'g', 4, 64), pct)
 	}
 	fmt.Fprintf(w, "summary: %s.\n", r.Summary())
-	fmt.Fprintln(w, analysis.Caveat)
+	fmt.Fprintln(w, prose.Caveat)
 }
 
 // predictedText says what the model predicted at the explained position.

@@ -130,6 +130,25 @@ func Count(n int, one, many string) string {
 	return strconv.Itoa(n) + " " + Plural(n, one, many)
 }
 
+// Option is the command-line option that gives heed a setting of the
+// engine (analysis and loader name settings, never options), "" for a
+// setting without one.
+func Option(setting string) string {
+	switch setting {
+	case "kind":
+		return "--kind"
+	case "query_start":
+		return "--query-start"
+	case "compute_dtype":
+		return "--compute-dtype"
+	case "sum_below":
+		return "--sum-below"
+	case "tol":
+		return "--tol"
+	}
+	return ""
+}
+
 // WithOption words how a person gives heed a setting it lacked: the
 // command-line option beside the export convention's way (fix, e.g. "say
 // the kind: meta blocks.decoder.kind"). Settings it does not know leave fix
@@ -138,11 +157,11 @@ func WithOption(setting, fix string) string {
 	switch setting {
 	case "kind":
 		if head, rest, ok := strings.Cut(fix, ": "); ok {
-			return head + ": --kind causal|bidirectional|cross, or " + rest
+			return head + ": " + Option(setting) + " causal|bidirectional|cross, or " + rest
 		}
-		return fix + ", or --kind causal|bidirectional|cross"
+		return fix + ", or " + Option(setting) + " causal|bidirectional|cross"
 	case "query_start":
-		return fix + ", or --query-start P"
+		return fix + ", or " + Option(setting) + " P"
 	}
 	return fix
 }
