@@ -22,12 +22,14 @@ var allowed = map[string][]string{
 	"internal/kernels": {},
 	"views":            {},
 	"analysis":         {"loader", "internal/bigmem", "internal/words", "internal/kernels"},
+	"analysis/trace":   {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
+	"analysis/plan":    {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"picture":          {"views"},
-	"tui":              {"analysis", "loader", "views", "internal/bigmem", "internal/words"},
+	"tui":              {"analysis", "analysis/trace", "analysis/plan", "loader", "views", "internal/bigmem", "internal/words"},
 	"share":            {},
 	"demo":             {},
 	"python":           {},
-	"cmd/heed":         {"analysis", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem"},
+	"cmd/heed":         {"analysis", "analysis/trace", "analysis/plan", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem"},
 }
 
 func TestImportDirection(t *testing.T) {
