@@ -192,12 +192,7 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		locStr = l.String()
 	}
 	name := strings.Join(set.Examples[0], " ")
-	out := renderOutput{format: format, opt: picture.Options{
-		Dark:        dark,
-		Title:       fmt.Sprintf("heed · %s · %s · %s", rf.screen, locStr, scr.what),
-		Description: "heed " + versionString() + " render of " + name,
-		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, locStr, rf.screen, versionString()),
-	}}
+	out := renderOutput{format: format, dark: dark, screen: rf.screen, what: scr.what, name: name}
 	shot := screenShot{m: m, scr: scr, w: w, h: h}
 	st := views.NewStyles(profile, dark, cm)
 	if figure {
@@ -208,7 +203,8 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 	if err != nil {
 		return err
 	}
-	title := out.opt.Title
+	opt := out.options(locStr)
+	title := opt.Title
 	body = crop(body)
 	c := views.NewCanvas(max(body.W, views.StringWidth(title)), body.H+2)
 	c.Text(0, 0, title, st.Title, -1)
@@ -217,18 +213,31 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		// a picture of a screen (Findings): no cursor, no empty band
 		c = tidy(c)
 	}
-	data, err := picture.Encode(c, format, rf.colour, out.opt)
+	data, err := picture.Encode(c, format, rf.colour, opt)
 	if err != nil {
 		return err
 	}
 	return picture.WriteFile(rf.out, data, rf.force)
 }
 
-// renderOutput is the picture heed render writes: its format and what it
-// says about itself (title, description, marker).
+// renderOutput is the picture heed render writes: its format and look
+// (dark), and what it says about itself: the screen (--screen) and what it
+// shows, and the names of the inputs.
 type renderOutput struct {
-	format picture.Format
-	opt    picture.Options
+	format             picture.Format
+	dark               bool
+	screen, what, name string
+}
+
+// options are the picture's title, description and marker when it shows
+// location loc.
+func (o renderOutput) options(loc string) picture.Options {
+	return picture.Options{
+		Dark:        o.dark,
+		Title:       fmt.Sprintf("heed · %s · %s · %s", o.screen, loc, o.what),
+		Description: "heed " + versionString() + " render of " + o.name,
+		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, loc, o.screen, versionString()),
+	}
 }
 
 // screenShot is a screen of the TUI's model drawn with a body of w x h
@@ -384,7 +393,8 @@ func renderFigure(ctx context.Context, set *loader.Set, shot screenShot, rf *ren
 	if err != nil {
 		return err
 	}
-	data, err := picture.EncodeFigure(fig, out.format, out.opt)
+	// the figure may name the location more exactly (a trace: the query it explains)
+	data, err := picture.EncodeFigure(fig, out.format, out.options(env.locStr))
 	if err != nil {
 		return err
 	}
