@@ -32,27 +32,3 @@ func ExampleAnalyze() {
 	// causal leak in layers [0 1], heads [0 1 2 3], offset +1, worst at decoder:L0:H0:B1:q1:k2
 	// mask_shifted
 }
-
-// Explain one query position by attention rollout.
-func ExampleTrace() {
-	ex, err := loader.Open([]string{"../testdata/cases/shift_good.npz"}, loader.NewOptions())
-	if err != nil {
-		fmt.Println(err)
-		return
-	}
-	defer ex.Close()
-	r, err := analysis.Trace(context.Background(), ex, analysis.TraceOptions{Method: analysis.MethodRollout, Query: 3})
-	if err != nil {
-		fmt.Println(err)
-		return
-	}
-	var sum float64
-	for _, t := range r.Tokens {
-		sum += t.Share
-	}
-	fmt.Printf("%s query %d: %d tokens, shares sum to %.3f, normalised %v\n", r.Block, r.Query, len(r.Tokens), sum, r.Normalised)
-	fmt.Println("key 4 is", r.Tokens[4].Status)
-	// Output:
-	// decoder query 3: 12 tokens, shares sum to 1.000, normalised true
-	// key 4 is future
-}

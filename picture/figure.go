@@ -80,15 +80,23 @@ func (f *Figure) Frame(x, y, w, h float64, c views.Colour) {
 	}
 }
 
+// TextStyle is how a text run is set: its size in pixels per em, its face
+// and its colour.
+type TextStyle struct {
+	Size   float64
+	Face   Face
+	Colour views.Colour
+}
+
 // Text writes s with its baseline through (x, y), turned by angle degrees
 // counter-clockwise about that point (90 reads upwards), anchored there by
-// its start, middle or end.
-func (f *Figure) Text(s string, x, y, size, angle float64, anchor Anchor, face Face, c views.Colour) {
+// its start, middle or end, set in ts.
+func (f *Figure) Text(s string, x, y, angle float64, anchor Anchor, ts TextStyle) {
 	s = printable(s)
 	if strings.TrimSpace(s) == "" {
 		return
 	}
-	f.items = append(f.items, figItem{x: x, y: y, text: s, size: size, angle: angle, anchor: anchor, face: face, c: c})
+	f.items = append(f.items, figItem{x: x, y: y, text: s, size: ts.Size, angle: angle, anchor: anchor, face: ts.Face, c: ts.Colour})
 	f.text = append(f.text, s)
 }
 

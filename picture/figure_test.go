@@ -289,7 +289,7 @@ func TestSurveyFigure(t *testing.T) {
 func TestFigureRotatedText(t *testing.T) {
 	box := func(angle float64) image.Rectangle {
 		f := NewFigure(200, 200, false)
-		f.Text("heed heed", 100, 100, 15, angle, Middle, Regular, views.RGB(0, 0, 0))
+		f.Text("heed heed", 100, 100, angle, Middle, TextStyle{15, Regular, views.RGB(0, 0, 0)})
 		img, err := f.Image()
 		if err != nil {
 			t.Fatal(err)

@@ -135,7 +135,7 @@ func MapFigure(d *views.MapData, o MapFigureOptions) (*Figure, error) {
 			face, c = Bold, k.title
 		}
 		y := gridY + (float64(q-q0)+0.5)*cell + 0.35*font
-		f.Text(label(d.QueryTokens, q), gridX-6, y, font, 0, End, face, c)
+		f.Text(label(d.QueryTokens, q), gridX-6, y, 0, End, TextStyle{font, face, c})
 	}
 	// key labels under their columns, reading upwards
 	for kk := k0; kk < k1; kk++ {
@@ -147,12 +147,12 @@ func MapFigure(d *views.MapData, o MapFigureOptions) (*Figure, error) {
 			face, c = Bold, k.title
 		}
 		x := gridX + (float64(kk-k0)+0.5)*cell + 0.35*font
-		f.Text(label(d.KeyTokens, kk), x, gridY+gridH+6, font, 90, End, face, c)
+		f.Text(label(d.KeyTokens, kk), x, gridY+gridH+6, 90, End, TextStyle{font, face, c})
 	}
 	// axis titles
-	f.Text(o.QueryAxis, margin+lineSize, gridY+gridH/2, lineSize, 90, Middle, Bold, k.text)
+	f.Text(o.QueryAxis, margin+lineSize, gridY+gridH/2, 90, Middle, TextStyle{lineSize, Bold, k.text})
 	axisY := gridY + gridH + 6 + kLabelH + 8 + lineSize
-	f.Text(o.KeyAxis, gridX+gridW/2, axisY, lineSize, 0, Middle, Bold, k.text)
+	f.Text(o.KeyAxis, gridX+gridW/2, axisY, 0, Middle, TextStyle{lineSize, Bold, k.text})
 
 	// the colour bar beside the matrix
 	measure := o.Measure
@@ -160,7 +160,7 @@ func MapFigure(d *views.MapData, o MapFigureOptions) (*Figure, error) {
 		measure = d.Measure
 	}
 	barH := math.Max(120, math.Min(gridH, 360))
-	colourBar(f, k, barX, gridY, barW, barH, 0, float64(d.VMax), false, measure)
+	colourBar(f, k, barX, gridY, barW, barH, barScale{name: measure, lo: 0, hi: float64(d.VMax)})
 
 	// the legend of the marks in view
 	var sw []swatch

@@ -50,18 +50,18 @@ func newInk(st views.Styles) ink {
 func header(f *Figure, k ink, title string, lines []string, note string, w float64) float64 {
 	y := float64(margin) + titleSize
 	for _, ln := range wrapText(title, w, titleSize) {
-		f.Text(ln, margin, y, titleSize, 0, Start, Bold, k.title)
+		f.Text(ln, margin, y, 0, Start, TextStyle{titleSize, Bold, k.title})
 		y += titleSize + 6
 	}
 	for _, l := range lines {
 		for _, ln := range wrapText(l, w, lineSize) {
-			f.Text(ln, margin, y, lineSize, 0, Start, Regular, k.text)
+			f.Text(ln, margin, y, 0, Start, TextStyle{lineSize, Regular, k.text})
 			y += lineSize + 6
 		}
 	}
 	if note != "" {
 		for _, ln := range wrapText(note, w, lineSize) {
-			f.Text(ln, margin, y, lineSize, 0, Start, Bold, k.accent)
+			f.Text(ln, margin, y, 0, Start, TextStyle{lineSize, Bold, k.accent})
 			y += lineSize + 6
 		}
 	}
@@ -125,11 +125,21 @@ func cut(s string, n int) string {
 	return b.String() + "…"
 }
 
+// barScale is what a colour bar says: the name of what the colour means,
+// the values at its low and high ends, and whether it runs over the
+// logarithm (then, with hi > 0, its ticks are views.LogDecades below hi).
+type barScale struct {
+	name     string
+	lo, hi   float64
+	logScale bool
+}
+
 // colourBar draws a vertical colour bar of the colormap at (x, y), w x h,
-// high values on top, with ticks at lo, the middle and hi, and the name of
-// what the colour means beside it, turned to read upwards. It returns the
-// x right of it.
-func colourBar(f *Figure, k ink, x, y, w, h float64, lo, hi float64, logScale bool, name string) float64 {
+// high values on top, with ticks at sc's low end, middle and high end, and
+// sc's name beside it, turned to read upwards. It returns the x right of
+// it.
+func colourBar(f *Figure, k ink, x, y, w, h float64, sc barScale) float64 {
+	name, lo, hi, logScale := sc.name, sc.lo, sc.hi, sc.logScale
 	steps := int(h)
 	for i := 0; i < steps; i++ {
 		t := 1 - (float64(i)+0.5)/float64(steps)
@@ -145,11 +155,11 @@ func colourBar(f *Figure, k ink, x, y, w, h float64, lo, hi float64, logScale bo
 		ty := y + h*float64(i)/2
 		f.Rect(x+w, ty-0.5, 4, 1, k.faint)
 		s := views.FormatValue(v)
-		f.Text(s, x+w+7, ty+0.35*smallSize, smallSize, 0, Start, Regular, k.text)
+		f.Text(s, x+w+7, ty+0.35*smallSize, 0, Start, TextStyle{smallSize, Regular, k.text})
 		tw = math.Max(tw, TextWidth(s, smallSize))
 	}
 	nx := x + w + 7 + tw + 8 + lineSize
-	f.Text(name, nx-0.3*lineSize, y+h/2, lineSize, 90, Middle, Regular, k.text)
+	f.Text(name, nx-0.3*lineSize, y+h/2, 90, Middle, TextStyle{lineSize, Regular, k.text})
 	return nx + 4
 }
 
@@ -175,7 +185,7 @@ func legend(f *Figure, k ink, x, y, w float64, sw []swatch) float64 {
 		} else {
 			f.Rect(x, y-11, 13, 13, s.c)
 		}
-		f.Text(s.text, x+19, y, smallSize, 0, Start, Regular, k.text)
+		f.Text(s.text, x+19, y, 0, Start, TextStyle{smallSize, Regular, k.text})
 		x += need
 	}
 	return y + 10

@@ -76,7 +76,7 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 	}
 	top := header(f, k, o.Title, lines, "", w-2*margin)
 	// head indices over the columns, the axis title over them
-	f.Text("head", gridX+gridW/2, top+lineSize, lineSize, 0, Middle, Bold, k.text)
+	f.Text("head", gridX+gridW/2, top+lineSize, 0, Middle, TextStyle{lineSize, Bold, k.text})
 	gridY := top + lineSize + 10 + labelFont + 8
 	for h := 0; h < d.Heads; h++ {
 		if h%every != 0 && h != o.Head {
@@ -86,9 +86,9 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 		if h == o.Head {
 			face, c = Bold, k.title
 		}
-		f.Text(strconv.Itoa(h), gridX+(float64(h)+0.5)*cell, gridY-6, labelFont, 0, Middle, face, c)
+		f.Text(strconv.Itoa(h), gridX+(float64(h)+0.5)*cell, gridY-6, 0, Middle, TextStyle{labelFont, face, c})
 	}
-	f.Text("layer", margin+lineSize, gridY+gridH/2, lineSize, 90, Middle, Bold, k.text)
+	f.Text("layer", margin+lineSize, gridY+gridH/2, 90, Middle, TextStyle{lineSize, Bold, k.text})
 	alarm := k.st.Colormap.Alarm
 	marked := false
 	for l := 0; l < d.Layers; l++ {
@@ -98,7 +98,7 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 			if l == o.Layer {
 				face, c = Bold, k.title
 			}
-			f.Text("L"+strconv.Itoa(l), gridX-8, y+cell/2+0.35*labelFont, labelFont, 0, End, face, c)
+			f.Text("L"+strconv.Itoa(l), gridX-8, y+cell/2+0.35*labelFont, 0, End, TextStyle{labelFont, face, c})
 		}
 		for h := 0; h < d.Heads; h++ {
 			i := l*d.Heads + h
@@ -121,7 +121,7 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 				if col.Luma() < 0.18 {
 					ink = views.RGB(255, 255, 255)
 				}
-				f.Text(views.FormatValue(v), x+cell/2, y+cell/2+0.35*smallSize, smallSize, 0, Middle, Regular, ink)
+				f.Text(views.FormatValue(v), x+cell/2, y+cell/2+0.35*smallSize, 0, Middle, TextStyle{smallSize, Regular, ink})
 			}
 		}
 	}
@@ -144,9 +144,9 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 	}
 	barH := math.Max(120, math.Min(gridH, 360))
 	if d.Log {
-		colourBar(f, k, barX, gridY, barW, barH, hi*math.Pow(10, -views.LogDecades), hi, true, bar)
+		colourBar(f, k, barX, gridY, barW, barH, barScale{name: bar, lo: hi * math.Pow(10, -views.LogDecades), hi: hi, logScale: true})
 	} else {
-		colourBar(f, k, barX, gridY, barW, barH, lo, hi, false, bar)
+		colourBar(f, k, barX, gridY, barW, barH, barScale{name: bar, lo: lo, hi: hi})
 	}
 	y := gridY + math.Max(gridH, barH) + 14
 	var sw []swatch

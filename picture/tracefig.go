@@ -87,7 +87,7 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 			}
 		}
 		px := x0 + float64(i)*panelW
-		f.Text(m.Name, px, y+lineSize, lineSize+1, 0, Start, Bold, k.text)
+		f.Text(m.Name, px, y+lineSize, 0, Start, TextStyle{lineSize + 1, Bold, k.text})
 		yy := y + lineSize + 6
 		var words string
 		switch {
@@ -109,12 +109,12 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 		}
 		for _, ln := range wrapText(words, panelW-16, smallSize) {
 			yy += smallSize + 4
-			f.Text(ln, px, yy, smallSize, 0, Start, Regular, k.faint)
+			f.Text(ln, px, yy, 0, Start, TextStyle{smallSize, Regular, k.faint})
 		}
 		headH = math.Max(headH, yy-y)
 	}
 	y += headH + 10
-	f.Text("token position", x0-12, y-4, smallSize, 0, End, Bold, k.text)
+	f.Text("token position", x0-12, y-4, 0, End, TextStyle{smallSize, Bold, k.text})
 
 	// one row an input token; a run of keys the query may not see, where
 	// nothing leaked, is one row
@@ -147,8 +147,8 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 				msg += fmt.Sprintf(" (yet %s %s reaches it: a leak)", d.Methods[0].Name, strconv.FormatFloat(d.Methods[0].Shares[p], 'g', 3, 64))
 				col = k.bad
 			}
-			f.Text(lbl, x0-12, base, font, 0, End, Regular, k.label)
-			f.Text(msg, x0, base, font, 0, Start, Regular, col)
+			f.Text(lbl, x0-12, base, 0, End, TextStyle{font, Regular, k.label})
+			f.Text(msg, x0, base, 0, Start, TextStyle{font, Regular, col})
 			p = e
 			continue
 		}
@@ -156,7 +156,7 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 		if p == d.Query {
 			face, c = Bold, k.title
 		}
-		f.Text(label(d.Tokens, p), x0-12, base, font, 0, End, face, c)
+		f.Text(label(d.Tokens, p), x0-12, base, 0, End, TextStyle{font, face, c})
 		for i, m := range d.Methods {
 			if len(m.Shares) > 0 {
 				f.Rect(x0+float64(i)*panelW-1, ry, 1, rowH, k.rule) // the zero line
@@ -184,7 +184,7 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 			if !math.IsNaN(pct) {
 				s = strconv.FormatFloat(pct*100, 'f', 1, 64) + "%"
 			}
-			f.Text(s, px+barW+6, base, font, 0, Start, Regular, k.text)
+			f.Text(s, px+barW+6, base, 0, Start, TextStyle{font, Regular, k.text})
 		}
 		p++
 	}

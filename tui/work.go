@@ -13,6 +13,7 @@ import (
 
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/trace"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/views"
 )
@@ -41,7 +42,7 @@ type traceKey struct{ block, batch, query int }
 type traceMsg struct {
 	key     traceKey
 	data    *views.TraceData
-	results map[analysis.Method]error
+	results map[trace.Method]error
 }
 
 // job is one background computation with its progress channel.
@@ -145,18 +146,18 @@ func compareHeads(j *job, set *loader.Set, blockName string, batch int) ([]views
 }
 
 // traceMethods are the methods the Trace screen shows, in column order.
-var traceMethods = []analysis.Method{analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad}
+var traceMethods = []trace.Method{trace.MethodRollout, trace.MethodFlow, trace.MethodGrad}
 
 // traceNote words a method's error for the Trace screen, which shows every
 // method side by side: where analysis refuses attention flow (heed trace
 // suggests another --method) it points to the other columns.
 func traceNote(err error) string {
-	var big *analysis.FlowTooLargeError
+	var big *trace.FlowTooLargeError
 	switch {
-	case errors.Is(err, analysis.ErrFlowCross):
+	case errors.Is(err, trace.ErrFlowCross):
 		return "defined for self-attention stacks only; see the rollout and grad columns"
 	case errors.As(err, &big):
-		return fmt.Sprintf("too large here (layers*n^3 = %d > %d); see the rollout column", big.Work, analysis.FlowLimit)
+		return fmt.Sprintf("too large here (layers*n^3 = %d > %d); see the rollout column", big.Work, trace.FlowLimit)
 	}
 	return err.Error()
 }
@@ -164,7 +165,7 @@ func traceNote(err error) string {
 // runTrace explains one query position with every method, with its own export.
 func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string, hasGrad bool) tea.Cmd {
 	return func() tea.Msg {
-		msg := traceMsg{key: k, results: map[analysis.Method]error{}}
+		msg := traceMsg{key: k, results: map[trace.Method]error{}}
 		ex, err := set.Open(0)
 		if err != nil {
 			msg.data = &views.TraceData{Block: blockName, Query: k.query, Note: err.Error()}
@@ -182,7 +183,7 @@ func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string
 
 // TraceData explains query q of block blockName (batch item batch) with
 // every method the Trace screen shows, as the screen's input: the one
-// place that turns analysis.Trace's results into views.TraceData (heed
+// place that turns trace.Trace's results into views.TraceData (heed
 // render's trace figure uses it too). A method that cannot explain the
 // query gets a note; err is only the context's.
 func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, q int) (*views.TraceData, error) {
@@ -197,12 +198,12 @@ func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, 
 	}
 	for _, m := range traceMethods {
 		tm := views.TraceMethod{Name: string(m)}
-		if m == analysis.MethodGrad && !blk.HasGrad {
+		if m == trace.MethodGrad && !blk.HasGrad {
 			tm.Note = "needs " + blockName + "/grad in the export"
 			td.Methods = append(td.Methods, tm)
 			continue
 		}
-		res, err := analysis.Trace(ctx, ex, analysis.TraceOptions{Method: m, Block: blockName, Batch: batch, Query: q})
+		res, err := trace.Trace(ctx, ex, trace.Options{Method: m, Block: blockName, Batch: batch, Query: q})
 		if err != nil {
 			if ctx.Err() != nil {
 				return nil, ctx.Err()
@@ -247,7 +248,7 @@ func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, 
 		// unnormalised shares (flow, grad, rollout through
 		// cross-attention) show as % of their total (views.TraceMethod)
 		tm.Normalised = res.Normalised
-		if m == analysis.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
+		if m == trace.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
 			tm.Note = "relevance the layers add (R less its identity start)"
 		}
 		td.Methods = append(td.Methods, tm)
@@ -259,7 +260,7 @@ func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, 
 }
 
 // predictedWords says what the model predicted at the traced position.
-func predictedWords(p analysis.Prediction) string {
+func predictedWords(p trace.Prediction) string {
 	switch p.From {
 	case "logits":
 		tok := fmt.Sprintf("index %d", p.ID)

@@ -303,20 +303,25 @@ func Downsample(d *MapData, q0, k0, rows, cols, block int, agg Agg) *Pixels {
 	rows, cols = max(rows, 0), max(cols, 0)
 	p := &Pixels{Rows: rows, Cols: cols, Q0: q0, K0: k0, Block: block,
 		Weight: make([]float32, rows*cols), Forbid: make([]float32, rows*cols), Rule: make([]string, rows*cols), Kind: make([]uint8, rows*cols)}
-	kEnd := min(k0+cols*block, d.K) // the window's keys are [k0, kEnd)
-	cells := rows * block * (kEnd - k0)
+	cells := rows * block * (p.keyEnd(d) - k0)
 	if d.RowRuns == nil && d.Rule != nil {
 		cells = 0 // Rule need not be safe to call from several goroutines
 	}
 	// pixel rows in chunks over the processors: each pixel depends on its
 	// own cells only, so the pixels are the same whatever the split
-	inChunks(rows, cells, func(lo, hi int) { downsampleRows(d, p, lo, hi, q0, k0, kEnd, block, agg) })
+	inChunks(rows, cells, func(lo, hi int) { downsampleRows(d, p, lo, hi, agg) })
 	return p
 }
 
-// downsampleRows fills pixel rows [lo, hi) of p (see Downsample).
-func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg Agg) {
+// keyEnd is the end of the keys p covers: its window is keys [K0, keyEnd)
+// of d.
+func (p *Pixels) keyEnd(d *MapData) int { return min(p.K0+p.Cols*p.Block, d.K) }
+
+// downsampleRows fills pixel rows [lo, hi) of p (see Downsample), whose
+// window (Q0, K0, Block, Cols) says which cells they cover.
+func downsampleRows(d *MapData, p *Pixels, lo, hi int, agg Agg) {
 	cols := p.Cols
+	q0, k0, kEnd, block := p.Q0, p.K0, p.keyEnd(d), p.Block
 	sum := make([]float64, cols)
 	cnt := make([]int32, cols)
 	// forbidden cells and padding cells of each pixel of the row, for Kind
@@ -395,8 +400,8 @@ func downsampleRows(d *MapData, p *Pixels, lo, hi, q0, k0, kEnd, block int, agg 
 			}
 			switch {
 			case d.RowRuns != nil:
-				markRuns(d, p, row, raw, q, base, k0, kEnd, block)
-				countRuns(d, q, k0, kEnd, block, nForbid, nPad)
+				markRuns(d, p, row, raw, q, base)
+				countRuns(d, p, q, nForbid, nPad)
 			case d.Rule != nil:
 				for k := k0; k < kEnd; k++ {
 					if r := d.Rule(q, k); r != "" {
@@ -469,8 +474,10 @@ func nextNonzero16(raw []uint16, k, end int) int {
 
 // markRuns marks the pixels of row q (pixel row starting at base) that hold
 // a forbidden cell above the tolerance, from the row's runs (MapData.RowRuns):
-// from row, or from raw through the table when the row is patterns.
-func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base, k0, kEnd, block int) {
+// from row, or from raw through the table when the row is patterns. The
+// keys are those of p's window.
+func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base int) {
+	k0, kEnd, block := p.K0, p.keyEnd(d), p.Block
 	ends, rules := d.RowRuns(q)
 	a := 0
 	for j, e := range ends {
@@ -501,10 +508,11 @@ func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base, k0, k
 	}
 }
 
-// countRuns adds, per pixel column of the window [k0, kEnd), the cells of
-// row q that a rule forbids (nForbid) and those forbidden as padding keys
-// (nPad), from the row's runs.
-func countRuns(d *MapData, q, k0, kEnd, block int, nForbid, nPad []int32) {
+// countRuns adds, per pixel column of p's window, the cells of row q that a
+// rule forbids (nForbid) and those forbidden as padding keys (nPad), from
+// the row's runs.
+func countRuns(d *MapData, p *Pixels, q int, nForbid, nPad []int32) {
+	k0, kEnd, block := p.K0, p.keyEnd(d), p.Block
 	ends, rules := d.RowRuns(q)
 	a := 0
 	for j, e := range ends {
@@ -795,14 +803,8 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 		return c
 	}
 	vmax := d.vmax(opt.HideSink)
-	cq, ck := max(0, min(opt.CursorQ, d.Q-1)), max(l.KeyStart, min(opt.CursorK, d.K-1))
-	cpr, cpc := -1, -1
-	if cq >= l.Q0 && ck >= l.K0 {
-		cpr, cpc = (cq-l.Q0)/l.Block, (ck-l.K0)/l.Block
-		if cpr >= px.Rows || cpc >= px.Cols {
-			cpr, cpc = -1, -1
-		}
-	}
+	cur := cursorOf(d, px, l, opt)
+	cpr, cpc := cur.pr, cur.pc
 	colourOf := func(pr, pc int) Colour {
 		w, f, _ := px.At(pr, pc)
 		return pixelColour(st, w, f, px.Kind[pr*px.Cols+pc], ScaleValue(w, vmax, opt.Scale))
@@ -882,9 +884,29 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 	}
 	drawKeyHeader(c, d, l, cpc, st)
 	drawQueryLabels(c, d, l, cpr, st)
-	drawReadout(c, d, px, l, cq, ck, cpr, cpc, st)
-	drawMapLegend(c, 0, l.H-1, l.W, d.Measure, vmax, opt, l, px.present(), st)
+	drawReadout(c, d, px, l, cur, st)
+	drawMapLegend(c, l, mapLegend{measure: d.Measure, vmax: vmax, has: px.present()}, opt, st)
 	return c
+}
+
+// mapCursor is where the Map's cursor is: its cell (q, k), clamped to the
+// matrix, and the pixel (pr, pc) that holds it, (-1, -1) when that cell is
+// outside the window drawn.
+type mapCursor struct {
+	q, k   int
+	pr, pc int
+}
+
+// cursorOf places opt's cursor on d and on the pixels px of layout l.
+func cursorOf(d *MapData, px *Pixels, l MapLayout, opt MapOptions) mapCursor {
+	cur := mapCursor{q: max(0, min(opt.CursorQ, d.Q-1)), k: max(l.KeyStart, min(opt.CursorK, d.K-1)), pr: -1, pc: -1}
+	if cur.q >= l.Q0 && cur.k >= l.K0 {
+		cur.pr, cur.pc = (cur.q-l.Q0)/l.Block, (cur.k-l.K0)/l.Block
+		if cur.pr >= px.Rows || cur.pc >= px.Cols {
+			cur.pr, cur.pc = -1, -1
+		}
+	}
+	return cur
 }
 
 func drawKeyHeader(c *Canvas, d *MapData, l MapLayout, cpc int, st Styles) {
@@ -1022,7 +1044,11 @@ func quoteTok(t string) string {
 	return " \"" + t + "\""
 }
 
-func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cq, ck, cpr, cpc int, st Styles) {
+// drawReadout writes what the cursor's cell holds on the layout's last line
+// but one: its query and key with their tokens, its weight and the rule that
+// forbids it, and, zoomed out, its pixel.
+func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cur mapCursor, st Styles) {
+	cq, ck, cpr, cpc := cur.q, cur.k, cur.pr, cur.pc
 	y := l.H - 2
 	x := 0
 	put := func(s string, style Style) {
@@ -1064,8 +1090,6 @@ func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cq, ck, cpr, cp
 	}
 }
 
-// drawMapLegend writes the colour scale, the aggregation, the zoom and the
-// meaning of the special colours or glyphs on line y.
 // present says which kinds of pixel are in px: masked, padding, NaN,
 // allowed with weight 0.
 func (p *Pixels) present() (has map[string]bool) {
@@ -1087,7 +1111,19 @@ func (p *Pixels) present() (has map[string]bool) {
 	return has
 }
 
-func drawMapLegend(c *Canvas, x, y, w int, measure string, vmax float32, opt MapOptions, l MapLayout, has map[string]bool, st Styles) {
+// mapLegend is what the Map's legend explains: the measure drawn, the weight
+// at the top of the colour scale and the kinds of pixel in view (present).
+type mapLegend struct {
+	measure string
+	vmax    float32
+	has     map[string]bool
+}
+
+// drawMapLegend writes the colour scale, the aggregation, the zoom and the
+// meaning of the special colours or glyphs on the layout's last line.
+func drawMapLegend(c *Canvas, l MapLayout, lg mapLegend, opt MapOptions, st Styles) {
+	x, y, w := 0, l.H-1, l.W
+	measure, vmax, has := lg.measure, lg.vmax, lg.has
 	if measure == "" {
 		measure = "weight"
 	}

@@ -79,27 +79,31 @@ func (l SurveyLayout) HeadAt(x, y int) (layer, head int, ok bool) {
 // GlyphMark marks a head with forbidden mass on the Survey.
 const GlyphMark = '!'
 
-func (d *SurveyData) scale() (lo, hi float64) {
+// surveyHead is one head of the grid: its layer and its index in the layer.
+type surveyHead struct{ layer, head int }
+
+func (d *SurveyData) scale() valueRange {
 	if d.Lo < d.Hi {
-		return d.Lo, d.Hi
+		return valueRange{d.Lo, d.Hi}
 	}
-	lo, hi = math.Inf(1), math.Inf(-1)
+	lo, hi := math.Inf(1), math.Inf(-1)
 	for _, v := range d.Values {
 		if !math.IsNaN(v) && !math.IsInf(v, 0) {
 			lo, hi = math.Min(lo, v), math.Max(hi, v)
 		}
 	}
 	if lo > hi {
-		return 0, 1
+		return valueRange{0, 1}
 	}
 	if lo == hi {
-		return lo, lo + 1
+		return valueRange{lo, lo + 1}
 	}
-	return lo, hi
+	return valueRange{lo, hi}
 }
 
-// frac places v on the colour scale [0, 1].
-func (d *SurveyData) frac(v, lo, hi float64) float64 {
+// frac places v on the colour scale [0, 1] over r.
+func (d *SurveyData) frac(v float64, r valueRange) float64 {
+	lo, hi := r.lo, r.hi
 	if math.IsNaN(v) {
 		return 0
 	}
@@ -133,14 +137,16 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	if d.Layers <= 0 || d.Heads <= 0 {
 		return c, l
 	}
-	lo, hi := d.scale()
+	sc := d.scale()
+	lo, hi := sc.lo, sc.hi
 	footer := 5
 	var y int
+	cur := surveyHead{layer, head}
 	if d.Order != nil {
-		l = surveyList(c, d, w, h-footer, layer, head, lo, hi, st)
+		l = surveyList(c, d, w, h-footer, cur, sc, st)
 		y = l.ListY + l.ListRows + 1
 	} else {
-		l = surveyGrid(c, d, w, h-footer, layer, head, lo, hi, st)
+		l = surveyGrid(c, d, w, h-footer, cur, sc, st)
 		rows := l.Rows
 		if l.Pair {
 			rows = ceilDiv(rows, 2)
@@ -158,7 +164,7 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	if d.Log {
 		legendLo = hi * math.Pow(10, -LogDecades)
 	}
-	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), name, legendLo, hi, st)
+	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), legendScale{name, valueRange{legendLo, hi}}, st)
 	for _, v := range d.Values {
 		if math.IsNaN(v) {
 			what := "   blank: not defined for that head"
@@ -198,8 +204,10 @@ func markStyle(st Styles, _ Colour) Style {
 	return Style{FG: contrast(st.Colormap.Alarm), BG: st.Colormap.Alarm, Attr: Bold}
 }
 
-// surveyGrid draws the grid in the top h lines.
-func surveyGrid(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64, st Styles) SurveyLayout {
+// surveyGrid draws the grid in the top h lines, with the cursor on cur and
+// colours over sc.
+func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc valueRange, st Styles) SurveyLayout {
+	layer, head := cur.layer, cur.head
 	var l SurveyLayout
 	labelW := 1 + digits(d.Layers-1)
 	avail := w - labelW - 1
@@ -258,7 +266,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64,
 	c.Text(0, 1, padLeft("H", labelW), st.Faint, -1)
 	colour := func(ll, hh int) (Colour, float64) {
 		v := d.Values[ll*d.Heads+hh]
-		t := d.frac(v, lo, hi)
+		t := d.frac(v, sc)
 		return st.Colormap.At(t), t
 	}
 	lines = l.Rows
@@ -308,7 +316,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64,
 				}
 				continue
 			}
-			surveyCell(c, d, x, l.GridY+r, l.CellW, la, hh, la == layer && hh == head, lo, hi, st)
+			surveyCell(c, d, cellPlace{x, l.GridY + r, l.CellW}, surveyHead{la, hh}, la == layer && hh == head, sc, st)
 		}
 	}
 	return l
@@ -334,12 +342,16 @@ func glyphsOf(cw int) int {
 	return cw
 }
 
-// surveyCell draws one head's cell of width cw (a gap column included when
-// cw >= 3).
-func surveyCell(c *Canvas, d *SurveyData, x, y, cw, ll, hh int, cur bool, lo, hi float64, st Styles) {
-	i := ll*d.Heads + hh
+// cellPlace is where a cell of the grid goes: its first column x, its line
+// y and its width w in columns (a gap column included when w >= 3).
+type cellPlace struct{ x, y, w int }
+
+// surveyCell draws head hd's cell at at; cur says the cursor is on it.
+func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool, sc valueRange, st Styles) {
+	x, y, cw := at.x, at.y, at.w
+	i := hd.layer*d.Heads + hd.head
 	v := d.Values[i]
-	t := d.frac(v, lo, hi)
+	t := d.frac(v, sc)
 	col := st.Colormap.At(t)
 	mark := d.marked(i)
 	glyphs := glyphsOf(cw)
@@ -402,8 +414,10 @@ func surveyCell(c *Canvas, d *SurveyData, x, y, cw, ll, hh int, cur bool, lo, hi
 	}
 }
 
-// surveyList draws the heads in d.Order as a ranked list in the top h lines.
-func surveyList(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64, st Styles) SurveyLayout {
+// surveyList draws the heads in d.Order as a ranked list in the top h
+// lines, with the cursor on hd and bars over sc.
+func surveyList(c *Canvas, d *SurveyData, w, h int, hd surveyHead, sc valueRange, st Styles) SurveyLayout {
+	layer, head := hd.layer, hd.head
 	l := SurveyLayout{List: true, ListY: 2, order: d.Order, heads: d.Heads}
 	c.Text(0, 1, "  rank  layer  head  value", st.Faint, -1)
 	l.ListRows = max(1, min(len(d.Order), h-l.ListY))
@@ -429,7 +443,7 @@ func surveyList(c *Canvas, d *SurveyData, w, h, layer, head int, lo, hi float64,
 			c.Set(x, l.ListY+r, GlyphMark, markStyle(st, NoColour))
 		}
 		x += 2
-		t := d.frac(v, lo, hi)
+		t := d.frac(v, sc)
 		n := int(math.Round(t * float64(barW)))
 		if !(t > 0) {
 			continue

@@ -15,6 +15,7 @@ import (
 	"text/tabwriter"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/plan"
 	"github.com/spf13/cobra"
 )
 
@@ -140,13 +141,13 @@ func (r *rankHead) cell(col string) string {
 
 // rankReport is the JSON of heed rank (docs/json.md).
 type rankReport struct {
-	Examples int64          `json:"examples"`
-	Metric   string         `json:"metric"`
-	Score    rankScore      `json:"score"`
-	Heads    []rankHead     `json:"heads"`
-	Plan     *analysis.Plan `json:"plan,omitempty"`
-	Warnings []string       `json:"warnings"`
-	Caveat   string         `json:"caveat"`
+	Examples int64      `json:"examples"`
+	Metric   string     `json:"metric"`
+	Score    rankScore  `json:"score"`
+	Heads    []rankHead `json:"heads"`
+	Plan     *plan.Plan `json:"plan,omitempty"`
+	Warnings []string   `json:"warnings"`
+	Caveat   string     `json:"caveat"`
 }
 
 type rankScore struct {
@@ -266,11 +267,11 @@ func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []st
 		if f.Changed("prune-frac") {
 			n = -1
 		}
-		plan, err := res.MakePlan(n, rf.pruneFrac, blocks)
+		p, err := plan.Make(res, plan.Options{Heads: n, Frac: rf.pruneFrac, Blocks: blocks})
 		if err != nil {
 			return nil, err
 		}
-		rep.Plan = plan
+		rep.Plan = p
 	}
 	sortHeads(rep.Heads, rf.sortCol)
 	if rep.Heads == nil {

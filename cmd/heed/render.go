@@ -28,12 +28,16 @@ type renderFlags struct {
 	from, to int
 }
 
-// renderScreens maps --screen to the TUI's screen and its jump key.
-var renderScreens = map[string]struct {
+// renderScreen is a screen heed render draws: the TUI's screen, its jump
+// key and what it shows (the title says it).
+type renderScreen struct {
 	index int
 	key   rune
 	what  string
-}{
+}
+
+// renderScreens maps --screen to the TUI's screen and its jump key.
+var renderScreens = map[string]renderScreen{
 	"map":      {tui.ScreenMap, '2', "attention weight"},
 	"survey":   {tui.ScreenSurvey, '1', "per-head statistics, layers × heads"},
 	"findings": {tui.ScreenFindings, '3', "mask and row checks"},
@@ -188,16 +192,19 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		locStr = l.String()
 	}
 	name := strings.Join(set.Examples[0], " ")
+	out := renderOutput{format: format, dark: dark, screen: rf.screen, what: scr.what, name: name}
+	shot := screenShot{m: m, scr: scr, w: w, h: h}
+	st := views.NewStyles(profile, dark, cm)
 	if figure {
-		return renderFigure(ctx, set, m, rf, scr.index, scr.key, scr.what, w, h, format, views.NewStyles(profile, dark, cm), locStr, name)
+		return renderFigure(ctx, set, shot, rf, st, locStr, out)
 	}
 
-	body, err := drawScreen(ctx, m, scr.index, scr.key, w, h)
+	body, err := drawScreen(ctx, shot)
 	if err != nil {
 		return err
 	}
-	st := views.NewStyles(profile, dark, cm)
-	title := fmt.Sprintf("heed · %s · %s · %s", rf.screen, locStr, scr.what)
+	opt := out.options(locStr)
+	title := opt.Title
 	body = crop(body)
 	c := views.NewCanvas(max(body.W, views.StringWidth(title)), body.H+2)
 	c.Text(0, 0, title, st.Title, -1)
@@ -206,17 +213,39 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 		// a picture of a screen (Findings): no cursor, no empty band
 		c = tidy(c)
 	}
-	opt := picture.Options{
-		Dark:        dark,
-		Title:       title,
-		Description: "heed " + versionString() + " render of " + name,
-		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, locStr, rf.screen, versionString()),
-	}
 	data, err := picture.Encode(c, format, rf.colour, opt)
 	if err != nil {
 		return err
 	}
 	return picture.WriteFile(rf.out, data, rf.force)
+}
+
+// renderOutput is the picture heed render writes: its format and look
+// (dark), and what it says about itself: the screen (--screen) and what it
+// shows, and the names of the inputs.
+type renderOutput struct {
+	format             picture.Format
+	dark               bool
+	screen, what, name string
+}
+
+// options are the picture's title, description and marker when it shows
+// location loc.
+func (o renderOutput) options(loc string) picture.Options {
+	return picture.Options{
+		Dark:        o.dark,
+		Title:       fmt.Sprintf("heed · %s · %s · %s", o.screen, loc, o.what),
+		Description: "heed " + versionString() + " render of " + o.name,
+		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, loc, o.screen, versionString()),
+	}
+}
+
+// screenShot is a screen of the TUI's model drawn with a body of w x h
+// cells.
+type screenShot struct {
+	m    *tui.Model
+	scr  renderScreen
+	w, h int
 }
 
 // blank reports whether a cell shows nothing: a space in the default colours.
@@ -277,8 +306,9 @@ func autoSize(b *loader.Block, screen string) (w, h int) {
 // jump key, and its background work (statistics, trace, comparison) runs
 // as in the terminal; when the focused screen has nothing left to wait for,
 // the program quits and the screen's cells are returned.
-func drawScreen(ctx context.Context, m *tui.Model, screen int, jump rune, w, h int) (*views.Canvas, error) {
-	rm := &renderModel{m: m, screen: screen, jump: jump}
+func drawScreen(ctx context.Context, shot screenShot) (*views.Canvas, error) {
+	m, w, h := shot.m, shot.w, shot.h
+	rm := &renderModel{m: m, screen: shot.scr.index, jump: shot.scr.key}
 	// the body gets w x h: the window has room for the TUI's chrome too
 	p := tea.NewProgram(rm, tea.WithContext(ctx), tea.WithInput(nil), tea.WithOutput(io.Discard), tea.WithoutRenderer(),
 		tea.WithoutSignalHandler(), tea.WithWindowSize(w, h+tui.ChromeLines))
@@ -333,12 +363,13 @@ func (r *renderModel) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 func (r *renderModel) View() tea.View { return r.m.View() }
 
 // renderFigure writes a PNG or SVG figure of the Map, Compare, Trace or
-// Survey (figure.go); the Survey's statistics come from the TUI's own pass.
-func renderFigure(ctx context.Context, set *loader.Set, m *tui.Model, rf *renderFlags, screen int, jump rune, what string, w, h int,
-	format picture.Format, st views.Styles, locStr, name string) error {
+// Survey (figure.go) of shot's screen at the location locStr names; the
+// Survey's statistics come from the TUI's own pass, run as shot.
+func renderFigure(ctx context.Context, set *loader.Set, shot screenShot, rf *renderFlags, st views.Styles, locStr string, out renderOutput) error {
+	m := shot.m
 	var res *analysis.Result
-	if screen == tui.ScreenSurvey {
-		if _, err := drawScreen(ctx, m, screen, jump, w, h); err != nil {
+	if shot.scr.index == tui.ScreenSurvey {
+		if _, err := drawScreen(ctx, shot); err != nil {
 			return err
 		}
 		res = m.Result()
@@ -362,13 +393,8 @@ func renderFigure(ctx context.Context, set *loader.Set, m *tui.Model, rf *render
 	if err != nil {
 		return err
 	}
-	opt := picture.Options{
-		Dark:        st.Dark,
-		Title:       fmt.Sprintf("heed · %s · %s · %s", rf.screen, env.locStr, what),
-		Description: "heed " + versionString() + " render of " + name,
-		Marker:      fmt.Sprintf("%s %s %s · heed %s", picture.MarkerPrefix, env.locStr, rf.screen, versionString()),
-	}
-	data, err := picture.EncodeFigure(fig, format, opt)
+	// the figure may name the location more exactly (a trace: the query it explains)
+	data, err := picture.EncodeFigure(fig, out.format, out.options(env.locStr))
 	if err != nil {
 		return err
 	}

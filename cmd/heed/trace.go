@@ -8,7 +8,7 @@ import (
 	"strconv"
 	"strings"
 
-	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/trace"
 	"github.com/heed-dev/heed/internal/prose"
 	"github.com/spf13/cobra"
 )
@@ -31,7 +31,7 @@ func newTraceCmd() *cobra.Command {
   rollout  attention rollout (Abnar & Zuidema 2020): shares sum to 1
   flow     attention flow (Abnar & Zuidema 2020), max-flow per input token:
            shares are flows in [0, 1], not normalised across tokens; limited
-           to layers * n^3 <= ` + fmt.Sprint(analysis.FlowLimit) + ` (n positions reachable from Q)
+           to layers * n^3 <= ` + fmt.Sprint(trace.FlowLimit) + ` (n positions reachable from Q)
   grad     gradient-weighted relevance (Chefer, Gur & Wolf 2021): needs
            BLOCK/grad, the gradient of the loss at the traced position
 For an encoder-decoder export the default block is the cross block: a target
@@ -45,8 +45,8 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 			if !cmd.Flags().Changed("query") {
 				return fmt.Errorf("--query Q is required")
 			}
-			switch analysis.Method(method) {
-			case analysis.MethodRollout, analysis.MethodFlow, analysis.MethodGrad:
+			switch trace.Method(method) {
+			case trace.MethodRollout, trace.MethodFlow, trace.MethodGrad:
 			default:
 				return fmt.Errorf("--method %q: want rollout, flow or grad", method)
 			}
@@ -62,7 +62,7 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 				return err
 			}
 			defer ex.Close()
-			res, err := analysis.Trace(cmd.Context(), ex, analysis.TraceOptions{Method: analysis.Method(method), Block: block, Batch: batch, Query: query})
+			res, err := trace.Trace(cmd.Context(), ex, trace.Options{Method: trace.Method(method), Block: block, Batch: batch, Query: query})
 			if err != nil {
 				return traceAdvice(err)
 			}
@@ -89,19 +89,19 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 // traceAdvice adds to analysis's refusals of the flow method the --method
 // to use instead (the Trace screen words them for its columns).
 func traceAdvice(err error) error {
-	var big *analysis.FlowTooLargeError
+	var big *trace.FlowTooLargeError
 	switch {
-	case errors.Is(err, analysis.ErrFlowCross):
+	case errors.Is(err, trace.ErrFlowCross):
 		return fmt.Errorf("%w; through cross-attention use --method rollout or grad", err)
 	case errors.As(err, &big):
 		return fmt.Errorf("%w: use --method rollout", err)
-	case errors.Is(err, analysis.ErrNoGrad):
+	case errors.Is(err, trace.ErrNoGrad):
 		return fmt.Errorf("%w: use --method rollout or flow, or export BLOCK/grad", err)
 	}
 	return err
 }
 
-func writeTraceText(w io.Writer, r *analysis.TraceResult) {
+func writeTraceText(w io.Writer, r *trace.Result) {
 	var top, total float64
 	width := 5
 	for _, t := range r.Tokens {
@@ -150,7 +150,7 @@ func writeTraceText(w io.Writer, r *analysis.TraceResult) {
 }
 
 // predictedText says what the model predicted at the explained position.
-func predictedText(p analysis.Prediction) string {
+func predictedText(p trace.Prediction) string {
 	switch p.From {
 	case "logits":
 		tok := fmt.Sprintf("vocabulary index %d", p.ID)

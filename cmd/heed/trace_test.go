@@ -13,7 +13,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/trace"
 	"github.com/heed-dev/heed/internal/testpy"
 )
 
@@ -101,7 +101,7 @@ func TestTraceTextUnnormalised(t *testing.T) {
 
 // TestTraceFlowAdvice: heed trace words analysis's refusals of attention
 // flow (defined by Abnar & Zuidema 2020 over a stack of self-attention
-// layers, so not through cross-attention; bounded by analysis.FlowLimit) with
+// layers, so not through cross-attention; bounded by trace.FlowLimit) with
 // the --method to use instead; analysis's own error names no flag (the Trace
 // screen words it for its columns).
 func TestTraceFlowAdvice(t *testing.T) {
@@ -112,16 +112,16 @@ func TestTraceFlowAdvice(t *testing.T) {
 	cmd.SetArgs([]string{"trace", "--query", "4", "--method", "flow", filepath.Join(casesDir, "encdec_grad.npz")})
 	err := cmd.ExecuteContext(context.Background())
 	const want = "analysis: attention flow is defined for self-attention stacks; through cross-attention use --method rollout or grad"
-	if !errors.Is(err, analysis.ErrFlowCross) || err.Error() != want || exitCode(err, false) != 2 {
+	if !errors.Is(err, trace.ErrFlowCross) || err.Error() != want || exitCode(err, false) != 2 {
 		t.Errorf("flow on a cross block: err %v (exit %d), want %q (exit 2)", err, exitCode(err, false), want)
 	}
-	if strings.Contains(analysis.ErrFlowCross.Error(), "--method") {
-		t.Errorf("analysis's error names a flag: %v", analysis.ErrFlowCross)
+	if strings.Contains(trace.ErrFlowCross.Error(), "--method") {
+		t.Errorf("analysis's error names a flag: %v", trace.ErrFlowCross)
 	}
 	// 1 layer x 600 positions: 600^3 > FlowLimit = 2^27
 	n := 600
-	_, err = analysis.Flow(context.Background(), [][]float64{make([]float64, n*n)}, n, 0)
-	var big *analysis.FlowTooLargeError
+	_, err = trace.Flow(context.Background(), [][]float64{make([]float64, n*n)}, n, 0)
+	var big *trace.FlowTooLargeError
 	if !errors.As(err, &big) || big.Layers != 1 || big.Positions != n || big.Work != int64(n*n*n) {
 		t.Fatalf("flow beyond the limit: err %v, want a *FlowTooLargeError of 1 layer x %d positions", err, n)
 	}

@@ -24,13 +24,15 @@ var allowed = map[string][]string{
 	"internal/termtest": {},
 	"views":             {},
 	"analysis":          {"loader", "internal/bigmem", "internal/words", "internal/kernels"},
+	"analysis/trace":    {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
+	"analysis/plan":     {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"internal/prose":    {"analysis", "loader", "internal/words"},
 	"picture":           {"views"},
-	"tui":               {"analysis", "loader", "views", "internal/bigmem", "internal/words", "internal/prose"},
+	"tui":               {"analysis", "analysis/trace", "analysis/plan", "loader", "views", "internal/bigmem", "internal/words", "internal/prose"},
 	"share":             {},
 	"demo":              {},
 	"python":            {},
-	"cmd/heed":          {"analysis", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem", "internal/prose"},
+	"cmd/heed":          {"analysis", "analysis/trace", "analysis/plan", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem", "internal/prose"},
 }
 
 func TestImportDirection(t *testing.T) {

@@ -88,7 +88,9 @@ type Term struct {
 }
 
 // Keys sends tmux key names (Enter, Escape, C-c, BTab...) or text.
-func (tm *Term) Keys(keys ...string) { tm.s.Tmux(append([]string{"send-keys", "-t", tm.name}, keys...)...) }
+func (tm *Term) Keys(keys ...string) {
+	tm.s.Tmux(append([]string{"send-keys", "-t", tm.name}, keys...)...)
+}
 
 // Literal types text as it is (no key names).
 func (tm *Term) Literal(text string) { tm.s.Tmux("send-keys", "-t", tm.name, "-l", text) }

@@ -1,18 +1,22 @@
-package analysis
+package plan
 
 import (
+	"context"
 	"math"
 	"path/filepath"
 	"reflect"
 	"sort"
 	"testing"
+
+	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/loader"
 )
 
-func synthResult(layers, heads, kv int, scores [][]float64, grad bool) *Result {
-	br := &BlockResult{Name: "decoder", Layers: layers, Heads: heads, KVHeads: kv, HasGrad: grad}
+func synthResult(layers, heads, kv int, scores [][]float64, grad bool) *analysis.Result {
+	br := &analysis.BlockResult{Name: "decoder", Layers: layers, Heads: heads, KVHeads: kv, HasGrad: grad}
 	for l := 0; l < layers; l++ {
 		for h := 0; h < heads; h++ {
-			hs := HeadStats{Layer: l, Head: h, Score: scores[l][h]}
+			hs := analysis.HeadStats{Layer: l, Head: h, Score: scores[l][h]}
 			hs.Importance, hs.ImportanceNorm = math.NaN(), math.NaN()
 			if grad {
 				hs.Importance = scores[l][h]
@@ -20,12 +24,12 @@ func synthResult(layers, heads, kv int, scores [][]float64, grad bool) *Result {
 			br.Stats = append(br.Stats, hs)
 		}
 	}
-	return &Result{Blocks: []*BlockResult{br}}
+	return &analysis.Result{Blocks: []*analysis.BlockResult{br}}
 }
 
 func TestPlanLowestFirstNeverWholeLayer(t *testing.T) {
 	r := synthResult(2, 3, 0, [][]float64{{0.1, 0.2, 0.3}, {0.9, 0.8, 0.7}}, true)
-	p, err := r.MakePlan(3, 0, nil)
+	p, err := Make(r, Options{Heads: 3})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -48,11 +52,11 @@ func TestPlanLowestFirstNeverWholeLayer(t *testing.T) {
 func TestPlanKVGroups(t *testing.T) {
 	// 4 query heads over 2 KV heads: groups {0,1} and {2,3}
 	r := synthResult(2, 4, 2, [][]float64{{0.1, 0.5, 0.2, 0.2}, {0.3, 0.3, 0.05, 0.9}}, false)
-	p, err := r.MakePlan(-1, 0.5, nil)
+	p, err := Make(r, Options{Heads: -1, Frac: 0.5})
 	if err != nil {
 		t.Fatal(err)
 	}
-	if p.Metric != ScoreName {
+	if p.Metric != analysis.ScoreName {
 		t.Errorf("metric without gradients = %s", p.Metric)
 	}
 	// group sums: L0 {0.6, 0.4}, L1 {0.6, 0.95}; 4 heads = two groups, one per layer at most
@@ -66,9 +70,20 @@ func TestPlanKVGroups(t *testing.T) {
 // prunes the heads with the lowest importance (Michel et al. 2019's I_h,
 // compared model-wide; docs/pruning.md says why not importance_norm).
 func TestPlanOnImportanceCase(t *testing.T) {
-	files, _ := filepath.Glob(filepath.Join(casesDir, "importance", "*.npz"))
-	res := analyzePaths(t, DefaultOptions(), files...).Result()
-	p, err := res.MakePlan(-1, 0.25, nil)
+	files, _ := filepath.Glob(filepath.Join("../../testdata/cases", "importance", "*.npz"))
+	set, err := loader.OpenSet(files, loader.NewOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	part, err := analysis.AnalyzeSet(context.Background(), set.Len(), func(i int) (*loader.Export, string, error) {
+		ex, err := set.Open(i)
+		return ex, set.Examples[i][0], err
+	}, analysis.DefaultOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	res := part.Result()
+	p, err := Make(res, Options{Heads: -1, Frac: 0.25})
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -1,10 +1,24 @@
-package analysis
+// Package plan turns the per-head results of an analysis pass
+// (analysis.Result) into a head-pruning plan: which heads to remove, lowest
+// metric first model-wide, as Michel, Levy & Neubig (2019, "Are Sixteen
+// Heads Really Better than One?", NeurIPS) rank heads by importance; never
+// every head of a layer; whole KV groups when a block has grouped-query
+// heads. The metric is the gradient importance I_h when every planned block
+// has gradients, else analysis's heuristic score (analysis.ScoreName).
+// docs/pruning.md says why the raw importance and not the normalised one.
+//
+// It owns Plan, its pruning curve and its warnings, and imports only
+// analysis; heed rank --prune prints it.
+package plan
 
 import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"sort"
+
+	"github.com/heed-dev/heed/analysis"
 )
 
 // Plan is a head-pruning plan: the heads to remove, lowest metric first
@@ -12,7 +26,7 @@ import (
 // groups when the block has grouped-query heads.
 type Plan struct {
 	// Metric is "importance" when every block planned has gradients,
-	// else ScoreName (a heuristic; see ScoreDoc).
+	// else analysis.ScoreName (a heuristic; see ScoreDoc).
 	Metric string `json:"metric"`
 	// Heads lists the pruned heads: block -> layer -> heads (ascending).
 	Heads map[string]map[int][]int `json:"heads"`
@@ -39,18 +53,28 @@ type CurvePoint struct {
 	RemovedFrac float64 `json:"removed_frac"`
 }
 
-// PlanWarnings are shown with every plan.
-var PlanWarnings = []string{
+// Warnings are shown with every plan.
+var Warnings = []string{
 	"masking a head saves no compute: the model must be rebuilt without the pruned heads (smaller projection matrices) before it is faster or smaller",
 	"this plan is a hypothesis to confirm by re-evaluating the model; Michel et al. (2019) prune in steps of 10% of the heads and re-estimate importance after each step",
 }
 
-// MakePlan plans pruning n heads (frac of all heads when n < 0) over the
-// given blocks (all when empty).
-func (r *Result) MakePlan(n int, frac float64, blocks []string) (*Plan, error) {
-	var brs []*BlockResult
+// Options say how many heads to prune and where.
+type Options struct {
+	// Heads is the number of heads to prune; when negative, Frac (in
+	// [0, 1]) of all heads of the planned blocks, rounded down.
+	Heads int
+	Frac  float64
+	// Blocks are the blocks planned over; empty means all.
+	Blocks []string
+}
+
+// Make plans pruning over the blocks of r that opt names.
+func Make(r *analysis.Result, opt Options) (*Plan, error) {
+	n, frac, blocks := opt.Heads, opt.Frac, opt.Blocks
+	var brs []*analysis.BlockResult
 	for _, b := range r.Blocks {
-		if len(blocks) == 0 || contains(blocks, b.Name) {
+		if len(blocks) == 0 || slices.Contains(blocks, b.Name) {
 			brs = append(brs, b)
 		}
 	}
@@ -65,10 +89,10 @@ func (r *Result) MakePlan(n int, frac float64, blocks []string) (*Plan, error) {
 	}
 	p := &Plan{Metric: "importance", Heads: map[string]map[int][]int{}, Total: total}
 	if !grad {
-		p.Metric = ScoreName
-		p.Warnings = append(p.Warnings, "no gradients in the export: heads are ordered by the heuristic "+ScoreDoc)
+		p.Metric = analysis.ScoreName
+		p.Warnings = append(p.Warnings, "no gradients in the export: heads are ordered by the heuristic "+analysis.ScoreDoc)
 	}
-	p.Warnings = append(p.Warnings, PlanWarnings...)
+	p.Warnings = append(p.Warnings, Warnings...)
 	target := n
 	if n < 0 {
 		if frac < 0 || frac > 1 {
@@ -158,13 +182,4 @@ func (r *Result) MakePlan(n int, frac float64, blocks []string) (*Plan, error) {
 		p.Warnings = append(p.Warnings, fmt.Sprintf("only %d of the %d heads asked for can be pruned (whole KV groups, at least one head kept per layer)", p.Pruned, target))
 	}
 	return p, nil
-}
-
-func contains(xs []string, x string) bool {
-	for _, y := range xs {
-		if y == x {
-			return true
-		}
-	}
-	return false
 }

@@ -1,4 +1,25 @@
-package analysis
+// Package trace explains a prediction: which input tokens one query
+// position of an export draws on, by propagating attention (and, where
+// exported, its gradients) through the layers. It owns the methods, their
+// building blocks and the explanation's result:
+//
+//   - attention rollout and attention flow (Abnar & Zuidema 2020,
+//     "Quantifying Attention Flow in Transformers", ACL): ResidualRows,
+//     RolloutRow, Flow;
+//   - gradient-weighted relevance and its encoder-decoder rules (Chefer, Gur
+//     & Wolf 2021, "Generic Attention-model Explainability for Interpreting
+//     Bi-Modal and Encoder-Decoder Transformers", ICCV): GradAbar,
+//     SelfRelevanceRow, NormBar, EncDecRelevance;
+//   - Trace, which picks the block, reads the layers one head at a time
+//     through loader and returns a Result: each input token's share, why a
+//     key the query may not see is marked (the mask rules of package
+//     analysis), and what the model predicted there (Predicted).
+//
+// docs/methods.md ("Explanations") states each method with its checks.
+// It reads exports through loader and asks analysis only for the mask rules
+// of a block and its cancellation error; nothing in analysis depends on it.
+// Its error messages keep the "analysis:" prefix heed has always printed.
+package trace
 
 import (
 	"context"
@@ -10,6 +31,7 @@ import (
 	"strings"
 	"sync"
 
+	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -70,8 +92,8 @@ func (e *FlowTooLargeError) Error() string {
 // which multiplies full n x n matrices per layer.
 const RelevanceLimit = 2048
 
-// TraceOptions select what Trace explains.
-type TraceOptions struct {
+// Options select what Trace explains.
+type Options struct {
 	Method Method
 	// Block is the block whose queries are explained; "" = the cross block
 	// when there is one (a target explained by source tokens), else the
@@ -108,9 +130,9 @@ type Prediction struct {
 	Prob *float64 `json:"prob,omitempty"`
 }
 
-// TraceResult is the explanation of one query position: the input tokens
+// Result is the explanation of one query position: the input tokens
 // (of the key side: source tokens through cross-attention) with their shares.
-type TraceResult struct {
+type Result struct {
 	Block  string       `json:"block"`
 	Query  int          `json:"query"`
 	Batch  int          `json:"batch"`
@@ -195,7 +217,7 @@ func Flow(ctx context.Context, layers [][]float64, n, q int) ([]float64, error) 
 	src := L*n + q
 	for j := 0; j < n; j++ {
 		if err := ctx.Err(); err != nil {
-			return nil, fmt.Errorf("%w: %w", ErrCanceled, err)
+			return nil, fmt.Errorf("%w: %w", analysis.ErrCanceled, err)
 		}
 		if src == j {
 			out[j] = 1
@@ -476,6 +498,9 @@ func noGrad(blk *loader.Block) error {
 type layerBufs struct {
 	a, g [2][]float32
 	raw  []uint16 // stored float16/bfloat16 patterns (the head mean's fast path)
+	// split is the fewest cells a processor takes in rawMean; 0 means
+	// splitCells (tests set it lower to split small heads too).
+	split int
 }
 
 // rawMean adds the heads of layer l into out (not yet divided) through
@@ -492,10 +517,14 @@ func (lb *layerBufs) rawMean(blk *loader.Block, l, batch int, out []float64) (ok
 	if err != nil || dt == loader.Invalid {
 		return false, err
 	}
-	tab := rawTablesFor(dt).Val
+	tab := loader.RawTable(dt)
 	// the cells split over the processors: each adds its own cells in
 	// head order, so the sums are the same whatever the split
-	parts := max(1, min(runtime.GOMAXPROCS(0), n/traceSplitCells))
+	split := lb.split
+	if split <= 0 {
+		split = splitCells
+	}
+	parts := max(1, min(runtime.GOMAXPROCS(0), n/split))
 	for h := 0; h < blk.Heads; h++ {
 		if h > 0 {
 			if _, err := blk.ReadRaw16(l, batch, h, lb.raw); err != nil {
@@ -608,9 +637,9 @@ func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float6
 	return out, nil
 }
 
-// traceSplitCells is the fewest cells a processor takes in rawMean (tests
-// lower it to split small heads too).
-var traceSplitCells = 1 << 16
+// splitCells is the fewest cells a processor takes in rawMean unless
+// layerBufs.split says otherwise.
+const splitCells = 1 << 16
 
 // streamRow returns row q of the product M_{L-1} ... M_0 of the layers'
 // matrices (rollout: the residual-augmented head means; grad: I + Abar),
@@ -674,7 +703,7 @@ func selfBlockOf(ex *loader.Export, side string, not *loader.Block) *loader.Bloc
 
 // Trace explains one query position of one batch item of an export with
 // the chosen method; see the Method constants for what the shares mean.
-func Trace(ctx context.Context, ex *loader.Export, opt TraceOptions) (*TraceResult, error) {
+func Trace(ctx context.Context, ex *loader.Export, opt Options) (*Result, error) {
 	var blk *loader.Block
 	if opt.Block == "" {
 		blk = defaultBlock(ex)
@@ -694,7 +723,7 @@ func Trace(ctx context.Context, ex *loader.Export, opt TraceOptions) (*TraceResu
 	if method == "" {
 		method = MethodRollout
 	}
-	res := &TraceResult{Block: blk.Name, Query: opt.Query, Batch: opt.Batch, Method: method, Side: blk.KeySide}
+	res := &Result{Block: blk.Name, Query: opt.Query, Batch: opt.Batch, Method: method, Side: blk.KeySide}
 	var shares []float64
 	var err error
 	if blk.Kind == loader.KindCross {
@@ -728,7 +757,7 @@ func Trace(ctx context.Context, ex *loader.Export, opt TraceOptions) (*TraceResu
 // Summary is one sentence on what the explanation says: the positions
 // with the largest shares among the keys the query may see, and how much
 // of the total they hold.
-func (r *TraceResult) Summary() string {
+func (r *Result) Summary() string {
 	// percentages as the columns show them: of 1 for normalised shares,
 	// of the total over the keys the query may see otherwise
 	var seenTotal, all float64
@@ -777,22 +806,22 @@ func (r *TraceResult) Summary() string {
 // not see it ("" when it may), by the block's positional and padding
 // rules (head-independent: an explicit per-head mask is not consulted).
 func keyStatus(ex *loader.Export, blk *loader.Block, batch, q int) func(k int) string {
-	r, err := BlockRules(ex, blk, nil)
+	r, err := analysis.BlockRules(ex, blk, nil)
 	if err != nil || r == nil || len(r.Active()) == 0 || !r.Judged(batch, q) {
 		return func(int) string { return "" }
 	}
-	row := make([]Rule, r.Keys)
+	row := make([]analysis.Rule, r.Keys)
 	r.Row(batch, q, nil, row)
 	return func(k int) string {
 		if k < 0 || k >= len(row) {
 			return ""
 		}
 		switch row[k] {
-		case RuleNone:
+		case analysis.RuleNone:
 			return ""
-		case RulePadding:
+		case analysis.RulePadding:
 			return "padding"
-		case RuleSegments:
+		case analysis.RuleSegments:
 			return "other document"
 		}
 		return "future"

@@ -1,15 +1,60 @@
-package analysis
+package trace
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"math"
+	"os"
 	"path/filepath"
 	"strconv"
 	"testing"
 
 	"github.com/heed-dev/heed/loader"
 )
+
+// casesDir holds the exports and the numpy / scipy references that
+// testdata/cases/gen_cases.py writes (expected.json).
+const casesDir = "../../testdata/cases"
+
+// refs are the parts of expected.json the explanations are checked against.
+type refs struct {
+	Stats struct {
+		Rollout [][]float64          `json:"rollout_batch0"`
+		Flow    map[string][]float64 `json:"flow_batch0"`
+	} `json:"stats"`
+	Importance struct {
+		Relevance [][]float64 `json:"relevance_file0_batch0"`
+	} `json:"importance"`
+	EncDec struct {
+		Target    int       `json:"target"`
+		Relevance []float64 `json:"relevance_source"`
+		Attention []float64 `json:"attention_source"`
+	} `json:"encdec"`
+}
+
+func loadRefs(t *testing.T) *refs {
+	t.Helper()
+	b, err := os.ReadFile(filepath.Join(casesDir, "expected.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var e struct {
+		Refs refs `json:"refs"`
+	}
+	if err := json.Unmarshal(b, &e); err != nil {
+		t.Fatal(err)
+	}
+	return &e.Refs
+}
+
+// near is a relative tolerance above 1 and an absolute one below.
+func near(a, b, tol float64) bool {
+	if math.IsNaN(a) || math.IsNaN(b) {
+		return math.IsNaN(a) && math.IsNaN(b)
+	}
+	return math.Abs(a-b) <= tol*math.Max(1, math.Abs(b))
+}
 
 // The worked example of docs/methods.md (derived from Abnar & Zuidema 2020's
 // definitions): A1 = [[1,0],[.5,.5]], A2 = [[1,0],[.2,.8]] give the rollout
@@ -39,7 +84,7 @@ func TestRolloutFlowWorkedExample(t *testing.T) {
 	}
 }
 
-func traceOf(t *testing.T, path string, opt TraceOptions) *TraceResult {
+func traceOf(t *testing.T, path string, opt Options) *Result {
 	t.Helper()
 	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
 	if err != nil {
@@ -61,9 +106,9 @@ func traceOf(t *testing.T, path string, opt TraceOptions) *TraceResult {
 // residual-augmented head means (gen_cases.py), and rows sum to 1; causal
 // rollout has nothing above the diagonal.
 func TestRolloutAgainstNumpy(t *testing.T) {
-	ref := loadExpected(t).Refs.Stats.Rollout
+	ref := loadRefs(t).Stats.Rollout
 	for q, want := range ref {
-		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), TraceOptions{Method: MethodRollout, Query: q})
+		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), Options{Method: MethodRollout, Query: q})
 		var sum float64
 		for i, tok := range r.Tokens {
 			sum += tok.Share
@@ -87,9 +132,9 @@ func TestRolloutAgainstNumpy(t *testing.T) {
 // on the same graph with capacities scaled to integers by 1e6 (so within
 // about edges/1e6).
 func TestFlowAgainstScipy(t *testing.T) {
-	for qs, want := range loadExpected(t).Refs.Stats.Flow {
+	for qs, want := range loadRefs(t).Stats.Flow {
 		q, _ := strconv.Atoi(qs)
-		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), TraceOptions{Method: MethodFlow, Query: q})
+		r := traceOf(t, filepath.Join(casesDir, "stats.npz"), Options{Method: MethodFlow, Query: q})
 		for i, tok := range r.Tokens {
 			if math.Abs(tok.Share-want[i]) > 2e-4 {
 				t.Errorf("flow q%d token %d = %v, want %v (scipy maximum_flow)", q, i, tok.Share, want[i])
@@ -115,9 +160,9 @@ func TestFlowLimit(t *testing.T) {
 // exported A and G, against gen_cases.py's numpy version of the same rules;
 // heed reports row q of R less R's identity start (1 at q itself).
 func TestRelevanceDecoder(t *testing.T) {
-	ref := loadExpected(t).Refs.Importance.Relevance
+	ref := loadRefs(t).Importance.Relevance
 	for q, want := range ref {
-		r := traceOf(t, filepath.Join(casesDir, "importance", "ex0.npz"), TraceOptions{Method: MethodGrad, Query: q})
+		r := traceOf(t, filepath.Join(casesDir, "importance", "ex0.npz"), Options{Method: MethodGrad, Query: q})
 		for i, tok := range r.Tokens {
 			w := want[i]
 			if i == q {
@@ -134,13 +179,13 @@ func TestRelevanceDecoder(t *testing.T) {
 // through cross-attention (Chefer et al. 2021, encoder-decoder rules), with
 // gradients and with attention only (rollout method on a cross block).
 func TestRelevanceEncoderDecoder(t *testing.T) {
-	ref := loadExpected(t).Refs.EncDec
+	ref := loadRefs(t).EncDec
 	path := filepath.Join(casesDir, "encdec_grad.npz")
 	for _, c := range []struct {
 		m    Method
 		want []float64
 	}{{MethodGrad, ref.Relevance}, {MethodRollout, ref.Attention}} {
-		r := traceOf(t, path, TraceOptions{Method: c.m, Query: ref.Target})
+		r := traceOf(t, path, Options{Method: c.m, Query: ref.Target})
 		if r.Block != "cross" || r.Side != "source" || len(r.Tokens) != len(c.want) {
 			t.Fatalf("%s: block %s side %s, %d tokens", c.m, r.Block, r.Side, len(r.Tokens))
 		}
@@ -153,10 +198,10 @@ func TestRelevanceEncoderDecoder(t *testing.T) {
 	set, _ := loader.OpenSet([]string{path}, loader.NewOptions())
 	ex, _ := set.Open(0)
 	defer ex.Close()
-	if _, err := Trace(context.Background(), ex, TraceOptions{Method: MethodFlow, Query: 0}); !errors.Is(err, ErrFlowCross) {
+	if _, err := Trace(context.Background(), ex, Options{Method: MethodFlow, Query: 0}); !errors.Is(err, ErrFlowCross) {
 		t.Errorf("flow through cross-attention: err = %v, want ErrFlowCross", err)
 	}
-	if _, err := Trace(context.Background(), ex, TraceOptions{Query: 99}); err == nil {
+	if _, err := Trace(context.Background(), ex, Options{Query: 99}); err == nil {
 		t.Error("query out of range: no error")
 	}
 }
@@ -222,9 +267,7 @@ func TestRawMeanMatchesPlainLoop(t *testing.T) {
 	if dt, err := blk.ReadRaw16(0, 0, 0, make([]uint16, n)); err != nil || dt != loader.Float16 {
 		t.Fatalf("the fixture is not read as float16 patterns: %v %v", dt, err)
 	}
-	var lb layerBufs
-	defer func(v int) { traceSplitCells = v }(traceSplitCells)
-	traceSplitCells = 7 // split even these small heads over the processors
+	lb := layerBufs{split: 7} // split even these small heads over the processors
 	for b := 0; b < blk.Batch; b++ {
 		for l := 0; l < blk.Layers; l++ {
 			want, err := headMean(blk, l, b, make([]float32, n))

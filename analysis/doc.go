@@ -1,0 +1,58 @@
+// Package analysis is heed's engine over exported attention: which keys
+// each query may see (the mask rules), the one pass that reads every head
+// once to check those rules and compute the per-head statistics, the exact
+// partial state that shards merge, what the merged state means (findings,
+// coverage, verdict, diagnoses), and the comparison of two exports. It reads
+// exports through package loader, one (layer, batch item, head) matrix at a
+// time, never prints, and takes a context and a progress callback for long
+// work. docs/methods.md states each statistic and check with its source.
+//
+// The files, by what a reader looks for:
+//
+// Rules and checks:
+//   - rules.go: Rule (the mask rules in priority order, then the row
+//     checks), Rules of one block (NewRules, BlockRules): which rule forbids
+//     each key of a query row (Rules.Row, Rules.Cell, Rules.CellRow).
+//   - cut.go: the cut check (RuleCut), a mask that blocks keys the rules
+//     allow, seen where each row's mass stops; its accumulator CutAcc.
+//   - infer.go: InferExport, a block's kind inferred from its exact zeros
+//     when nobody said it.
+//   - extent.go: LeakExtent, the bounding box of one head's leaking cells.
+//   - row.go: SummarizeRow, one query row described for a person.
+//
+// The pass and its accumulators:
+//   - pass.go: Options, Analyze, AnalyzeSet and Partial.Add; the workers,
+//     one head at a time each, and the head-pair (redundancy) pass.
+//   - rowpass.go: the per-cell loop over float32 rows, cut into runs of keys
+//     sharing a rule.
+//   - rawpass.go: the same loop over stored float16/bfloat16 patterns,
+//     through value tables, to the same bits.
+//   - lowprio_linux.go, lowprio_other.go: the workers' lower thread priority
+//     (Options.Background).
+//
+// Partial results and merge:
+//   - partial.go: Partial, its per-unit accumulators (HeadAcc, LeakAcc,
+//     GeometryAcc), Partial.Merge, DecodePartial and Validate.
+//   - exact.go: Sum, the exact, order-independent accumulator that makes
+//     shards merge to the same bits as one run.
+//
+// Results, coverage and verdict:
+//   - result.go: Partial.Result turns the state into Stats per head,
+//     Findings with their Locations, the Coverage of each block (what was
+//     judged, the Gaps and how to close them) and the Verdict.
+//
+// Diagnosis:
+//   - diagnose.go: Diagnosis, the likely bug behind findings (a pattern
+//     name, evidence, what to check in the model code), and Caveat.
+//
+// Comparing exports:
+//   - compare.go: DiffHead and CompareBlocks, how much each head changed
+//     between two exports of one shape.
+//   - invariance.go: CheckInvariance, whether outputs before a position P
+//     change when only inputs from P on differ (causal invariance).
+//
+// Below analysis, in their own packages (they import it; it imports neither):
+//   - analysis/trace: explaining a prediction by attention rollout,
+//     attention flow and gradient-weighted relevance (trace.Trace).
+//   - analysis/plan: a head-pruning plan from a Result (plan.Make).
+package analysis
