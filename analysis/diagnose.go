@@ -44,7 +44,7 @@ import (
 //	rows_not_normalised    rows do not sum to 1 (the words name the sum_below setting); same facts
 //	negative_values        negative values: scores, not probabilities; Cells, Rows, Mass, block totals
 //
-// The causal-invariance check (CheckInvariance) adds, all of rule
+// The causal-invariance check (package analysis/invariance, invariance.Check) adds, all of rule
 // invariance (Facts.Inv set):
 //
 //	reads_future [layer]   positions before P changed from this layer on: it reads the future
@@ -52,7 +52,7 @@ import (
 //	future_heads [layer]   the heads whose rows before P changed first, at that layer
 //	output_reads_future    the logits changed before P (no layer outputs to say where)
 //	rounding_level [rel]   the differences are small and scattered: maybe reduced-precision rounding
-//	                       (the words name the tol setting and InvarianceTol(bfloat16))
+//	                       (the words name the tol setting and invariance.Tol(bfloat16))
 type Diagnosis struct {
 	Pattern string `json:"pattern"`
 	Block   string `json:"block"`
@@ -398,3 +398,27 @@ func whereDiagnosis(bp *BlockPartial, f *Finding, what Diagnosis) (Diagnosis, bo
 	}
 	return d, true
 }
+
+// HeadChange is one attention head whose rows before P changed.
+type HeadChange struct {
+	Block string `json:"block"`
+	Layer int    `json:"layer"`
+	Head  int    `json:"head"`
+	Batch int    `json:"batch"`
+	// Rows are the (absolute) query positions before P whose row changed.
+	Rows []int `json:"rows"`
+	// MaxAbs is the largest |a - b| of a probability in those rows; MaxRel
+	// the largest |a - b| / (|b| + rms) (rms over the compared rows of A).
+	MaxAbs float64 `json:"max_abs"`
+	MaxRel float64 `json:"max_rel"`
+}
+
+// The diagnosis patterns of the invariance check (Diagnosis.Pattern; their
+// Value and facts are listed with Diagnosis).
+const (
+	PatReadsFuture       = "reads_future"
+	PatNotCausal         = "not_causal"
+	PatFutureHeads       = "future_heads"
+	PatOutputReadsFuture = "output_reads_future"
+	PatRoundingLevel     = "rounding_level"
+)

@@ -36,23 +36,32 @@
 //   - exact.go: Sum, the exact, order-independent accumulator that makes
 //     shards merge to the same bits as one run.
 //
+// The table of statistics:
+//   - statistic.go: Statistic, one row per per-head statistic (name, doc
+//     with its source, direction, how the Survey shows it, how it is read
+//     or computed); every output derives its columns from it; Register adds
+//     one.
+//   - extra.go: the engine for statistics declared with a row function.
+//
 // Results, coverage and verdict:
 //   - result.go: Partial.Result turns the state into Stats per head,
 //     Findings with their Locations, the Coverage of each block (what was
 //     judged, the Gaps and how to close them) and the Verdict.
 //
 // Diagnosis:
-//   - diagnose.go: Diagnosis, the likely bug behind findings (a pattern
-//     name, evidence, what to check in the model code), and Caveat.
+//   - diagnose.go: Diagnosis, the likely bug behind findings, as a pattern
+//     code (the Pat constants) and the facts its words need (Facts); the
+//     words are internal/prose's, not the engine's.
 //
 // Comparing exports:
 //   - compare.go: DiffHead and CompareBlocks, how much each head changed
 //     between two exports of one shape.
-//   - invariance.go: CheckInvariance, whether outputs before a position P
-//     change when only inputs from P on differ (causal invariance).
 //
 // Below analysis, in their own packages (they import it; it imports neither):
 //   - analysis/trace: explaining a prediction by attention rollout,
 //     attention flow and gradient-weighted relevance (trace.Trace).
 //   - analysis/plan: a head-pruning plan from a Result (plan.Make).
+//   - analysis/invariance: the causal-invariance check (invariance.Check),
+//     whether outputs before a position P change when only inputs from P on
+//     differ, with its findings and diagnoses.
 package analysis

@@ -34,7 +34,7 @@ const (
 )
 
 // RuleInvariance is the causal-invariance check's rule (heed check A
-// --against B; analysis/invariance.go). It compares two exports, so it comes
+// --against B; package analysis/invariance). It compares two exports, so it comes
 // after numRules: the attention pass's loops over rules never see it.
 const RuleInvariance = numRules
 

@@ -12,6 +12,7 @@ import (
 	"strings"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/invariance"
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
@@ -51,7 +52,7 @@ func (af *againstFlags) run(cmd *cobra.Command, args []string, lf *loadFlags, to
 }
 
 // runAgainst opens A (args) and B (--against), compares them with
-// analysis.CheckInvariance and prints the result as text or JSON to w. It
+// invariance.Check and prints the result as text or JSON to w. It
 // returns a *findingsError when a position before P changed (exit 1) and
 // any other error for input that cannot be compared (exit 2). tol > 0
 // replaces the dtype's tolerance.
@@ -76,11 +77,11 @@ func runAgainst(ctx context.Context, w io.Writer, args []string, af *againstFlag
 		return err
 	}
 	defer b.Close()
-	o := analysis.NewInvarianceOptions()
+	o := invariance.NewOptions()
 	o.From = af.from
 	o.Tol = tol
-	res, err := analysis.CheckInvariance(ctx, a, b, o)
-	if errors.Is(err, analysis.ErrNeedFrom) {
+	res, err := invariance.Check(ctx, a, b, o)
+	if errors.Is(err, invariance.ErrNeedFrom) {
 		err = fmt.Errorf("%w with --from P", err)
 	}
 	if err != nil {
@@ -100,7 +101,7 @@ func runAgainst(ctx context.Context, w io.Writer, args []string, af *againstFlag
 	return nil
 }
 
-// invariancePartJSON summarises one analysis.InvariancePart per layer.
+// invariancePartJSON summarises one invariance.Part per layer.
 type invariancePartJSON struct {
 	Block     string  `json:"block"`
 	Kind      string  `json:"kind"`
@@ -128,7 +129,7 @@ type invarianceDetailJSON struct {
 
 type invarianceJSON struct {
 	Clean     bool                         `json:"clean"`
-	Findings  []analysis.InvarianceFinding `json:"findings"`
+	Findings  []invariance.Finding `json:"findings"`
 	Diagnosis []prose.Diagnosis            `json:"diagnosis"`
 	Detail    invarianceDetailJSON         `json:"invariance"`
 	Notes     []string                     `json:"notes"`
@@ -144,7 +145,7 @@ func jsonNum(x float64) float64 {
 	return x
 }
 
-func partJSON(p *analysis.InvariancePart) invariancePartJSON {
+func partJSON(p *invariance.Part) invariancePartJSON {
 	j := invariancePartJSON{Block: p.Block, Kind: string(p.Kind), DType: p.DType.String(), Tol: p.Tol,
 		Layers: p.Layers, Batch: p.Batch, Positions: p.Positions, From: p.From,
 		FirstLayer: make([]int, p.Batch), MaxAbs: make([]float64, p.Layers), MaxRel: make([]float64, p.Layers),
@@ -171,12 +172,12 @@ func partJSON(p *analysis.InvariancePart) invariancePartJSON {
 	return j
 }
 
-func writeInvarianceJSON(w io.Writer, res *analysis.Invariance, warnings []string) error {
+func writeInvarianceJSON(w io.Writer, res *invariance.Result, warnings []string) error {
 	out := invarianceJSON{Clean: res.Clean(), Findings: res.Findings, Diagnosis: prose.Diagnoses(res.Diagnoses),
 		Detail: invarianceDetailJSON{Side: res.Side, From: res.From, Parts: []invariancePartJSON{}, Heads: res.Heads},
 		Notes:  res.Notes, Warnings: warnings, Caveat: prose.Caveat}
 	if out.Findings == nil {
-		out.Findings = []analysis.InvarianceFinding{}
+		out.Findings = []invariance.Finding{}
 	}
 	if out.Detail.Heads == nil {
 		out.Detail.Heads = []analysis.HeadChange{}
@@ -199,7 +200,7 @@ func writeInvarianceJSON(w io.Writer, res *analysis.Invariance, warnings []strin
 	return enc.Encode(out)
 }
 
-func fromText(res *analysis.Invariance) string {
+func fromText(res *invariance.Result) string {
 	same := true
 	for _, f := range res.From {
 		same = same && f == res.From[0]
@@ -217,7 +218,7 @@ func fromText(res *analysis.Invariance) string {
 	return "P = " + strings.Join(parts, ", ")
 }
 
-func writeInvarianceText(w io.Writer, res *analysis.Invariance, nameA, nameB string, warnings []string) {
+func writeInvarianceText(w io.Writer, res *invariance.Result, nameA, nameB string, warnings []string) {
 	where := "given by --from"
 	if res.Side != "" {
 		where = "the first differing token of tokens/" + res.Side

@@ -8,6 +8,7 @@ import (
 	"testing"
 
 	"github.com/heed-dev/heed/analysis"
+	"github.com/heed-dev/heed/analysis/invariance"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -21,7 +22,7 @@ const (
 	casesDir = "../../testdata/cases"
 )
 
-func invariance(t *testing.T, name string) *analysis.Invariance {
+func checkPair(t *testing.T, name string) *invariance.Result {
 	t.Helper()
 	open := func(f string) *loader.Export {
 		ex, err := loader.Open([]string{filepath.Join(invDir, f)}, loader.NewOptions())
@@ -31,7 +32,7 @@ func invariance(t *testing.T, name string) *analysis.Invariance {
 		t.Cleanup(func() { ex.Close() })
 		return ex
 	}
-	res, err := analysis.CheckInvariance(context.Background(), open(name+"_a.npz"), open(name+"_b.npz"), analysis.NewInvarianceOptions())
+	res, err := invariance.Check(context.Background(), open(name+"_a.npz"), open(name+"_b.npz"), invariance.NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -40,7 +41,7 @@ func invariance(t *testing.T, name string) *analysis.Invariance {
 
 func TestInvarianceWords(t *testing.T) {
 	for _, name := range []string{"leak", "leak_attn"} {
-		ds := Diagnoses(invariance(t, name).Diagnoses)
+		ds := Diagnoses(checkPair(t, name).Diagnoses)
 		if len(ds) == 0 {
 			t.Fatalf("%s: no diagnosis", name)
 		}
@@ -65,7 +66,7 @@ func TestInvarianceWords(t *testing.T) {
 			}
 		}
 	}
-	ds := Diagnoses(invariance(t, "encoder").Diagnoses)
+	ds := Diagnoses(checkPair(t, "encoder").Diagnoses)
 	if len(ds) == 0 {
 		t.Fatal("encoder: no diagnosis")
 	}
@@ -79,7 +80,7 @@ func TestInvarianceWords(t *testing.T) {
 // is given).
 func TestRoundingWords(t *testing.T) {
 	d := analysis.Diagnosis{Pattern: analysis.PatRoundingLevel, Block: "decoder", Rule: analysis.RuleInvariance, Layers: []int{0},
-		Value: 2e-3, Facts: analysis.Facts{Inv: &analysis.InvFacts{MaxRel: 2e-3, Tol: 1e-5, DType: "float32", Suggest: analysis.InvarianceTol(loader.BFloat16)}}}
+		Value: 2e-3, Facts: analysis.Facts{Inv: &analysis.InvFacts{MaxRel: 2e-3, Tol: 1e-5, DType: "float32", Suggest: invariance.Tol(loader.BFloat16)}}}
 	w := Diagnose(&d)
 	if !strings.Contains(w.Text, "--tol 0.06") || !strings.Contains(w.Text, "exported as float32") || !strings.HasSuffix(w.Text, " "+Caveat) {
 		t.Errorf("rounding text %q", w.Text)

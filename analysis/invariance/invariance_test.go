@@ -1,4 +1,4 @@
-package analysis
+package invariance
 
 import (
 	"context"
@@ -12,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
@@ -23,7 +24,7 @@ import (
 // built and asserts it against the differences PyTorch itself produced, so
 // these tests compare heed with PyTorch, not with heed.
 
-const invDir = "../testdata/invariance"
+const invDir = "../../testdata/invariance"
 
 type invCase struct {
 	A, B     string
@@ -76,17 +77,17 @@ func openPair(t *testing.T, c invCase) (*loader.Export, *loader.Export) {
 	return a, b
 }
 
-func runCase(t *testing.T, c invCase, opt InvarianceOptions) *Invariance {
+func runCase(t *testing.T, c invCase, opt Options) *Result {
 	t.Helper()
 	a, b := openPair(t, c)
-	res, err := CheckInvariance(context.Background(), a, b, opt)
+	res, err := Check(context.Background(), a, b, opt)
 	if err != nil {
 		t.Fatalf("CheckInvariance(%s, %s) = %v", c.A, c.B, err)
 	}
 	return res
 }
 
-func findingOf(res *Invariance, block string) *InvarianceFinding {
+func findingOf(res *Result, block string) *Finding {
 	for i := range res.Findings {
 		if res.Findings[i].Block == block {
 			return &res.Findings[i]
@@ -98,7 +99,7 @@ func findingOf(res *Invariance, block string) *InvarianceFinding {
 func TestInvarianceCorrectModelIsClean(t *testing.T) {
 	for _, name := range []string{"causal", "prefix"} {
 		c := invCases(t)[name]
-		res := runCase(t, c, NewInvarianceOptions())
+		res := runCase(t, c, NewOptions())
 		if !res.Clean() || len(res.Findings) != 0 || len(res.Diagnoses) != 0 {
 			t.Errorf("%s: Clean() = %v, findings %+v, diagnoses %+v; want clean (cases.json: torch found no change)", name, res.Clean(), res.Findings, res.Diagnoses)
 		}
@@ -109,7 +110,7 @@ func TestInvarianceCorrectModelIsClean(t *testing.T) {
 			t.Fatalf("%s: parts %v, want %s and logits", name, res.Parts, c.Block)
 		}
 		p := res.Parts[0]
-		if p.Tol != InvarianceTol(loader.Float32) || p.DType != loader.Float32 {
+		if p.Tol != Tol(loader.Float32) || p.DType != loader.Float32 {
 			t.Errorf("%s: tol %v dtype %v, want the f32 default", name, p.Tol, p.DType)
 		}
 		_, rel := p.Max(0)
@@ -131,7 +132,7 @@ func TestInvarianceCorrectModelIsClean(t *testing.T) {
 func TestInvarianceNamesTheLeakingLayer(t *testing.T) {
 	for _, name := range []string{"leak", "leak_attn"} {
 		c := invCases(t)[name]
-		res := runCase(t, c, NewInvarianceOptions())
+		res := runCase(t, c, NewOptions())
 		if res.Clean() {
 			t.Fatalf("%s: clean, want the leak of %s", name, c.Broken.What)
 		}
@@ -139,7 +140,7 @@ func TestInvarianceNamesTheLeakingLayer(t *testing.T) {
 		if f == nil {
 			t.Fatalf("%s: no finding for %s: %+v", name, c.Block, res.Findings)
 		}
-		if f.Rule != RuleInvariance || f.Rule.String() != "invariance" {
+		if f.Rule != analysis.RuleInvariance || f.Rule.String() != "invariance" {
 			t.Errorf("%s: rule %v", name, f.Rule)
 		}
 		if f.Layers[0] != c.Broken.Layer || !reflect.DeepEqual(f.Layers, c.Expect.Layers) {
@@ -165,7 +166,7 @@ func TestInvarianceNamesTheLeakingLayer(t *testing.T) {
 		// (TestInvarianceWords): "position 4 of layer 2 changed when only
 		// tokens from 6 on were changed", "... up to q+2".
 		d := res.Diagnoses[0]
-		if d.Pattern != PatReadsFuture || d.Rule != RuleInvariance || d.Facts.Inv == nil || d.Facts.Inv.From != 6 || d.At.Query != 4 || d.Layers[0] != 2 {
+		if d.Pattern != analysis.PatReadsFuture || d.Rule != analysis.RuleInvariance || d.Facts.Inv == nil || d.Facts.Inv.From != 6 || d.At.Query != 4 || d.Layers[0] != 2 {
 			t.Errorf("%s: diagnosis %q at %+v facts %+v, want reads_future at position 4 of layer 2 with P = 6", name, d.Pattern, d.At, d.Facts.Inv)
 		}
 		if d.Value != float64(c.Broken.Layer) || d.At.Layer != c.Broken.Layer || d.At.Query != c.Expect.Earliest[0] {
@@ -184,7 +185,7 @@ func TestInvarianceNamesTheLeakingLayer(t *testing.T) {
 
 func TestInvarianceHeads(t *testing.T) {
 	c := invCases(t)["leak_attn"]
-	res := runCase(t, c, NewInvarianceOptions())
+	res := runCase(t, c, NewOptions())
 	type hk struct{ l, h int }
 	got := map[hk][][]int{}
 	for _, h := range res.Heads {
@@ -205,9 +206,9 @@ func TestInvarianceHeads(t *testing.T) {
 	if f == nil || !reflect.DeepEqual(f.Heads, []int{c.Broken.Head}) {
 		t.Fatalf("finding heads %+v, want [%d]", f, c.Broken.Head)
 	}
-	var hd *Diagnosis
+	var hd *analysis.Diagnosis
 	for i := range res.Diagnoses {
-		if res.Diagnoses[i].Pattern == PatFutureHeads {
+		if res.Diagnoses[i].Pattern == analysis.PatFutureHeads {
 			hd = &res.Diagnoses[i]
 		}
 	}
@@ -217,7 +218,7 @@ func TestInvarianceHeads(t *testing.T) {
 		t.Errorf("heads diagnosis %+v", hd)
 	}
 	// Without attention (leak_*) there is no heads diagnosis and no heads.
-	res = runCase(t, invCases(t)["leak"], NewInvarianceOptions())
+	res = runCase(t, invCases(t)["leak"], NewOptions())
 	if len(res.Heads) != 0 || len(findingOf(res, "decoder").Heads) != 0 {
 		t.Errorf("leak without attention: heads %v", res.Heads)
 	}
@@ -225,7 +226,7 @@ func TestInvarianceHeads(t *testing.T) {
 
 func TestInvarianceEncoderIsNotCausal(t *testing.T) {
 	c := invCases(t)["encoder"]
-	res := runCase(t, c, NewInvarianceOptions())
+	res := runCase(t, c, NewOptions())
 	f := findingOf(res, "encoder")
 	if f == nil || f.Layers[0] != 0 || !reflect.DeepEqual(f.Positions, c.Expect.Positions) || !reflect.DeepEqual(f.Layers, c.Expect.Layers) {
 		t.Fatalf("encoder finding %+v, want every position before P at layers %v: %v", f, c.Expect.Layers, c.Expect.Positions)
@@ -233,7 +234,7 @@ func TestInvarianceEncoderIsNotCausal(t *testing.T) {
 	d := res.Diagnoses[0]
 	// its words ("not causal", "declares it bidirectional") are checked in
 	// internal/prose (TestInvarianceWords)
-	if d.Pattern != PatNotCausal || d.Facts.Inv == nil || !d.Facts.Inv.Bidirectional {
+	if d.Pattern != analysis.PatNotCausal || d.Facts.Inv == nil || !d.Facts.Inv.Bidirectional {
 		t.Errorf("encoder diagnosis %q: %+v", d.Pattern, d.Facts.Inv)
 	}
 }
@@ -241,7 +242,7 @@ func TestInvarianceEncoderIsNotCausal(t *testing.T) {
 func TestInvarianceFrom(t *testing.T) {
 	cs := invCases(t)
 	// P = 3 for both items: the correct model is clean before 3.
-	opt := NewInvarianceOptions()
+	opt := NewOptions()
 	opt.From = 3
 	res := runCase(t, cs["causal"], opt)
 	if !res.Clean() || res.Side != "" || !reflect.DeepEqual(res.From, []int{3, 3}) {
@@ -256,7 +257,7 @@ func TestInvarianceFrom(t *testing.T) {
 		t.Errorf("leak --from 6: finding %+v, want positions [[4 5] [5]]", f)
 	}
 	// A larger tolerance than the leak's largest difference hides it.
-	opt = NewInvarianceOptions()
+	opt = NewOptions()
 	opt.Tol = 0.5
 	if res := runCase(t, cs["leak"], opt); !res.Clean() {
 		t.Errorf("leak --tol 0.5: findings %+v", res.Findings)
@@ -267,26 +268,26 @@ func TestInvarianceBadInput(t *testing.T) {
 	cs := invCases(t)
 	c := cs["mismatch"]
 	a, b := openPair(t, c)
-	_, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	_, err := Check(context.Background(), a, b, NewOptions())
 	if err == nil || !strings.Contains(err.Error(), "decoder/out") || !strings.Contains(err.Error(), "layer 4") || !strings.Contains(err.Error(), "layer 3") {
 		t.Errorf("mismatch: err = %v, want a shape error naming decoder/out and both layer counts (%s)", err, c.BadInput)
 	}
 	// The same export twice: nothing changed, nothing tells P.
 	a, _ = openPair(t, cs["causal"])
-	_, err = CheckInvariance(context.Background(), a, a, NewInvarianceOptions())
+	_, err = Check(context.Background(), a, a, NewOptions())
 	if err == nil || !strings.Contains(err.Error(), "tokens are the same") {
 		t.Errorf("same export: err = %v", err)
 	}
 	// A decoder against an encoder: blocks do not pair up.
 	a, b = openPair(t, invCase{A: "causal_a.npz", B: "encoder_b.npz"})
-	if _, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions()); err == nil || !strings.Contains(err.Error(), "decoder/out: in") {
+	if _, err := Check(context.Background(), a, b, NewOptions()); err == nil || !strings.Contains(err.Error(), "decoder/out: in") {
 		t.Errorf("decoder vs encoder: err = %v", err)
 	}
 	// Cancelled.
 	ctx, cancel := context.WithCancel(context.Background())
 	cancel()
 	a, b = openPair(t, cs["causal"])
-	if _, err := CheckInvariance(ctx, a, b, NewInvarianceOptions()); !errors.Is(err, context.Canceled) {
+	if _, err := Check(ctx, a, b, NewOptions()); !errors.Is(err, context.Canceled) {
 		t.Errorf("cancelled: err = %v", err)
 	}
 }
@@ -335,13 +336,13 @@ func TestInvarianceTol(t *testing.T) {
 		d   loader.DType
 		eps float64
 	}{{loader.Float32, 0x1p-23}, {loader.Float64, 0x1p-23}, {loader.Float16, 0x1p-10}, {loader.BFloat16, 0x1p-7}} {
-		tol := InvarianceTol(c.d)
+		tol := Tol(c.d)
 		if tol < 4*1.8*c.eps {
 			t.Errorf("InvarianceTol(%v) = %v, want >= 4 x 1.8 eps = %v", c.d, tol, 4*1.8*c.eps)
 		}
 	}
-	if InvarianceTol(loader.Float32) >= 6.6e-3 {
-		t.Errorf("f32 tolerance %v would hide the fixture's leak", InvarianceTol(loader.Float32))
+	if Tol(loader.Float32) >= 6.6e-3 {
+		t.Errorf("f32 tolerance %v would hide the fixture's leak", Tol(loader.Float32))
 	}
 }
 
@@ -415,17 +416,17 @@ func TestInvarianceOutDType(t *testing.T) {
 	outA := []float64{1, 1, 1, 1, 0.5, 0.5}
 	outB := []float64{1, 1, 1 + 0x1p-9, 1, 0.7, 0.1}
 	a, b := memPair(t, loader.Float16, 3, 2, outA, outB, nil)
-	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	res, err := Check(context.Background(), a, b, NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
 	p := res.Parts[0]
-	if p.DType != loader.Float16 || p.Tol != InvarianceTol(loader.Float16) || !res.Clean() {
+	if p.DType != loader.Float16 || p.Tol != Tol(loader.Float16) || !res.Clean() {
 		t.Errorf("f16 out: dtype %v tol %v clean %v (rel %v)", p.DType, p.Tol, res.Clean(), p.Rel[0][0])
 	}
-	opt := NewInvarianceOptions()
+	opt := NewOptions()
 	opt.Tol = 1e-5
-	if res, _ := CheckInvariance(context.Background(), a, b, opt); res.Clean() || !reflect.DeepEqual(res.Findings[0].Positions, [][]int{{1}}) {
+	if res, _ := Check(context.Background(), a, b, opt); res.Clean() || !reflect.DeepEqual(res.Findings[0].Positions, [][]int{{1}}) {
 		t.Errorf("f16 out with --tol 1e-5: want position 1 changed, got %+v", res.Findings)
 	}
 }
@@ -437,7 +438,7 @@ func TestInvariancePaddingNotJudged(t *testing.T) {
 	outA := []float64{nan, nan, 1, 2, 3, 4, 5, 6}
 	outB := []float64{0, 0, 1, 2.5, 3, 4, 9, 9}
 	a, b := memPair(t, loader.Float32, 4, 3, outA, outB, []float64{0, 1, 1, 1})
-	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	res, err := Check(context.Background(), a, b, NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -450,7 +451,7 @@ func TestInvariancePaddingNotJudged(t *testing.T) {
 	}
 	// Without padding the NaN at position 0 is a change, encoded finitely.
 	a, b = memPair(t, loader.Float32, 4, 3, outA, outB, nil)
-	res, _ = CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	res, _ = Check(context.Background(), a, b, NewOptions())
 	if f := findingOf(res, "decoder"); f == nil || !reflect.DeepEqual(f.Positions, [][]int{{0, 1}}) || f.MaxRel != math.MaxFloat64 {
 		t.Errorf("NaN on one side: finding %+v", f)
 	} else if _, err := json.Marshal(res.Findings); err != nil {
@@ -481,7 +482,7 @@ func encDec(t *testing.T, src, tgt string, v float64) *loader.Export {
 func TestInvarianceSides(t *testing.T) {
 	// Only the target changed: the decoder is checked from P = 1; the
 	// encoder, on the unchanged source, is skipped with a note.
-	res, err := CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a b c", "x q z", 2), NewInvarianceOptions())
+	res, err := Check(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a b c", "x q z", 2), NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -493,13 +494,13 @@ func TestInvarianceSides(t *testing.T) {
 		t.Errorf("decoder finding %+v, want position 0", f)
 	}
 	// Both sides changed: P is ambiguous without --from.
-	_, err = CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), NewInvarianceOptions())
+	_, err = Check(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), NewOptions())
 	if err == nil || !strings.Contains(err.Error(), "more than one side") {
 		t.Errorf("both sides changed: err = %v", err)
 	}
-	opt := NewInvarianceOptions()
+	opt := NewOptions()
 	opt.From = 1
-	res, err = CheckInvariance(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), opt)
+	res, err = Check(context.Background(), encDec(t, "a b c", "x y z", 1), encDec(t, "a q c", "x q z", 1), opt)
 	if err != nil || !res.Clean() || len(res.Parts) != 2 {
 		t.Errorf("both sides changed, --from 1: err %v, parts %d", err, len(res.Parts))
 	}
@@ -511,7 +512,7 @@ func TestInvarianceRoundingHint(t *testing.T) {
 	outA := []float64{1, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1}
 	outB := []float64{1, 1, 1.002, 1, 1, 1, 1, 0.998, 1, 1, 5, 5}
 	a, b := memPair(t, loader.Float32, 6, 5, outA, outB, nil)
-	res, err := CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	res, err := Check(context.Background(), a, b, NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -521,15 +522,15 @@ func TestInvarianceRoundingHint(t *testing.T) {
 	}
 	// the tolerance to try again with is bfloat16's; internal/prose words
 	// it as "--tol 0.06" (TestRoundingWords)
-	if !reflect.DeepEqual(pats, []string{PatReadsFuture, PatRoundingLevel}) || res.Diagnoses[1].Facts.Inv == nil || res.Diagnoses[1].Facts.Inv.Suggest != 0.06 {
+	if !reflect.DeepEqual(pats, []string{analysis.PatReadsFuture, analysis.PatRoundingLevel}) || res.Diagnoses[1].Facts.Inv == nil || res.Diagnoses[1].Facts.Inv.Suggest != 0.06 {
 		t.Errorf("patterns %v, want reads_future and rounding_level; %+v", pats, res.Diagnoses)
 	}
 	// A leak that ends at P (the last positions before it) gets no hint.
 	outB = []float64{1, 1, 1, 1, 1, 1, 1, 1, 1.002, 1, 5, 5}
 	a, b = memPair(t, loader.Float32, 6, 5, outA, outB, nil)
-	res, _ = CheckInvariance(context.Background(), a, b, NewInvarianceOptions())
+	res, _ = Check(context.Background(), a, b, NewOptions())
 	for _, d := range res.Diagnoses {
-		if d.Pattern == PatRoundingLevel {
+		if d.Pattern == analysis.PatRoundingLevel {
 			t.Errorf("contiguous change up to P-1 got a rounding hint: %+v", d.Facts.Inv)
 		}
 	}

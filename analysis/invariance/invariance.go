@@ -1,6 +1,4 @@
-package analysis
-
-// The causal-invariance check compares two exports of the same model on
+// Package invariance is the causal-invariance check (Check). It compares two exports of the same model on
 // inputs that agree before position P and differ from P on. In a causal
 // model nothing at a position before P may depend on a token at P or later,
 // so every activation there must come out the same in both runs, whatever
@@ -8,6 +6,7 @@ package analysis
 // attention probabilities). An earlier position that changed shows that
 // something reads the future, and the first layer where it changed is where
 // the leak enters.
+package invariance
 
 import (
 	"context"
@@ -16,26 +15,27 @@ import (
 	"math"
 	"sort"
 
+	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/loader"
 )
 
-// InvarianceOptions tune CheckInvariance.
-type InvarianceOptions struct {
+// Options tune Check.
+type Options struct {
 	// From is the first changed position P, the same for every batch item;
 	// -1 finds it, per batch item, from the first token that differs.
 	From int
-	// Tol, when > 0, replaces the dtype's tolerance (InvarianceTol).
+	// Tol, when > 0, replaces the dtype's tolerance (Tol).
 	Tol float64
 	// Progress, when non-nil, is called after each unit of work with the
 	// number done and the total.
 	Progress func(done, total int)
 }
 
-// NewInvarianceOptions returns the defaults: P from the tokens, tolerance
+// NewOptions returns the defaults: P from the tokens, tolerance
 // from the dtype, no progress reports.
-func NewInvarianceOptions() InvarianceOptions { return InvarianceOptions{From: -1} }
+func NewOptions() Options { return Options{From: -1} }
 
-// InvarianceTol returns the relative tolerance used for values stored as d.
+// Tol returns the relative tolerance used for values stored as d.
 // Two values a (from A) and b (from B) agree when
 //
 //	|a - b| <= tol * (|b| + rms)
@@ -58,7 +58,7 @@ func NewInvarianceOptions() InvarianceOptions { return InvarianceOptions{From: -
 //
 // A model run in bf16, f16 or with TF32 matmuls and exported as f32 carries
 // the rounding of the compute dtype: give its tolerance explicitly.
-func InvarianceTol(d loader.DType) float64 {
+func Tol(d loader.DType) float64 {
 	switch d {
 	case loader.BFloat16:
 		return 6e-2
@@ -69,8 +69,8 @@ func InvarianceTol(d loader.DType) float64 {
 	}
 }
 
-// Invariance is the result of CheckInvariance.
-type Invariance struct {
+// Result is the result of Check.
+type Result struct {
 	// Side is the token sequence whose suffix changed ("" when From was given).
 	Side string
 	// From is P per batch item: the first position whose token differs (the
@@ -78,18 +78,18 @@ type Invariance struct {
 	From []int
 	// Parts has one entry per block with activations (`BLOCK/out`) in name
 	// order, then one for `logits` when both exports have them.
-	Parts []*InvariancePart
+	Parts []*Part
 	// Heads lists, for blocks with attention in both exports, every (layer,
 	// head, batch item) whose rows before P changed, in that order.
-	Heads []HeadChange
-	// Notes say what was not compared and why.
+	Heads []analysis.HeadChange
+	// analysis.Notes say what was not compared and why.
 	Notes []string
 	// Findings has one entry per part (and per attention-only block) whose
 	// positions before P changed, in the order of Parts.
-	Findings []InvarianceFinding
+	Findings []Finding
 	// Diagnoses say what the findings mean, as pattern codes and facts
-	// (see Diagnosis; package internal/prose words them).
-	Diagnoses []Diagnosis
+	// (see analysis.Diagnosis; package internal/prose words them).
+	Diagnoses []analysis.Diagnosis
 
 	headCount map[string]int     // heads per block with attention compared
 	tolOf     map[string]attnTol // element type and tolerance of those blocks
@@ -100,8 +100,8 @@ type attnTol struct {
 	tol float64
 }
 
-// InvarianceFinding is a Finding of rule invariance: check's finding fields
-// (Rule is RuleInvariance) plus what only this check has. For this rule:
+// Finding is a analysis.Finding of rule invariance: check's finding fields
+// (analysis.Rule is analysis.RuleInvariance) plus what only this check has. For this rule:
 // Layers are the layers where a position before P changed, the first being
 // where the change enters; Heads the heads whose rows before P changed at
 // the first layer where attention changed (empty without attention in both
@@ -113,8 +113,8 @@ type attnTol struct {
 // changed position at the first layer (Key -1, Value its relative
 // difference). A NaN on one side only makes the differences
 // math.MaxFloat64 (JSON has no infinity).
-type InvarianceFinding struct {
-	Finding
+type Finding struct {
+	analysis.Finding
 	// DType and Tol are the compared element type and the tolerance applied.
 	DType string  `json:"dtype"`
 	Tol   float64 `json:"tol"`
@@ -129,17 +129,17 @@ type InvarianceFinding struct {
 	MaxRel float64 `json:"max_rel"`
 }
 
-// InvariancePart holds the differences of one activation array, per layer,
+// Part holds the differences of one activation array, per layer,
 // batch item and position: what a view colours (positions before From[batch]
 // must agree; later ones are expected to differ).
-type InvariancePart struct {
+type Part struct {
 	// Block is the block name, or "logits".
 	Block string
 	// Kind is the block's kind (KindUnknown for logits).
 	Kind loader.Kind
 	// DType is the coarser of A's and B's element types.
 	DType loader.DType
-	// Tol is the tolerance applied (see InvarianceTol).
+	// Tol is the tolerance applied (see Tol).
 	Tol float64
 	// Layers, Batch and Positions size the tables below; Positions is the
 	// smaller of A's and B's. Logits have one layer.
@@ -157,35 +157,21 @@ type InvariancePart struct {
 	Pad [][]bool
 }
 
-// HeadChange is one attention head whose rows before P changed.
-type HeadChange struct {
-	Block string `json:"block"`
-	Layer int    `json:"layer"`
-	Head  int    `json:"head"`
-	Batch int    `json:"batch"`
-	// Rows are the (absolute) query positions before P whose row changed.
-	Rows []int `json:"rows"`
-	// MaxAbs is the largest |a - b| of a probability in those rows; MaxRel
-	// the largest |a - b| / (|b| + rms) (rms over the compared rows of A).
-	MaxAbs float64 `json:"max_abs"`
-	MaxRel float64 `json:"max_rel"`
-}
-
 // Differs reports whether the position is judged (before P, not padding)
 // and its difference exceeds the tolerance.
-func (p *InvariancePart) Differs(layer, batch, pos int) bool {
+func (p *Part) Differs(layer, batch, pos int) bool {
 	if pos >= p.From[batch] || p.isPad(batch, pos) {
 		return false
 	}
 	return p.Rel[layer][batch][pos] > p.Tol
 }
 
-func (p *InvariancePart) isPad(batch, pos int) bool {
+func (p *Part) isPad(batch, pos int) bool {
 	return p.Pad != nil && p.Pad[batch][pos]
 }
 
 // Changed returns the positions before P of (layer, batch) that differ.
-func (p *InvariancePart) Changed(layer, batch int) []int {
+func (p *Part) Changed(layer, batch int) []int {
 	var out []int
 	for pos := 0; pos < p.From[batch]; pos++ {
 		if p.Differs(layer, batch, pos) {
@@ -197,7 +183,7 @@ func (p *InvariancePart) Changed(layer, batch int) []int {
 
 // FirstLayer returns the first layer where a position before P of the batch
 // item differs, or -1 when none does.
-func (p *InvariancePart) FirstLayer(batch int) int {
+func (p *Part) FirstLayer(batch int) int {
 	for l := 0; l < p.Layers; l++ {
 		if len(p.Changed(l, batch)) > 0 {
 			return l
@@ -208,7 +194,7 @@ func (p *InvariancePart) FirstLayer(batch int) int {
 
 // LayerMax returns, for the view, the largest Rel of (layer, pos) over the
 // batch items that judge it (pos before their P), and false when none does.
-func (p *InvariancePart) LayerMax(layer, pos int) (float64, bool) {
+func (p *Part) LayerMax(layer, pos int) (float64, bool) {
 	m, ok := 0.0, false
 	for b := 0; b < p.Batch; b++ {
 		if pos < p.From[b] && !p.isPad(b, pos) {
@@ -220,7 +206,7 @@ func (p *InvariancePart) LayerMax(layer, pos int) (float64, bool) {
 
 // Max returns the largest Abs and Rel over the judged positions of a batch
 // item (every layer).
-func (p *InvariancePart) Max(batch int) (maxAbs, maxRel float64) {
+func (p *Part) Max(batch int) (maxAbs, maxRel float64) {
 	for l := 0; l < p.Layers; l++ {
 		for pos := 0; pos < p.From[batch]; pos++ {
 			if p.isPad(batch, pos) {
@@ -234,7 +220,7 @@ func (p *InvariancePart) Max(batch int) (maxAbs, maxRel float64) {
 }
 
 // Clean reports whether no judged position differs in any part or head.
-func (r *Invariance) Clean() bool {
+func (r *Result) Clean() bool {
 	for _, p := range r.Parts {
 		for b := 0; b < p.Batch; b++ {
 			if p.FirstLayer(b) >= 0 {
@@ -334,7 +320,7 @@ func sideFrom(sa, sb *loader.Side, batch int) (from []int, changed bool) {
 
 func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 
-// CheckInvariance compares export a with export b (the same model, inputs
+// Check compares export a with export b (the same model, inputs
 // that agree before P and differ from P on) and returns the differences of
 // every activation array at the positions before P. It returns an error for
 // inputs that cannot be compared: no activations, logits or attention in
@@ -346,14 +332,14 @@ func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 // whose tokens agree while another side changed are skipped with a note,
 // since they may legitimately read the changed side (cross-attention).
 // Padding positions of A (valid/SIDE) are not judged.
-// ErrNeedFrom (test with errors.Is) ends the errors of CheckInvariance
+// ErrNeedFrom (test with errors.Is) ends the errors of Check
 // when the tokens do not tell where the change starts: the caller names
-// its own way to give that position (the from setting, InvarianceOptions.From).
+// its own way to give that position (the from setting, Options.From).
 var ErrNeedFrom = errors.New("give the first changed position P")
 
-func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOptions) (*Invariance, error) {
+func Check(ctx context.Context, a, b *loader.Export, opt Options) (*Result, error) {
 	fa, fb := exportFile(a), exportFile(b)
-	res := &Invariance{}
+	res := &Result{}
 
 	// Pair up what both exports hold.
 	type pair struct {
@@ -523,7 +509,7 @@ func CheckInvariance(ctx context.Context, a, b *loader.Export, opt InvarianceOpt
 			continue
 		}
 		dt := coarser(ab[0].DType, ab[1].DType)
-		tol := InvarianceTol(dt)
+		tol := Tol(dt)
 		if opt.Tol > 0 {
 			tol = opt.Tol
 		}
@@ -555,14 +541,14 @@ func sameShape(x, y *source) error {
 
 // coarser returns the element type with the larger tolerance.
 func coarser(x, y loader.DType) loader.DType {
-	if InvarianceTol(y) > InvarianceTol(x) {
+	if Tol(y) > Tol(x) {
 		return y
 	}
 	return x
 }
 
 // diff is |a - b| and |a - b| / (|b| + scale) with the NaN rule of
-// InvariancePart.Rel.
+// Part.Rel.
 func diff(a, b, scale float64) (abs, rel float64) {
 	an, bn := math.IsNaN(a), math.IsNaN(b)
 	switch {
@@ -583,13 +569,13 @@ func diff(a, b, scale float64) (abs, rel float64) {
 // zeros on both sides compare equal and anything else counts as a change.
 const rmsFloor = 1e-30
 
-func comparePart(blk *loader.Block, sa, sb *source, from []int, side *loader.Side, tolOpt float64, step func() error) (*InvariancePart, error) {
-	p := &InvariancePart{Block: sa.name, DType: coarser(sa.dtype, sb.dtype), Layers: sa.layers, Batch: sa.batch,
+func comparePart(blk *loader.Block, sa, sb *source, from []int, side *loader.Side, tolOpt float64, step func() error) (*Part, error) {
+	p := &Part{Block: sa.name, DType: coarser(sa.dtype, sb.dtype), Layers: sa.layers, Batch: sa.batch,
 		Positions: min(sa.positions, sb.positions)}
 	if blk != nil {
 		p.Block, p.Kind = blk.Name, blk.Kind
 	}
-	p.Tol = InvarianceTol(p.DType)
+	p.Tol = Tol(p.DType)
 	if tolOpt > 0 {
 		p.Tol = tolOpt
 	}
@@ -664,11 +650,11 @@ func comparePart(blk *loader.Block, sa, sb *source, from []int, side *loader.Sid
 	return p, nil
 }
 
-func compareHeads(xa, xb *loader.Block, from []int, side *loader.Side, tol float64, step func() error) ([]HeadChange, error) {
+func compareHeads(xa, xb *loader.Block, from []int, side *loader.Side, tol float64, step func() error) ([]analysis.HeadChange, error) {
 	bufA := make([]float32, xa.Queries*xa.Keys)
 	bufB := make([]float32, xb.Queries*xb.Keys)
 	keys := min(xa.Keys, xb.Keys)
-	var out []HeadChange
+	var out []analysis.HeadChange
 	for l := 0; l < xa.Layers; l++ {
 		for bi := 0; bi < xa.Batch; bi++ {
 			f := from[len(from)-1]
@@ -709,7 +695,7 @@ func compareHeads(xa, xb *loader.Block, from []int, side *loader.Side, tol float
 				if cnt > 0 {
 					scale = max(math.Sqrt(ss/float64(cnt)), rmsFloor)
 				}
-				hc := HeadChange{Block: xa.Name, Layer: l, Head: h, Batch: bi}
+				hc := analysis.HeadChange{Block: xa.Name, Layer: l, Head: h, Batch: bi}
 				for q := lo; q < hi; q++ {
 					if side != nil && !side.IsValid(bi, q) {
 						continue
@@ -738,16 +724,6 @@ func compareHeads(xa, xb *loader.Block, from []int, side *loader.Side, tol float
 	return out, nil
 }
 
-// The diagnosis patterns of the invariance check (Diagnosis.Pattern; their
-// Value and facts are listed with Diagnosis).
-const (
-	PatReadsFuture       = "reads_future"
-	PatNotCausal         = "not_causal"
-	PatFutureHeads       = "future_heads"
-	PatOutputReadsFuture = "output_reads_future"
-	PatRoundingLevel     = "rounding_level"
-)
-
 // finite keeps JSON-bound numbers finite: +Inf (a NaN on one side only)
 // becomes math.MaxFloat64.
 func finite(x float64) float64 {
@@ -758,7 +734,7 @@ func finite(x float64) float64 {
 }
 
 // judged returns the judged positions before P of a batch item.
-func (p *InvariancePart) judged(batch int) int {
+func (p *Part) judged(batch int) int {
 	n := 0
 	for pos := 0; pos < p.From[batch]; pos++ {
 		if !p.isPad(batch, pos) {
@@ -770,7 +746,7 @@ func (p *InvariancePart) judged(batch int) int {
 
 // headsAt returns the first layer where heads of the block changed rows
 // before P and those heads (sorted, over batch items), or -1.
-func (r *Invariance) headsAt(block string) (int, []int) {
+func (r *Result) headsAt(block string) (int, []int) {
 	first := -1
 	for _, h := range r.Heads {
 		if h.Block == block && (first < 0 || h.Layer < first) {
@@ -793,7 +769,7 @@ func (r *Invariance) headsAt(block string) (int, []int) {
 }
 
 // explain turns the differences into findings and diagnoses.
-func (r *Invariance) explain() {
+func (r *Result) explain() {
 	blockFound := false
 	for _, p := range r.Parts {
 		if p.Block != "logits" {
@@ -830,7 +806,7 @@ func (r *Invariance) explain() {
 	}
 }
 
-func (r *Invariance) headBlocks() []string {
+func (r *Result) headBlocks() []string {
 	var out []string
 	seen := map[string]bool{}
 	for _, h := range r.Heads {
@@ -842,8 +818,8 @@ func (r *Invariance) headBlocks() []string {
 	return out
 }
 
-func (r *Invariance) partFinding(p *InvariancePart) (InvarianceFinding, bool) {
-	f := InvarianceFinding{Finding: Finding{Block: p.Block, Rule: RuleInvariance, Heads: []int{}},
+func (r *Result) partFinding(p *Part) (Finding, bool) {
+	f := Finding{Finding: analysis.Finding{Block: p.Block, Rule: analysis.RuleInvariance, Heads: []int{}},
 		DType: p.DType.String(), Tol: p.Tol}
 	layerSet := map[int]bool{}
 	first := -1
@@ -897,12 +873,12 @@ func (r *Invariance) partFinding(p *InvariancePart) (InvarianceFinding, bool) {
 	if len(f.Heads) > 0 {
 		head = f.Heads[0]
 	}
-	f.Worst = Location{Block: p.Block, Layer: first, Head: head, Batch: wb, Query: wq, Key: -1, Value: finite(p.Rel[first][wb][wq])}
+	f.Worst = analysis.Location{Block: p.Block, Layer: first, Head: head, Batch: wb, Query: wq, Key: -1, Value: finite(p.Rel[first][wb][wq])}
 	f.Mass, f.Max, f.MaxAbs, f.MaxRel = finite(f.Mass), finite(f.Max), finite(f.MaxAbs), finite(f.MaxRel)
 	return f, true
 }
 
-func (r *Invariance) partDiagnoses(p *InvariancePart, f InvarianceFinding) []Diagnosis {
+func (r *Result) partDiagnoses(p *Part, f Finding) []analysis.Diagnosis {
 	first := f.Layers[0]
 	w := f.Worst
 	from := 0
@@ -922,10 +898,10 @@ func (r *Invariance) partDiagnoses(p *InvariancePart, f InvarianceFinding) []Dia
 		some = some || p.judged(b) > 1
 	}
 	all = all && some
-	inv := &InvFacts{From: from, All: all, Bidirectional: p.Kind == loader.KindBidirectional,
+	inv := &analysis.InvFacts{From: from, All: all, Bidirectional: p.Kind == loader.KindBidirectional,
 		Changed: f.Layers, MaxAbs: f.MaxAbs, MaxRel: f.MaxRel, Tol: f.Tol, DType: f.DType}
 	for i, b := range f.Batches {
-		inv.Items = append(inv.Items, ItemChange{Batch: b, Positions: f.Positions[i], FirstLayer: p.FirstLayer(b), From: f.From[i]})
+		inv.Items = append(inv.Items, analysis.ItemChange{Batch: b, Positions: f.Positions[i], FirstLayer: p.FirstLayer(b), From: f.From[i]})
 	}
 	// The same reach before P in every item suggests a mask that lets a
 	// query see the next n keys.
@@ -940,36 +916,36 @@ func (r *Invariance) partDiagnoses(p *InvariancePart, f InvarianceFinding) []Dia
 		reach = n
 	}
 	inv.Reach = reach
-	d := Diagnosis{Block: p.Block, Rule: RuleInvariance, Layers: []int{first}, Heads: f.Heads, Batches: f.Batches,
-		Value: float64(first), At: w, Facts: Facts{PadNaNLayer: -1, Inv: inv}}
+	d := analysis.Diagnosis{Block: p.Block, Rule: analysis.RuleInvariance, Layers: []int{first}, Heads: f.Heads, Batches: f.Batches,
+		Value: float64(first), At: w, Facts: analysis.Facts{PadNaNLayer: -1, Inv: inv}}
 	switch {
 	case p.Block == "logits":
-		d.Pattern = PatOutputReadsFuture
+		d.Pattern = analysis.PatOutputReadsFuture
 		d.Value = 0
 	case all && first == 0:
-		d.Pattern = PatNotCausal
+		d.Pattern = analysis.PatNotCausal
 		d.Value = 0
 	default:
-		d.Pattern = PatReadsFuture
+		d.Pattern = analysis.PatReadsFuture
 	}
-	out := []Diagnosis{d}
+	out := []analysis.Diagnosis{d}
 	if hl, _ := r.headsAt(p.Block); hl >= 0 {
 		out = append(out, r.headDiagnosis(p.Block, f.From, f.Batches))
 	}
-	if (p.DType == loader.Float32 || p.DType == loader.Float64) && f.MaxRel <= InvarianceTol(loader.BFloat16) && reach < 0 {
-		rinv := &InvFacts{From: from, MaxAbs: f.MaxAbs, MaxRel: f.MaxRel, Tol: f.Tol, DType: f.DType, Suggest: InvarianceTol(loader.BFloat16)}
-		out = append(out, Diagnosis{Pattern: PatRoundingLevel, Block: p.Block, Rule: RuleInvariance, Layers: []int{first}, Batches: f.Batches, At: w,
-			Value: f.MaxRel, Facts: Facts{PadNaNLayer: -1, Inv: rinv}})
+	if (p.DType == loader.Float32 || p.DType == loader.Float64) && f.MaxRel <= Tol(loader.BFloat16) && reach < 0 {
+		rinv := &analysis.InvFacts{From: from, MaxAbs: f.MaxAbs, MaxRel: f.MaxRel, Tol: f.Tol, DType: f.DType, Suggest: Tol(loader.BFloat16)}
+		out = append(out, analysis.Diagnosis{Pattern: analysis.PatRoundingLevel, Block: p.Block, Rule: analysis.RuleInvariance, Layers: []int{first}, Batches: f.Batches, At: w,
+			Value: f.MaxRel, Facts: analysis.Facts{PadNaNLayer: -1, Inv: rinv}})
 	}
 	return out
 }
 
-func (r *Invariance) headDiagnosis(block string, from, batches []int) Diagnosis {
+func (r *Result) headDiagnosis(block string, from, batches []int) analysis.Diagnosis {
 	hl, hs := r.headsAt(block)
 	heads := 0
 	var rows []int
-	var changes []HeadChange
-	var worst HeadChange
+	var changes []analysis.HeadChange
+	var worst analysis.HeadChange
 	for _, h := range r.Heads {
 		if h.Block != block {
 			continue
@@ -985,14 +961,14 @@ func (r *Invariance) headDiagnosis(block string, from, batches []int) Diagnosis 
 	if r.headCount != nil {
 		heads = r.headCount[block]
 	}
-	return Diagnosis{Pattern: PatFutureHeads, Block: block, Rule: RuleInvariance, Layers: []int{hl}, Heads: hs, Batches: batches,
-		Value: float64(hl), Facts: Facts{PadNaNLayer: -1, Inv: &InvFacts{HeadChanges: changes, HeadTotal: heads}},
-		At: Location{Block: block, Layer: hl, Head: worst.Head, Batch: worst.Batch, Query: worst.Rows[0], Key: -1, Value: finite(worst.MaxRel)}}
+	return analysis.Diagnosis{Pattern: analysis.PatFutureHeads, Block: block, Rule: analysis.RuleInvariance, Layers: []int{hl}, Heads: hs, Batches: batches,
+		Value: float64(hl), Facts: analysis.Facts{PadNaNLayer: -1, Inv: &analysis.InvFacts{HeadChanges: changes, HeadTotal: heads}},
+		At: analysis.Location{Block: block, Layer: hl, Head: worst.Head, Batch: worst.Batch, Query: worst.Rows[0], Key: -1, Value: finite(worst.MaxRel)}}
 }
 
-func (r *Invariance) headFinding(block string) InvarianceFinding {
+func (r *Result) headFinding(block string) Finding {
 	hl, hs := r.headsAt(block)
-	f := InvarianceFinding{Finding: Finding{Block: block, Rule: RuleInvariance, Heads: hs}, DType: "", Tol: 0}
+	f := Finding{Finding: analysis.Finding{Block: block, Rule: analysis.RuleInvariance, Heads: hs}, DType: "", Tol: 0}
 	layerSet := map[int]bool{}
 	batchRows := map[int]map[int]bool{}
 	for _, h := range r.Heads {
@@ -1038,7 +1014,7 @@ func (r *Invariance) headFinding(block string) InvarianceFinding {
 	if r.tolOf != nil {
 		f.DType, f.Tol = r.tolOf[block].d.String(), r.tolOf[block].tol
 	}
-	f.Worst = Location{Block: block, Layer: hl, Head: hs[0], Batch: f.Batches[0], Query: f.Positions[0][0], Key: -1, Value: finite(f.MaxRel)}
+	f.Worst = analysis.Location{Block: block, Layer: hl, Head: hs[0], Batch: f.Batches[0], Query: f.Positions[0][0], Key: -1, Value: finite(f.MaxRel)}
 	f.Mass, f.Max, f.MaxAbs, f.MaxRel = finite(f.Mass), finite(f.Max), finite(f.MaxAbs), finite(f.MaxRel)
 	return f
 }
