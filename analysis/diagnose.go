@@ -328,7 +328,7 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 				d.Pattern = PatRowsNotNormalised
 			}
 		case RuleCut:
-			diagnoseCut(bp, f, &d) // cut.go
+			diagnoseCut(bp, f, &d) // rules_cut.go
 		case RuleNegative:
 			d.Pattern = PatNegativeValues
 		}

@@ -13,27 +13,26 @@
 //   - rules.go: Rule (the mask rules in priority order, then the row
 //     checks), Rules of one block (NewRules, BlockRules): which rule forbids
 //     each key of a query row (Rules.Row, Rules.Cell, Rules.CellRow).
-//   - cut.go: the cut check (RuleCut), a mask that blocks keys the rules
+//   - rules_cut.go: the cut check (RuleCut), a mask that blocks keys the rules
 //     allow, seen where each row's mass stops; its accumulator CutAcc.
-//   - infer.go: InferExport, a block's kind inferred from its exact zeros
+//   - rules_infer.go: InferExport, a block's kind inferred from its exact zeros
 //     when nobody said it.
-//   - extent.go: LeakExtent, the bounding box of one head's leaking cells.
-//   - row.go: SummarizeRow, one query row described for a person.
+//   - rules_row.go: SummarizeRow, one query row described for a person.
 //
 // The pass and its accumulators:
 //   - pass.go: Options, Analyze, AnalyzeSet and Partial.Add; the workers,
 //     one head at a time each, and the head-pair (redundancy) pass.
-//   - rowpass.go: the per-cell loop over float32 rows, cut into runs of keys
+//   - pass_f32.go: the per-cell loop over float32 rows, cut into runs of keys
 //     sharing a rule.
-//   - rawpass.go: the same loop over stored float16/bfloat16 patterns,
+//   - pass_raw16.go: the same loop over stored float16/bfloat16 patterns,
 //     through value tables, to the same bits.
-//   - lowprio_linux.go, lowprio_other.go: the workers' lower thread priority
+//   - pass_lowprio_linux.go, pass_lowprio_other.go: the workers' lower thread priority
 //     (Options.Background).
 //
 // Partial results and merge:
 //   - partial.go: Partial, its per-unit accumulators (HeadAcc, LeakAcc,
 //     GeometryAcc), Partial.Merge, DecodePartial and Validate.
-//   - exact.go: Sum, the exact, order-independent accumulator that makes
+//   - partial_sum.go: Sum, the exact, order-independent accumulator that makes
 //     shards merge to the same bits as one run.
 //
 // The table of statistics:
@@ -41,12 +40,14 @@
 //     with its source, direction, how the Survey shows it, how it is read
 //     or computed); every output derives its columns from it; Register adds
 //     one.
-//   - extra.go: the engine for statistics declared with a row function.
+//   - statistic_rows.go: the engine for statistics declared with a row function.
 //
 // Results, coverage and verdict:
 //   - result.go: Partial.Result turns the state into Stats per head,
 //     Findings with their Locations, the Coverage of each block (what was
 //     judged, the Gaps and how to close them) and the Verdict.
+//   - result_extent.go: LeakExtent, the bounding box of one head's leaking
+//     cells.
 //
 // Diagnosis:
 //   - diagnose.go: Diagnosis, the likely bug behind findings, as a pattern
@@ -57,7 +58,7 @@
 //   - compare.go: DiffHead and CompareBlocks, how much each head changed
 //     between two exports of one shape.
 //
-// Below analysis, in their own packages (they import it; it imports neither):
+// Below analysis, in their own packages (they import it; it imports none of them):
 //   - analysis/trace: explaining a prediction by attention rollout,
 //     attention flow and gradient-weighted relevance (trace.Trace).
 //   - analysis/plan: a head-pruning plan from a Result (plan.Make).

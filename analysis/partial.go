@@ -202,7 +202,7 @@ type HeadAcc struct {
 
 	Leaks [numMask]LeakAcc `json:"leaks"` // indexed by Rule; [0] unused
 
-	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (cut.go)
+	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (rules_cut.go)
 
 	// Extra holds the statistics declared with a row function
 	// (statistic.go), by name: PartialOptions.Extra lists them.
@@ -282,7 +282,7 @@ type GeometryAcc struct {
 	Rows      int64                  `json:"rows"`
 	Forbidden [numMask]map[int]int64 `json:"forbidden"`
 	// Reach counts the judged rows the cut check reads (cross blocks, prefix
-	// rows) by the offset d = last allowed key - p (cut.go).
+	// rows) by the offset d = last allowed key - p (rules_cut.go).
 	Reach map[int]int64 `json:"reach,omitempty"`
 }
 

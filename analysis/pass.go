@@ -73,7 +73,7 @@ type Options struct {
 	Blocks []string
 	// Background runs the workers on operating-system threads of the
 	// lowest scheduling priority where the system has one for threads
-	// (Linux: nice 19 on each worker's thread, lowprio_linux.go), so that a
+	// (Linux: nice 19 on each worker's thread, pass_lowprio_linux.go), so that a
 	// program drawing a screen while the pass runs behind it keeps the
 	// processors for the screen and the terminal whenever they want them.
 	// Results do not depend on it.
@@ -86,7 +86,7 @@ type Options struct {
 	// context is canceled. Results do not depend on it.
 	Yield func()
 	// NoInfer leaves blocks whose kind nobody gave as they are: no mask is
-	// inferred from their zeros (analysis/infer.go) and assumed query
+	// inferred from their zeros (analysis/rules_infer.go) and assumed query
 	// positions are not tested.
 	NoInfer bool
 }
@@ -445,7 +445,7 @@ func geometry(r *Rules, b int) GeometryAcc {
 		}
 		g.Forbidden[rule] = m
 	}
-	g.Reach = reach(r, b) // cut.go
+	g.Reach = reach(r, b) // rules_cut.go
 	return g
 }
 
@@ -458,12 +458,12 @@ type worker struct {
 	lo    [numMask]int
 	hi    [numMask]int
 	u     unitAcc
-	r16   []uint16  // the head's 16-bit patterns on the pattern path (rawpass.go)
+	r16   []uint16  // the head's 16-bit patterns on the pattern path (pass_raw16.go)
 	sums  []runSums // the allowed runs' sums of one row (cells16Clean)
 	// freeR16 frees r16 (internal/bigmem), nil until r16 is made
 	freeR16 func()
-	cut     CutAcc   // the unit's rows cut off before allowed keys (cut.go)
-	runs    ruleRuns // the rule runs of every row of one batch item (rowpass.go)
+	cut     CutAcc   // the unit's rows cut off before allowed keys (rules_cut.go)
+	runs    ruleRuns // the rule runs of every row of one batch item (pass_f32.go)
 	one     ruleRuns // the rule runs of one row, with an explicit mask
 	stats   bool     // compute the row statistics (not Options.NoStats)
 	// the block's constants the cell loops read: rules.MaxPos(), the leak
@@ -471,7 +471,7 @@ type worker struct {
 	base    int
 	tol     float64
 	example string
-	x       *extraAcc // the statistics declared with a row function (extra.go); nil = none
+	x       *extraAcc // the statistics declared with a row function (statistic_rows.go); nil = none
 }
 
 // unitAt names one (layer, batch item, head) of a block.
@@ -703,10 +703,10 @@ func parallel(ctx context.Context, workers []*worker, n int, bg bool, yield func
 type passConfig struct {
 	tol, sumTol                   float64
 	sumLoose                      float64 // > sumTol: rows within it are counted apart (compute dtype unknown)
-	tiny                          float64 // > 0: a row with a value this small may have underflowed to 0 (cut.go)
+	tiny                          float64 // > 0: a row with a value this small may have underflowed to 0 (rules_cut.go)
 	sumBelow, doNaN, doSum, doNeg bool
 	grad, allow                   bool
-	doCut                         bool // the cut check reads this block's rows (cut.go)
+	doCut                         bool // the cut check reads this block's rows (rules_cut.go)
 	example                       string
 	yield                         func() // Options.Yield
 }
@@ -757,7 +757,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			return err
 		}
 	}
-	rt, r16, release, err := w.readRaw16(rd, cfg, at) // float16/bfloat16 patterns (rawpass.go)
+	rt, r16, release, err := w.readRaw16(rd, cfg, at) // float16/bfloat16 patterns (pass_raw16.go)
 	if err != nil {
 		return err
 	}
@@ -845,7 +845,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		ends, rrs := w.rowRuns(rules, b, q, allowRow, cut)
 		rw := rowAt{q: q, p: p, ends: ends, rules: rrs}
 		ra := rowAcc{mx: math.Inf(-1), nzLo: -1, nzHi: -1, negRow: negRow}
-		if rt != nil { // rawpass.go
+		if rt != nil { // pass_raw16.go
 			if !clean || !w.cells16Clean(&ra, rt, row16, &rw) {
 				if clean {
 					if badK, fin, negRow = kernels.Finite16(row16, rt.Exp); !fin {
@@ -857,10 +857,10 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 				w.cells16(&ra, rt, row16, &rw)
 			}
 		} else {
-			w.cells(&ra, row, &rw) // rowpass.go
+			w.cells(&ra, row, &rw) // pass_f32.go
 		}
 		if w.x != nil {
-			w.x.row(row, row16, rt, &rw) // extra.go
+			w.x.row(row, row16, rt, &rw) // statistic_rows.go
 		}
 		if cut && !(cfg.tiny > 0 && rowReachesUnderflow(row, row16, rt, cfg.tiny)) {
 			w.cut.row(w.rr, p, q, ra.nzHi, cfg.example)

@@ -526,7 +526,7 @@ func findings(bp *BlockPartial) []Finding {
 		for l := 0; l < bp.Layers; l++ {
 			for h := 0; h < bp.Heads; h++ {
 				for b := 0; b < bp.Batch; b++ {
-					if problem(bp, b, bp.Unit(l, h, b), r) { // cut.go
+					if problem(bp, b, bp.Unit(l, h, b), r) { // rules_cut.go
 						byLayer[l] = append(byLayer[l], triple{l, h, b})
 					}
 				}

@@ -12,7 +12,7 @@ import (
 // cells a query may not attend to; the row rules (RuleNaNRows, RuleRowSum,
 // RuleNegative, RuleCut) judge whole rows. RuleCut is the one check of an
 // under-allowing mask: rows of a cross block, and prefix rows of a prefix-LM,
-// whose mass stops before the last key the mask rules allow (cut.go).
+// whose mass stops before the last key the mask rules allow (rules_cut.go).
 // RuleNone (0) means "allowed".
 type Rule uint8
 

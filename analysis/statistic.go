@@ -11,7 +11,7 @@ import (
 // Statistic.Of), the terminal UI Survey's list (Statistic.Survey), and the
 // field list of docs/json.md (checked against the table by cmd/heed's
 // tests). The built-in statistics are computed in the pass's own loop
-// (pass.go, rowpass.go, rawpass.go: one read of each row, no call per row)
+// (pass.go, pass_f32.go, pass_raw16.go: one read of each row, no call per row)
 // and read from Stats by Value; a statistic declared with Row is computed by
 // the engine over every judged row with finite values, added exactly per
 // (layer, head, batch item) (Sum), carried by name in partials

@@ -12,9 +12,9 @@ import (
 // patterns (loader.Block.ReadRaw16), without converting the matrix to
 // float32 first. Every value goes through 65,536-entry tables built from
 // the very float32 the loader's conversion gives and from kernels.Xlogx of it, and
-// the loops below are those of rowpass.go with the same operations in the
+// the loops below are those of pass_f32.go with the same operations in the
 // same key order, so every sum is the same to the last bit as on the
-// float32 path (rawpass_test.go checks this on random heads with NaN, Inf,
+// float32 path (pass_raw16_test.go checks this on random heads with NaN, Inf,
 // negative zero and subnormals). A forbidden run is checked for mass as
 // integers: a pattern other than +0 or -0 is a nonzero value.
 
@@ -41,7 +41,7 @@ func rawTablesFor(d loader.DType) *rawTables {
 	return &rawF16
 }
 
-// cells16 is cells (rowpass.go) over a row of patterns.
+// cells16 is cells (pass_f32.go) over a row of patterns.
 func (w *worker) cells16(ra *rowAcc, t *rawTables, row []uint16, rw *rowAt) {
 	a, p := 0, rw.p
 	for i, e := range rw.ends {
@@ -69,7 +69,7 @@ func (w *worker) zeroRun16(ra *rowAcc, t *rawTables, row []uint16, a, b int, r R
 	}
 }
 
-// allowedFast16 is allowedFast (rowpass.go) over patterns: the sums of
+// allowedFast16 is allowedFast (pass_f32.go) over patterns: the sums of
 // keys [a, b) and its flag word (sums16), then the run added to ra
 // (finish16).
 func allowedFast16(ra *rowAcc, t *rawTables, row []uint16, a, b, p int, stats bool) {
