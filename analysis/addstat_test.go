@@ -178,7 +178,6 @@ func TestAddedStatisticAgainstNumpy(t *testing.T) {
 // float32 path; and every built-in statistic is what a pass without the
 // added one gives, to the bit.
 func TestAddedStatisticShardsAndPaths(t *testing.T) {
-	defer func() { noRaw16 = false }()
 	L, H, S := 2, 3, 37
 	var exs []*loader.Export
 	for i := range 2 {
@@ -236,11 +235,11 @@ func TestAddedStatisticShardsAndPaths(t *testing.T) {
 	if !bytes.Equal(marshal(shards[0]), marshal(single)) {
 		t.Error("merged shards differ from one run")
 	}
-	noRaw16 = true
+	opt.read = readFloat32
 	if f32 := run(0, 1); !reflect.DeepEqual(f32, single) {
 		t.Error("float32 path differs from the pattern path")
 	}
-	noRaw16 = false
+	opt.read = 0
 	if v := single.Result().Blocks[0].Stats[0].Extra; len(v) != 1 || math.IsNaN(v[0]) || v[0] < 1 {
 		t.Errorf("keys90 of L0 H0 = %v, want a count >= 1", v)
 	}

@@ -89,6 +89,8 @@ type Options struct {
 	// inferred from their zeros (analysis/rules_infer.go) and assumed query
 	// positions are not tested.
 	NoInfer bool
+	// read takes read paths off (tests compare them; zero = every path).
+	read readPaths
 }
 
 // DefaultOptions returns the options heed check and heed rank start from.
@@ -569,7 +571,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 	sumTol, sumLoose := RowSumTolerance(blk, opt.SumTol)
 	doNaN, doSum, doNeg := rowChecks(opt.Rules)
 	cfg := passConfig{tol: opt.Tol, sumTol: sumTol, sumLoose: sumLoose, sumBelow: opt.SumBelow, doNaN: doNaN, doSum: doSum, doNeg: doNeg,
-		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example, yield: opt.Yield}
+		grad: blk.HasGrad, allow: blk.HasAllow && rules.active[RuleExplicit], example: example, yield: opt.Yield, read: opt.read}
 	cfg.doCut = cutCheck(opt.Rules) && cutBlock(rules)
 	cfg.tiny = max(underflowTiny(blk.DType), underflowTiny(blk.ComputeDType))
 	workers := make([]*worker, nw)
@@ -709,6 +711,7 @@ type passConfig struct {
 	doCut                         bool // the cut check reads this block's rows (rules_cut.go)
 	example                       string
 	yield                         func() // Options.Yield
+	read                          readPaths
 }
 
 // lnN returns ln n for n >= 1, from a table up to 4096 keys.

@@ -250,10 +250,10 @@ func (w *worker) forbiddenRun16(ra *rowAcc, t *rawTables, row []uint16, rw *rowA
 func (w *worker) readRaw16(rd reader, cfg passConfig, at unitAt) (*rawTables, []uint16, func(), error) {
 	l, b, h := at.l, at.b, at.h
 	rr, ok := rd.(raw16Reader)
-	if !ok || cfg.grad || noRaw16 {
+	if !ok || cfg.grad || cfg.read&readFloat32 != 0 {
 		return nil, nil, nil, nil
 	}
-	if !noView16 {
+	if cfg.read&readNoViews == 0 {
 		v, d, release, err := rr.ViewRaw16(l, b, h)
 		if err != nil {
 			return nil, nil, nil, err
@@ -275,6 +275,12 @@ func (w *worker) readRaw16(rd reader, cfg passConfig, at unitAt) (*rawTables, []
 	return rawTablesFor(d), w.r16, nil, nil
 }
 
-// noRaw16 turns the pattern path off, noView16 its views of the file's
-// bytes (tests compare the paths).
-var noRaw16, noView16 bool
+// readPaths take read paths off, for tests that compare the paths
+// (Options.read): readFloat32 the pattern path, readNoViews its views of
+// the file's bytes.
+type readPaths uint8
+
+const (
+	readFloat32 readPaths = 1 << iota
+	readNoViews
+)

@@ -98,7 +98,7 @@ func randomHead16Mix(rng *rand.Rand, S int, bf bool, data []uint16, negRows floa
 }
 
 func TestRaw16SameAsFloat32(t *testing.T) {
-	defer func() { noRaw16, noView16, loader.ViewMapped = false, false, false }()
+	defer func() { loader.ViewMapped = false }()
 	for _, c := range []struct {
 		dtype string
 		bf    bool
@@ -127,15 +127,18 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 			// the patterns viewed in place in the mapping, the patterns
 			// copied from the mapping
 			var got [4]*Partial
-			for i, mode := range [][3]bool{{true, false, false}, {false, true, false}, {false, false, true}, {false, true, true}} {
-				noRaw16, noView16, loader.ViewMapped = mode[0], mode[1], mode[2]
+			for i, mode := range []struct {
+				read   readPaths
+				mapped bool
+			}{{readFloat32, false}, {readNoViews, false}, {0, true}, {readNoViews, true}} {
+				opt.read, loader.ViewMapped = mode.read, mode.mapped
 				p, err := Analyze(context.Background(), ex, opt)
 				if err != nil {
 					t.Fatal(err)
 				}
 				got[i] = p
 			}
-			noView16, loader.ViewMapped = false, false
+			opt.read, loader.ViewMapped = 0, false
 			for i, how := range []string{"read from the file", "viewed in the mapping", "copied from the mapping"} {
 				if !reflect.DeepEqual(got[0], got[i+1]) {
 					t.Fatalf("%s S=%d: pattern path (%s) differs from the float32 path", c.dtype, S, how)
@@ -153,7 +156,6 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 // max_k A; sum_k A |k - q|) computed here key by key in float64 with
 // math.Log, to 1e-12, and the float32 path gives the same bits.
 func TestBidirectionalStatsByDefinition(t *testing.T) {
-	defer func() { noRaw16 = false }()
 	rng := rand.New(rand.NewSource(11))
 	L, H, S := 1, 2, 45
 	data := make([]uint16, L*H*S*S)
@@ -174,8 +176,8 @@ func TestBidirectionalStatsByDefinition(t *testing.T) {
 	opt := DefaultOptions()
 	opt.SumBelow, opt.SumTol = true, 1e9 // rows are not normalised here
 	var res [2]*Result
-	for i, off := range []bool{false, true} {
-		noRaw16 = off
+	for i, read := range []readPaths{0, readFloat32} {
+		opt.read = read
 		p, err := Analyze(context.Background(), ex, opt)
 		if err != nil {
 			t.Fatal(err)
