@@ -105,12 +105,14 @@ const (
 // "not set"; Window, Prefix and KVHeads use -1 for "not set" when the zero
 // value is meaningful, see NewOptions.
 type Options struct {
-	Axes       string // e.g. "layer batch head query key"
-	Kind       Kind
-	TokensFile string // one token a line, or a JSON list (of lists, per batch item)
-	Window     int    // -1 = not set
-	Prefix     int    // -1 = not set
-	KVHeads    int    // -1 = not set
+	Axes string // e.g. "layer batch head query key"
+	Kind Kind
+	// Tokens are token lists given from outside the export (heed reads
+	// them from a file); each replaces the export's own tokens of its side.
+	Tokens  []Tokens
+	Window  int // -1 = not set
+	Prefix  int // -1 = not set
+	KVHeads int // -1 = not set
 	// ComputeDType is the dtype the model computed attention in (Invalid =
 	// not set); see ParseComputeDType.
 	ComputeDType DType
@@ -120,6 +122,29 @@ type Options struct {
 	// Group is how OpenSet groups files into examples (see Set); the other
 	// fields apply to every example.
 	Group GroupMode
+}
+
+// Tokens are one side's tokens, given as data.
+type Tokens struct {
+	// Side names the side; "" means the export's only side ("target" when
+	// the export has none). With several sides, "" is a *TokensSideError.
+	Side string
+	// Source says where the tokens came from, for messages (a file name).
+	Source string
+	// Rows hold one list per batch item, or one list for every item; all
+	// of one length, the side's.
+	Rows [][]string
+}
+
+// TokensSideError is returned when tokens are given without a side for an
+// export with several sides: the caller says which one.
+type TokensSideError struct {
+	Source string   // the Source of the tokens
+	Sides  []string // the export's sides, sorted
+}
+
+func (e *TokensSideError) Error() string {
+	return fmt.Sprintf("%s: tokens given without a side, and the export has sides %s: name the side", e.Source, strings.Join(e.Sides, ", "))
 }
 
 // NewOptions returns Options with nothing overridden.

@@ -5,10 +5,9 @@
 package loader
 
 import (
-	"bytes"
-	"encoding/json"
 	"fmt"
-	"os"
+	"maps"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -154,17 +153,9 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 		}
 	}
 
-	if opt.TokensFile != "" {
-		sideName, path := "", opt.TokensFile
-		if i := strings.IndexByte(path, '='); i > 0 && !strings.ContainsAny(path[:i], `/\.`) {
-			if _, err := os.Stat(path); err != nil {
-				sideName, path = path[:i], path[i+1:]
-			}
-		}
-		toks, err := readTokensFile(path)
-		if err != nil {
-			return err
-		}
+	given := map[string]string{} // side -> the Source of the tokens given for it
+	for _, tk := range opt.Tokens {
+		sideName := tk.Side
 		if sideName == "" {
 			set := map[string]bool{}
 			for n := range ex.Sides {
@@ -186,22 +177,24 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 					sideName = n
 				}
 			default:
-				var all []string
-				for n := range set {
-					all = append(all, n)
-				}
-				sort.Strings(all)
-				return &FormatError{File: path, Offset: -1, Msg: fmt.Sprintf("--tokens: the export has sides %s; say which with --tokens SIDE=FILE", strings.Join(all, ", "))}
+				return &TokensSideError{Source: tk.Source, Sides: slices.Sorted(maps.Keys(set))}
 			}
+		}
+		if prev, ok := given[sideName]; ok {
+			return &FormatError{File: tk.Source, Offset: -1, Msg: fmt.Sprintf("tokens for side %q given twice (also by %s)", sideName, prev)}
+		}
+		given[sideName] = tk.Source
+		if len(tk.Rows) == 0 || len(tk.Rows[0]) == 0 {
+			return &FormatError{File: tk.Source, Offset: -1, Msg: "empty token list"}
 		}
 		s := side(sideName)
-		n := len(toks[0])
-		for _, r := range toks {
+		n := len(tk.Rows[0])
+		for _, r := range tk.Rows {
 			if len(r) != n {
-				return &FormatError{File: path, Offset: -1, Msg: fmt.Sprintf("token lists of different lengths (%d and %d)", n, len(r))}
+				return &FormatError{File: tk.Source, Offset: -1, Msg: fmt.Sprintf("token lists of different lengths (%d and %d)", n, len(r))}
 			}
 		}
-		// The file replaces the export's own tokens for this side.
+		// The given tokens replace the export's own tokens for this side.
 		if srcs[sideName].what == "tokens" {
 			s.Len = -1
 			if s.Valid != nil {
@@ -210,21 +203,21 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 				s.Len = len(s.Segments[0])
 			}
 		}
-		if err := setLen(s, n, sideSrc{file: path, what: "tokens"}); err != nil {
+		if err := setLen(s, n, sideSrc{file: tk.Source, what: "tokens"}); err != nil {
 			return err
 		}
-		s.Tokens = toks
+		s.Tokens = tk.Rows
 	}
 
 	// A block without sides uses the export's only side when it fits, or
-	// always when the side's tokens came from --tokens (then a length that
+	// always when the side's tokens were given (Options.Tokens: then a length that
 	// does not fit is an error below).
 	if len(ex.Sides) == 1 {
 		var only *Side
 		for _, s := range ex.Sides {
 			only = s
 		}
-		forced := opt.TokensFile != ""
+		forced := len(opt.Tokens) > 0
 		for _, b := range ex.Blocks {
 			fits := only.Len == b.Keys && b.Queries <= b.Keys
 			if b.QuerySide == "" && b.KeySide == "" && b.Kind != KindCross && b.Layers > 0 && (fits || forced) {
@@ -302,41 +295,4 @@ func splitRows(v []string, batch, n int) [][]string {
 		out[i] = v[i*n : (i+1)*n : (i+1)*n]
 	}
 	return out
-}
-
-// readTokensFile reads --tokens: a JSON list of strings, a JSON list of
-// lists (one per batch item), or one token a line.
-func readTokensFile(path string) ([][]string, error) {
-	b, err := os.ReadFile(path)
-	if err != nil {
-		return nil, &FormatError{File: path, Offset: -1, Msg: "cannot read the tokens file", Err: err}
-	}
-	t := bytes.TrimSpace(b)
-	if len(t) > 0 && t[0] == '[' {
-		var flat []string
-		if err := json.Unmarshal(t, &flat); err == nil {
-			if len(flat) == 0 {
-				return nil, &FormatError{File: path, Offset: -1, Msg: "empty token list"}
-			}
-			return [][]string{flat}, nil
-		}
-		var nested [][]string
-		if err := json.Unmarshal(t, &nested); err != nil {
-			return nil, &FormatError{File: path, Offset: -1, Msg: "not a JSON list of strings or of lists of strings", Err: err}
-		}
-		if len(nested) == 0 || len(nested[0]) == 0 {
-			return nil, &FormatError{File: path, Offset: -1, Msg: "empty token list"}
-		}
-		return nested, nil
-	}
-	s := string(b)
-	s = strings.TrimSuffix(s, "\n")
-	if s == "" {
-		return nil, &FormatError{File: path, Offset: -1, Msg: "empty tokens file"}
-	}
-	lines := strings.Split(s, "\n")
-	for i, l := range lines {
-		lines[i] = strings.TrimSuffix(l, "\r")
-	}
-	return [][]string{lines}, nil
 }
