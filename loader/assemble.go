@@ -204,8 +204,8 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: one head per layer: heads were probably averaged at export, so per-head statistics and pruning do not apply", b.Name))
 		}
 		if b.Layers > 0 && b.AxesFrom == "rank" && b.AxesOther != "" {
-			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: axes guessed from the rank as %q (no metadata, no --axes); if the array is [%s], pass --axes %q (or meta blocks.%s.axes)",
-				b.Name, b.Axes, strings.ReplaceAll(b.AxesOther, " ", ", "), b.AxesOther, b.Name))
+			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: axes guessed from the rank as %q (no metadata, no %s); if the array is [%s], pass %s %q (or meta blocks.%s.axes)",
+				b.Name, b.Axes, opt.name("axes"), strings.ReplaceAll(b.AxesOther, " ", ", "), opt.name("axes"), b.AxesOther, b.Name))
 		}
 		if b.Window > 0 && b.Kind != KindCausal {
 			ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: window %d is only checked for causal blocks", b.Name, b.Window))

@@ -108,8 +108,9 @@ func parseAxes(s string) []string {
 	return strings.FieldsFunc(s, func(r rune) bool { return r == ' ' || r == ',' || r == '\t' })
 }
 
-// resolveAxes decides the axes of an attention array of the given rank.
-func resolveAxes(a Array, axes string, perLayer bool) (axisSpec, error) {
+// resolveAxes decides the axes of an attention array of the given rank;
+// axesName is how messages name the axes setting (Options.name).
+func resolveAxes(a Array, axes string, perLayer bool, axesName string) (axisSpec, error) {
 	rank := len(a.Shape())
 	var names []string
 	if axes == "" {
@@ -119,7 +120,7 @@ func resolveAxes(a Array, axes string, perLayer bool) (axisSpec, error) {
 		}
 		s, ok := byRank[rank]
 		if !ok {
-			return axisSpec{}, ferr(a, "cannot infer the axes of a rank-%d array; give them with --axes or the metadata's \"axes\"", rank)
+			return axisSpec{}, ferr(a, "cannot infer the axes of a rank-%d array; give them with %s or the metadata's \"axes\"", rank, axesName)
 		}
 		names = parseAxes(s)
 	} else {
@@ -278,7 +279,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 	var dims [5]int
 	if len(attnArrs) > 0 {
 		a0 := attnArrs[0]
-		sp, err := resolveAxes(a0, st.axes, attnPer)
+		sp, err := resolveAxes(a0, st.axes, attnPer, opt.name("axes"))
 		if err != nil {
 			return nil, err
 		}
@@ -333,7 +334,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 					return nil, ferr(g, "gradients must be floating point, got %s", g.DType())
 				}
 			}
-			gs, err := resolveAxes(gradArrs[0], st.axes, gradPer)
+			gs, err := resolveAxes(gradArrs[0], st.axes, gradPer, opt.name("axes"))
 			if err != nil {
 				return nil, err
 			}
@@ -473,7 +474,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 	return b, nil
 }
 
-// otherReading returns the --axes value of the other way an attention array
+// otherReading returns the axes (an Options.Axes value) of the other way an attention array
 // of this rank could be read when its axes were taken from the rank, or ""
 // when the rank's reading is the only common one. A whole rank-4 array is
 // [layer, head, query, key] by rank, but one layer saved alone as [batch,
@@ -495,11 +496,11 @@ const maxQPos = 1 << 24
 // setQueryPos places the block's query rows among its keys from BLOCK/qpos
 // or query_start; without either, rows keep QueryOffset.
 func setQueryPos(b *Block, qpos Array, st blockSettings, first Array) error {
-	if qpos != nil && st.queryStart != nil && st.startFrom != "--query-start" {
+	if qpos != nil && st.queryStart != nil && st.startFrom != "option" {
 		return ferr(qpos, "block %q has both %s/qpos and query_start: give one", b.Name, b.Name)
 	}
 	switch {
-	case st.startFrom == "--query-start" || (qpos == nil && st.queryStart != nil):
+	case st.startFrom == "option" || (qpos == nil && st.queryStart != nil):
 		if len(st.queryStart) != 1 && len(st.queryStart) != b.Batch {
 			return &FormatError{File: first.File(), Array: "meta", Offset: -1, Msg: fmt.Sprintf("block %q: query_start lists %d positions for %d batch items", b.Name, len(st.queryStart), b.Batch)}
 		}

@@ -164,11 +164,11 @@ type blockSettings struct {
 	query, key              string
 	axes                    string
 	window, prefix, kvHeads int
-	axesFrom                string // "--axes", "metadata", "attribute" or ""
-	kindFrom                string // "--kind", "metadata", "attribute" or ""
+	axesFrom                string // "option", "metadata", "attribute" or ""
+	kindFrom                string // "option", "metadata", "attribute" or ""
 	compute                 DType  // Invalid = not said
 	queryStart              []int  // nil = not said; one value, or one per batch item
-	startFrom               string // "--query-start", "metadata", "attribute"
+	startFrom               string // "option", "metadata", "attribute"
 }
 
 func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array) (blockSettings, error) {
@@ -185,7 +185,7 @@ func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array
 	// kind
 	switch {
 	case opt.Kind != "":
-		s.kind, s.kindFrom = opt.Kind, "--kind"
+		s.kind, s.kindFrom = opt.Kind, "option"
 	case mb.Kind != nil:
 		s.kind, s.kindFrom = Kind(*mb.Kind), "metadata"
 	default:
@@ -220,7 +220,7 @@ func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array
 	// query start
 	switch {
 	case opt.QueryStart >= 0:
-		s.queryStart, s.startFrom = []int{opt.QueryStart}, "--query-start"
+		s.queryStart, s.startFrom = []int{opt.QueryStart}, "option"
 	case len(mb.QueryStart) > 0 && string(mb.QueryStart) != "null":
 		var one int
 		var list []int
@@ -268,7 +268,7 @@ func settings(p *parts, mb metaBlock, topCompute string, opt Options, attn Array
 	// axes
 	switch {
 	case opt.Axes != "":
-		s.axes, s.axesFrom = opt.Axes, "--axes"
+		s.axes, s.axesFrom = opt.Axes, "option"
 	case len(mb.Axes) > 0 && string(mb.Axes) != "null":
 		var str string
 		var list []string

@@ -37,9 +37,10 @@ func countOpens(t *testing.T, f func()) int {
 }
 
 // A directory of per-example files named with numbers is a set of as many
-// examples as files, and says that the grouping was guessed; --group
-// layers reads them as before (the layers of one block), --group one as
-// one export.
+// examples as files, and says that the grouping was guessed and the setting
+// that says otherwise (named by Options.SettingName when the caller words
+// settings); grouping by layers reads them as before (the layers of one
+// block), one as one export.
 func TestNumberedFilesAreExamples(t *testing.T) {
 	dir := numberedSet(t, 20)
 	set, err := OpenSet([]string{dir}, NewOptions())
@@ -53,9 +54,15 @@ func TestNumberedFilesAreExamples(t *testing.T) {
 		t.Errorf("layout %+v, want block ex of 2 layers x 4 heads", l)
 	}
 	g := set.Grouping
-	if !g.Guessed || g.Rule != "numbered files are examples" || !strings.Contains(g.Warning, "--group layers") ||
+	if !g.Guessed || g.Rule != "numbered files are examples" || !strings.HasSuffix(g.Warning, "pass Options.Group layers") ||
 		len(set.Warnings) == 0 || set.Warnings[0] != g.Warning {
 		t.Errorf("grouping %+v, warnings %q: want a guess, said in the first warning", g, set.Warnings)
+	}
+	worded := NewOptions()
+	worded.SettingName = func(s string) string { return "<" + s + ">" }
+	if ws, err := OpenSet([]string{dir}, worded); err != nil || !strings.HasSuffix(ws.Grouping.Warning, "pass <group> layers") ||
+		!strings.Contains(ws.Warnings[1], "(no metadata, no <axes>)") {
+		t.Errorf("settings worded by the caller: %v, warnings %q", err, ws.Warnings)
 	}
 	if err := set.Check(); err != nil {
 		t.Fatal(err)
@@ -76,16 +83,16 @@ func TestNumberedFilesAreExamples(t *testing.T) {
 		t.Fatal(err)
 	}
 	// per-layer arrays of rank 4 are [batch head query key]
-	if l := set.Layout(); set.Len() != 1 || l[0].Layers != 20 || l[0].Heads != 4 || set.Grouping.Guessed {
-		t.Errorf("--group layers: %d examples, layout %+v, grouping %+v", set.Len(), l, set.Grouping)
+	if l := set.Layout(); set.Len() != 1 || l[0].Layers != 20 || l[0].Heads != 4 || set.Grouping.Guessed || set.Grouping.Rule != "Options.Group layers" {
+		t.Errorf("group layers: %d examples, layout %+v, grouping %+v", set.Len(), l, set.Grouping)
 	}
 	opt.Group = GroupOne
 	if set, err = OpenSet([]string{dir}, opt); err != nil || set.Len() != 1 || len(set.Examples[0]) != 20 {
-		t.Errorf("--group one: %v", err)
+		t.Errorf("group one: %v", err)
 	}
 	opt.Group = GroupExamples
 	if set, err = OpenSet([]string{dir}, opt); err != nil || set.Len() != 20 || set.Grouping.Guessed {
-		t.Errorf("--group examples: %v, grouping %+v", err, set.Grouping)
+		t.Errorf("group examples: %v, grouping %+v", err, set.Grouping)
 	}
 	if _, err := ParseGroupMode("pairs"); err == nil {
 		t.Error("ParseGroupMode(pairs): no error")
@@ -108,7 +115,7 @@ func TestPerLayerFilesStayOneExample(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if set.Len() != 1 || !set.Grouping.Guessed || !strings.Contains(set.Grouping.Warning, "--group examples") {
+	if set.Len() != 1 || !set.Grouping.Guessed || !strings.HasSuffix(set.Grouping.Warning, "pass Options.Group examples") {
 		t.Errorf("ex0000..ex0002 + layer_7: %d examples, grouping %+v", set.Len(), set.Grouping)
 	}
 }

@@ -39,7 +39,7 @@ func (lf *loadFlags) register(cmd *cobra.Command) {
 // options turns the flags into loader options, refusing values that
 // cannot be meant.
 func (lf *loadFlags) options() (loader.Options, error) {
-	o := loader.NewOptions()
+	o := newLoaderOptions()
 	switch loader.Kind(lf.kind) {
 	case loader.KindUnknown, loader.KindCausal, loader.KindBidirectional, loader.KindCross:
 	default:
@@ -103,6 +103,27 @@ func openSetChecked(args []string, lf *loadFlags) (*loader.Set, error) {
 		return nil, err
 	}
 	return set, nil
+}
+
+// newLoaderOptions are loader options that override nothing and word the
+// loader's settings as heed's options.
+func newLoaderOptions() loader.Options {
+	o := loader.NewOptions()
+	o.SettingName = optionName
+	return o
+}
+
+// optionName is the command-line option that gives a loader setting:
+// "query_start" is --query-start.
+func optionName(setting string) string { return "--" + strings.ReplaceAll(setting, "_", "-") }
+
+// givenBy words who gave a block's setting (loader.Block.KindFrom, AxesFrom,
+// PosFrom): "option" is heed's option for it (--kind, --axes, --query-start).
+func givenBy(setting, from string) string {
+	if from == "option" {
+		return optionName(setting)
+	}
+	return from
 }
 
 // inOptions is err's message with what the loader leaves to its caller
