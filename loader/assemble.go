@@ -98,66 +98,10 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 
 	// Arrays outside the convention become blocks when the convention found none.
 	if len(blocks) == 0 {
-		groups := map[string][]Array{}
-		var order []string
-		for _, a := range others {
-			if !a.DType().IsFloat() || len(a.Shape()) < 2 || strings.Contains(a.Name(), "/") {
-				continue
-			}
-			base := a.Name()
-			if m := trailingNum.FindStringSubmatch(base); m != nil {
-				base = m[1]
-			}
-			if _, ok := groups[base]; !ok {
-				order = append(order, base)
-			}
-			groups[base] = append(groups[base], a)
+		var err error
+		if blocks, others, err = bareBlocks(others); err != nil {
+			return nil, err
 		}
-		used := map[Array]bool{}
-		for _, base := range order {
-			g := groups[base]
-			if len(g) >= 2 {
-				name := base
-				if name == "" {
-					name = "attn"
-				}
-				p := &parts{name: name, bare: true, attnL: map[int]Array{}}
-				ok := true
-				for _, a := range g {
-					m := trailingNum.FindStringSubmatch(a.Name())
-					l, _ := strconv.Atoi(m[2])
-					if _, dup := p.attnL[l]; dup {
-						ok = false
-						break
-					}
-					p.attnL[l] = a
-				}
-				if ok && blocks[name] == nil {
-					blocks[name] = p
-					for _, a := range g {
-						used[a] = true
-					}
-					continue
-				}
-			}
-			for _, a := range g {
-				name := a.Name()
-				if name == "" {
-					name = "attn"
-				}
-				if blocks[name] == nil {
-					blocks[name] = &parts{name: name, bare: true, attn: a}
-					used[a] = true
-				}
-			}
-		}
-		rest := others[:0:0]
-		for _, a := range others {
-			if !used[a] {
-				rest = append(rest, a)
-			}
-		}
-		others = rest
 	}
 	for _, a := range others {
 		ex.Warnings = append(ex.Warnings, fmt.Sprintf("%s: %s: ignored: not a name of the heed-export/1 convention", a.File(), a.Name()))
@@ -212,4 +156,93 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		}
 	}
 	return ex, nil
+}
+
+// bareBlocks makes blocks of the floating-point arrays of rank 2 or more
+// outside the convention (used when nothing in the input follows it), and
+// returns the arrays it left. Arrays named with numbers after one stem
+// (layer_0, layer_1, ...) are the layers of one block named by the stem
+// ("attn" for 0, 1, ...); any other array is a block of its own name. Where
+// two arrays could both be meant (a stem both with and without a number, two
+// arrays of one layer number, two arrays that make one block name), it is an
+// error naming them and how to choose.
+func bareBlocks(others []Array) (map[string]*parts, []Array, error) {
+	groups := map[string][]Array{}
+	var order []string
+	var rest []Array
+	for _, a := range others {
+		if !a.DType().IsFloat() || len(a.Shape()) < 2 || strings.Contains(a.Name(), "/") {
+			rest = append(rest, a)
+			continue
+		}
+		base := a.Name()
+		if m := trailingNum.FindStringSubmatch(base); m != nil {
+			base = m[1]
+		}
+		if _, ok := groups[base]; !ok {
+			order = append(order, base)
+		}
+		groups[base] = append(groups[base], a)
+	}
+	blocks := map[string]*parts{}
+	from := map[string][]Array{} // a block's arrays, for messages
+	add := func(p *parts, arrs []Array) error {
+		if prev, ok := from[p.name]; ok {
+			return ambiguous(append(slices.Clone(prev), arrs...), fmt.Sprintf("could each be the attention of block %q", p.name))
+		}
+		blocks[p.name], from[p.name] = p, arrs
+		return nil
+	}
+	for _, base := range order {
+		g := groups[base]
+		if len(g) == 1 {
+			name := g[0].Name()
+			if name == "" {
+				name = "attn"
+			}
+			if err := add(&parts{name: name, bare: true, attn: g[0]}, g); err != nil {
+				return nil, nil, err
+			}
+			continue
+		}
+		name := base
+		if name == "" {
+			name = "attn"
+		}
+		p := &parts{name: name, bare: true, attnL: map[int]Array{}}
+		for _, a := range g {
+			m := trailingNum.FindStringSubmatch(a.Name())
+			if m == nil {
+				return nil, nil, ambiguous(g, fmt.Sprintf("could each be the attention of block %q (%s as a whole, the others as its layers)", name, a.Name()))
+			}
+			l, err := strconv.Atoi(m[2])
+			if err != nil || l >= 1<<20 {
+				return nil, nil, ferr(a, "layer number %s is larger than heed reads", m[2])
+			}
+			if prev, dup := p.attnL[l]; dup {
+				return nil, nil, ambiguous([]Array{prev, a}, fmt.Sprintf("both number layer %d of block %q", l, name))
+			}
+			p.attnL[l] = a
+		}
+		if err := add(p, g); err != nil {
+			return nil, nil, err
+		}
+	}
+	return blocks, rest, nil
+}
+
+// ambiguous is the error for arrays outside the convention that could each
+// be meant where heed takes one: it names them (and their files) and says
+// how to choose.
+func ambiguous(arrs []Array, what string) error {
+	var names, files []string
+	for _, a := range arrs {
+		names = append(names, a.Name())
+		if !slices.Contains(files, a.File()) {
+			files = append(files, a.File())
+		}
+	}
+	list := strings.Join(names[:len(names)-1], ", ") + " and " + names[len(names)-1]
+	return &FormatError{File: strings.Join(files, ", "), Offset: -1,
+		Msg: fmt.Sprintf("arrays %s %s: say which by naming them by the heed-export/1 convention (BLOCK/attn for a whole array, BLOCK/attn/N for layer N), or leave the others out", list, what)}
 }

@@ -75,7 +75,7 @@ func openZip(ref fileRef) (Container, error) {
 		mf.close()
 		return nil, err
 	}
-	if torchArchive(zr) != nil {
+	if len(torchArchives(zr)) > 0 {
 		return newTorchZip(ref, mf, zr)
 	}
 	return newNPZZip(ref.path, mf, zr)
