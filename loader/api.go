@@ -127,6 +127,8 @@ type Options struct {
 	// Options field ("Options.Axes"). The loader names settings ("axes",
 	// "group", "query_start"), never the ways a person gives them.
 	SettingName func(setting string) string
+
+	opened func(path string) // called with every file a Set opens (tests count them)
 }
 
 // Tokens are one side's tokens, given as data.

@@ -155,7 +155,7 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 		s.Grouping.Warning = fmt.Sprintf("%d NPY files named with numbers (%s) taken as %d examples, one file each (no metadata says how they group); if they are the layers of one export, pass %s layers",
 			len(refs), span(refs[0].path, refs[len(refs)-1].path), len(refs), opt.name("group"))
 	default:
-		if s.groups, first, err = groupByNames(refs); err != nil {
+		if s.groups, first, err = groupByNames(refs, opt); err != nil {
 			return nil, err
 		}
 		s.Grouping.Rule = "array names"
@@ -181,7 +181,7 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 		if cs[i] != nil {
 			continue
 		}
-		if cs[i], err = openRef(r); err != nil {
+		if cs[i], err = opt.openRef(r); err != nil {
 			closeOpen(cs)
 			return nil, err
 		}
@@ -213,16 +213,14 @@ func (s *Set) Check() error {
 	return nil
 }
 
-// openRef opens one file of the set. testOpenHook, set by tests only,
-// counts the files a set opens.
-func openRef(r fileRef) (Container, error) {
-	if testOpenHook != nil {
-		testOpenHook(r.path)
+// openRef opens one file of the set and tells o.opened (tests count the
+// files a set opens).
+func (o Options) openRef(r fileRef) (Container, error) {
+	if o.opened != nil {
+		o.opened(r.path)
 	}
 	return openFile(r)
 }
-
-var testOpenHook func(path string)
 
 // closeOpen closes the containers that are open (not nil).
 func closeOpen(cs []Container) {
@@ -325,7 +323,7 @@ func span(first, last string) string {
 // groupByNames is the rule of GroupLayers (see Set). It returns the groups
 // and the containers of the first group it opened while reading names
 // (by position in the group; nil where it did not open one).
-func groupByNames(refs []fileRef) (groups [][]fileRef, first []Container, err error) {
+func groupByNames(refs []fileRef, opt Options) (groups [][]fileRef, first []Container, err error) {
 	var (
 		cur   []fileRef
 		names = map[string]bool{}
@@ -342,7 +340,7 @@ func groupByNames(refs []fileRef) (groups [][]fileRef, first []Container, err er
 		if isNPYRef(r) {
 			arrays = []string{r.npyName}
 		} else {
-			if c, err = openRef(r); err != nil {
+			if c, err = opt.openRef(r); err != nil {
 				closeOpen(first)
 				return nil, nil, err
 			}
@@ -395,7 +393,7 @@ func (s *Set) Open(i int) (*Export, error) {
 	}
 	var cs []Container
 	for _, r := range s.groups[i] {
-		c, err := openRef(r)
+		c, err := s.opt.openRef(r)
 		if err != nil {
 			closeAll(cs)
 			return nil, err

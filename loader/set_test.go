@@ -26,15 +26,6 @@ func numberedSet(t testing.TB, n int) string {
 	return dir
 }
 
-// countOpens counts the files the loader opens while f runs.
-func countOpens(t *testing.T, f func()) int {
-	t.Helper()
-	n := 0
-	testOpenHook = func(string) { n++ }
-	defer func() { testOpenHook = nil }()
-	f()
-	return n
-}
 
 // A directory of per-example files named with numbers is a set of as many
 // examples as files, and says that the grouping was guessed and the setting
@@ -145,20 +136,21 @@ func TestShardOpensItsOwnFiles(t *testing.T) {
 			{npyDir, 2}, // example 0 (layout) and example 1
 			{stDir, 3},  // file 0 and file 1 read for their names (file 1 repeats them), then example 1
 		} {
-			var set *Set
-			opens := countOpens(t, func() {
-				if set, err = OpenSet([]string{c.dir}, NewOptions()); err != nil {
+			opens := 0
+			opt := NewOptions()
+			opt.opened = func(string) { opens++ }
+			set, err := OpenSet([]string{c.dir}, opt)
+			if err != nil {
+				t.Fatal(err)
+			}
+			// shard 1 of n: example 1
+			for i := 1; i < set.Len(); i += n {
+				ex, err := set.Open(i)
+				if err != nil {
 					t.Fatal(err)
 				}
-				// shard 1 of n: example 1
-				for i := 1; i < set.Len(); i += n {
-					ex, err := set.Open(i)
-					if err != nil {
-						t.Fatal(err)
-					}
-					ex.Close()
-				}
-			})
+				ex.Close()
+			}
 			if set.Len() != n || opens != c.want {
 				t.Errorf("%s: %d examples (want %d); shard 1/%d opened %d files, want %d", filepath.Base(c.dir), set.Len(), n, n, opens, c.want)
 			}
