@@ -26,7 +26,6 @@ func numberedSet(t testing.TB, n int) string {
 	return dir
 }
 
-
 // A directory of per-example files named with numbers is a set of as many
 // examples as files, and says that the grouping was guessed and the setting
 // that says otherwise (named by Options.SettingName when the caller words
