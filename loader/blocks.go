@@ -65,8 +65,6 @@ func (p *parts) set(r role, layer int, a Array) error {
 	return nil
 }
 
-// layerArrays returns the arrays of a whole-or-per-layer role in layer order,
-// checking that per-layer indices run 0..L-1.
 // lowestLayer is the per-layer array of the lowest layer: the one messages
 // name, the same from one run to the next (a map's order is not).
 func lowestLayer(per map[int]Array) Array {
@@ -79,6 +77,8 @@ func lowestLayer(per map[int]Array) Array {
 	return per[best]
 }
 
+// layerArrays returns the arrays of a whole-or-per-layer role in layer order,
+// checking that per-layer indices run 0..L-1.
 func layerArrays(block, role string, whole Array, per map[int]Array) ([]Array, bool, error) {
 	if whole != nil {
 		return []Array{whole}, false, nil
