@@ -73,6 +73,8 @@ fuzz:
 	$(GO) test -run '^$$' -fuzz '^FuzzNPZ$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzSafetensors$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
 	$(GO) test -run '^$$' -fuzz '^FuzzTorch$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzMeta$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./loader
+	$(GO) test -run '^$$' -fuzz '^FuzzTokens$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./cmd/heed
 	$(GO) test -run '^$$' -fuzz '^FuzzPartial$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./analysis
 	$(GO) test -run '^$$' -fuzz '^FuzzParseLoc$$' -fuzztime $(FUZZTIME) -fuzzminimizetime 5s ./internal/words
 

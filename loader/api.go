@@ -101,16 +101,18 @@ const (
 	KindCross         Kind = "cross"
 )
 
-// Options override what the files say (command-line flags). Zero values mean
+// Options override what the files say (heed's command-line options). Zero values mean
 // "not set"; Window, Prefix and KVHeads use -1 for "not set" when the zero
 // value is meaningful, see NewOptions.
 type Options struct {
-	Axes       string // e.g. "layer batch head query key"
-	Kind       Kind
-	TokensFile string // one token a line, or a JSON list (of lists, per batch item)
-	Window     int    // -1 = not set
-	Prefix     int    // -1 = not set
-	KVHeads    int    // -1 = not set
+	Axes string // e.g. "layer batch head query key"
+	Kind Kind
+	// Tokens are token lists given from outside the export (heed reads
+	// them from a file); each replaces the export's own tokens of its side.
+	Tokens  []Tokens
+	Window  int // -1 = not set
+	Prefix  int // -1 = not set
+	KVHeads int // -1 = not set
 	// ComputeDType is the dtype the model computed attention in (Invalid =
 	// not set); see ParseComputeDType.
 	ComputeDType DType
@@ -120,13 +122,59 @@ type Options struct {
 	// Group is how OpenSet groups files into examples (see Set); the other
 	// fields apply to every example.
 	Group GroupMode
+	// SettingName words a setting in messages as the caller's users give
+	// it (heed words "axes" as its command-line option); nil names the
+	// Options field ("Options.Axes"). The loader names settings ("axes",
+	// "group", "query_start"), never the ways a person gives them.
+	SettingName func(setting string) string
+
+	opened func(path string) // called with every file a Set opens (tests count them)
+}
+
+// Tokens are one side's tokens, given as data.
+type Tokens struct {
+	// Side names the side; "" means the export's only side ("target" when
+	// the export has none). With several sides, "" is a *TokensSideError.
+	Side string
+	// Source says where the tokens came from, for messages (a file name).
+	Source string
+	// Rows hold one list per batch item, or one list for every item; all
+	// of one length, the side's.
+	Rows [][]string
+}
+
+// TokensSideError is returned when tokens are given without a side for an
+// export with several sides: the caller says which one.
+type TokensSideError struct {
+	Source string   // the Source of the tokens
+	Sides  []string // the export's sides, sorted
+}
+
+func (e *TokensSideError) Error() string {
+	return fmt.Sprintf("%s: tokens given without a side, and the export has sides %s: name the side", e.Source, strings.Join(e.Sides, ", "))
+}
+
+// name is how messages name a setting (see SettingName): "query_start"
+// is Options.QueryStart unless the caller words it.
+func (o Options) name(setting string) string {
+	if o.SettingName != nil {
+		return o.SettingName(setting)
+	}
+	var b strings.Builder
+	b.WriteString("Options.")
+	for _, w := range strings.Split(setting, "_") {
+		if w != "" {
+			b.WriteString(strings.ToUpper(w[:1]) + w[1:])
+		}
+	}
+	return b.String()
 }
 
 // NewOptions returns Options with nothing overridden.
 func NewOptions() Options { return Options{Window: -1, Prefix: -1, KVHeads: -1, QueryStart: -1} }
 
 // ParseComputeDType reads the name of the dtype a model computed in, as the
-// metadata key compute_dtype and the --compute-dtype flag take it: the
+// metadata key compute_dtype and heed's command line take it: the
 // short names heed prints (f16, bf16, f32, f64) or PyTorch's and numpy's
 // (float16, half, bfloat16, float32, float, float64, double; a "torch."
 // prefix is accepted).

@@ -2,8 +2,6 @@ package loader
 
 import (
 	"errors"
-	"os"
-	"path/filepath"
 	"reflect"
 	"strings"
 	"testing"
@@ -233,10 +231,10 @@ func TestReadAttnNoAllocs(t *testing.T) {
 
 func TestAssembleErrors(t *testing.T) {
 	a5 := func(name string, shape ...int) Array { return NewMemArray(name, Float32, shape, fill(shape)) }
-	tokFile := filepath.Join(t.TempDir(), "toks.txt")
-	os.WriteFile(tokFile, []byte("a\nb\nc\n"), 0o644)
 	withTokens := NewOptions()
-	withTokens.TokensFile = tokFile
+	withTokens.Tokens = []Tokens{{Source: "toks.txt", Rows: [][]string{{"a", "b", "c"}}}}
+	tokens := func(ts ...Tokens) Options { o := NewOptions(); o.Tokens = ts; return o }
+	abc := [][]string{{"a", "b", "c"}}
 	cases := []struct {
 		name   string
 		arrs   []Array
@@ -247,7 +245,12 @@ func TestAssembleErrors(t *testing.T) {
 		{"grad shape", []Array{a5("d/attn", 2, 3, 4, 4), a5("d/grad", 2, 3, 4, 5)}, "", NewOptions(), "d/grad: gradient shape [2 3 4 5]"},
 		{"tokens length", []Array{a5("d/attn", 2, 4, 4), NewMemStrings("tokens/t", []int{3}, toks(3))},
 			`{"blocks":{"d":{"kind":"causal","query":"t","key":"t"}}}`, NewOptions(), "tokens/t: 3 tokens, but block \"d\" has 4"},
-		{"tokens file length", []Array{a5("d/attn", 2, 4, 4)}, "", withTokens, "toks.txt"},
+		{"tokens file length", []Array{a5("d/attn", 2, 4, 4)}, "", withTokens, "toks.txt: 3 tokens, but block \"d\" has 4 queries"},
+		{"tokens twice", []Array{a5("d/attn", 2, 3, 3)}, "", tokens(Tokens{Source: "one", Rows: abc}, Tokens{Side: "target", Source: "two", Rows: abc}),
+			`two: tokens for side "target" given twice (also by one)`},
+		{"tokens empty", []Array{a5("d/attn", 2, 3, 3)}, "", tokens(Tokens{Source: "e", Rows: [][]string{{}}}), "e: empty token list"},
+		{"tokens rows", []Array{a5("d/attn", 2, 2, 3, 3)}, `{"blocks":{"d":{"axes":"batch head query key"}}}`,
+			tokens(Tokens{Source: "r", Rows: [][]string{{"a", "b", "c"}, {"a"}}}), "r: token lists of different lengths (3 and 1)"},
 		{"valid shape", []Array{a5("d/attn", 2, 4, 4), NewMemArray("valid/t", Bool, []int{1, 2, 4}, make([]float64, 8))},
 			`{"blocks":{"d":{"query":"t"}}}`, NewOptions(), "valid/t: must be [seq] or [batch, seq]"},
 		{"valid vs tokens", []Array{a5("d/attn", 2, 4, 4), NewMemStrings("tokens/t", []int{4}, toks(4)), NewMemArray("valid/t", Bool, []int{5}, make([]float64, 5))},
@@ -282,28 +285,42 @@ func TestAssembleErrors(t *testing.T) {
 	}
 }
 
-func TestTokensFile(t *testing.T) {
-	dir := t.TempDir()
-	lines := filepath.Join(dir, "t.txt")
-	os.WriteFile(lines, []byte(" the\ncat\r\n sat\n"), 0o644)
-	js := filepath.Join(dir, "t.json")
-	os.WriteFile(js, []byte(`[["a","b","c"],["d","e","f"]]`), 0o644)
+// TestGivenTokens: tokens given as data (Options.Tokens) become the side's
+// tokens, one list for every batch item or one per item; the block takes the
+// only side; without a side name, an export of several sides is a
+// *TokensSideError listing them.
+func TestGivenTokens(t *testing.T) {
 	shape := []int{2, 2, 3, 3}
-	for _, c := range []struct {
-		file string
-		want [][]string
-	}{{lines, [][]string{{" the", "cat", " sat"}}}, {js, [][]string{{"a", "b", "c"}, {"d", "e", "f"}}}} {
+	for _, rows := range [][][]string{{{" the", "cat", " sat"}}, {{"a", "b", "c"}, {"d", "e", "f"}}} {
 		opt := NewOptions()
-		opt.TokensFile = c.file
+		opt.Tokens = []Tokens{{Source: "t", Rows: rows}}
 		opt.Axes = "batch head query key"
 		ex := mustAssemble(t, []Array{NewMemArray("x", Float32, shape, fill(shape))}, "", opt)
 		s := ex.Side("target")
-		if s == nil || !reflect.DeepEqual(s.Tokens, c.want) {
-			t.Errorf("%s: side = %+v", c.file, s)
+		if s == nil || !reflect.DeepEqual(s.Tokens, rows) {
+			t.Errorf("%q: side = %+v", rows, s)
 			continue
 		}
 		if b := ex.Blocks[0]; b.QuerySide != "target" || b.KeySide != "target" {
-			t.Errorf("%s: sides %q %q", c.file, b.QuerySide, b.KeySide)
+			t.Errorf("%q: sides %q %q", rows, b.QuerySide, b.KeySide)
 		}
+	}
+	arrs := []Array{NewMemArray("d/attn", Float32, []int{2, 3, 4}, fill([]int{2, 3, 4})),
+		NewMemStrings("tokens/src", []int{4}, toks(4)), NewMemStrings("tokens/tgt", []int{3}, toks(3))}
+	meta := `{"blocks":{"d":{"kind":"cross","query":"tgt","key":"src"}}}`
+	opt := NewOptions()
+	opt.Tokens = []Tokens{{Source: "toks.json", Rows: [][]string{{"x", "y", "z"}}}}
+	_, err := Assemble(arrs, meta, opt)
+	var se *TokensSideError
+	if !errors.As(err, &se) || se.Source != "toks.json" || !reflect.DeepEqual(se.Sides, []string{"src", "tgt"}) {
+		t.Errorf("tokens without a side, two sides: %v, want a *TokensSideError listing src, tgt", err)
+	}
+	opt.Tokens[0].Side = "tgt"
+	ex := mustAssemble(t, arrs, meta, opt)
+	if got := ex.Side("tgt").Tokens; !reflect.DeepEqual(got, [][]string{{"x", "y", "z"}}) {
+		t.Errorf("tokens for side tgt: %q", got)
+	}
+	if got := ex.Side("src").Tokens; !reflect.DeepEqual(got, [][]string{toks(4)}) {
+		t.Errorf("side src: %q, want the export's own", got)
 	}
 }

@@ -146,26 +146,26 @@ type Block struct {
 	// BLOCK/qpos, or from query_start. Use QueryPos.
 	QPos [][]int
 	// PosFrom says how query rows were placed among the keys: "qpos"
-	// (BLOCK/qpos), "metadata" (query_start), "--query-start", "offset"
+	// (BLOCK/qpos), "metadata" (query_start), "option" (Options.QueryStart), "offset"
 	// (a causal block with fewer queries than keys: the last Q of K
 	// positions, assumed) or "" (row q is position q).
 	PosFrom string
 	// PosEvidence says why the query positions are unknown (PosFrom
 	// "unknown", set by analysis when the data contradicts "offset").
 	PosEvidence string
-	// KindFrom says who gave Kind: "--kind", "metadata", "attribute", or ""
+	// KindFrom says who gave Kind: "option" (Options.Kind), "metadata", "attribute", or ""
 	// when nobody did (analysis may then infer it and write "inferred").
 	KindFrom string
 	// KindEvidence is, for a kind analysis inferred, what the data showed.
 	KindEvidence string
-	// AxesFrom says who gave Axes: "--axes", "metadata", "attribute", or
+	// AxesFrom says who gave Axes: "option" (Options.Axes), "metadata", "attribute", or
 	// "rank" when heed read them by the array's rank (a guess).
 	AxesFrom string
 	// AxesOther is, when the axes were guessed and the array could also be
-	// read another way, the --axes value of that other reading.
+	// read another way, the axes of that other reading (an Options.Axes value).
 	AxesOther string
 	// ComputeDType is the dtype the model computed attention in (metadata
-	// compute_dtype, --compute-dtype); Invalid when nobody said.
+	// compute_dtype, Options.ComputeDType); Invalid when nobody said.
 	ComputeDType DType
 	// Axes names the stored axes of the attention arrays, e.g.
 	// "layer batch head query key" (per-layer arrays: without "layer").

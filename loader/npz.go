@@ -75,7 +75,7 @@ func openZip(ref fileRef) (Container, error) {
 		mf.close()
 		return nil, err
 	}
-	if torchArchive(zr) != nil {
+	if len(torchArchives(zr)) > 0 {
 		return newTorchZip(ref, mf, zr)
 	}
 	return newNPZZip(ref.path, mf, zr)
@@ -223,9 +223,6 @@ func (z *npzFile) Close() error {
 	})
 }
 
-// tempFree is freeSpace (a variable so that tests can shrink the disk).
-var tempFree = freeSpace
-
 // inflated is a deflated member's data, inflated on first use: into memory,
 // or (file set) into an unlinked temporary file that is mapped and read like
 // a mapped input file (heads by pread), so that neither inflating nor
@@ -234,7 +231,8 @@ type inflated struct {
 	f              *zip.File
 	total, dataOff int64
 	path, name     string
-	file           *mappedFile // the temporary file, nil when in memory
+	file           *mappedFile                    // the temporary file, nil when in memory
+	free           func(dir string) (int64, bool) // freeSpace when nil (tests shrink the disk)
 
 	once sync.Once
 	buf  []byte
@@ -275,7 +273,11 @@ func (l *inflated) inflate() {
 		return
 	}
 	dir := os.TempDir()
-	if free, ok := tempFree(dir); ok && free < l.total {
+	freeSpace := freeSpace
+	if l.free != nil {
+		freeSpace = l.free
+	}
+	if free, ok := freeSpace(dir); ok && free < l.total {
 		fail(fmt.Sprintf("inflating it takes %d bytes of temporary space, %s has %d free (set TMPDIR to a larger disk)", l.total, dir, free), nil)
 		return
 	}

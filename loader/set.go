@@ -13,7 +13,7 @@ import (
 //
 // Each path argument is a file, a directory (every export file under it) or
 // a list file ("@LIST": one path a line). How the files, in the order given,
-// group into examples is decided by Options.Group (heed's --group):
+// group into examples is decided by Options.Group (the setting "group"):
 //
 //   - GroupAuto (the default): NPY files named with numbers (ex0000.npy,
 //     ex0001.npy, ... or 0.npy, 1.npy, ...), when they are all the files
@@ -71,7 +71,7 @@ const (
 	GroupOne      GroupMode = "one"
 )
 
-// ParseGroupMode reads the value of --group: auto, examples, layers or one.
+// ParseGroupMode reads a group mode by name: auto, examples, layers or one.
 func ParseGroupMode(s string) (GroupMode, error) {
 	switch m := GroupMode(strings.ToLower(strings.TrimSpace(s))); m {
 	case "auto", GroupAuto:
@@ -87,7 +87,8 @@ type Grouping struct {
 	// Mode is the mode asked for (GroupAuto: decided by the files).
 	Mode GroupMode
 	// Rule names the rule that decided, for people: "numbered files are
-	// examples", "array names", "--group examples", ...
+	// examples", "array names", or the setting and its value ("group
+	// examples", worded by Options.SettingName).
 	Rule string
 	// Guessed is true when nothing in the files or the options said how
 	// they group (bare NPY files named with numbers).
@@ -143,27 +144,27 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 	switch {
 	case mode == GroupOne:
 		s.groups = [][]fileRef{refs}
-		s.Grouping.Rule = "--group one"
+		s.Grouping.Rule = opt.name("group") + " one"
 	case mode == GroupExamples:
 		s.groups = oneEach(refs)
-		s.Grouping.Rule = "--group examples"
+		s.Grouping.Rule = opt.name("group") + " examples"
 	case mode == GroupAuto && numberedExamples(refs):
 		s.groups = oneEach(refs)
 		s.Grouping.Rule = "numbered files are examples"
 		s.Grouping.Guessed = true
-		s.Grouping.Warning = fmt.Sprintf("%d NPY files named with numbers (%s) taken as %d examples, one file each (no metadata says how they group); if they are the layers of one export, pass --group layers",
-			len(refs), span(refs[0].path, refs[len(refs)-1].path), len(refs))
+		s.Grouping.Warning = fmt.Sprintf("%d NPY files named with numbers (%s) taken as %d examples, one file each (no metadata says how they group); if they are the layers of one export, pass %s layers",
+			len(refs), span(refs[0].path, refs[len(refs)-1].path), len(refs), opt.name("group"))
 	default:
-		if s.groups, first, err = groupByNames(refs); err != nil {
+		if s.groups, first, err = groupByNames(refs, opt); err != nil {
 			return nil, err
 		}
 		s.Grouping.Rule = "array names"
 		if mode == GroupLayers {
-			s.Grouping.Rule = "--group layers"
+			s.Grouping.Rule = opt.name("group") + " layers"
 		} else if n := bareNumbered(s.groups[0], first); n >= 2 {
 			s.Grouping.Guessed = true
-			s.Grouping.Warning = fmt.Sprintf("%d NPY files named with numbers (%s) read as the layers of one export (their stems differ or other files sit beside them); if each is one example, pass --group examples",
-				n, span(s.groups[0][0].path, s.groups[0][len(s.groups[0])-1].path))
+			s.Grouping.Warning = fmt.Sprintf("%d NPY files named with numbers (%s) read as the layers of one export (their stems differ or other files sit beside them); if each is one example, pass %s examples",
+				n, span(s.groups[0][0].path, s.groups[0][len(s.groups[0])-1].path), opt.name("group"))
 		}
 	}
 	for _, g := range s.groups {
@@ -180,7 +181,7 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 		if cs[i] != nil {
 			continue
 		}
-		if cs[i], err = openRef(r); err != nil {
+		if cs[i], err = opt.openRef(r); err != nil {
 			closeOpen(cs)
 			return nil, err
 		}
@@ -212,16 +213,14 @@ func (s *Set) Check() error {
 	return nil
 }
 
-// openRef opens one file of the set. testOpenHook, set by tests only,
-// counts the files a set opens.
-func openRef(r fileRef) (Container, error) {
-	if testOpenHook != nil {
-		testOpenHook(r.path)
+// openRef opens one file of the set and tells o.opened (tests count the
+// files a set opens).
+func (o Options) openRef(r fileRef) (Container, error) {
+	if o.opened != nil {
+		o.opened(r.path)
 	}
 	return openFile(r)
 }
-
-var testOpenHook func(path string)
 
 // closeOpen closes the containers that are open (not nil).
 func closeOpen(cs []Container) {
@@ -324,7 +323,7 @@ func span(first, last string) string {
 // groupByNames is the rule of GroupLayers (see Set). It returns the groups
 // and the containers of the first group it opened while reading names
 // (by position in the group; nil where it did not open one).
-func groupByNames(refs []fileRef) (groups [][]fileRef, first []Container, err error) {
+func groupByNames(refs []fileRef, opt Options) (groups [][]fileRef, first []Container, err error) {
 	var (
 		cur   []fileRef
 		names = map[string]bool{}
@@ -341,7 +340,7 @@ func groupByNames(refs []fileRef) (groups [][]fileRef, first []Container, err er
 		if isNPYRef(r) {
 			arrays = []string{r.npyName}
 		} else {
-			if c, err = openRef(r); err != nil {
+			if c, err = opt.openRef(r); err != nil {
 				closeOpen(first)
 				return nil, nil, err
 			}
@@ -394,7 +393,7 @@ func (s *Set) Open(i int) (*Export, error) {
 	}
 	var cs []Container
 	for _, r := range s.groups[i] {
-		c, err := openRef(r)
+		c, err := s.opt.openRef(r)
 		if err != nil {
 			closeAll(cs)
 			return nil, err

@@ -26,20 +26,11 @@ func numberedSet(t testing.TB, n int) string {
 	return dir
 }
 
-// countOpens counts the files the loader opens while f runs.
-func countOpens(t *testing.T, f func()) int {
-	t.Helper()
-	n := 0
-	testOpenHook = func(string) { n++ }
-	defer func() { testOpenHook = nil }()
-	f()
-	return n
-}
-
 // A directory of per-example files named with numbers is a set of as many
-// examples as files, and says that the grouping was guessed; --group
-// layers reads them as before (the layers of one block), --group one as
-// one export.
+// examples as files, and says that the grouping was guessed and the setting
+// that says otherwise (named by Options.SettingName when the caller words
+// settings); grouping by layers reads them as before (the layers of one
+// block), one as one export.
 func TestNumberedFilesAreExamples(t *testing.T) {
 	dir := numberedSet(t, 20)
 	set, err := OpenSet([]string{dir}, NewOptions())
@@ -53,9 +44,15 @@ func TestNumberedFilesAreExamples(t *testing.T) {
 		t.Errorf("layout %+v, want block ex of 2 layers x 4 heads", l)
 	}
 	g := set.Grouping
-	if !g.Guessed || g.Rule != "numbered files are examples" || !strings.Contains(g.Warning, "--group layers") ||
+	if !g.Guessed || g.Rule != "numbered files are examples" || !strings.HasSuffix(g.Warning, "pass Options.Group layers") ||
 		len(set.Warnings) == 0 || set.Warnings[0] != g.Warning {
 		t.Errorf("grouping %+v, warnings %q: want a guess, said in the first warning", g, set.Warnings)
+	}
+	worded := NewOptions()
+	worded.SettingName = func(s string) string { return "<" + s + ">" }
+	if ws, err := OpenSet([]string{dir}, worded); err != nil || !strings.HasSuffix(ws.Grouping.Warning, "pass <group> layers") ||
+		!strings.Contains(ws.Warnings[1], "(no metadata, no <axes>)") {
+		t.Errorf("settings worded by the caller: %v, warnings %q", err, ws.Warnings)
 	}
 	if err := set.Check(); err != nil {
 		t.Fatal(err)
@@ -76,16 +73,16 @@ func TestNumberedFilesAreExamples(t *testing.T) {
 		t.Fatal(err)
 	}
 	// per-layer arrays of rank 4 are [batch head query key]
-	if l := set.Layout(); set.Len() != 1 || l[0].Layers != 20 || l[0].Heads != 4 || set.Grouping.Guessed {
-		t.Errorf("--group layers: %d examples, layout %+v, grouping %+v", set.Len(), l, set.Grouping)
+	if l := set.Layout(); set.Len() != 1 || l[0].Layers != 20 || l[0].Heads != 4 || set.Grouping.Guessed || set.Grouping.Rule != "Options.Group layers" {
+		t.Errorf("group layers: %d examples, layout %+v, grouping %+v", set.Len(), l, set.Grouping)
 	}
 	opt.Group = GroupOne
 	if set, err = OpenSet([]string{dir}, opt); err != nil || set.Len() != 1 || len(set.Examples[0]) != 20 {
-		t.Errorf("--group one: %v", err)
+		t.Errorf("group one: %v", err)
 	}
 	opt.Group = GroupExamples
 	if set, err = OpenSet([]string{dir}, opt); err != nil || set.Len() != 20 || set.Grouping.Guessed {
-		t.Errorf("--group examples: %v, grouping %+v", err, set.Grouping)
+		t.Errorf("group examples: %v, grouping %+v", err, set.Grouping)
 	}
 	if _, err := ParseGroupMode("pairs"); err == nil {
 		t.Error("ParseGroupMode(pairs): no error")
@@ -108,7 +105,7 @@ func TestPerLayerFilesStayOneExample(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if set.Len() != 1 || !set.Grouping.Guessed || !strings.Contains(set.Grouping.Warning, "--group examples") {
+	if set.Len() != 1 || !set.Grouping.Guessed || !strings.HasSuffix(set.Grouping.Warning, "pass Options.Group examples") {
 		t.Errorf("ex0000..ex0002 + layer_7: %d examples, grouping %+v", set.Len(), set.Grouping)
 	}
 }
@@ -138,20 +135,21 @@ func TestShardOpensItsOwnFiles(t *testing.T) {
 			{npyDir, 2}, // example 0 (layout) and example 1
 			{stDir, 3},  // file 0 and file 1 read for their names (file 1 repeats them), then example 1
 		} {
-			var set *Set
-			opens := countOpens(t, func() {
-				if set, err = OpenSet([]string{c.dir}, NewOptions()); err != nil {
+			opens := 0
+			opt := NewOptions()
+			opt.opened = func(string) { opens++ }
+			set, err := OpenSet([]string{c.dir}, opt)
+			if err != nil {
+				t.Fatal(err)
+			}
+			// shard 1 of n: example 1
+			for i := 1; i < set.Len(); i += n {
+				ex, err := set.Open(i)
+				if err != nil {
 					t.Fatal(err)
 				}
-				// shard 1 of n: example 1
-				for i := 1; i < set.Len(); i += n {
-					ex, err := set.Open(i)
-					if err != nil {
-						t.Fatal(err)
-					}
-					ex.Close()
-				}
-			})
+				ex.Close()
+			}
 			if set.Len() != n || opens != c.want {
 				t.Errorf("%s: %d examples (want %d); shard 1/%d opened %d files, want %d", filepath.Base(c.dir), set.Len(), n, n, opens, c.want)
 			}

@@ -136,15 +136,17 @@ func (t *torchFile) Arrays() []Array      { return append([]Array(nil), t.arrays
 func (t *torchFile) Meta() (string, bool) { return t.meta, t.hasMeta }
 func (t *torchFile) Close() error         { return t.mf.close() }
 
-// torchArchive returns the data.pkl member of a torch.save archive (one
-// level down: ARCHIVE/data.pkl), nil when zr is not one.
-func torchArchive(zr *zip.Reader) *zip.File {
+// torchArchives returns the data.pkl members of torch.save archives (one
+// level down: ARCHIVE/data.pkl) in zip order: none when zr is not a
+// torch.save file, one when it is, more when it is several (an error).
+func torchArchives(zr *zip.Reader) []*zip.File {
+	var out []*zip.File
 	for _, m := range zr.File {
 		if strings.HasSuffix(m.Name, "/data.pkl") && strings.Count(m.Name, "/") == 1 {
-			return m
+			out = append(out, m)
 		}
 	}
-	return nil
+	return out
 }
 
 // newTorch reads a torch.save file from a mapped file (tests and fuzzing;
@@ -172,10 +174,19 @@ func (t *torchFile) read(ref fileRef, zr *zip.Reader) error {
 	ferr := func(arr, format string, a ...any) error {
 		return &FormatError{File: path, Array: arr, Offset: -1, Msg: fmt.Sprintf(format, a...)}
 	}
-	pkl := torchArchive(zr)
-	if pkl == nil {
+	pkls := torchArchives(zr)
+	switch len(pkls) {
+	case 0:
 		return ferr("", "a zip archive without ARCHIVE/data.pkl: not a torch.save file")
+	case 1:
+	default:
+		var names []string
+		for _, p := range pkls {
+			names = append(names, p.Name)
+		}
+		return ferr("", "holds %d torch.save archives (%s), each of which could be the one meant: save one object per file", len(pkls), strings.Join(names, ", "))
 	}
+	pkl := pkls[0]
 	prefix := strings.TrimSuffix(pkl.Name, "data.pkl")
 	members := map[string]*zip.File{}
 	for _, m := range zr.File {

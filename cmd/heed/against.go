@@ -128,13 +128,13 @@ type invarianceDetailJSON struct {
 }
 
 type invarianceJSON struct {
-	Clean     bool                         `json:"clean"`
+	Clean     bool                 `json:"clean"`
 	Findings  []invariance.Finding `json:"findings"`
-	Diagnosis []prose.Diagnosis            `json:"diagnosis"`
-	Detail    invarianceDetailJSON         `json:"invariance"`
-	Notes     []string                     `json:"notes"`
-	Warnings  []string                     `json:"warnings"`
-	Caveat    string                       `json:"caveat"`
+	Diagnosis []prose.Diagnosis    `json:"diagnosis"`
+	Detail    invarianceDetailJSON `json:"invariance"`
+	Notes     []string             `json:"notes"`
+	Warnings  []string             `json:"warnings"`
+	Caveat    string               `json:"caveat"`
 }
 
 // jsonNum keeps a number encodable: JSON has no infinity.

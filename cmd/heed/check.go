@@ -163,7 +163,12 @@ type checkReport struct {
 
 // checkReportOf builds heed check's JSON report from the pass's result.
 func checkReportOf(res *analysis.Result, warnings []string) *checkReport {
-	rep := &checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: res.Coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: prose.Diagnoses(res.Diagnoses),
+	coverage := slices.Clone(res.Coverage)
+	for i := range coverage {
+		c := &coverage[i]
+		c.KindFrom, c.AxesFrom, c.Positions = givenBy("kind", c.KindFrom), givenBy("axes", c.AxesFrom), givenBy("query_start", c.Positions)
+	}
+	rep := &checkReport{Verdict: res.Verdict(), Clean: res.Verdict() == analysis.VerdictClean, Coverage: coverage, Examples: res.Examples, Findings: res.Findings, Diagnosis: prose.Diagnoses(res.Diagnoses),
 		Rules: map[string][]string{}, Notes: prose.Notes(res.Notes), Warnings: warnings, Caveat: prose.Caveat}
 	if rep.Findings == nil {
 		rep.Findings = []analysis.Finding{}

@@ -1,8 +1,12 @@
 package main
 
 import (
+	"bytes"
+	"encoding/json"
 	"errors"
 	"fmt"
+	"os"
+	"strings"
 
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
@@ -35,7 +39,7 @@ func (lf *loadFlags) register(cmd *cobra.Command) {
 // options turns the flags into loader options, refusing values that
 // cannot be meant.
 func (lf *loadFlags) options() (loader.Options, error) {
-	o := loader.NewOptions()
+	o := newLoaderOptions()
 	switch loader.Kind(lf.kind) {
 	case loader.KindUnknown, loader.KindCausal, loader.KindBidirectional, loader.KindCross:
 	default:
@@ -54,13 +58,19 @@ func (lf *loadFlags) options() (loader.Options, error) {
 	}
 	o.Axes = lf.axes
 	o.Kind = loader.Kind(lf.kind)
-	o.TokensFile = lf.tokens
 	o.Window = lf.window
 	o.Prefix = lf.prefix
 	o.KVHeads = lf.kvHeads
 	o.QueryStart = lf.queryStart
 	if o.Group, err = loader.ParseGroupMode(lf.group); err != nil {
 		return o, fmt.Errorf("--group: %w", err)
+	}
+	if lf.tokens != "" {
+		tk, err := readTokens(lf.tokens)
+		if err != nil {
+			return o, err
+		}
+		o.Tokens = []loader.Tokens{tk}
 	}
 	return o, nil
 }
@@ -93,4 +103,86 @@ func openSetChecked(args []string, lf *loadFlags) (*loader.Set, error) {
 		return nil, err
 	}
 	return set, nil
+}
+
+// newLoaderOptions are loader options that override nothing and word the
+// loader's settings as heed's options.
+func newLoaderOptions() loader.Options {
+	o := loader.NewOptions()
+	o.SettingName = optionName
+	return o
+}
+
+// optionName is the command-line option that gives a loader setting:
+// "query_start" is --query-start.
+func optionName(setting string) string { return "--" + strings.ReplaceAll(setting, "_", "-") }
+
+// givenBy words who gave a block's setting (loader.Block.KindFrom, AxesFrom,
+// PosFrom): "option" is heed's option for it (--kind, --axes, --query-start).
+func givenBy(setting, from string) string {
+	if from == "option" {
+		return optionName(setting)
+	}
+	return from
+}
+
+// inOptions is err's message with what the loader leaves to its caller
+// worded as heed's users say it: the option that gives a setting.
+func inOptions(err error) string {
+	msg := err.Error()
+	var ts *loader.TokensSideError
+	if errors.As(err, &ts) {
+		msg = strings.Replace(msg, ts.Error(), fmt.Sprintf("%s: --tokens: the export has sides %s; say which with --tokens SIDE=FILE",
+			ts.Source, strings.Join(ts.Sides, ", ")), 1)
+	}
+	return msg
+}
+
+// readTokens reads the file of --tokens [SIDE=]FILE. SIDE= is taken as a side
+// name only when no file of the whole name exists.
+func readTokens(spec string) (loader.Tokens, error) {
+	tk := loader.Tokens{Source: spec}
+	if i := strings.IndexByte(spec, '='); i > 0 && !strings.ContainsAny(spec[:i], `/\.`) {
+		if _, err := os.Stat(spec); err != nil {
+			tk.Side, tk.Source = spec[:i], spec[i+1:]
+		}
+	}
+	b, err := os.ReadFile(tk.Source)
+	if err != nil {
+		return tk, &loader.FormatError{File: tk.Source, Offset: -1, Msg: "cannot read the tokens file", Err: err}
+	}
+	tk.Rows, err = parseTokens(tk.Source, b)
+	return tk, err
+}
+
+// parseTokens reads a tokens file: a JSON list of strings, a JSON list of
+// lists (one per batch item), or one token a line. Errors name the file.
+func parseTokens(file string, b []byte) ([][]string, error) {
+	t := bytes.TrimSpace(b)
+	if len(t) > 0 && t[0] == '[' {
+		var flat []string
+		if err := json.Unmarshal(t, &flat); err == nil {
+			if len(flat) == 0 {
+				return nil, &loader.FormatError{File: file, Offset: -1, Msg: "empty token list"}
+			}
+			return [][]string{flat}, nil
+		}
+		var nested [][]string
+		if err := json.Unmarshal(t, &nested); err != nil {
+			return nil, &loader.FormatError{File: file, Offset: -1, Msg: "not a JSON list of strings or of lists of strings", Err: err}
+		}
+		if len(nested) == 0 || len(nested[0]) == 0 {
+			return nil, &loader.FormatError{File: file, Offset: -1, Msg: "empty token list"}
+		}
+		return nested, nil
+	}
+	s := strings.TrimSuffix(string(b), "\n")
+	if s == "" {
+		return nil, &loader.FormatError{File: file, Offset: -1, Msg: "empty tokens file"}
+	}
+	lines := strings.Split(s, "\n")
+	for i, l := range lines {
+		lines[i] = strings.TrimSuffix(l, "\r")
+	}
+	return [][]string{lines}, nil
 }

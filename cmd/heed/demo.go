@@ -89,7 +89,7 @@ func runDemo(cmd *cobra.Command, res *demo.Results, tf *tuiFlags) error {
 	}
 	// the tab bar's right end: short enough for 80 columns ("+1 leak: ...")
 	opts.Name = strings.TrimPrefix(res.Runs["leaky"].DecoderMask, "k <= q") + " leak: right of the diagonal"
-	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
+	set, err := loader.OpenSet([]string{path}, newLoaderOptions())
 	if err != nil {
 		return err
 	}
@@ -119,7 +119,7 @@ func demoStart(path, at string) (string, error) {
 	if err != nil {
 		return "", err
 	}
-	ex, err := loader.Open([]string{path}, loader.NewOptions())
+	ex, err := loader.Open([]string{path}, newLoaderOptions())
 	if err != nil {
 		return "", err
 	}

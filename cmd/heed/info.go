@@ -174,7 +174,8 @@ func newInfoReport(set *loader.Set, ex *loader.Export) *infoReport {
 			Segments: qs != nil && qs.Segments != nil || ks != nil && ks.Segments != nil,
 			Out:      b.OutLayers > 0, OutLayers: b.OutLayers, Positions: b.Positions, Features: b.Features,
 			Rules: rules, RowChecks: rows,
-			KindFrom: b.KindFrom, Evidence: b.KindEvidence, AxesFrom: b.AxesFrom, AxesOther: b.AxesOther, QueryPos: b.PosFrom,
+			KindFrom: givenBy("kind", b.KindFrom), Evidence: b.KindEvidence, AxesFrom: givenBy("axes", b.AxesFrom), AxesOther: b.AxesOther,
+			QueryPos: givenBy("query_start", b.PosFrom),
 		})
 		ib := &r.Blocks[len(r.Blocks)-1]
 		if ib.KindFrom == "" {

@@ -185,7 +185,7 @@ func exitCode(err error, interrupted bool) int {
 	if errors.As(err, &nj) {
 		return 3
 	}
-	msg := err.Error()
+	msg := inOptions(err)
 	var rn *analysis.RuleNeedsError
 	if errors.As(err, &rn) {
 		switch rn.Rule {
