@@ -69,7 +69,7 @@ type BlockPartial struct {
 	RowChecks []string `json:"row_checks"`
 	// RulesGiven is true when --rule chose the checks (Options.Rules).
 	RulesGiven bool `json:"rules_given,omitempty"`
-	// Coverage: who gave the kind ("--kind", "metadata", "attribute",
+	// Coverage: who gave the kind ("option", "metadata", "attribute",
 	// "inferred", "" = nobody) and, for an inferred or undecided kind, what
 	// the data showed; the axes and who gave them ("rank" = guessed) and
 	// the other common reading; how query rows were placed (loader.Block's

@@ -170,20 +170,20 @@ type Gap struct {
 type Coverage struct {
 	Block string `json:"block"`
 	Kind  string `json:"kind"`
-	// KindFrom: "--kind", "metadata", "attribute", "inferred" or "unknown".
+	// KindFrom: "option" (the caller's: heed's --kind), "metadata", "attribute", "inferred" or "unknown".
 	KindFrom string `json:"kind_from"`
 	// Evidence: for an inferred or undecided kind, what the data showed.
 	Evidence string `json:"evidence,omitempty"`
 	Window   int    `json:"window,omitempty"`
 	Prefix   int    `json:"prefix,omitempty"`
 	Axes     string `json:"axes"`
-	// AxesFrom: "--axes", "metadata", "attribute" or "rank" (guessed from
+	// AxesFrom: "option" (heed's --axes), "metadata", "attribute" or "rank" (guessed from
 	// the array's rank); AxesOther the other common reading of a guess.
 	AxesFrom  string `json:"axes_from"`
 	AxesOther string `json:"axes_other,omitempty"`
 	// Positions: how query rows were placed among the keys: "rows" (row q
 	// is position q), "offset" (the last Q of K positions, assumed),
-	// "qpos", "metadata" (query_start), "--query-start", "unknown".
+	// "qpos", "metadata" (query_start), "option" (heed's --query-start), "unknown".
 	Positions string `json:"positions"`
 	// ComputeDType is the dtype the model computed in ("" = unknown);
 	// SumTol the row-sum tolerance applied; SumLoose, when not 0, the

@@ -205,11 +205,11 @@ func TestCheckFloat64FromFloat32(t *testing.T) {
 }
 
 // TestCheckOptionsOfSettings: every option the words of a diagnosis, note
-// or gap name for a setting (words.Option, through internal/prose and
-// words.WithOption) is a flag of heed check.
+// or gap name for a setting, and the loader's messages (words.Option, through internal/prose,
+// words.WithOption and loader.Options.SettingName) is a flag of heed check.
 func TestCheckOptionsOfSettings(t *testing.T) {
 	cmd := newCheckCmd()
-	for _, s := range []string{"kind", "query_start", "compute_dtype", "sum_below", "tol"} {
+	for _, s := range []string{"kind", "query_start", "compute_dtype", "sum_below", "tol", "axes", "group"} {
 		opt := words.Option(s)
 		if opt == "" || cmd.Flags().Lookup(strings.TrimPrefix(opt, "--")) == nil {
 			t.Errorf("setting %s: option %q is not a flag of heed check", s, opt)

@@ -8,6 +8,7 @@ import (
 	"os"
 	"strings"
 
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
@@ -109,19 +110,15 @@ func openSetChecked(args []string, lf *loadFlags) (*loader.Set, error) {
 // loader's settings as heed's options.
 func newLoaderOptions() loader.Options {
 	o := loader.NewOptions()
-	o.SettingName = optionName
+	o.SettingName = words.Option
 	return o
 }
-
-// optionName is the command-line option that gives a loader setting:
-// "query_start" is --query-start.
-func optionName(setting string) string { return "--" + strings.ReplaceAll(setting, "_", "-") }
 
 // givenBy words who gave a block's setting (loader.Block.KindFrom, AxesFrom,
 // PosFrom): "option" is heed's option for it (--kind, --axes, --query-start).
 func givenBy(setting, from string) string {
 	if from == "option" {
-		return optionName(setting)
+		return words.Option(setting)
 	}
 	return from
 }

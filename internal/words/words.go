@@ -145,6 +145,10 @@ func Option(setting string) string {
 		return "--sum-below"
 	case "tol":
 		return "--tol"
+	case "axes":
+		return "--axes"
+	case "group":
+		return "--group"
 	}
 	return ""
 }

@@ -99,7 +99,7 @@ func FuzzParseLoc(f *testing.F) {
 
 func TestOption(t *testing.T) {
 	for setting, want := range map[string]string{"kind": "--kind", "query_start": "--query-start", "compute_dtype": "--compute-dtype",
-		"sum_below": "--sum-below", "tol": "--tol", "no_such_setting": ""} {
+		"sum_below": "--sum-below", "tol": "--tol", "axes": "--axes", "group": "--group", "no_such_setting": ""} {
 		if got := Option(setting); got != want {
 			t.Errorf("Option(%q) = %q, want %q", setting, got, want)
 		}
