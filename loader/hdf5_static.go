@@ -7,12 +7,13 @@ package loader
 // reaches. Linked as a shared library, Debian's libhdf5 loads about 37 more
 // shared libraries at every start (curl, TLS, Kerberos, LDAP: its read-only
 // S3 driver, which heed never uses) whether or not the process opens an HDF5
-// file; from the archives only the szip/libaec and zlib filters come along,
-// linked statically as well. --as-needed then drops the shared -lhdf5 and
-// -lhdf5_hl that gonum.org/v1/hdf5 and pkg-config name later on the link
-// line: nothing is left for them to resolve. docs/scale.md has the figures.
+// file; from the archives only the szip (libaec) and zlib filters come
+// along, linked statically as well. --as-needed then drops the shared
+// -lhdf5 that pkg-config names later on the link line: nothing is left for
+// it to resolve. docs/scale.md has the figures; make static checks the
+// result with ldd.
 
 /*
-#cgo LDFLAGS: -Wl,--as-needed -Wl,-Bstatic -lhdf5_hl -lhdf5 -lsz -laec -lz -Wl,-Bdynamic -lm -ldl
+#cgo LDFLAGS: -Wl,--as-needed -Wl,-Bstatic -lhdf5 -lsz -laec -lz -Wl,-Bdynamic -lm -ldl
 */
 import "C"
