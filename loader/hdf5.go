@@ -175,6 +175,7 @@ import "C"
 import (
 	"fmt"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
 	"sync"
@@ -185,9 +186,26 @@ import (
 const HDF5Supported = true
 
 var (
-	h5mu       sync.Mutex
-	h5initOnce sync.Once
+	h5mu sync.Mutex
 )
+
+// h5enter takes h5mu for a run of calls into the library and keeps the
+// goroutine on its OS thread until h5leave, with the library's automatic
+// error printing turned off on that thread. The library keeps its error
+// stack, and with it that setting, per thread when it is built thread-safe
+// (Debian's build is; from memory of the HDF5 reference manual, H5Eset_auto2,
+// and seen here: turned off once, a read that failed on another thread
+// printed the library's error stack on stderr beside heed's one line).
+func h5enter() {
+	h5mu.Lock()
+	runtime.LockOSThread()
+	C.heed_silence()
+}
+
+func h5leave() {
+	runtime.UnlockOSThread()
+	h5mu.Unlock()
+}
 
 // blockAttrs are the dataset attributes Assemble understands (see attrReader).
 var blockAttrs = []string{"kind", "query", "key", "axes", "window", "prefix", "kv_heads"}
@@ -222,9 +240,8 @@ type h5Array struct {
 }
 
 func openHDF5(path string) (Container, error) {
-	h5mu.Lock()
-	defer h5mu.Unlock()
-	h5initOnce.Do(func() { C.heed_silence() })
+	h5enter()
+	defer h5leave()
 	cpath := C.CString(path)
 	f := C.heed_fopen(cpath)
 	C.free(unsafe.Pointer(cpath))
@@ -588,8 +605,8 @@ func (h *h5File) Meta() (string, bool) { return h.meta, h.hasMeta }
 
 func (h *h5File) Close() error {
 	return h.life.end(func() error {
-		h5mu.Lock()
-		defer h5mu.Unlock()
+		h5enter()
+		defer h5leave()
 		return h.closeLocked()
 	})
 }
@@ -640,8 +657,8 @@ func (a *h5Array) read(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) error 
 		return err
 	}
 	defer a.file.life.leave()
-	h5mu.Lock()
-	defer h5mu.Unlock()
+	h5enter()
+	defer h5leave()
 	return a.readLocked(idx, n, mem, buf)
 }
 
@@ -754,8 +771,8 @@ func (a *h5Array) ReadStrings() ([]string, error) {
 			return nil, err
 		}
 		defer a.file.life.leave()
-		h5mu.Lock()
-		defer h5mu.Unlock()
+		h5enter()
+		defer h5leave()
 		mt := C.heed_vlen_str(a.cset)
 		if mt < 0 {
 			return nil, fmt.Errorf("loader: %s: cannot build a string type", a.label())
