@@ -6,8 +6,12 @@ FUZZTIME ?= 20s
 BIN ?= ./heed
 # Stamp the binary with the commit it is built from (heed version), whatever GOFLAGS says.
 BUILDVCS ?= -buildvcs=auto
+# Link the HDF5 library from its static archives (loader/hdf5_static.go): the binary then loads only
+# libc and libm, not libhdf5's 37 shared libraries, at every start. `make build HDF5_TAGS=` links
+# the shared library instead, as a plain `go build ./cmd/heed` does.
+HDF5_TAGS ?= -tags=hdf5static
 
-.PHONY: all build build-simd install demo deps test check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck slurm-test bench clean
+.PHONY: all build build-simd install demo deps test check-fmt vet staticcheck unit pytest-capture purego static fuzz crosscheck slurm-test bench clean
 
 all: build
 
@@ -15,14 +19,19 @@ deps:
 	@scripts/install-deps.sh
 
 build: deps
-	$(GO) build $(BUILDVCS) -o $(BIN) ./cmd/heed
+	$(GO) build $(BUILDVCS) $(HDF5_TAGS) -o $(BIN) ./cmd/heed
 
 # Installs heed into GOBIN (default GOPATH/bin, i.e. ~/go/bin) from this clone, stamped with its
 # commit. Needs only Go (1.26.8 or later); with cgo and libhdf5-dev + pkg-config it reads HDF5 too,
-# without them it is built without HDF5 support (and says so). Installs no packages.
+# linked from HDF5's static archives when they are there (Debian's libhdf5-dev has them) and from the
+# shared library otherwise; without them it is built without HDF5 support (and says so). Installs no
+# packages.
 install:
 	@if [ "$$($(GO) env CGO_ENABLED)" = 1 ] && pkg-config --exists hdf5 2>/dev/null; then \
-		echo "$(GO) install $(BUILDVCS) ./cmd/heed"; $(GO) install $(BUILDVCS) ./cmd/heed; \
+		echo "$(GO) install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed"; \
+		$(GO) install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed 2>/dev/null || { \
+			echo "make install: HDF5's static archives did not link: linking its shared library"; \
+			echo "$(GO) install $(BUILDVCS) ./cmd/heed"; $(GO) install $(BUILDVCS) ./cmd/heed; }; \
 	else \
 		echo "make install: no cgo or no HDF5 library (pkg-config hdf5): building heed without HDF5 support"; \
 		echo "CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed"; CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed; \
@@ -34,13 +43,13 @@ install:
 # The same with Go's experimental SIMD package (internal/kernels/*_simd.go):
 # vector kernels on processors with AVX-512; the default build needs no experiment.
 build-simd: deps
-	GOEXPERIMENT=simd $(GO) build -o $(BIN) ./cmd/heed
+	GOEXPERIMENT=simd $(GO) build $(BUILDVCS) $(HDF5_TAGS) -o $(BIN) ./cmd/heed
 
 # The main job on the export embedded in the binary.
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet staticcheck unit pytest-capture purego fuzz crosscheck
+test: deps check-fmt vet staticcheck unit pytest-capture purego static fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -65,6 +74,18 @@ pytest-capture:
 purego:
 	CGO_ENABLED=0 $(GO) build -o /dev/null ./cmd/heed
 	CGO_ENABLED=0 $(GO) test -count=1 -run 'NoHDF5|PureGo' ./loader
+
+# The build of make build links HDF5 statically: the binary must load no HDF5 (nor curl, TLS...)
+# shared library, and the HDF5 tests must pass against the static archives.
+static:
+	@if [ -z "$(HDF5_TAGS)" ]; then echo "make static: HDF5_TAGS is empty: nothing to check"; exit 0; fi; \
+	d=$$(mktemp -d); trap 'rm -rf "$$d"' EXIT; \
+	echo "$(GO) build $(HDF5_TAGS) -o $$d/heed ./cmd/heed"; $(GO) build $(HDF5_TAGS) -o $$d/heed ./cmd/heed || exit 1; \
+	libs=$$(ldd $$d/heed); echo "$$libs"; \
+	if echo "$$libs" | grep -Eq 'libhdf5|libcurl|libcrypto|libsz|libaec'; then \
+		echo "make static: the $(HDF5_TAGS) build still loads shared libraries it should have linked statically"; exit 1; fi; \
+	echo "$(GO) test -count=1 $(HDF5_TAGS) -run 'HDF5|H5|Fixture' ./loader"; \
+	$(GO) test -count=1 $(HDF5_TAGS) -run 'HDF5|H5|Fixture' ./loader
 
 # -fuzzminimizetime bounds the shrinking of a newly interesting input (60 s by default):
 # shrinking that outlasts -fuzztime ends the run with "context deadline exceeded".

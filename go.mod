@@ -23,7 +23,6 @@ require (
 	golang.org/x/crypto v0.57.0
 	golang.org/x/image v0.48.0
 	golang.org/x/time v0.16.0
-	gonum.org/v1/hdf5 v0.0.0-20210714002203-8c5d23bc6946
 	gopkg.in/yaml.v3 v3.0.1
 )
 

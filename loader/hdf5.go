@@ -2,13 +2,20 @@
 
 package loader
 
-// HDF5 through gonum.org/v1/hdf5 (files, groups, datasets, dataspaces,
-// hyperslabs, chunk-cache properties) plus a few direct calls to the HDF5 C
-// library for what that package does not expose: reading with a chosen
-// memory type (so the library converts h5py's float16, ints and big-endian
-// data to float32 for us), datatype introspection (h5py's bool enum,
-// string kinds) and attribute reads. The library (Debian's serial build) is
-// not thread-safe, so every call goes through h5mu.
+// HDF5 through the HDF5 C library's own API, called directly: files,
+// groups, datasets, dataspaces and hyperslabs, chunk-cache properties,
+// reading with a chosen memory type (so the library converts h5py's
+// float16, ints and big-endian data to float32 for us), datatype
+// introspection (h5py's bool enum, string kinds) and attribute reads. Every
+// call goes through h5mu (heed does not rely on the library being built
+// thread-safe).
+//
+// No Go binding package stands in between on purpose: the one there is
+// (gonum.org/v1/hdf5) initialises the library in its package init, which
+// cost every heed process about 2.5 ms at start-up (GODEBUG=inittrace=1)
+// whether or not it opens an HDF5 file. Called directly, the library
+// initialises itself at the first call, i.e. at the first HDF5 file
+// (docs/scale.md, start-up).
 
 /*
 #cgo pkg-config: hdf5
@@ -70,43 +77,142 @@ static int heed_unwritten(hid_t ds) {
 	return st == H5D_SPACE_STATUS_NOT_ALLOCATED;
 }
 
-static herr_t heed_read(hid_t ds, hid_t mem, hid_t mspace, hid_t fspace, void *buf) {
-	return H5Dread(ds, mem, mspace, fspace, H5P_DEFAULT, buf);
-}
-
 static herr_t heed_reclaim(hid_t type, hid_t space, void *buf) {
 	return H5Dvlen_reclaim(type, space, H5P_DEFAULT, buf);
 }
 
 static herr_t heed_silence(void) { return H5Eset_auto2(H5E_DEFAULT, NULL, NULL); }
+
+static hid_t heed_fopen(const char *path) { return H5Fopen(path, H5F_ACC_RDONLY, H5P_DEFAULT); }
+static hid_t heed_gopen(hid_t loc, const char *name) { return H5Gopen2(loc, name, H5P_DEFAULT); }
+static hid_t heed_dopen(hid_t loc, const char *name, hid_t dapl) { return H5Dopen2(loc, name, dapl); }
+
+// heed_nlinks is the number of links in a group, -1 on error.
+static hssize_t heed_nlinks(hid_t g) {
+	H5G_info_t info;
+	if (H5Gget_info(g, &info) < 0) return -1;
+	return (hssize_t)info.nlinks;
+}
+
+// heed_link_name writes the name of link i of g (in name order) into buf
+// when size allows and returns its length, -1 on error.
+static ssize_t heed_link_name(hid_t g, hsize_t i, char *buf, size_t size) {
+	return H5Lget_name_by_idx(g, ".", H5_INDEX_NAME, H5_ITER_INC, i, buf, size, H5P_DEFAULT);
+}
+
+// heed_link_kind is 1 for a group, 2 for a dataset, 0 for anything else
+// (named datatypes; soft and external links, which are not followed) and -1
+// on error, for link i of g in name order.
+static int heed_link_kind(hid_t g, hsize_t i) {
+	switch (H5Gget_objtype_by_idx(g, i)) {
+	case H5G_GROUP: return 1;
+	case H5G_DATASET: return 2;
+	case H5G_UNKNOWN: return -1;
+	default: return 0;
+	}
+}
+
+// heed_dapl_cache is a dataset access property list with a chunk cache of
+// nslots slots and nbytes bytes (w0 = 1: evict fully read chunks first).
+static hid_t heed_dapl_cache(size_t nslots, size_t nbytes) {
+	hid_t p = H5Pcreate(H5P_DATASET_ACCESS);
+	if (p < 0) return p;
+	if (H5Pset_chunk_cache(p, nslots, nbytes, 1.0) < 0) { H5Pclose(p); return -1; }
+	return p;
+}
+
+// heed_shape reads the extent of a dataset: the rank (0 for a scalar), -2
+// for a null dataspace, -1 on error; dims receives the dimensions when the
+// rank is at most max.
+static int heed_shape(hid_t ds, int max, hsize_t *dims) {
+	hid_t sp = H5Dget_space(ds);
+	if (sp < 0) return -1;
+	int r;
+	switch (H5Sget_simple_extent_type(sp)) {
+	case H5S_SCALAR: r = 0; break;
+	case H5S_SIMPLE:
+		r = H5Sget_simple_extent_ndims(sp);
+		if (r > 0 && r <= max && H5Sget_simple_extent_dims(sp, dims, NULL) < 0) r = -1;
+		break;
+	case H5S_NULL: r = -2; break;
+	default: r = -1;
+	}
+	H5Sclose(sp);
+	return r;
+}
+
+// heed_read_sub reads the sub-array that starts at off and spans cnt (rank
+// values each; rank 0: the whole dataset) as memory type mem into buf,
+// which holds n elements. 0 on success, -1 when the library cannot select
+// or read it.
+static int heed_read_sub(hid_t ds, int rank, const hsize_t *off, const hsize_t *cnt, hsize_t n, hid_t mem, void *buf) {
+	int rc = -1;
+	hid_t fs = -1, ms = -1;
+	fs = H5Dget_space(ds);
+	if (fs < 0) goto out;
+	if (rank > 0 && H5Sselect_hyperslab(fs, H5S_SELECT_SET, off, NULL, cnt, NULL) < 0) goto out;
+	ms = H5Screate_simple(1, &n, NULL);
+	if (ms < 0) goto out;
+	if (H5Dread(ds, mem, ms, fs, H5P_DEFAULT, buf) < 0) goto out;
+	rc = 0;
+out:
+	if (ms >= 0) H5Sclose(ms);
+	if (fs >= 0) H5Sclose(fs);
+	return rc;
+}
+
+// heed_reclaim_n frees the strings a variable-length read of n values left.
+static herr_t heed_reclaim_n(hid_t type, hsize_t n, void *buf) {
+	hid_t sp = H5Screate_simple(1, &n, NULL);
+	if (sp < 0) return -1;
+	herr_t r = H5Dvlen_reclaim(type, sp, H5P_DEFAULT, buf);
+	H5Sclose(sp);
+	return r;
+}
 */
 import "C"
 
 import (
 	"fmt"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
 	"sync"
 	"unsafe"
-
-	"gonum.org/v1/hdf5"
 )
 
 // HDF5Supported reports whether this build reads HDF5 files.
 const HDF5Supported = true
 
 var (
-	h5mu       sync.Mutex
-	h5initOnce sync.Once
+	h5mu sync.Mutex
 )
+
+// h5enter takes h5mu for a run of calls into the library and keeps the
+// goroutine on its OS thread until h5leave, with the library's automatic
+// error printing turned off on that thread. The library keeps its error
+// stack, and with it that setting, per thread when it is built thread-safe
+// (Debian's build is; from memory of the HDF5 reference manual, H5Eset_auto2,
+// and seen here: turned off once, a read that failed on another thread
+// printed the library's error stack on stderr beside heed's one line).
+func h5enter() {
+	h5mu.Lock()
+	runtime.LockOSThread()
+	C.heed_silence()
+}
+
+func h5leave() {
+	runtime.UnlockOSThread()
+	h5mu.Unlock()
+}
 
 // blockAttrs are the dataset attributes Assemble understands (see attrReader).
 var blockAttrs = []string{"kind", "query", "key", "axes", "window", "prefix", "kv_heads"}
 
 type h5File struct {
 	path    string
-	f       *hdf5.File
+	f       C.hid_t // the open file, 0 once closed
 	life    lifetime
 	arrays  []Array
 	dsets   []*h5Array
@@ -117,7 +223,7 @@ type h5File struct {
 type h5Array struct {
 	file    *h5File
 	name    string
-	ds      *hdf5.Dataset
+	ds      C.hid_t // the open dataset, 0 once closed
 	dtype   DType
 	shape   []int
 	enum    bool // an enum (h5py bool): read raw and convert
@@ -134,19 +240,20 @@ type h5Array struct {
 }
 
 func openHDF5(path string) (Container, error) {
-	h5mu.Lock()
-	defer h5mu.Unlock()
-	h5initOnce.Do(func() { C.heed_silence() })
-	f, err := hdf5.OpenFile(path, hdf5.F_ACC_RDONLY)
-	if err != nil {
+	h5enter()
+	defer h5leave()
+	cpath := C.CString(path)
+	f := C.heed_fopen(cpath)
+	C.free(unsafe.Pointer(cpath))
+	if f < 0 {
 		return nil, &FormatError{File: path, Offset: -1, Msg: "the HDF5 library cannot open it (corrupt or truncated HDF5 file?)"}
 	}
 	h := &h5File{path: path, f: f}
-	if err := h.walk(&f.CommonFG, "", 0); err != nil {
+	if err := h.walk(f, "", 0); err != nil {
 		h.closeLocked()
 		return nil, err
 	}
-	if v, ok, err := readAttr(C.hid_t(f.ID()), "meta"); err != nil {
+	if v, ok, err := readAttr(f, "meta"); err != nil {
 		h.closeLocked()
 		return nil, &FormatError{File: path, Array: "meta", Offset: -1, Msg: "cannot read the root attribute", Err: err}
 	} else if ok {
@@ -159,39 +266,41 @@ func openHDF5(path string) (Container, error) {
 // maxDepth bounds the group walk (hard links can make cycles).
 const maxDepth = 32
 
-func (h *h5File) walk(g *hdf5.CommonFG, prefix string, depth int) error {
+func (h *h5File) walk(g C.hid_t, prefix string, depth int) error {
 	if depth > maxDepth {
 		return &FormatError{File: h.path, Array: prefix, Offset: -1, Msg: "groups nested too deeply (a cycle of links?)"}
 	}
-	n, err := g.NumObjects()
-	if err != nil {
+	n := C.heed_nlinks(g)
+	if n < 0 {
 		return &FormatError{File: h.path, Array: prefix, Offset: -1, Msg: "cannot list the group"}
 	}
-	for i := uint(0); i < n; i++ {
-		name, err := g.ObjectNameByIndex(i)
-		if err != nil {
+	for i := C.hsize_t(0); i < C.hsize_t(n); i++ {
+		name, ok := linkName(g, i)
+		if !ok {
 			continue
 		}
-		typ, err := g.ObjectTypeByIndex(i)
-		if err != nil {
+		kind := C.heed_link_kind(g, i)
+		if kind < 0 {
 			continue // dangling or external link
 		}
 		full := name
 		if prefix != "" {
 			full = prefix + "/" + name
 		}
-		switch typ {
-		case hdf5.H5G_GROUP:
-			sub, err := g.OpenGroup(name)
-			if err != nil {
+		switch kind {
+		case 1: // group
+			cname := C.CString(name)
+			sub := C.heed_gopen(g, cname)
+			C.free(unsafe.Pointer(cname))
+			if sub < 0 {
 				return &FormatError{File: h.path, Array: full, Offset: -1, Msg: "cannot open the group"}
 			}
-			err = h.walk(&sub.CommonFG, full, depth+1)
-			sub.Close()
+			err := h.walk(sub, full, depth+1)
+			C.H5Gclose(sub)
 			if err != nil {
 				return err
 			}
-		case hdf5.H5G_DATASET:
+		case 2: // dataset
 			a, err := h.dataset(g, name, full)
 			if err != nil {
 				return err
@@ -205,40 +314,55 @@ func (h *h5File) walk(g *hdf5.CommonFG, prefix string, depth int) error {
 	return nil
 }
 
-func (h *h5File) dataset(g *hdf5.CommonFG, name, full string) (*h5Array, error) {
+// linkName is the name of link i of group g, in name order.
+func linkName(g C.hid_t, i C.hsize_t) (string, bool) {
+	n := C.heed_link_name(g, i, nil, 0)
+	if n < 0 {
+		return "", false
+	}
+	buf := make([]byte, int(n)+1)
+	if C.heed_link_name(g, i, (*C.char)(unsafe.Pointer(&buf[0])), C.size_t(len(buf))) < 0 {
+		return "", false
+	}
+	return trimNul(buf), true
+}
+
+func (h *h5File) dataset(g C.hid_t, name, full string) (*h5Array, error) {
 	ferr := func(format string, a ...any) error {
 		return &FormatError{File: h.path, Array: full, Offset: -1, Msg: fmt.Sprintf(format, a...)}
 	}
-	ds, err := g.OpenDataset(name)
-	if err != nil {
+	cname := C.CString(name)
+	defer C.free(unsafe.Pointer(cname))
+	ds := C.heed_dopen(g, cname, C.H5P_DEFAULT)
+	if ds < 0 {
 		return nil, ferr("cannot open the dataset")
 	}
 	a := &h5Array{file: h, name: full}
 	shape, err := dsShape(ds)
 	if err != nil {
-		ds.Close()
+		C.H5Dclose(ds)
 		return nil, ferr("%v", err)
 	}
 	a.shape = shape
 	if prod(shape) > 0 {
-		switch C.heed_unwritten(C.hid_t(ds.ID())) {
+		switch C.heed_unwritten(ds) {
 		case 1:
-			ds.Close()
+			C.H5Dclose(ds)
 			return nil, ferr("created but never written: no storage allocated for its %v values (did the writing job stop?)", shape)
 		case -1:
-			ds.Close()
+			C.H5Dclose(ds)
 			return nil, ferr("the HDF5 library cannot tell whether it was written")
 		}
 	}
-	if err := a.classify(C.hid_t(ds.ID())); err != nil {
-		ds.Close()
+	if err := a.classify(ds); err != nil {
+		C.H5Dclose(ds)
 		a.closeType()
 		return nil, ferr("%v", err)
 	}
 	for _, n := range blockAttrs {
-		v, ok, err := readAttr(C.hid_t(ds.ID()), n)
+		v, ok, err := readAttr(ds, n)
 		if err != nil {
-			ds.Close()
+			C.H5Dclose(ds)
 			a.closeType()
 			return nil, ferr("attribute %s: %v", n, err)
 		}
@@ -254,7 +378,7 @@ func (h *h5File) dataset(g *hdf5.CommonFG, name, full string) (*h5Array, error) 
 	cache := 0
 	if len(shape) >= 2 {
 		chunk := make([]C.hsize_t, len(shape))
-		if r := C.heed_chunk(C.hid_t(ds.ID()), C.int(len(shape)), &chunk[0]); r > 0 {
+		if r := C.heed_chunk(ds, C.int(len(shape)), &chunk[0]); r > 0 {
 			n := 1
 			bytes := max(itemSize(a.dtype), a.strSize, 8)
 			for i, c := range chunk {
@@ -265,15 +389,12 @@ func (h *h5File) dataset(g *hdf5.CommonFG, name, full string) (*h5Array, error) 
 			}
 			cache = min(n*bytes, 256<<20)
 			if cache > 1<<20 { // HDF5's default is 1 MiB
-				dapl, err := hdf5.NewPropList(hdf5.P_DATASET_ACCESS)
-				if err == nil {
-					if dapl.SetChunkCache(nextPrime(100*n), cache, 1) == nil {
-						if ds2, err := g.OpenDatasetWith(name, dapl); err == nil {
-							ds.Close()
-							ds = ds2
-						}
+				if dapl := C.heed_dapl_cache(C.size_t(nextPrime(100*n)), C.size_t(cache)); dapl >= 0 {
+					if ds2 := C.heed_dopen(g, cname, dapl); ds2 >= 0 {
+						C.H5Dclose(ds)
+						ds = ds2
 					}
-					dapl.Close()
+					C.H5Pclose(dapl)
 				}
 			}
 		}
@@ -300,29 +421,23 @@ func nextPrime(n int) int {
 	}
 }
 
-func dsShape(ds *hdf5.Dataset) ([]int, error) {
-	sp := ds.Space()
-	if sp == nil {
-		return nil, fmt.Errorf("no dataspace")
-	}
-	defer sp.Close()
-	switch sp.SimpleExtentType() {
-	case hdf5.S_SCALAR:
-		return []int{}, nil
-	case hdf5.S_SIMPLE:
-	default:
+func dsShape(ds C.hid_t) ([]int, error) {
+	var cdims [maxRank]C.hsize_t
+	r := int(C.heed_shape(ds, maxRank, &cdims[0]))
+	switch {
+	case r == -2:
 		return nil, fmt.Errorf("empty (null) dataspace")
+	case r == -1:
+		return nil, fmt.Errorf("no dataspace")
+	case r == 0:
+		return []int{}, nil
+	case r > maxRank:
+		return nil, fmt.Errorf("rank %d", r)
 	}
-	if sp.SimpleExtentNDims() <= 0 || sp.SimpleExtentNDims() > maxRank {
-		return nil, fmt.Errorf("rank %d", sp.SimpleExtentNDims())
-	}
-	dims, _, err := sp.SimpleExtentDims()
-	if err != nil {
-		return nil, err
-	}
+	dims := cdims[:r]
 	shape := make([]int, len(dims))
 	for i, d := range dims {
-		if d > math.MaxInt32*uint(1<<20) {
+		if uint64(d) > math.MaxInt32*uint64(1<<20) {
 			return nil, fmt.Errorf("dimension %d too large", d)
 		}
 		shape[i] = int(d)
@@ -490,8 +605,8 @@ func (h *h5File) Meta() (string, bool) { return h.meta, h.hasMeta }
 
 func (h *h5File) Close() error {
 	return h.life.end(func() error {
-		h5mu.Lock()
-		defer h5mu.Unlock()
+		h5enter()
+		defer h5leave()
 		return h.closeLocked()
 	})
 }
@@ -499,16 +614,18 @@ func (h *h5File) Close() error {
 func (h *h5File) closeLocked() error {
 	for _, d := range h.dsets {
 		d.closeType()
-		if d.ds != nil {
-			d.ds.Close()
-			d.ds = nil
+		if d.ds > 0 {
+			C.H5Dclose(d.ds)
+			d.ds = 0
 		}
 	}
 	h.dsets = nil
-	if h.f != nil {
-		err := h.f.Close()
-		h.f = nil
-		return err
+	if h.f > 0 {
+		r := C.H5Fclose(h.f)
+		h.f = 0
+		if r < 0 {
+			return fmt.Errorf("loader: %s: the HDF5 library cannot close it", h.path)
+		}
 	}
 	return nil
 }
@@ -540,8 +657,8 @@ func (a *h5Array) read(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) error 
 		return err
 	}
 	defer a.file.life.leave()
-	h5mu.Lock()
-	defer h5mu.Unlock()
+	h5enter()
+	defer h5leave()
 	return a.readLocked(idx, n, mem, buf)
 }
 
@@ -549,30 +666,14 @@ func (a *h5Array) readLocked(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) 
 	if n == 0 {
 		return nil
 	}
-	fs := a.ds.Space()
-	if fs == nil {
-		return fmt.Errorf("loader: %s: no dataspace", a.label())
-	}
-	defer fs.Close()
-	if len(a.shape) > 0 {
-		off := make([]uint, len(a.shape))
-		cnt := make([]uint, len(a.shape))
-		for i := range a.shape {
-			cnt[i] = uint(a.shape[i])
-			if i < len(idx) {
-				off[i], cnt[i] = uint(idx[i]), 1
-			}
-		}
-		if err := fs.SelectHyperslab(off, nil, cnt, nil); err != nil {
-			return fmt.Errorf("loader: %s: hyperslab: %v", a.label(), err)
+	var off, cnt [maxRank]C.hsize_t
+	for i := range a.shape {
+		cnt[i] = C.hsize_t(a.shape[i])
+		if i < len(idx) {
+			off[i], cnt[i] = C.hsize_t(idx[i]), 1
 		}
 	}
-	ms, err := hdf5.CreateSimpleDataspace([]uint{uint(n)}, nil)
-	if err != nil {
-		return fmt.Errorf("loader: %s: %v", a.label(), err)
-	}
-	defer ms.Close()
-	if C.heed_read(C.hid_t(a.ds.ID()), mem, C.hid_t(ms.ID()), C.hid_t(fs.ID()), buf) < 0 {
+	if C.heed_read_sub(a.ds, C.int(len(a.shape)), &off[0], &cnt[0], C.hsize_t(n), mem, buf) < 0 {
 		return &FormatError{File: a.file.path, Array: a.name, Offset: -1, Msg: "the HDF5 library cannot read the data (corrupt file or unsupported filter?)"}
 	}
 	return nil
@@ -670,8 +771,8 @@ func (a *h5Array) ReadStrings() ([]string, error) {
 			return nil, err
 		}
 		defer a.file.life.leave()
-		h5mu.Lock()
-		defer h5mu.Unlock()
+		h5enter()
+		defer h5leave()
 		mt := C.heed_vlen_str(a.cset)
 		if mt < 0 {
 			return nil, fmt.Errorf("loader: %s: cannot build a string type", a.label())
@@ -691,11 +792,7 @@ func (a *h5Array) ReadStrings() ([]string, error) {
 				out[i] = C.GoString(p)
 			}
 		}
-		sp, err := hdf5.CreateSimpleDataspace([]uint{uint(n)}, nil)
-		if err == nil {
-			C.heed_reclaim(mt, C.hid_t(sp.ID()), mem)
-			sp.Close()
-		}
+		C.heed_reclaim_n(mt, C.hsize_t(n), mem)
 		return out, nil
 	}
 	if a.strSize == 0 {

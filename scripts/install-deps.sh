@@ -1,6 +1,8 @@
 #!/usr/bin/env bash
 # Installs what heed's build and tests need on Debian/Ubuntu, when it is missing:
-# libhdf5-dev and pkg-config (HDF5 through cgo), tmux (end-to-end TUI tests),
+# libhdf5-dev and pkg-config (HDF5 through cgo; make build links its static
+# archives and those of libaec-dev and zlib1g-dev, which libhdf5-dev pulls in
+# but which are named here because heed links them itself), tmux (end-to-end TUI tests),
 # openssh-client (tests of `heed share`), and Debian's python3 with numpy, h5py,
 # scipy, torch and matplotlib (the reference libraries the tests compare against).
 # `install-deps.sh slurm` adds slurm-wlm and munge (make slurm-test: a one-node
@@ -17,7 +19,7 @@ slurm) extra=(slurm-wlm munge) ;;
 *) echo "usage: $0 [slurm]" >&2; exit 2 ;;
 esac
 have_pkg() { dpkg-query -W -f='${Status}' "$1" 2>/dev/null | grep -q "install ok installed"; }
-for p in libhdf5-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib python3-pil ${extra[@]+"${extra[@]}"}; do
+for p in libhdf5-dev libaec-dev zlib1g-dev pkg-config tmux openssh-client python3-numpy python3-h5py python3-scipy python3-torch python3-matplotlib python3-pil ${extra[@]+"${extra[@]}"}; do
   have_pkg "$p" || need+=("$p")
 done
 if ! command -v go >/dev/null 2>&1; then
