@@ -4,7 +4,9 @@ package views
 
 import (
 	"math"
+	"slices"
 	"strings"
+	"sync"
 )
 
 // Colormap maps a value in [0, 1] to a colour. Every colormap heed offers is
@@ -99,7 +101,11 @@ var iridescentHex = []string{
 
 // Colormaps returns every colormap heed offers, the default first. Each call
 // returns fresh values: callers may keep and modify them.
-func Colormaps() []Colormap {
+func Colormaps() []Colormap { return slices.Clone(colormaps()) }
+
+// colormaps builds the colormaps once, on first use (not in every process:
+// a flag's help that lists their names is built at every start).
+var colormaps = sync.OnceValue(func() []Colormap {
 	return []Colormap{
 		newColormap("dawn", "P. Tol, Colour Schemes, SRON/EPS/TN/09-002 (2021), the sequential scheme of 23 colours from cream to dark brown",
 			tolVibrantOrange, true, hexStops(iridescentHex...)),
@@ -110,14 +116,14 @@ func Colormaps() []Colormap {
 		newColormap("magma", "S. van der Walt & N. Smith (2015), matplotlib magma, 256-entry table (CC0)",
 			tolVibrantCyan, false, magmaData[:]),
 	}
-}
+})
 
 // DefaultColormap is the name of the colour-blind-safe default.
 const DefaultColormap = "dawn"
 
 // ColormapNames lists the names Colormaps returns, in order.
 func ColormapNames() []string {
-	cms := Colormaps()
+	cms := colormaps()
 	names := make([]string, len(cms))
 	for i, c := range cms {
 		names[i] = c.Name
@@ -130,7 +136,7 @@ func ColormapByName(name string) (Colormap, bool) {
 	if strings.EqualFold(name, "iridescent") {
 		name = "dawn" // its name before December 2026, taken for one version
 	}
-	for _, c := range Colormaps() {
+	for _, c := range colormaps() {
 		if strings.EqualFold(c.Name, name) {
 			return c, true
 		}
