@@ -233,18 +233,6 @@ func isCOrder(a Array) bool {
 	return false
 }
 
-func shapeEq(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
-}
-
 func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block, error) {
 	b := &Block{Name: p.name}
 	attnArrs, attnPer, err := layerArrays(p.name, "attn", p.attn, p.attnL)
@@ -294,7 +282,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 			if a.DType() != a0.DType() {
 				return nil, ferr(a, "dtype %s differs from %s's %s", a.DType(), a0.Name(), a0.DType())
 			}
-			if !shapeEq(a.Shape(), a0.Shape()) {
+			if !slices.Equal(a.Shape(), a0.Shape()) {
 				return nil, ferr(a, "shape %v differs from %s's %v", a.Shape(), a0.Name(), a0.Shape())
 			}
 		}
@@ -347,7 +335,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 				return nil, ferr(gradArrs[0], "gradient shape %v (%d layers) does not match attention %s shape %v (%d layers): dL/dA must have the shape of A", gradArrs[0].Shape(), gd[0], a0.Name(), a0.Shape(), dims[0])
 			}
 			for _, g := range gradArrs {
-				if !shapeEq(g.Shape(), gradArrs[0].Shape()) {
+				if !slices.Equal(g.Shape(), gradArrs[0].Shape()) {
 					return nil, ferr(g, "shape %v differs from %s's %v", g.Shape(), gradArrs[0].Name(), gradArrs[0].Shape())
 				}
 			}
@@ -416,7 +404,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 			if !o.DType().IsFloat() {
 				return nil, ferr(o, "activations must be floating point, got %s", o.DType())
 			}
-			if !shapeEq(o.Shape(), o0.Shape()) {
+			if !slices.Equal(o.Shape(), o0.Shape()) {
 				return nil, ferr(o, "shape %v differs from %s's %v", o.Shape(), o0.Name(), o0.Shape())
 			}
 		}

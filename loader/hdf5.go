@@ -679,6 +679,18 @@ func (a *h5Array) readLocked(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) 
 	return nil
 }
 
+// readEnumInto reads n values of an enum (boolean) array into dst.
+func readEnumInto[T float32 | int64](a *h5Array, idx []int, n int, dst []T) error {
+	b, err := a.readEnum(idx, n)
+	if err != nil {
+		return err
+	}
+	for i, v := range b {
+		dst[i] = T(v)
+	}
+	return nil
+}
+
 // readEnum reads an enum (bool) sub-array as its raw bytes.
 func (a *h5Array) readEnum(idx []int, n int) ([]byte, error) {
 	buf := make([]byte, max(n, 1))
@@ -697,14 +709,7 @@ func (a *h5Array) ReadFloat32(idx []int, dst []float32) error {
 		return err
 	}
 	if a.enum {
-		b, err := a.readEnum(idx, n)
-		if err != nil {
-			return err
-		}
-		for i, v := range b {
-			dst[i] = float32(v)
-		}
-		return nil
+		return readEnumInto(a, idx, n, dst)
 	}
 	if a.half {
 		// The n 2-byte values land in the first half of dst's bytes and are
@@ -738,14 +743,7 @@ func (a *h5Array) ReadInt64(idx []int, dst []int64) error {
 		return err
 	}
 	if a.enum {
-		b, err := a.readEnum(idx, n)
-		if err != nil {
-			return err
-		}
-		for i, v := range b {
-			dst[i] = int64(v)
-		}
-		return nil
+		return readEnumInto(a, idx, n, dst)
 	}
 	mem := C.heed_native_llong()
 	if a.dtype == Uint64 {

@@ -9,6 +9,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"regexp"
+	"slices"
 	"strconv"
 	"strings"
 	"testing"
@@ -94,22 +95,10 @@ func TestRenderForbiddenCellsMatchNumpy(t *testing.T) {
 				got = append(got, (x-g0)/mag)
 			}
 		}
-		if strings.Count(rows[q], "!") != mag*len(keys) || !equalInts(got, keys) {
+		if strings.Count(rows[q], "!") != mag*len(keys) || !slices.Equal(got, keys) {
 			t.Errorf("row %d: forbidden keys %v, numpy %v: %q", q, got, keys, rows[q])
 		}
 	}
-}
-
-func equalInts(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
 
 // svgText parses an SVG render: its title, its <desc>, and its text runs
