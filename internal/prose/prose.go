@@ -152,7 +152,7 @@ func checkWords(d *analysis.Diagnosis, w *Diagnosis) {
 		if len(f.Offsets) > 0 {
 			w.Evidence = append(w.Evidence, "offsets k-q: "+OffsetSummary(f.Offsets))
 		}
-		w.Evidence = append(w.Evidence, fmt.Sprintf("largest leak %.4g at %s key %d", f.Max, at, at.Key))
+		w.Evidence = append(w.Evidence, fmt.Sprintf("largest leak %.4g at %s", f.Max, at))
 	}
 	switch d.Pattern {
 	case analysis.PatInvertedMask:
