@@ -92,34 +92,26 @@ var benchSizes = []struct{ layers, heads, seq int }{
 // a mapped float16 safetensors export, every head, all cores; the bytes are
 // the export's stored bytes.
 func BenchmarkAnalyze(b *testing.B) {
-	dir := b.TempDir() // written once, outside the sub-benchmarks' calibration runs
-	for _, sz := range benchSizes {
-		path := benchExport(b, dir, sz.layers, sz.heads, sz.seq, 0)
-		b.Run(fmt.Sprintf("L%dxH%dxS%d", sz.layers, sz.heads, sz.seq), func(b *testing.B) {
-			ex, err := loader.Open([]string{path}, loader.NewOptions())
-			if err != nil {
-				b.Fatal(err)
-			}
-			defer ex.Close()
-			opt := analysis.DefaultOptions()
-			b.SetBytes(int64(sz.layers * sz.heads * sz.seq * sz.seq * 2))
-			b.ReportAllocs()
-			b.ResetTimer()
-			for range b.N {
-				if _, err := analysis.Analyze(context.Background(), ex, opt); err != nil {
-					b.Fatal(err)
-				}
-			}
-		})
-	}
+	benchPassSizes(b, 0, func(b *testing.B, p *analysis.Partial) {})
 }
 
 // BenchmarkCheckFindings is the checks end to end on a leaking export: the
 // pass, then Result (findings grouped, diagnoses named).
 func BenchmarkCheckFindings(b *testing.B) {
-	dir := b.TempDir()
+	benchPassSizes(b, 0.01, func(b *testing.B, p *analysis.Partial) {
+		if res := p.Result(); res.Clean() {
+			b.Fatal("the leaking export came out clean")
+		}
+	})
+}
+
+// benchPassSizes runs the pass with the default options over an export of
+// each of benchSizes, written once with leak mass above the diagonal, and
+// then then on its partial.
+func benchPassSizes(b *testing.B, leak float64, then func(b *testing.B, p *analysis.Partial)) {
+	dir := b.TempDir() // written once, outside the sub-benchmarks' calibration runs
 	for _, sz := range benchSizes {
-		path := benchExport(b, dir, sz.layers, sz.heads, sz.seq, 0.01)
+		path := benchExport(b, dir, sz.layers, sz.heads, sz.seq, leak)
 		b.Run(fmt.Sprintf("L%dxH%dxS%d", sz.layers, sz.heads, sz.seq), func(b *testing.B) {
 			ex, err := loader.Open([]string{path}, loader.NewOptions())
 			if err != nil {
@@ -135,9 +127,7 @@ func BenchmarkCheckFindings(b *testing.B) {
 				if err != nil {
 					b.Fatal(err)
 				}
-				if res := p.Result(); res.Clean() {
-					b.Fatal("the leaking export came out clean")
-				}
+				then(b, p)
 			}
 		})
 	}

@@ -227,11 +227,7 @@ func memExport(t *testing.T, meta string, arrays ...loader.Array) *loader.Export
 func TestCancel(t *testing.T) {
 	ctx, cancel := context.WithCancel(context.Background())
 	cancel()
-	set, err := loader.OpenSet([]string{filepath.Join(casesDir, "stats.npz")}, loader.NewOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	ex, err := set.Open(0)
+	ex, err := loader.Open([]string{filepath.Join(casesDir, "stats.npz")}, loader.NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}

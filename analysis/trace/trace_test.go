@@ -86,11 +86,7 @@ func TestRolloutFlowWorkedExample(t *testing.T) {
 
 func traceOf(t *testing.T, path string, opt Options) *Result {
 	t.Helper()
-	set, err := loader.OpenSet([]string{path}, loader.NewOptions())
-	if err != nil {
-		t.Fatal(err)
-	}
-	ex, err := set.Open(0)
+	ex, err := loader.Open([]string{path}, loader.NewOptions())
 	if err != nil {
 		t.Fatal(err)
 	}
