@@ -66,27 +66,11 @@ func (pf *passFlags) options() (analysis.Options, error) {
 	return opt, nil
 }
 
-// runPass opens the examples and runs the analysis pass over all of them.
+// runPass opens the examples and runs the analysis pass over all of them
+// (without shard flags: one shard of one) or, with them, over one shard or
+// the merge of partial files (shardFlags.runPass).
 func runPass(ctx context.Context, args []string, lf *loadFlags, pf *passFlags) (*analysis.Partial, *loader.Set, error) {
-	if pf.shard.engaged() {
-		return pf.shard.runPass(ctx, args, lf, pf)
-	}
-	opt, err := pf.options()
-	if err != nil {
-		return nil, nil, err
-	}
-	set, err := openSet(args, lf)
-	if err != nil {
-		return nil, nil, err
-	}
-	p, err := analysis.AnalyzeSet(ctx, set.Len(), func(i int) (*loader.Export, string, error) {
-		ex, err := set.Open(i)
-		return ex, strings.Join(set.Examples[i], ","), err
-	}, opt)
-	if err != nil {
-		return nil, nil, err
-	}
-	return p, set, nil
+	return pf.shard.runPass(ctx, args, lf, pf)
 }
 
 // newCheckCmd returns "heed check": every mask and row check; exit 0 clean,

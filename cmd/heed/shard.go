@@ -132,8 +132,9 @@ func setOf(set *loader.Set) setSpec {
 	return setSpec{Examples: set.Len(), SHA256: hex.EncodeToString(h.Sum(nil))}
 }
 
-// runPass is runPass when shard flags are given: the pass over one shard
-// (writing its partial when asked), or the merge of partial files.
+// runPass is the pass over shard I of N of the examples (0 of 1 without
+// --shard: all of them), writing its partial when asked, or the merge of
+// partial files (--from-partials).
 func (sf *shardFlags) runPass(ctx context.Context, args []string, lf *loadFlags, pf *passFlags) (*analysis.Partial, *loader.Set, error) {
 	if sf.fromPartials {
 		if sf.shard != "" || sf.partial != "" {
