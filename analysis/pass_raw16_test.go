@@ -98,7 +98,6 @@ func randomHead16Mix(rng *rand.Rand, S int, bf bool, data []uint16, negRows floa
 }
 
 func TestRaw16SameAsFloat32(t *testing.T) {
-	defer func() { loader.ViewMapped = false }()
 	for _, c := range []struct {
 		dtype string
 		bf    bool
@@ -114,11 +113,20 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 		}
 		path := filepath.Join(t.TempDir(), "x.safetensors")
 		writeST16(t, path, c.dtype, []int{L, H, S, S}, data)
-		ex, err := loader.Open([]string{path}, loader.NewOptions())
-		if err != nil {
-			t.Fatal(err)
+		// the file read with positioned reads (heed's way) and through the
+		// mapping (loader.Options.ThroughMapping)
+		var exs [2]*loader.Export
+		for i := range exs {
+			lo := loader.NewOptions()
+			lo.ThroughMapping = i == 1
+			ex, err := loader.Open([]string{path}, lo)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer ex.Close()
+			exs[i] = ex
 		}
-		blk := ex.Blocks[0]
+		blk := exs[0].Blocks[0]
 		if d, err := blk.ReadRaw16(0, 0, 0, make([]uint16, S*S)); err != nil || d == loader.Invalid {
 			t.Fatalf("%s: ReadRaw16 = %v, %v: the pattern path is not taken", c.dtype, d, err)
 		}
@@ -128,24 +136,22 @@ func TestRaw16SameAsFloat32(t *testing.T) {
 			// copied from the mapping
 			var got [4]*Partial
 			for i, mode := range []struct {
-				read   readPaths
-				mapped bool
-			}{{readFloat32, false}, {readNoViews, false}, {0, true}, {readNoViews, true}} {
-				opt.read, loader.ViewMapped = mode.read, mode.mapped
-				p, err := Analyze(context.Background(), ex, opt)
+				read readPaths
+				ex   *loader.Export
+			}{{readFloat32, exs[0]}, {readNoViews, exs[0]}, {0, exs[1]}, {readNoViews, exs[1]}} {
+				opt.read = mode.read
+				p, err := Analyze(context.Background(), mode.ex, opt)
 				if err != nil {
 					t.Fatal(err)
 				}
 				got[i] = p
 			}
-			opt.read, loader.ViewMapped = 0, false
 			for i, how := range []string{"read from the file", "viewed in the mapping", "copied from the mapping"} {
 				if !reflect.DeepEqual(got[0], got[i+1]) {
 					t.Fatalf("%s S=%d: pattern path (%s) differs from the float32 path", c.dtype, S, how)
 				}
 			}
 		}
-		ex.Close()
 	}
 }
 

@@ -127,6 +127,12 @@ type Options struct {
 	// Options field ("Options.Axes"). The loader names settings ("axes",
 	// "group", "query_start"), never the ways a person gives them.
 	SettingName func(setting string) string
+	// ThroughMapping reads mapped files through the mapping, as heed did
+	// before it copied whole heads with positioned reads: ReadRaw16 and
+	// ReadAttn copy from the mapping, and ViewRaw16 gives views of mapped
+	// bytes. The values are the same either way; tests and benchmarks
+	// compare the two.
+	ThroughMapping bool
 
 	opened func(path string) // called with every file a Set opens (tests count them)
 }

@@ -349,6 +349,13 @@ func assembleContainers(cs []Container, opt Options) (*Export, error) {
 		}
 		paths = append(paths, c.Path())
 	}
+	if opt.ThroughMapping {
+		for _, a := range arrays {
+			if r, ok := a.(*rawArray); ok {
+				r.src = nil // no file to read from: copies and views come from the mapping
+			}
+		}
+	}
 	ex, err := assemble(arrays, metas, opt)
 	if err != nil {
 		return nil, err

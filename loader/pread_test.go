@@ -11,12 +11,11 @@ import (
 
 // TestPreadSameAsMapping: a whole head read with a positioned read of the
 // file (the default for mapped files) is the same, bit for bit, as the copy
-// through the mapping (ViewMapped), for every export fixture the loader
+// through the mapping (Options.ThroughMapping), for every export fixture the loader
 // maps (NPY, stored and zip64 NPZ, safetensors; float16 and float32; the
 // mapping path is the one TestFixtures and TestViewRaw16 check against
-// numpy), and a mapped file gives no view unless ViewMapped is set.
+// numpy), and a mapped file gives no view unless ThroughMapping is set.
 func TestPreadSameAsMapping(t *testing.T) {
-	defer func() { ViewMapped = false }()
 	files, err := filepath.Glob(filepath.Join("..", "testdata", "fixtures", "*", "*"))
 	if err != nil {
 		t.Fatal(err)
@@ -32,8 +31,9 @@ func TestPreadSameAsMapping(t *testing.T) {
 		var got [2][][]float32
 		var raw [2][][]uint16
 		for i, mapped := range []bool{false, true} {
-			ViewMapped = mapped
-			ex, err := Open([]string{file}, NewOptions())
+			opt := NewOptions()
+			opt.ThroughMapping = mapped
+			ex, err := Open([]string{file}, opt)
 			if err != nil {
 				break // not an export (plain arrays): other tests cover it
 			}

@@ -135,7 +135,7 @@ type rawArray struct {
 // positioned read of the file where the array has one (src), else from
 // data. The caller holds the lifetime; data is what r.data returned.
 func (r *rawArray) copyBytes(dst, data []byte, off int) error {
-	if r.src != nil && !ViewMapped {
+	if r.src != nil {
 		ok, err := r.src.pread(dst, data, off)
 		if fe, is := err.(*FormatError); is {
 			// name the array, and the input file rather than a temporary one

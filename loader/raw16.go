@@ -60,11 +60,6 @@ func (b *Block) raw16(layer, batch, head, n int) (*rawArray, int, error) {
 	return r, off, nil
 }
 
-// ViewMapped makes ViewRaw16 give views of mapped files too, and ReadRaw16
-// and ReadAttn copy through the mapping instead of reading the file
-// (tests and benchmarks compare the two ways).
-var ViewMapped bool
-
 // F16ToF32Table returns the float16 -> float32 table ReadAttn converts with
 // (index: the 16-bit pattern). The caller must not modify it.
 func F16ToF32Table() *[65536]float32 { return f16ToF32() }
@@ -103,7 +98,7 @@ func RawTable(d DType) *[65536]float32 {
 // are not 2-byte aligned (a container may place an array at an odd offset),
 // and where they are in a mapped file, which ReadRaw16 reads for less than a
 // first look through the mapping costs (mappedFile.pread; unless
-// ViewMapped is set): the caller then copies with ReadRaw16 or converts
+// Options.ThroughMapping): the caller then copies with ReadRaw16 or converts
 // with ReadAttn.
 func (b *Block) ViewRaw16(layer, batch, head int) ([]uint16, DType, func(), error) {
 	n := b.Queries * b.Keys
@@ -111,7 +106,7 @@ func (b *Block) ViewRaw16(layer, batch, head int) ([]uint16, DType, func(), erro
 	if r == nil || err != nil {
 		return nil, Invalid, nil, err
 	}
-	if r.src != nil && !ViewMapped {
+	if r.src != nil {
 		return nil, Invalid, nil, nil
 	}
 	data, err := r.bytes()

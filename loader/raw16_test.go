@@ -9,13 +9,13 @@ import (
 // TestViewRaw16 checks the in-place view of a head's float16 patterns
 // against the copy ReadRaw16 makes and against ReadAttn's conversion (the
 // values numpy wrote: gen_fixtures.py's export_causal_arrays, float16), in
-// a stored NPZ (mapped: views only with ViewMapped) and a deflated one, and
+// a stored NPZ (mapped: views only with Options.ThroughMapping) and a deflated one, and
 // that Close waits for the views to be released and later views fail.
 func TestViewRaw16(t *testing.T) {
-	ViewMapped = true
-	defer func() { ViewMapped = false }()
+	opt := NewOptions()
+	opt.ThroughMapping = true
 	for _, name := range []string{"stored.npz", "deflated.npz"} {
-		ex, err := Open([]string{filepath.Join("..", "testdata", "fixtures", "npz", name)}, NewOptions())
+		ex, err := Open([]string{filepath.Join("..", "testdata", "fixtures", "npz", name)}, opt)
 		if err != nil {
 			t.Fatal(err)
 		}
