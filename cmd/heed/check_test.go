@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"io"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -16,13 +17,19 @@ const casesDir = "../../testdata/cases"
 // run executes the root command with args and returns stdout and the exit code.
 func run(t *testing.T, args ...string) (string, int) {
 	t.Helper()
-	cmd := newRootCmd()
 	var out bytes.Buffer
-	cmd.SetOut(&out)
-	cmd.SetErr(&out)
-	cmd.SetArgs(args)
-	err := cmd.ExecuteContext(context.Background())
+	err := execRoot(&out, &out, args...)
 	return out.String(), exitCode(err, false)
+}
+
+// execRoot runs heed's root command in this process with args, its output
+// to stdout and its messages to stderr (one writer for both in run).
+func execRoot(stdout, stderr io.Writer, args ...string) error {
+	cmd := newRootCmd()
+	cmd.SetOut(stdout)
+	cmd.SetErr(stderr)
+	cmd.SetArgs(args)
+	return cmd.ExecuteContext(context.Background())
 }
 
 func TestCheckExitCodes(t *testing.T) {

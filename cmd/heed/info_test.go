@@ -2,7 +2,6 @@ package main
 
 import (
 	"bytes"
-	"context"
 	"encoding/json"
 	"os"
 	"os/exec"
@@ -20,27 +19,9 @@ const fixturesDir = "../../testdata/fixtures"
 // infoRun executes "heed info" with args; it returns stdout, the exit code and the error.
 func infoRun(t *testing.T, args ...string) (string, int, error) {
 	t.Helper()
-	cmd := newRootCmd()
 	var out, errb bytes.Buffer
-	cmd.SetOut(&out)
-	cmd.SetErr(&errb)
-	cmd.SetArgs(append([]string{"info"}, args...))
-	err := cmd.ExecuteContext(context.Background())
-	code := 0
-	if err != nil {
-		code = 2
-		var f *findingsError
-		if ok := asFindings(err, &f); ok {
-			code = 1
-		}
-	}
-	return out.String(), code, err
-}
-
-func asFindings(err error, f **findingsError) bool {
-	v, ok := err.(*findingsError)
-	*f = v
-	return ok
+	err := execRoot(&out, &errb, append([]string{"info"}, args...)...)
+	return out.String(), exitCode(err, false), err
 }
 
 // TestInfoJSONFixtures compares "heed info --json" with what the fixture

@@ -49,11 +49,6 @@ func (sf *shardFlags) register(cmd *cobra.Command) {
 	_ = f.MarkHidden("from-partials")
 }
 
-// engaged reports whether the pass is sharded, writes a partial or reads partials.
-func (sf *shardFlags) engaged() bool {
-	return sf.shard != "" || sf.partial != "" || sf.fromPartials
-}
-
 // parseShard reads "I/N".
 func parseShard(s string) (i, n int, err error) {
 	a, b, ok := strings.Cut(s, "/")

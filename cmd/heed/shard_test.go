@@ -2,7 +2,6 @@ package main
 
 import (
 	"bytes"
-	"context"
 	"encoding/binary"
 	"encoding/json"
 	"fmt"
@@ -22,12 +21,8 @@ import (
 // runSplit executes the root command and returns stdout, stderr and the exit code.
 func runSplit(t *testing.T, args ...string) (string, string, int) {
 	t.Helper()
-	cmd := newRootCmd()
 	var out, errb bytes.Buffer
-	cmd.SetOut(&out)
-	cmd.SetErr(&errb)
-	cmd.SetArgs(args)
-	err := cmd.ExecuteContext(context.Background())
+	err := execRoot(&out, &errb, args...)
 	if err != nil {
 		errb.WriteString(err.Error())
 	}
