@@ -68,7 +68,8 @@ type Diagnosis struct {
 	Facts Facts `json:"facts"`
 }
 
-// The patterns of check's diagnoses (Diagnosis.Pattern).
+// The patterns of the diagnoses (Diagnosis.Pattern; their Value and facts
+// are listed with Diagnosis): heed check's, then the invariance check's.
 const (
 	PatMaskShifted         = "mask_shifted"
 	PatNoCausalMask        = "no_causal_mask"
@@ -91,6 +92,13 @@ const (
 	PatTrainMode           = "train_mode"
 	PatRowsNotNormalised   = "rows_not_normalised"
 	PatNegativeValues      = "negative_values"
+
+	// the causal-invariance check's (package analysis/invariance)
+	PatReadsFuture       = "reads_future"
+	PatNotCausal         = "not_causal"
+	PatFutureHeads       = "future_heads"
+	PatOutputReadsFuture = "output_reads_future"
+	PatRoundingLevel     = "rounding_level"
 )
 
 // Facts are the numbers a diagnosis's words need; which a pattern fills is
@@ -412,13 +420,3 @@ type HeadChange struct {
 	MaxAbs float64 `json:"max_abs"`
 	MaxRel float64 `json:"max_rel"`
 }
-
-// The diagnosis patterns of the invariance check (Diagnosis.Pattern; their
-// Value and facts are listed with Diagnosis).
-const (
-	PatReadsFuture       = "reads_future"
-	PatNotCausal         = "not_causal"
-	PatFutureHeads       = "future_heads"
-	PatOutputReadsFuture = "output_reads_future"
-	PatRoundingLevel     = "rounding_level"
-)

@@ -220,24 +220,33 @@ func traceFixture() *views.TraceData {
 		}}
 }
 
-func TestTraceFigure(t *testing.T) {
-	st := figStyles(t)
-	f, err := TraceFigure(traceFixture(), TraceFigureOptions{Title: "decoder:L0:H0:q2", From: 0, To: 6, Styles: st})
+// figureGoldens compares f's SVG (titled name) with the golden name.svg and
+// its pixels' checksum with pixels.sha256, and returns its image and the
+// set of its text runs.
+func figureGoldens(t *testing.T, f *Figure, name string) (*image.RGBA, map[string]bool) {
+	t.Helper()
+	svg, err := f.SVG(Options{Title: name})
 	if err != nil {
 		t.Fatal(err)
 	}
-	svg, err := f.SVG(Options{Title: "trace"})
-	if err != nil {
-		t.Fatal(err)
-	}
-	golden(t, "trace.svg", svg)
-	_, sum := pixelSum(t, f)
+	golden(t, name+".svg", svg)
+	img, sum := pixelSum(t, f)
 	golden(t, "pixels.sha256", sum)
 	_, runs := svgRuns(t, svg)
 	texts := map[string]bool{}
 	for _, r := range runs {
 		texts[r[0]] = true
 	}
+	return img, texts
+}
+
+func TestTraceFigure(t *testing.T) {
+	st := figStyles(t)
+	f, err := TraceFigure(traceFixture(), TraceFigureOptions{Title: "decoder:L0:H0:q2", From: 0, To: 6, Styles: st})
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, texts := figureGoldens(t, f, "trace")
 	for _, want := range []string{
 		"decoder:L0:H0:q2",
 		"50.0%", "20.0%", "25.0%", // rollout as it is (sums to 1)
@@ -261,18 +270,7 @@ func TestSurveyFigure(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	svg, err := f.SVG(Options{Title: "survey"})
-	if err != nil {
-		t.Fatal(err)
-	}
-	golden(t, "survey.svg", svg)
-	img, sum := pixelSum(t, f)
-	golden(t, "pixels.sha256", sum)
-	_, runs := svgRuns(t, svg)
-	texts := map[string]bool{}
-	for _, r := range runs {
-		texts[r[0]] = true
-	}
+	img, texts := figureGoldens(t, f, "survey")
 	for _, want := range []string{"head", "layer", "L0", "L1", "0", "1", "2", "1.500", "3.000", "entropy (nats)",
 		"blank: not defined for that head"} {
 		if !texts[want] {

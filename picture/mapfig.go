@@ -125,29 +125,26 @@ func MapFigure(d *views.MapData, o MapFigureOptions) (*Figure, error) {
 	}
 	f.Frame(gridX-1, gridY-1, gridW+2, gridH+2, k.rule)
 
+	// a label in bold title colour at the cursor's row or column
+	labelStyle := func(i, cursor int) TextStyle {
+		if i == cursor {
+			return TextStyle{font, Bold, k.title}
+		}
+		return TextStyle{font, Regular, k.label}
+	}
 	// query labels, right-aligned beside their rows
 	for q := q0; q < q1; q++ {
-		if !shown(q, q0, o.CursorQ) {
-			continue
+		if shown(q, q0, o.CursorQ) {
+			y := gridY + (float64(q-q0)+0.5)*cell + 0.35*font
+			f.Text(label(d.QueryTokens, q), gridX-6, y, 0, End, labelStyle(q, o.CursorQ))
 		}
-		face, c := Regular, k.label
-		if q == o.CursorQ {
-			face, c = Bold, k.title
-		}
-		y := gridY + (float64(q-q0)+0.5)*cell + 0.35*font
-		f.Text(label(d.QueryTokens, q), gridX-6, y, 0, End, TextStyle{font, face, c})
 	}
 	// key labels under their columns, reading upwards
 	for kk := k0; kk < k1; kk++ {
-		if !shown(kk, k0, o.CursorK) {
-			continue
+		if shown(kk, k0, o.CursorK) {
+			x := gridX + (float64(kk-k0)+0.5)*cell + 0.35*font
+			f.Text(label(d.KeyTokens, kk), x, gridY+gridH+6, 90, End, labelStyle(kk, o.CursorK))
 		}
-		face, c := Regular, k.label
-		if kk == o.CursorK {
-			face, c = Bold, k.title
-		}
-		x := gridX + (float64(kk-k0)+0.5)*cell + 0.35*font
-		f.Text(label(d.KeyTokens, kk), x, gridY+gridH+6, 90, End, TextStyle{font, face, c})
 	}
 	// axis titles
 	f.Text(o.QueryAxis, margin+lineSize, gridY+gridH/2, 90, Middle, TextStyle{lineSize, Bold, k.text})

@@ -296,24 +296,24 @@ func appendSGR(buf []byte, st Style) []byte {
 		buf = append(buf, ";7"...)
 	}
 	if st.FG.IsSet() {
-		r, g, b := st.FG.Channels()
-		buf = append(buf, ";38;2;"...)
-		buf = strconv.AppendUint(buf, uint64(r), 10)
-		buf = append(buf, ';')
-		buf = strconv.AppendUint(buf, uint64(g), 10)
-		buf = append(buf, ';')
-		buf = strconv.AppendUint(buf, uint64(b), 10)
+		buf = appendRGB(buf, ";38;2;", st.FG)
 	}
 	if st.BG.IsSet() {
-		r, g, b := st.BG.Channels()
-		buf = append(buf, ";48;2;"...)
-		buf = strconv.AppendUint(buf, uint64(r), 10)
-		buf = append(buf, ';')
-		buf = strconv.AppendUint(buf, uint64(g), 10)
-		buf = append(buf, ';')
-		buf = strconv.AppendUint(buf, uint64(b), 10)
+		buf = appendRGB(buf, ";48;2;", st.BG)
 	}
 	return append(buf, 'm')
+}
+
+// appendRGB appends an SGR true-colour parameter: the prefix (";38;2;" for
+// the foreground, ";48;2;" for the background), then c's r;g;b.
+func appendRGB(buf []byte, prefix string, c Colour) []byte {
+	r, g, b := c.Channels()
+	buf = append(buf, prefix...)
+	buf = strconv.AppendUint(buf, uint64(r), 10)
+	buf = append(buf, ';')
+	buf = strconv.AppendUint(buf, uint64(g), 10)
+	buf = append(buf, ';')
+	return strconv.AppendUint(buf, uint64(b), 10)
 }
 
 func pow24(x float64) float64 { return math.Pow(x, 2.4) }

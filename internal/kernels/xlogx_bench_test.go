@@ -15,22 +15,14 @@ func BenchmarkXlogx(b *testing.B) {
 	for i := range xs {
 		xs[i] = float16.Fromfloat32(float32(rng.Float64())).Float32()
 	}
-	b.Run("table", func(b *testing.B) {
-		var s float64
-		for range b.N {
+	for _, c := range []struct {
+		name string
+		f    func(float32) float64
+	}{{"table", Xlogx}, {"FastLog", xlogxCompute}} {
+		benchEach(b, c.name, 4*int64(len(xs)), func(int) {
 			for _, x := range xs {
-				s += Xlogx(x)
+				sink += c.f(x)
 			}
-		}
-		_ = s
-	})
-	b.Run("FastLog", func(b *testing.B) {
-		var s float64
-		for range b.N {
-			for _, x := range xs {
-				s += xlogxCompute(x)
-			}
-		}
-		_ = s
-	})
+		})
+	}
 }
