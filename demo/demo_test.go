@@ -12,6 +12,8 @@ import (
 	"sort"
 	"strings"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testdoc"
 )
 
 // TestChecksums checks every embedded file against the sha256 that the
@@ -170,22 +172,8 @@ func TestQuotedFigures(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	const open, end = "<!-- demo-figures -->\n", "<!-- /demo-figures -->"
-	want := figuresTable(r)
-	for _, p := range []string{"../README.md"} {
-		raw, err := os.ReadFile(p)
-		if err != nil {
-			continue
-		}
-		s := string(raw)
-		i, j := strings.Index(s, open), strings.Index(s, end)
-		if i < 0 || j < i {
-			continue
-		}
-		if got := s[i+len(open) : j]; got != want {
-			t.Fatalf("%s quotes figures that are not results.json's; replace the text between the markers with:\n%s", p, want)
-		}
-		return
+	const readme = "../README.md"
+	if got := strings.TrimPrefix(testdoc.Section(t, readme, "demo-figures"), "\n"); got != figuresTable(r) {
+		t.Fatalf("%s quotes figures that are not results.json's; replace the text between the markers with:\n%s", readme, figuresTable(r))
 	}
-	t.Fatalf("no %q markers in README.md", strings.TrimSpace(open))
 }

@@ -12,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testdoc"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -141,29 +142,8 @@ func TestAgainstFixtures(t *testing.T) {
 // snippet returns the README's PyTorch snippet (between the markers).
 func snippet(t *testing.T) (code, from string) {
 	t.Helper()
-	for _, p := range []string{"../../README.md"} {
-		raw, err := os.ReadFile(p)
-		if err != nil {
-			continue
-		}
-		s := string(raw)
-		i := strings.Index(s, "<!-- invariance-snippet -->")
-		j := strings.Index(s, "<!-- /invariance-snippet -->")
-		if i < 0 || j < i {
-			continue
-		}
-		body := s[i+len("<!-- invariance-snippet -->") : j]
-		var lines []string
-		for _, l := range strings.Split(body, "\n") {
-			if strings.HasPrefix(strings.TrimSpace(l), "```") {
-				continue
-			}
-			lines = append(lines, l)
-		}
-		return strings.Join(lines, "\n"), p
-	}
-	t.Fatal("no <!-- invariance-snippet --> markers in README.md")
-	return "", ""
+	const readme = "../../README.md"
+	return testdoc.Code(t, readme, "invariance-snippet"), readme
 }
 
 // harness is a small causal model built from torch.nn.TransformerEncoderLayer

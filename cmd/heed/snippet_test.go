@@ -10,6 +10,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/heed-dev/heed/internal/testdoc"
 	"github.com/heed-dev/heed/internal/testpy"
 	"github.com/heed-dev/heed/loader"
 )
@@ -18,27 +19,8 @@ import (
 // (between the <!-- export-snippet --> markers, code fences dropped).
 func exportSnippet(t *testing.T) (code, from string) {
 	t.Helper()
-	const open, end = "<!-- export-snippet -->", "<!-- /export-snippet -->"
-	for _, p := range []string{"../../README.md"} {
-		raw, err := os.ReadFile(p)
-		if err != nil {
-			continue
-		}
-		s := string(raw)
-		i, j := strings.Index(s, open), strings.Index(s, end)
-		if i < 0 || j < i {
-			continue
-		}
-		var lines []string
-		for _, l := range strings.Split(s[i+len(open):j], "\n") {
-			if !strings.HasPrefix(strings.TrimSpace(l), "```") {
-				lines = append(lines, l)
-			}
-		}
-		return strings.Join(lines, "\n"), p
-	}
-	t.Fatal("no " + open + " markers in README.md")
-	return "", ""
+	const readme = "../../README.md"
+	return testdoc.Code(t, readme, "export-snippet"), readme
 }
 
 // snippetPrelude defines what the README's snippet uses: a torch.nn.Transformer

@@ -22,6 +22,7 @@ var allowed = map[string][]string{
 	"internal/kernels":    {},
 	"internal/testpy":     {},
 	"internal/termtest":   {},
+	"internal/testdoc":    {},
 	"views":               {},
 	"analysis":            {"loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"analysis/trace":      {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
