@@ -240,9 +240,7 @@ func (f *flow) quit() *Model {
 }
 
 func TestFlowLeakToWorstCell(t *testing.T) {
-	file := makeExport(t, "leak.npz", "--leak")
-	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, leakBoxScript, &want, file)
+	file, want := leakExport(t)
 	f := start(t, 80, 24, Options{}, file)
 	f.see("Survey · decoder")
 	f.see("1 finding") // the background checks finished
@@ -382,6 +380,26 @@ func TestNewErrors(t *testing.T) {
 	m.Close()
 }
 
+// leakCell is numpy's worst forbidden cell of an export (leakBoxScript)
+// and the bounding box of its head's leaking cells.
+type leakCell struct{ Layer, Batch, Head, Q, K, Q0, Q1, K0, K1 int }
+
+// leakBox asks numpy (leakBoxScript) for file's worst forbidden cell.
+func leakBox(t *testing.T, file string) leakCell {
+	t.Helper()
+	var c leakCell
+	numpyRef(t, leakBoxScript, &c, file)
+	return c
+}
+
+// leakExport writes make_export.py's export with a +1 causal leak and
+// returns its path and numpy's worst forbidden cell.
+func leakExport(t *testing.T) (string, leakCell) {
+	t.Helper()
+	file := makeExport(t, "leak.npz", "--leak")
+	return file, leakBox(t, file)
+}
+
 // leakBoxScript reads an export (decoder/attn [layer, batch, head, q, k]) and
 // returns numpy's worst forbidden cell and the bounding box of the cells
 // above the diagonal carrying more than 1e-6 in that head (causal rule:
@@ -410,8 +428,7 @@ func TestFlowNextFindingShowsExtent(t *testing.T) {
 		{"one cell of 12x12 heads, 300 tokens", one},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			var want struct{ Layer, Batch, Head, Q, K, Q0, Q1, K0, K1 int }
-			numpyRef(t, leakBoxScript, &want, tc.file)
+			want := leakBox(t, tc.file)
 			f := start(t, 100, 30, Options{}, tc.file)
 			f.see("Survey · decoder")
 			f.see("1 finding")
@@ -481,9 +498,7 @@ print(json.dumps({"keys": [int(k) for k in top], "sum": float(row.sum())}))
 // as numpy orders them, the leaking one marked with its rule; # writes the
 // Survey's values in its cells.
 func TestFlowRowInspectorAndNumbers(t *testing.T) {
-	file := makeExport(t, "leak.npz", "--leak")
-	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, leakBoxScript, &want, file)
+	file, want := leakExport(t)
 	var top struct {
 		Keys []int
 		Sum  float64
@@ -519,9 +534,7 @@ func TestFlowRowInspectorAndNumbers(t *testing.T) {
 // query (numpy's worst forbidden cell), else the last position; keys after
 // the query are marked as not seen, not given a share of 0.
 func TestFlowTraceChoosesItsQuery(t *testing.T) {
-	leak := makeExport(t, "leak.npz", "--leak")
-	var want struct{ Layer, Batch, Head, Q, K int }
-	numpyRef(t, leakBoxScript, &want, leak)
+	leak, want := leakExport(t)
 	f := start(t, 100, 30, Options{}, leak)
 	f.see("1 finding")
 	f.key("4")
