@@ -2,7 +2,6 @@ package tui
 
 import (
 	"fmt"
-	"github.com/heed-dev/heed/internal/words"
 	"math"
 	"path/filepath"
 	"regexp"
@@ -11,6 +10,7 @@ import (
 	"testing"
 
 	"github.com/heed-dev/heed/demo"
+	"github.com/heed-dev/heed/internal/words"
 )
 
 // encDecTraceScript computes with numpy, from an encoder-decoder export's
@@ -28,6 +28,9 @@ import (
 const encDecTraceScript = `
 import json, sys
 import numpy as np
+sys.dont_write_bytecode = True
+sys.path.insert(0, "../testdata/cases")
+from relevance import normbar  # Rbar = I + (R - I) with rows scaled to sum 1
 z = np.load(sys.argv[1])
 q = int(sys.argv[2])
 meta = json.loads(str(z["meta"]))
@@ -36,12 +39,6 @@ for b in ("encoder", "decoder", "cross"):
 A = {b: z[b + "/attn"][:, 0].astype(np.float64) for b in ("encoder", "decoder", "cross")}
 G = {b: z[b + "/grad"][:, 0].astype(np.float64) for b in ("encoder", "decoder", "cross")}
 
-def normbar(R):
-    n = R.shape[0]
-    Rh = R - np.eye(n)
-    s = Rh.sum(-1, keepdims=True)
-    Rh = np.where(s != 0, Rh / np.where(s != 0, s, 1), 0)
-    return Rh + np.eye(n)
 
 def rts(abar):
     S, T = A["encoder"].shape[-1], A["decoder"].shape[-1]
