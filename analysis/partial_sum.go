@@ -91,20 +91,19 @@ func (s *Sum) Add(x float64) {
 	}
 }
 
-func (s *Sum) add(v *[4]uint64) {
-	var c uint64
-	s.w[0], c = bits.Add64(s.w[0], v[0], 0)
-	s.w[1], c = bits.Add64(s.w[1], v[1], c)
-	s.w[2], c = bits.Add64(s.w[2], v[2], c)
-	s.w[3], _ = bits.Add64(s.w[3], v[3], c)
-}
+// add adds v to the 256-bit word, carrying from the low limb up (mod 2^256).
+func (s *Sum) add(v *[4]uint64) { s.addSub(v, bits.Add64) }
 
-func (s *Sum) sub(v *[4]uint64) {
+// sub subtracts v from the 256-bit word, borrowing from the low limb up.
+func (s *Sum) sub(v *[4]uint64) { s.addSub(v, bits.Sub64) }
+
+// addSub applies op (bits.Add64 or bits.Sub64) limb by limb, the carry or
+// borrow of each going into the next.
+func (s *Sum) addSub(v *[4]uint64, op func(x, y, c uint64) (uint64, uint64)) {
 	var c uint64
-	s.w[0], c = bits.Sub64(s.w[0], v[0], 0)
-	s.w[1], c = bits.Sub64(s.w[1], v[1], c)
-	s.w[2], c = bits.Sub64(s.w[2], v[2], c)
-	s.w[3], _ = bits.Sub64(s.w[3], v[3], c)
+	for i := range s.w {
+		s.w[i], c = op(s.w[i], v[i], c)
+	}
 }
 
 // Merge adds the state of o to s.

@@ -1,8 +1,6 @@
 package share
 
 import (
-	"crypto/ed25519"
-	"crypto/rand"
 	"log/slog"
 	"os"
 	"path/filepath"
@@ -25,17 +23,10 @@ func TestServerWritesNothingInWorkingDirectory(t *testing.T) {
 	cwd := t.TempDir()
 	t.Chdir(cwd)
 
-	// An authorized_keys file with one key, in OpenSSH's format as x/crypto/ssh writes it.
-	pub, _, err := ed25519.GenerateKey(rand.Reader)
-	if err != nil {
-		t.Fatal(err)
-	}
-	sshPub, err := gossh.NewPublicKey(pub)
-	if err != nil {
-		t.Fatal(err)
-	}
+	// An authorized_keys file with one public key (written by ssh-keygen -t
+	// ed25519 for this test; nothing signs with it).
 	ak := filepath.Join(keysDir, "authorized_keys")
-	if err := os.WriteFile(ak, gossh.MarshalAuthorizedKey(sshPub), 0o600); err != nil {
+	if err := os.WriteFile(ak, []byte(oneAuthorizedKey), 0o600); err != nil {
 		t.Fatal(err)
 	}
 	app := func(Guest) tea.Model { return &standIn{} }
@@ -78,3 +69,6 @@ func assertEmpty(t *testing.T, dir string) {
 		t.Errorf("file written in the working directory: %s", e.Name())
 	}
 }
+
+// oneAuthorizedKey is an authorized_keys line in OpenSSH's format.
+const oneAuthorizedKey = "ssh-ed25519 AAAAC3NzaC1lZDI1NTE5AAAAIE/EpkalWsVUpNWXaBksiPVlI0GD3jWhLWeLpQTHU/Pv heed-test\n"

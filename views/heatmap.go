@@ -19,12 +19,7 @@ const (
 	AggMax
 )
 
-func (a Agg) String() string {
-	if a == AggMax {
-		return "max"
-	}
-	return "mean"
-}
+func (a Agg) String() string { return enumName(a, "mean", "max") }
 
 // Scale maps weights to colours.
 type Scale uint8
@@ -35,11 +30,14 @@ const (
 	Log
 )
 
-func (s Scale) String() string {
-	if s == Log {
-		return "log"
+func (s Scale) String() string { return enumName(s, "linear", "log") }
+
+// enumName is names[v], names[0] for a value past the list.
+func enumName[T ~uint8](v T, names ...string) string {
+	if int(v) < len(names) {
+		return names[v]
 	}
-	return "linear"
+	return names[0]
 }
 
 // LogDecades is how many decades below the maximum the log scale spans.
