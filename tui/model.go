@@ -568,14 +568,8 @@ func (m *Model) key(msg tea.KeyPressMsg) tea.Cmd {
 		m.restyle()
 		m.setMsg("colormap "+m.st.Colormap.Name, m.st.Text)
 		return nil
-	case key.Matches(msg, k.NextLayer):
-		m.moveLayer(1)
-	case key.Matches(msg, k.PrevLayer):
-		m.moveLayer(-1)
-	case key.Matches(msg, k.NextHead):
-		m.moveHead(1)
-	case key.Matches(msg, k.PrevHead):
-		m.moveHead(-1)
+	case m.stepKeys(msg, k.PrevLayer, k.NextLayer, k.PrevHead, k.NextHead):
+		// moved to another layer or head
 	case key.Matches(msg, k.NextBatch):
 		m.sel.Batch = (m.sel.Batch + 1) % m.bi().blk.Batch
 		m.batchPicked = true
@@ -650,6 +644,25 @@ func (m *Model) clickTab(x int) {
 func (m *Model) moveLayer(d int) {
 	n := m.bi().blk.Layers
 	m.selectSet(func(s *Selection) { s.Layer = (s.Layer + d + n) % n })
+}
+
+// stepKeys moves the selection to the previous or next layer or head
+// (wrapping round) when msg is one of the four keys given for that, and
+// reports whether it was.
+func (m *Model) stepKeys(msg tea.KeyPressMsg, prevLayer, nextLayer, prevHead, nextHead key.Binding) bool {
+	switch {
+	case key.Matches(msg, prevLayer):
+		m.moveLayer(-1)
+	case key.Matches(msg, nextLayer):
+		m.moveLayer(1)
+	case key.Matches(msg, prevHead):
+		m.moveHead(-1)
+	case key.Matches(msg, nextHead):
+		m.moveHead(1)
+	default:
+		return false
+	}
+	return true
 }
 
 func (m *Model) moveHead(d int) {

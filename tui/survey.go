@@ -98,14 +98,8 @@ func (s *surveyScreen) Update(msg tea.Msg) tea.Cmd {
 			s.step(-max(1, s.layout.ListRows))
 		case s.ranked && key.Matches(msg, k.PageDown):
 			s.step(max(1, s.layout.ListRows))
-		case key.Matches(msg, k.Up):
-			m.moveLayer(-1)
-		case key.Matches(msg, k.Down):
-			m.moveLayer(1)
-		case key.Matches(msg, k.Left):
-			m.moveHead(-1)
-		case key.Matches(msg, k.Right):
-			m.moveHead(1)
+		case m.stepKeys(msg, k.Up, k.Down, k.Left, k.Right):
+			// moved to another layer or head
 		case key.Matches(msg, k.Stat):
 			n := len(surveyStats(m.bi().blk.HasGrad))
 			m.statIndex = (m.statIndex + 1) % n
