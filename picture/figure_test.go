@@ -115,7 +115,7 @@ func TestMapFigure(t *testing.T) {
 	// Every key label is one run of the whole token and its position,
 	// turned to read upwards; query labels are the same runs, level.
 	for k, tok := range d.KeyTokens {
-		want := cut(tok, 14) + " " + string(rune('0'+k))
+		want := views.Ellipsize(tok, 14) + " " + string(rune('0'+k))
 		tf, ok := byText[want]
 		if !ok {
 			t.Errorf("no text run %q (runs: %v)", want, runs)

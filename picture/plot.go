@@ -41,7 +41,7 @@ func newInk(st views.Styles) ink {
 	}
 	k := ink{st: st, text: fg, page: bg, faint: or(st.Faint.FG, fg), title: or(st.Title.FG, fg),
 		label: or(st.Label.FG, fg), bad: or(st.Bad.FG, fg), accent: or(st.Accent.FG, fg)}
-	k.rule = blend(bg, fg, 0.3)
+	k.rule = views.Blend(bg, fg, 0.3)
 	return k
 }
 
@@ -104,25 +104,7 @@ func label(toks []string, i int) string {
 	if i < 0 || i >= len(toks) || toks[i] == "" {
 		return idx
 	}
-	return cut(toks[i], 14) + " " + idx
-}
-
-// cut shortens s to n columns, ending with "…" when cut.
-func cut(s string, n int) string {
-	if views.StringWidth(s) <= n {
-		return s
-	}
-	var b strings.Builder
-	w := 0
-	for _, r := range s {
-		rw := views.StringWidth(string(r))
-		if w+rw > n-1 {
-			break
-		}
-		b.WriteRune(r)
-		w += rw
-	}
-	return b.String() + "…"
+	return views.Ellipsize(toks[i], 14) + " " + idx
 }
 
 // barScale is what a colour bar says: the name of what the colour means,

@@ -78,13 +78,6 @@ type scene struct {
 	g *glyphs
 }
 
-func blend(a, b views.Colour, t float64) views.Colour {
-	ar, ag, ab := a.Channels()
-	br, bg, bb := b.Channels()
-	mix := func(x, y uint8) uint8 { return uint8(float64(x)*(1-t) + float64(y)*t + 0.5) }
-	return views.RGB(mix(ar, br), mix(ag, bg), mix(ab, bb))
-}
-
 // resolve gives the colours a cell is drawn with and its face.
 func resolve(st views.Style, defFG, defBG views.Colour) (fg, bg views.Colour, face Face) {
 	fg, bg = st.FG, st.BG
@@ -98,7 +91,7 @@ func resolve(st views.Style, defFG, defBG views.Colour) (fg, bg views.Colour, fa
 		fg, bg = bg, fg
 	}
 	if st.Attr&views.Faint != 0 {
-		fg = blend(fg, bg, 0.45)
+		fg = views.Blend(fg, bg, 0.45)
 	}
 	switch b, i := st.Attr&views.Bold != 0, st.Attr&views.Italic != 0; {
 	case b && i:
@@ -236,7 +229,7 @@ func build(c *views.Canvas, opt Options) (*scene, error) {
 			if parts, shade, ok := blockParts(cell.Ch); ok {
 				switch {
 				case shade > 0:
-					top[x] = blend(bg, fg, shade)
+					top[x] = views.Blend(bg, fg, shade)
 					bot[x] = top[x]
 				case len(parts) == 1 && parts[0] == [4]int{0, 0, 8, 4}:
 					top[x] = fg

@@ -118,7 +118,7 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 
 	// one row an input token; a run of keys the query may not see, where
 	// nothing leaked, is one row
-	zebra := blend(k.page, k.text, 0.05)
+	zebra := views.Blend(k.page, k.text, 0.05)
 	barW := panelW - 78
 	leaks := func(p int) bool {
 		return len(d.Methods) > 0 && p < len(d.Methods[0].Shares) && d.Methods[0].Shares[p] > 1e-6

@@ -50,13 +50,13 @@ func scrollStart(cur, n, size int) int {
 
 // padRight pads s with spaces to w columns (cutting with "…" when longer).
 func padRight(s string, w int) string {
-	s = ellipsize(s, w)
+	s = Ellipsize(s, w)
 	return s + strings.Repeat(" ", max(0, w-StringWidth(s)))
 }
 
 // padLeft right-aligns s in w columns.
 func padLeft(s string, w int) string {
-	s = ellipsize(s, w)
+	s = Ellipsize(s, w)
 	return strings.Repeat(" ", max(0, w-StringWidth(s))) + s
 }
 

@@ -200,7 +200,7 @@ func Findings(d *FindingsData, w, h, sel int, st Styles) (*Canvas, FindingsLayou
 			return ""
 		}, style)
 		if l.Start+i != sel && (r.Rule != "") {
-			c.Text(0, y+i, ellipsize(r.Rule, cols[0].w), st.Bad, cols[0].w)
+			c.Text(0, y+i, Ellipsize(r.Rule, cols[0].w), st.Bad, cols[0].w)
 		}
 	}
 	if len(d.Rows) > l.Visible {

@@ -771,11 +771,11 @@ func leakShade(st Styles, f float32) Colour {
 	if !st.Dark {
 		bg = RGB(255, 255, 255)
 	}
-	return blend(bg, st.Colormap.Alarm, t)
+	return Blend(bg, st.Colormap.Alarm, t)
 }
 
-// blend mixes a and b, t = 0 giving a and 1 giving b (per channel, sRGB).
-func blend(a, b Colour, t float64) Colour {
+// Blend mixes a and b, t = 0 giving a and 1 giving b (per channel, sRGB).
+func Blend(a, b Colour, t float64) Colour {
 	ar, ag, ab := a.Channels()
 	br, bg, bb := b.Channels()
 	mix := func(x, y uint8) uint8 { return uint8(math.Round(float64(x)*(1-t) + float64(y)*t)) }
@@ -867,9 +867,6 @@ func Map(d *MapData, px *Pixels, l MapLayout, opt MapOptions, st Styles) *Canvas
 			}
 			if st.HasColour() {
 				cell.FG = pixelColour(st, w, f, kind, t)
-				if kind == KindPadding && f == 0 && w == w {
-					cell.FG = st.Padding
-				}
 			}
 			if pr == cpr && pc == cpc {
 				cell.Attr |= Reverse | Bold
@@ -989,7 +986,7 @@ func drawQueryLabels(c *Canvas, d *MapData, l MapLayout, cpr int, st Styles) {
 		idx := strconv.Itoa(q)
 		s := strings.Repeat(" ", dw-len(idx)) + idx
 		if tokW > 0 {
-			s += " " + ellipsize(d.token(d.QueryTokens, q), tokW)
+			s += " " + Ellipsize(d.token(d.QueryTokens, q), tokW)
 		}
 		if style == st.LabelHi {
 			s += strings.Repeat(" ", max(0, l.LabelW-StringWidth(s)))
@@ -998,8 +995,8 @@ func drawQueryLabels(c *Canvas, d *MapData, l MapLayout, cpr int, st Styles) {
 	}
 }
 
-// ellipsize cuts s to w columns, ending with "…" when cut.
-func ellipsize(s string, w int) string {
+// Ellipsize cuts s to w columns, ending with "…" when cut.
+func Ellipsize(s string, w int) string {
 	if w <= 0 {
 		return ""
 	}
@@ -1056,10 +1053,10 @@ func drawReadout(c *Canvas, d *MapData, px *Pixels, l MapLayout, cur mapCursor, 
 	if d.QueryOffset != 0 {
 		put(fmt.Sprintf(" (pos %d)", cq+d.QueryOffset), st.Faint)
 	}
-	put(ellipsize(quoteTok(d.token(d.QueryTokens, cq)), 16), st.Text)
+	put(Ellipsize(quoteTok(d.token(d.QueryTokens, cq)), 16), st.Text)
 	put(" → ", st.Faint)
 	put(fmt.Sprintf("k %d", ck), st.Title)
-	put(ellipsize(quoteTok(d.token(d.KeyTokens, ck)), 16), st.Text)
+	put(Ellipsize(quoteTok(d.token(d.KeyTokens, ck)), 16), st.Text)
 	v := d.At(cq, ck)
 	put("  "+FormatWeight(v), Style{Attr: Bold})
 	rule := d.rule(cq, ck)

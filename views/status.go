@@ -18,7 +18,7 @@ func Tabs(w int, names []string, active int, right string, st Styles) *Canvas {
 		rw := StringWidth(right)
 		room := w - x - 2
 		if room > 3 {
-			s := ellipsize(right, room)
+			s := Ellipsize(right, room)
 			c.Text(w-min(rw, room), 0, s, st.Faint, -1)
 		}
 	}
@@ -47,7 +47,7 @@ func Status(w int, fields []Field, msg string, msgStyle Style, st Styles) *Canva
 		}
 		room := w - x - 1
 		if room > 3 {
-			s := ellipsize(msg, room)
+			s := Ellipsize(msg, room)
 			c.Text(w-1-StringWidth(s), 0, s, msgStyle, -1)
 		}
 	}

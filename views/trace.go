@@ -194,7 +194,7 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 		if StringWidth(name) > colW-1 {
 			name = m.Name
 		}
-		c.Text(labelW+1+i*colW, y, ellipsize(name, colW-1), st.Faint, -1)
+		c.Text(labelW+1+i*colW, y, Ellipsize(name, colW-1), st.Faint, -1)
 		vis := make([]float64, len(m.Shares))
 		for p, v := range m.Shares {
 			vis[p] = v

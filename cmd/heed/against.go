@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"github.com/heed-dev/heed/internal/prose"
@@ -195,9 +194,7 @@ func writeInvarianceJSON(w io.Writer, res *invariance.Result, warnings []string)
 	for _, p := range res.Parts {
 		out.Detail.Parts = append(out.Detail.Parts, partJSON(p))
 	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(out)
+	return writeJSON(w, out)
 }
 
 func fromText(res *invariance.Result) string {

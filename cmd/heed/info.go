@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"fmt"
 	"io"
 	"strconv"
@@ -44,9 +43,7 @@ or the --group given); a grouping heed had to guess is also a warning.`,
 			defer ex.Close()
 			rep := newInfoReport(set, ex)
 			if asJSON {
-				enc := json.NewEncoder(cmd.OutOrStdout())
-				enc.SetIndent("", "  ")
-				return enc.Encode(rep)
+				return writeJSON(cmd.OutOrStdout(), rep)
 			}
 			rep.writeText(cmd.OutOrStdout())
 			return nil

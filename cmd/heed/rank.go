@@ -367,21 +367,3 @@ func writeRankText(w io.Writer, rep *rankReport) {
 	}
 	fmt.Fprintln(w, prose.Caveat)
 }
-
-// rankFieldsDoc is the per-head field list of docs/json.md (between its
-// rank-fields markers), derived from the table of statistics: one row per
-// statistic, then one per former name.
-func rankFieldsDoc(stats []analysis.Statistic) string {
-	esc := strings.NewReplacer("|", `\|`)
-	var b strings.Builder
-	b.WriteString("| field | meaning |\n|---|---|\n")
-	for _, st := range stats {
-		fmt.Fprintf(&b, "| `%s` | %s |\n", st.Name, esc.Replace(st.Doc))
-	}
-	for _, st := range stats {
-		for _, a := range st.Aliases {
-			fmt.Fprintf(&b, "| `%s` | the former name of `%s`, still written with the same value (and taken by `--sort`) until the next release |\n", a, st.Name)
-		}
-	}
-	return b.String()
-}

@@ -2,6 +2,7 @@ package main
 
 import (
 	"flag"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strings"
@@ -63,4 +64,22 @@ func TestRankFieldsDoc(t *testing.T) {
 	if err := os.WriteFile(path, []byte(doc[:open]+want+doc[end:]), 0o644); err != nil {
 		t.Fatal(err)
 	}
+}
+
+// rankFieldsDoc is the per-head field list of docs/json.md (between its
+// rank-fields markers), derived from the table of statistics: one row per
+// statistic, then one per former name.
+func rankFieldsDoc(stats []analysis.Statistic) string {
+	esc := strings.NewReplacer("|", `\|`)
+	var b strings.Builder
+	b.WriteString("| field | meaning |\n|---|---|\n")
+	for _, st := range stats {
+		fmt.Fprintf(&b, "| `%s` | %s |\n", st.Name, esc.Replace(st.Doc))
+	}
+	for _, st := range stats {
+		for _, a := range st.Aliases {
+			fmt.Fprintf(&b, "| `%s` | the former name of `%s`, still written with the same value (and taken by `--sort`) until the next release |\n", a, st.Name)
+		}
+	}
+	return b.String()
 }

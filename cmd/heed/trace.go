@@ -1,7 +1,6 @@
 package main
 
 import (
-	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -67,9 +66,7 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 				return traceAdvice(err)
 			}
 			if asJSON {
-				enc := json.NewEncoder(cmd.OutOrStdout())
-				enc.SetIndent("", "  ")
-				return enc.Encode(res)
+				return writeJSON(cmd.OutOrStdout(), res)
 			}
 			writeTraceText(cmd.OutOrStdout(), res)
 			return nil
