@@ -155,18 +155,18 @@ func TestAddedStatisticAgainstNumpy(t *testing.T) {
 	}
 	for _, w := range want {
 		hs := br.Head(w.Layer, w.Head)
-		if got := st.Of(&hs.Stats, hs); !near(got, w.All, 1e-12) {
+		if got := st.Value(&hs.Stats, hs); !near(got, w.All, 1e-12) {
 			t.Errorf("L%d H%d keys90 = %v, numpy %v", w.Layer, w.Head, got, w.All)
 		}
 		for b, x := range w.Batch {
-			if got := st.Of(&hs.Batch[b], nil); !near(got, x, 1e-12) {
+			if got := st.Value(&hs.Batch[b], nil); !near(got, x, 1e-12) {
 				t.Errorf("L%d H%d batch %d keys90 = %v, numpy %v", w.Layer, w.Head, b, got, x)
 			}
 		}
 	}
 	// without the row statistics (heed check) it is not computed
 	br = analyzePaths(t, Options{Tol: DefaultTol, NoStats: true}, path).Result().Block("decoder")
-	if v := st.Of(&br.Stats[0].Stats, &br.Stats[0]); !math.IsNaN(v) {
+	if v := st.Value(&br.Stats[0].Stats, &br.Stats[0]); !math.IsNaN(v) {
 		t.Errorf("keys90 with NoStats = %v, want NaN", v)
 	}
 }

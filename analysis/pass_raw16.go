@@ -34,10 +34,10 @@ var (
 
 func rawTablesFor(d loader.DType) *rawTables {
 	if d == loader.BFloat16 {
-		rawOnce[1].Do(func() { rawBF16 = kernels.NewHalf(kernels.BFloat16Values(), 0x7f80) })
+		rawOnce[1].Do(func() { rawBF16 = kernels.NewHalf(loader.RawTable(loader.BFloat16), 0x7f80) })
 		return &rawBF16
 	}
-	rawOnce[0].Do(func() { rawF16 = kernels.NewHalf(loader.F16ToF32Table(), 0x7c00) })
+	rawOnce[0].Do(func() { rawF16 = kernels.NewHalf(loader.RawTable(loader.Float16), 0x7c00) })
 	return &rawF16
 }
 

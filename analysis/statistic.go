@@ -3,12 +3,13 @@ package analysis
 import (
 	"fmt"
 	"math"
+	"slices"
 )
 
 // The table of per-head statistics: the one place a statistic is declared.
 // Every output of statistics derives from it: heed rank's JSON fields, CSV
 // columns, text table and --sort keys (HeadColumns, TextColumns,
-// Statistic.Of), the terminal UI Survey's list (Statistic.Survey), and the
+// Statistic.Value), the terminal UI Survey's list (Statistic.Survey), and the
 // field list of docs/json.md (checked against the table by cmd/heed's
 // tests). The built-in statistics are computed in the pass's own loop
 // (pass.go, pass_f32.go, pass_raw16.go: one read of each row, no call per row)
@@ -92,12 +93,6 @@ type Statistic struct {
 	// fast path: a pass without such statistics never calls one). Leave
 	// Value nil: the engine reads the mean from Stats.Extra.
 	Row func(r *Row) (float64, bool)
-}
-
-// Of returns the statistic for s (a head's or one batch item's statistics)
-// and h (the head's, nil for one batch item alone); NaN = undefined.
-func (st *Statistic) Of(s *Stats, h *HeadStats) float64 {
-	return st.Value(s, h)
 }
 
 // headOnly reads what exists only over every batch item (HeadStats).
@@ -216,19 +211,12 @@ func Register(s Statistic) error {
 }
 
 func isColumn(n string) bool {
-	for _, k := range HeadKeys {
-		if k == n {
-			return true
-		}
+	if slices.Contains(HeadKeys, n) {
+		return true
 	}
 	for i := range statistics {
-		if statistics[i].Name == n {
+		if statistics[i].Name == n || slices.Contains(statistics[i].Aliases, n) {
 			return true
-		}
-		for _, a := range statistics[i].Aliases {
-			if a == n {
-				return true
-			}
 		}
 	}
 	return false

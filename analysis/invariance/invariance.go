@@ -82,7 +82,7 @@ type Result struct {
 	// Heads lists, for blocks with attention in both exports, every (layer,
 	// head, batch item) whose rows before P changed, in that order.
 	Heads []analysis.HeadChange
-	// analysis.Notes say what was not compared and why.
+	// Notes say what was not compared and why.
 	Notes []string
 	// Findings has one entry per part (and per attention-only block) whose
 	// positions before P changed, in the order of Parts.
@@ -100,8 +100,8 @@ type attnTol struct {
 	tol float64
 }
 
-// Finding is a analysis.Finding of rule invariance: check's finding fields
-// (analysis.Rule is analysis.RuleInvariance) plus what only this check has. For this rule:
+// Finding is an analysis.Finding of rule invariance: check's finding fields
+// (Rule is analysis.RuleInvariance) plus what only this check has. For this rule:
 // Layers are the layers where a position before P changed, the first being
 // where the change enters; Heads the heads whose rows before P changed at
 // the first layer where attention changed (empty without attention in both
@@ -190,18 +190,6 @@ func (p *Part) FirstLayer(batch int) int {
 		}
 	}
 	return -1
-}
-
-// LayerMax returns, for the view, the largest Rel of (layer, pos) over the
-// batch items that judge it (pos before their P), and false when none does.
-func (p *Part) LayerMax(layer, pos int) (float64, bool) {
-	m, ok := 0.0, false
-	for b := 0; b < p.Batch; b++ {
-		if pos < p.From[b] && !p.isPad(b, pos) {
-			m, ok = math.Max(m, p.Rel[layer][b][pos]), true
-		}
-	}
-	return m, ok
 }
 
 // Max returns the largest Abs and Rel over the judged positions of a batch
@@ -320,6 +308,11 @@ func sideFrom(sa, sb *loader.Side, batch int) (from []int, changed bool) {
 
 func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 
+// ErrNeedFrom (test with errors.Is) ends the errors of Check
+// when the tokens do not tell where the change starts: the caller names
+// its own way to give that position (the from setting, Options.From).
+var ErrNeedFrom = errors.New("give the first changed position P")
+
 // Check compares export a with export b (the same model, inputs
 // that agree before P and differ from P on) and returns the differences of
 // every activation array at the positions before P. It returns an error for
@@ -332,11 +325,6 @@ func hasTokens(s *loader.Side) bool { return s != nil && len(s.Tokens) > 0 }
 // whose tokens agree while another side changed are skipped with a note,
 // since they may legitimately read the changed side (cross-attention).
 // Padding positions of A (valid/SIDE) are not judged.
-// ErrNeedFrom (test with errors.Is) ends the errors of Check
-// when the tokens do not tell where the change starts: the caller names
-// its own way to give that position (the from setting, Options.From).
-var ErrNeedFrom = errors.New("give the first changed position P")
-
 func Check(ctx context.Context, a, b *loader.Export, opt Options) (*Result, error) {
 	fa, fb := exportFile(a), exportFile(b)
 	res := &Result{}

@@ -864,7 +864,7 @@ func Predicted(ex *loader.Export, blk *loader.Block, batch, q int) Prediction {
 		}
 	}
 	side := ex.Side(blk.QuerySide)
-	if blk.Kind != loader.KindCross && blk.QuerySide == blk.KeySide || blk.Kind == loader.KindCross {
+	if blk.Kind == loader.KindCross || blk.QuerySide == blk.KeySide {
 		if t := side.Token(batch, pos+1); t != "" && side.IsValid(batch, pos+1) {
 			return Prediction{From: "next token", ID: -1, Token: t}
 		}

@@ -38,7 +38,7 @@ type rankHead struct {
 func newRankHead(stats []analysis.Statistic, block string, hs *analysis.HeadStats) rankHead {
 	r := rankHead{Block: block, Layer: hs.Layer, Head: hs.Head, stats: stats, vals: make([]float64, len(stats))}
 	for i := range stats {
-		r.vals[i] = stats[i].Of(&hs.Stats, hs)
+		r.vals[i] = stats[i].Value(&hs.Stats, hs)
 	}
 	return r
 }

@@ -29,16 +29,6 @@ func NewHalf(val *[65536]float32, exp uint16) Half {
 	return Half{Val: val, XL: t, Exp: exp}
 }
 
-// BFloat16Values is the value table of bfloat16: a pattern is the top 16
-// bits of a float32.
-func BFloat16Values() *[65536]float32 {
-	v := new([65536]float32)
-	for i := range v {
-		v[i] = math.Float32frombits(uint32(i) << 16)
-	}
-	return v
-}
-
 // Lane constants of the four-patterns-at-a-time tests (Finite16, Add16,
 // Sum16): a lane's magnitude bits and its top (sign) bit.
 const (

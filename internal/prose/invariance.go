@@ -98,10 +98,7 @@ func headWords(d *analysis.Diagnosis, f *analysis.InvFacts, w *Diagnosis) {
 	for _, h := range f.HeadChanges {
 		w.Evidence = append(w.Evidence, fmt.Sprintf("layer %d head %d batch item %d: rows %s changed (largest difference %.3g)", h.Layer, h.Head, h.Batch, span(h.Rows), h.MaxAbs))
 	}
-	hw := "head"
-	if len(hs) > 1 {
-		hw = "heads"
-	}
+	hw := words.Plural(len(hs), "head", "heads")
 	if len(hs) < heads {
 		w.Text = fmt.Sprintf("at layer %d only %s %s of %d changed their rows before P: %s the future (the other heads of that layer agree).", hl, hw, list(hs), heads, words.Plural(len(hs), "it reads", "they read"))
 		w.Check = fmt.Sprintf("the mask or bias given to %s %s of layer %d: a per-head mask broadcast wrongly, or a head-specific path", hw, list(hs), hl)
