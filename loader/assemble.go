@@ -10,7 +10,6 @@ import (
 	"maps"
 	"regexp"
 	"slices"
-	"sort"
 	"strconv"
 	"strings"
 )
@@ -119,12 +118,7 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		return nil, &FormatError{File: where, Offset: -1, Msg: "no attention arrays: expected BLOCK/attn, BLOCK/attn/N or BLOCK/out (heed-export/1), or a single floating-point array"}
 	}
 
-	names := make([]string, 0, len(blocks))
-	for n := range blocks {
-		names = append(names, n)
-	}
-	sort.Strings(names)
-	for _, n := range names {
+	for _, n := range slices.Sorted(maps.Keys(blocks)) {
 		b, err := buildBlock(blocks[n], md.Blocks[n], md.ComputeDType, opt)
 		if err != nil {
 			return nil, err

@@ -679,25 +679,17 @@ func (a *h5Array) readLocked(idx []int, n int, mem C.hid_t, buf unsafe.Pointer) 
 	return nil
 }
 
-// readEnumInto reads n values of an enum (boolean) array into dst.
+// readEnumInto reads n values of an enum (bool) sub-array, stored as one
+// byte each, into dst.
 func readEnumInto[T float32 | int64](a *h5Array, idx []int, n int, dst []T) error {
-	b, err := a.readEnum(idx, n)
-	if err != nil {
+	buf := make([]byte, max(n, 1))
+	if err := a.read(idx, n, a.ftype, unsafe.Pointer(&buf[0])); err != nil {
 		return err
 	}
-	for i, v := range b {
+	for i, v := range buf[:n] {
 		dst[i] = T(v)
 	}
 	return nil
-}
-
-// readEnum reads an enum (bool) sub-array as its raw bytes.
-func (a *h5Array) readEnum(idx []int, n int) ([]byte, error) {
-	buf := make([]byte, max(n, 1))
-	if err := a.read(idx, n, a.ftype, unsafe.Pointer(&buf[0])); err != nil {
-		return nil, err
-	}
-	return buf[:n], nil
 }
 
 func (a *h5Array) ReadFloat32(idx []int, dst []float32) error {

@@ -195,7 +195,7 @@ func (z *npzFile) member(path, name string, f *zip.File) (*rawArray, error) {
 					total/max(int64(csize), 1), csize, total, maxBlankInflate>>20), nil)
 			}
 		}
-		lz := &inflated{f: f, total: total, dataOff: h.dataOff, path: path, name: name}
+		lz := &inflated{f: f, total: total, dataOff: h.dataOff, path: path, name: name, free: freeSpace}
 		if total > inflateInMemory || z.inMemory+total > inflateMemBudget {
 			lz.file = &mappedFile{path: path}
 		} else {
@@ -232,7 +232,7 @@ type inflated struct {
 	total, dataOff int64
 	path, name     string
 	file           *mappedFile                    // the temporary file, nil when in memory
-	free           func(dir string) (int64, bool) // freeSpace when nil (tests shrink the disk)
+	free           func(dir string) (int64, bool) // the free space of a directory: freeSpace (tests shrink the disk)
 
 	once sync.Once
 	buf  []byte
@@ -273,11 +273,7 @@ func (l *inflated) inflate() {
 		return
 	}
 	dir := os.TempDir()
-	freeSpace := freeSpace
-	if l.free != nil {
-		freeSpace = l.free
-	}
-	if free, ok := freeSpace(dir); ok && free < l.total {
+	if free, ok := l.free(dir); ok && free < l.total {
 		fail(fmt.Sprintf("inflating it takes %d bytes of temporary space, %s has %d free (set TMPDIR to a larger disk)", l.total, dir, free), nil)
 		return
 	}

@@ -330,9 +330,12 @@ func Open(paths []string, opt Options) (*Export, error) {
 	return ex, nil
 }
 
+// closeAll closes the containers that are open (not nil).
 func closeAll(cs []Container) {
 	for _, c := range cs {
-		c.Close()
+		if c != nil {
+			c.Close()
+		}
 	}
 }
 

@@ -182,7 +182,7 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 			continue
 		}
 		if cs[i], err = opt.openRef(r); err != nil {
-			closeOpen(cs)
+			closeAll(cs)
 			return nil, err
 		}
 	}
@@ -220,15 +220,6 @@ func (o Options) openRef(r fileRef) (Container, error) {
 		o.opened(r.path)
 	}
 	return openFile(r)
-}
-
-// closeOpen closes the containers that are open (not nil).
-func closeOpen(cs []Container) {
-	for _, c := range cs {
-		if c != nil {
-			c.Close()
-		}
-	}
 }
 
 // isNPYRef reports whether a file is grouped as an NPY file: its one array
@@ -341,7 +332,7 @@ func groupByNames(refs []fileRef, opt Options) (groups [][]fileRef, first []Cont
 			arrays = []string{r.npyName}
 		} else {
 			if c, err = opt.openRef(r); err != nil {
-				closeOpen(first)
+				closeAll(first)
 				return nil, nil, err
 			}
 			for _, a := range c.Arrays() {

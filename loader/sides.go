@@ -8,7 +8,6 @@ import (
 	"fmt"
 	"maps"
 	"slices"
-	"sort"
 	"strconv"
 	"strings"
 )
@@ -71,12 +70,7 @@ func buildSides(ex *Export, arrs map[string]*[3]Array, opt Options) error {
 		}
 		return bt, n, err
 	}
-	names := make([]string, 0, len(arrs))
-	for n := range arrs {
-		names = append(names, n)
-	}
-	sort.Strings(names)
-	for _, name := range names {
+	for _, name := range slices.Sorted(maps.Keys(arrs)) {
 		a3 := arrs[name]
 		s := side(name)
 		if a := a3[0]; a != nil {
