@@ -70,11 +70,10 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 			if a.DType() != String || len(a.Shape()) != 1 {
 				return nil, ferr(a, "vocab must be a 1-d string array (the text of each vocabulary index), got %s %v", a.DType(), a.Shape())
 			}
-			v, err := a.ReadStrings()
-			if err != nil {
-				return nil, err
+			if n := a.Shape()[0]; n > maxSide {
+				return nil, ferr(a, "%d vocabulary entries is more than heed reads (%d)", n, maxSide)
 			}
-			ex.Vocab = v
+			ex.Vocab = a
 		case roleMeta:
 			if a.DType() != String || prod(a.Shape()) != 1 {
 				return nil, ferr(a, "meta must be one string (a 0-d string array holding the JSON)")
@@ -133,8 +132,8 @@ func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) 
 		if !a.DType().IsFloat() || len(a.Shape()) < 2 || len(a.Shape()) > 3 {
 			return nil, ferr(a, "logits must be a floating-point [batch, position, vocab] or [position, vocab] array, got %s %v", a.DType(), a.Shape())
 		}
-		if sh := a.Shape(); ex.Vocab != nil && len(ex.Vocab) != sh[len(sh)-1] {
-			return nil, ferr(a, "logits have %d vocabulary entries, the vocab array %d", sh[len(sh)-1], len(ex.Vocab))
+		if sh := a.Shape(); ex.Vocab != nil && ex.Vocab.Shape()[0] != sh[len(sh)-1] {
+			return nil, ferr(a, "logits have %d vocabulary entries, the vocab array %d", sh[len(sh)-1], ex.Vocab.Shape()[0])
 		}
 	}
 	for _, b := range ex.Blocks {

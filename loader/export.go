@@ -19,9 +19,9 @@ type Export struct {
 	Sides map[string]*Side
 	// Logits is the optional `logits` array [batch, position, vocab].
 	Logits Array
-	// Vocab is the optional `vocab` array: the text of each vocabulary
-	// index of Logits.
-	Vocab []string
+	// Vocab is the optional `vocab` array [vocab] of strings: the text of
+	// each vocabulary index of Logits, read only when asked (VocabText).
+	Vocab Array
 	// Warnings are things a user should know that are not errors (e.g. head
 	// axis of length 1: heads were averaged at export).
 	Warnings []string
@@ -388,4 +388,18 @@ func (b *Block) ReadOut(layer, batch int, dst []float32) error {
 		return fmt.Errorf("loader: %s: buffer of %d values, need %d x %d", b.Name, len(dst), b.Positions, b.Features)
 	}
 	return b.out[layer].read(batch, 0, dst, b.Positions, b.Features)
+}
+
+// VocabText returns the text of vocabulary index i of the vocab array, ""
+// without one or when i is outside it. It reads the array: a vocabulary is
+// read by what shows a prediction, not by every open of an example.
+func (e *Export) VocabText(i int) (string, error) {
+	if e.Vocab == nil || i < 0 || i >= e.Vocab.Shape()[0] {
+		return "", nil
+	}
+	v, err := e.Vocab.ReadStrings()
+	if err != nil {
+		return "", err
+	}
+	return v[i], nil
 }

@@ -856,8 +856,8 @@ func Predicted(ex *loader.Export, blk *loader.Block, batch, q int) Prediction {
 				}
 				p := 1 / z
 				pr := Prediction{From: "logits", ID: best, Prob: &p}
-				if best < len(ex.Vocab) {
-					pr.Token = ex.Vocab[best]
+				if t, err := ex.VocabText(best); err == nil {
+					pr.Token = t // "" without a vocabulary (or one that cannot be read)
 				}
 				return pr
 			}
