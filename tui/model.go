@@ -362,9 +362,9 @@ func (m *Model) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 			m.opts.OnLocation(loc)
 		}
 	}
-	if st := m.FollowState(); st != m.lastFollow {
-		m.lastFollow = st
-		if m.opts.OnFollow != nil {
+	if m.opts.OnFollow != nil {
+		if st := m.FollowState(); st != m.lastFollow {
+			m.lastFollow = st
 			m.opts.OnFollow(st)
 		}
 	}
@@ -841,7 +841,7 @@ func (m *Model) ensureWork() tea.Cmd {
 			return nil
 		}
 		m.tracing[tk] = true
-		return runTrace(m.ctx, m.set, tk, b.Name, b.HasGrad)
+		return runTrace(m.ctx, m.set, tk, b.Name)
 	case ScreenCompare:
 		if !m.hasCompare() || m.cmpJob != nil {
 			return nil

@@ -7,7 +7,6 @@ import (
 	"github.com/heed-dev/heed/internal/words"
 	"math"
 	"strconv"
-	"strings"
 	"sync/atomic"
 	"time"
 
@@ -163,7 +162,7 @@ func traceNote(err error) string {
 }
 
 // runTrace explains one query position with every method, with its own export.
-func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string, hasGrad bool) tea.Cmd {
+func runTrace(ctx context.Context, set *loader.Set, k traceKey, blockName string) tea.Cmd {
 	return func() tea.Msg {
 		msg := traceMsg{key: k, results: map[trace.Method]error{}}
 		ex, err := set.Open(0)
@@ -248,7 +247,7 @@ func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, 
 		// unnormalised shares (flow, grad, rollout through
 		// cross-attention) show as % of their total (views.TraceMethod)
 		tm.Normalised = res.Normalised
-		if m == trace.MethodGrad && tm.Note == "" && strings.Contains(res.Scale, "identity") {
+		if tm.Note == "" && res.LessIdentity {
 			tm.Note = "relevance the layers add (R less its identity start)"
 		}
 		td.Methods = append(td.Methods, tm)

@@ -178,7 +178,7 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	for i := range d.Marks {
 		if d.marked(i) {
 			x += c.Text(x, y, "   ", st.Text, -1)
-			c.Set(x, y, GlyphMark, markStyle(st, NoColour))
+			c.Set(x, y, GlyphMark, markStyle(st))
 			c.Text(x+1, y, " forbidden mass (any amount)", st.Faint, -1)
 			break
 		}
@@ -197,7 +197,7 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 
 // markStyle is the look of a leak mark: the colormap's alarm colour (a hue
 // outside the colormap) behind it, so that it stands out from any cell.
-func markStyle(st Styles, _ Colour) Style {
+func markStyle(st Styles) Style {
 	if !st.HasColour() {
 		return Style{Attr: Bold | Reverse}
 	}
@@ -307,7 +307,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc valueRang
 					}
 					ch, cell = '◆', Style{FG: contrast(under), BG: under, Attr: Bold}
 				case d.marked(la*d.Heads+hh) || (lb < d.Layers && d.marked(lb*d.Heads+hh)):
-					ch, cell = GlyphMark, markStyle(st, fg)
+					ch, cell = GlyphMark, markStyle(st)
 				case math.IsNaN(d.Values[la*d.Heads+hh]):
 					ch, cell = ' ', Style{}
 				}
@@ -366,7 +366,7 @@ func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool,
 		}
 		c.Text(x, y, s, cell, glyphs-1)
 		if mark {
-			c.Set(x+glyphs-1, y, GlyphMark, markStyle(st, cell.BG))
+			c.Set(x+glyphs-1, y, GlyphMark, markStyle(st))
 		} else {
 			c.Set(x+glyphs-1, y, ' ', cell)
 		}
@@ -405,7 +405,7 @@ func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool,
 		// the mark takes the last glyph (the only one in narrow cells, but
 		// for the cursor's, which keeps its look)
 		if mark && g == glyphs-1 && !(cur && glyphs == 1) {
-			ch, cell = GlyphMark, markStyle(st, col)
+			ch, cell = GlyphMark, markStyle(st)
 			if cur {
 				cell.Attr |= Reverse
 			}
@@ -440,7 +440,7 @@ func surveyList(c *Canvas, d *SurveyData, w, h int, hd surveyHead, sc valueRange
 		}
 		x := c.Text(0, l.ListY+r, s, style, -1)
 		if d.marked(j) {
-			c.Set(x, l.ListY+r, GlyphMark, markStyle(st, NoColour))
+			c.Set(x, l.ListY+r, GlyphMark, markStyle(st))
 		}
 		x += 2
 		t := d.frac(v, sc)

@@ -141,6 +141,9 @@ type Result struct {
 	Tokens []TokenShare `json:"tokens"`
 	// Normalised tells whether the shares sum to 1 (rollout on self-attention).
 	Normalised bool `json:"normalised"`
+	// LessIdentity: the shares are the relevance the layers add, Chefer et
+	// al.'s R less its identity start (gradient relevance on self-attention).
+	LessIdentity bool `json:"-"`
 	// QueryToken is the explained position's own token, Position its key
 	// position (the row plus the decode offset).
 	QueryToken string `json:"query_token"`
@@ -743,10 +746,11 @@ func Trace(ctx context.Context, ex *loader.Export, opt Options) (*Result, error)
 	res.Position = opt.Query + blk.QueryOffset
 	res.QueryToken = ex.Side(blk.QuerySide).Token(opt.Batch, res.Position)
 	res.Predicted = Predicted(ex, blk, opt.Batch, opt.Query)
+	res.LessIdentity = method == MethodGrad && blk.Kind != loader.KindCross
 	switch {
 	case res.Normalised:
 		res.Scale = "shares sum to 1 over the input tokens"
-	case method == MethodGrad && blk.Kind != loader.KindCross:
+	case res.LessIdentity:
 		res.Scale = "relevance the layers add (Chefer et al.'s R less its identity start), not normalised: % is of the total"
 	default:
 		res.Scale = "not normalised: % is of the total"
