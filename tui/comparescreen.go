@@ -99,23 +99,7 @@ func (s *compareScreen) Refresh() {
 	hk := m.headKey(0)
 	if !s.made || s.memoKey != hk {
 		s.made, s.memoKey = true, hk
-		a, b, diff, err := m.d.diff(hk)
-		s.memoErr = err
-		if err == nil {
-			bi := m.bi()
-			md := views.NewMapData(bi.blk.Queries, bi.blk.Keys, diff)
-			md.QueryTokens, md.KeyTokens = bi.tokens(m.sel.Batch)
-			md.QueryOffset = bi.blk.QueryOffset
-			md.Rule = bi.ruleFunc(m.sel.Batch, m.sel.Head)
-			md.RowRuns = bi.rowRunsFunc(m.sel.Batch, m.sel.Head)
-			md.Tol = float32(m.anaOpt.Tol)
-			md.Measure = "|A−B|"
-			K := bi.blk.Keys
-			md.Describe = func(q, k int) string {
-				return "A " + views.FormatWeight(a[q*K+k]) + " → B " + views.FormatWeight(b[q*K+k])
-			}
-			s.memoMD = md
-		}
+		s.memoMD, s.memoErr = m.diffData(hk)
 	}
 	if s.memoErr != nil {
 		s.canvas, s.view = nil, "cannot read this head: "+s.memoErr.Error()
@@ -160,4 +144,20 @@ func (m *Model) syncedMapOpt(md *views.MapData, w, h int) views.MapOptions {
 		m.sel.Map.Zoom, m.sel.Map.Q0, m.sel.Map.K0 = l.Zoom, l.Q0, l.K0
 	}
 	return m.sel.Map
+}
+
+// diffData is |A−B| of head hk as Compare shows it: the Map's data of the
+// difference, the readout naming both weights.
+func (m *Model) diffData(hk headKey) (*views.MapData, error) {
+	a, b, diff, err := m.d.diff(hk)
+	if err != nil {
+		return nil, err
+	}
+	md := m.dressMapData(views.NewMapData(m.bi().blk.Queries, m.bi().blk.Keys, diff))
+	md.Measure = "|A−B|"
+	K := m.bi().blk.Keys
+	md.Describe = func(q, k int) string {
+		return "A " + views.FormatWeight(a[q*K+k]) + " → B " + views.FormatWeight(b[q*K+k])
+	}
+	return md, nil
 }

@@ -5,6 +5,7 @@ package tui
 import (
 	"charm.land/bubbles/v2/key"
 	tea "charm.land/bubbletea/v2"
+	"errors"
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/views"
 )
@@ -195,13 +196,43 @@ func (m *Model) mapData(memo *mapMemo) (*views.MapData, error) {
 		}
 		md = views.NewMapData(bi.blk.Queries, bi.blk.Keys, w)
 	}
+	memo.md, memo.err = m.dressMapData(md), nil
+	return memo.md, nil
+}
+
+// dressMapData gives md, the selected head's weights (or a difference of
+// them), what the Map draws beside them: tokens, the query offset and the
+// mask rules the checks judge by.
+func (m *Model) dressMapData(md *views.MapData) *views.MapData {
+	bi := m.bi()
 	md.QueryTokens, md.KeyTokens = bi.tokens(m.sel.Batch)
 	md.QueryOffset = bi.blk.QueryOffset
 	md.Rule = bi.ruleFunc(m.sel.Batch, m.sel.Head)
 	md.RowRuns = bi.rowRunsFunc(m.sel.Batch, m.sel.Head)
 	md.Tol = float32(m.anaOpt.Tol)
-	memo.md, memo.err = md, nil
-	return md, nil
+	return md
+}
+
+// HeadData is the selected head's data as the Map shows it or, with
+// compare, as Compare shows |A−B| of the two exports: for a figure of the
+// same head (a copy the caller may change). Compare needs two exports of
+// one shape.
+func (m *Model) HeadData(compare bool) (*views.MapData, error) {
+	var md *views.MapData
+	var err error
+	if compare {
+		if !m.hasCompare() {
+			return nil, errors.New(m.compareWhyNot())
+		}
+		md, err = m.diffData(m.headKey(0))
+	} else {
+		md, err = m.mapData(&m.screens[ScreenMap].(*mapScreen).memo)
+	}
+	if err != nil {
+		return nil, err
+	}
+	c := *md
+	return &c, nil
 }
 
 // drawMap lays out md in w x h, syncing the cursor and origin with the

@@ -87,6 +87,7 @@ func pageNote(names []string, s ...span) string {
 // flags and the styles.
 type figureEnv struct {
 	ctx    context.Context
+	m      *tui.Model // the TUI's model at the location: the data its screens show
 	set    *loader.Set
 	ex     *loader.Export
 	blk    *loader.Block
@@ -101,49 +102,19 @@ func (e *figureEnv) sides() (q, k *loader.Side) {
 	return e.ex.Side(e.blk.QuerySide), e.ex.Side(e.blk.KeySide)
 }
 
-// tokens returns the query and key tokens of the location's batch item.
-func (e *figureEnv) tokens() (qt, kt []string) {
+// ruleNames names the mask rules the checks judge the block by ("causal +
+// padding"), "" for none.
+func (e *figureEnv) ruleNames() string {
 	qs, ks := e.sides()
-	get := func(s *loader.Side, from, n int) []string {
-		if s == nil || len(s.Tokens) == 0 {
-			return nil
-		}
-		out := make([]string, n)
-		for i := range out {
-			out[i] = s.Token(e.batch, from+i)
-		}
-		return out
-	}
-	return get(qs, e.blk.QueryOffset, e.blk.Queries), get(ks, 0, e.blk.Keys)
-}
-
-// mapData is the location's head as the Map reads it: its weights, tokens,
-// and the mask rules the checks judge by (the same lookup as the TUI's).
-func (e *figureEnv) mapData(weights []float32) (*views.MapData, string, error) {
-	b := e.blk
-	md := views.NewMapData(b.Queries, b.Keys, weights)
-	md.QueryTokens, md.KeyTokens = e.tokens()
-	md.QueryOffset = b.QueryOffset
-	md.Tol = float32(analysis.DefaultTol)
-	qs, ks := e.sides()
-	rules, err := analysis.NewRules(b, qs, ks, nil)
-	if err != nil || len(rules.Active()) == 0 {
-		return md, "", nil
+	rules, err := analysis.NewRules(e.blk, qs, ks, nil)
+	if err != nil {
+		return ""
 	}
 	var names []string
 	for _, r := range rules.Active() {
 		names = append(names, r.String())
 	}
-	md.Rule = tui.MapRule(rules, e.batch, e.loc.Head)
-	return md, strings.Join(names, " + "), nil
-}
-
-func (e *figureEnv) head(b *loader.Block) ([]float32, error) {
-	w := make([]float32, b.Queries*b.Keys)
-	if err := b.ReadAttn(e.loc.Layer, e.batch, e.loc.Head, w); err != nil {
-		return nil, err
-	}
-	return w, nil
+	return strings.Join(names, " + ")
 }
 
 // headWords is "layer 1 head 2" (and the batch item when there are several).
@@ -192,46 +163,22 @@ func (e *figureEnv) mapFigure(md *views.MapData, ruleNames string, what string, 
 func (e *figureEnv) figure(screen string, res *analysis.Result) (*picture.Figure, error) {
 	switch screen {
 	case "map":
-		w, err := e.head(e.blk)
-		if err != nil {
-			return nil, err
-		}
-		md, rules, err := e.mapData(w)
+		// the head as the Map shows it (one place: tui's Model.HeadData)
+		md, err := e.m.HeadData(false)
 		if err != nil {
 			return nil, err
 		}
 		md.Measure = "attention weight"
-		return e.mapFigure(md, rules, fmt.Sprintf("Attention weight of %s: each query row over the keys, scale 0 to the head's largest weight %s.",
+		return e.mapFigure(md, e.ruleNames(), fmt.Sprintf("Attention weight of %s: each query row over the keys, scale 0 to the head's largest weight %s.",
 			e.headWords(), views.FormatWeight(md.VMax)), nil)
 	case "compare":
-		exB, err := e.set.Open(1)
+		md, err := e.m.HeadData(true)
 		if err != nil {
-			return nil, err
-		}
-		defer exB.Close()
-		bb := exB.Block(e.blk.Name)
-		if bb == nil || bb.Queries != e.blk.Queries || bb.Keys != e.blk.Keys {
-			return nil, fmt.Errorf("render: %s has no block %s of A's shape to compare", strings.Join(e.set.Examples[1], " "), e.blk.Name)
-		}
-		a, err := e.head(e.blk)
-		if err != nil {
-			return nil, err
-		}
-		bw, err := e.head(bb)
-		if err != nil {
-			return nil, err
-		}
-		diff := make([]float32, len(a))
-		for i := range a {
-			diff[i] = float32(math.Abs(float64(a[i] - bw[i])))
-		}
-		md, rules, err := e.mapData(diff)
-		if err != nil {
-			return nil, err
+			return nil, fmt.Errorf("render: %w", err)
 		}
 		md.Measure = "|A−B| of the attention weights"
 		na, nb := filepath.Base(e.set.Examples[0][0]), filepath.Base(e.set.Examples[1][0])
-		return e.mapFigure(md, rules, fmt.Sprintf("|A−B| of %s between A %s and B %s, scale 0 to the largest change %s.",
+		return e.mapFigure(md, e.ruleNames(), fmt.Sprintf("|A−B| of %s between A %s and B %s, scale 0 to the largest change %s.",
 			e.headWords(), na, nb, views.FormatWeight(md.VMax)), nil)
 	case "trace":
 		td, err := e.traceData()

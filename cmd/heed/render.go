@@ -153,17 +153,20 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 	dark := rf.background == "dark"
 	// the statistics only for the screens that show them
 	noStats := scr.index != tui.ScreenSurvey && scr.index != tui.ScreenFindings
-	m, err := tui.New(set, tui.Options{At: rf.at, Colormap: cm.Name, Background: rf.background, Profile: profile, Context: ctx, NoStatistics: noStats})
+	// the first example, opened once for the screen, its size and a figure,
+	// with the mask rules the checks infer
+	ex, err := openFirst(ctx, set)
+	if err != nil {
+		return err
+	}
+	defer ex.Close()
+	m, err := tui.New(set, tui.Options{At: rf.at, Colormap: cm.Name, Background: rf.background, Profile: profile, Context: ctx, NoStatistics: noStats, Export: ex})
 	if err != nil {
 		return err
 	}
 	defer m.Close()
 	if scr.index == tui.ScreenCompare && set.Len() != 2 {
 		return errors.New("render: --screen compare needs two exports of the same shape (heed render A B ...)")
-	}
-	ex, err := set.Open(0)
-	if err != nil {
-		return err
 	}
 	loc := m.Location()
 	blk := ex.Block(loc.Block)
@@ -177,7 +180,6 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 			h = ah
 		}
 	}
-	ex.Close()
 	if w == 0 {
 		w = 100
 	}
@@ -193,7 +195,7 @@ func runRender(ctx context.Context, args []string, lf *loadFlags, rf *renderFlag
 	}
 	name := strings.Join(set.Examples[0], " ")
 	out := renderOutput{format: format, dark: dark, screen: rf.screen, what: scr.what, name: name}
-	shot := screenShot{m: m, scr: scr, w: w, h: h}
+	shot := screenShot{m: m, ex: ex, scr: scr, w: w, h: h}
 	st := views.NewStyles(profile, dark, cm)
 	if figure {
 		return renderFigure(ctx, set, shot, rf, st, locStr, out)
@@ -244,6 +246,7 @@ func (o renderOutput) options(loc string) picture.Options {
 // cells.
 type screenShot struct {
 	m    *tui.Model
+	ex   *loader.Export // what m shows: the set's first example, its mask rules inferred
 	scr  renderScreen
 	w, h int
 }
@@ -363,9 +366,11 @@ func (r *renderModel) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 func (r *renderModel) View() tea.View { return r.m.View() }
 
 // renderFigure writes a PNG or SVG figure of the Map, Compare, Trace or
-// Survey (figure.go) of shot's screen at the location locStr names; the
-// Survey's statistics come from the TUI's own pass, run as shot.
+// Survey (figure.go) of shot's screen at the location locStr names, from
+// shot's export; the Survey's statistics come from the TUI's own pass, run
+// as shot.
 func renderFigure(ctx context.Context, set *loader.Set, shot screenShot, rf *renderFlags, st views.Styles, locStr string, out renderOutput) error {
+	ex := shot.ex
 	m := shot.m
 	var res *analysis.Result
 	if shot.scr.index == tui.ScreenSurvey {
@@ -374,21 +379,12 @@ func renderFigure(ctx context.Context, set *loader.Set, shot screenShot, rf *ren
 		}
 		res = m.Result()
 	}
-	ex, err := set.Open(0)
-	if err != nil {
-		return err
-	}
-	defer ex.Close()
-	// the mask rules as the TUI and the checks infer them
-	if err := analysis.InferExport(ctx, ex); err != nil {
-		return err
-	}
 	loc := m.Location()
 	blk := ex.Block(loc.Block)
 	if blk == nil {
 		return fmt.Errorf("render: no block %s", loc.Block)
 	}
-	env := &figureEnv{ctx: ctx, set: set, ex: ex, blk: blk, loc: loc, batch: max(0, loc.Batch), rf: rf, st: st, locStr: locStr}
+	env := &figureEnv{ctx: ctx, m: m, set: set, ex: ex, blk: blk, loc: loc, batch: max(0, loc.Batch), rf: rf, st: st, locStr: locStr}
 	fig, err := env.figure(rf.screen, res)
 	if err != nil {
 		return err
