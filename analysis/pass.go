@@ -173,6 +173,23 @@ func Analyze(ctx context.Context, ex *loader.Export, opt Options) (*Partial, err
 	return p, err
 }
 
+// AnalyzeExamples runs the pass over the examples of set numbered idx (all
+// of them when idx is nil), in that order, each named by set.Name.
+func AnalyzeExamples(ctx context.Context, set *loader.Set, idx []int, opt Options) (*Partial, error) {
+	n := len(idx)
+	if idx == nil {
+		n = set.Len()
+	}
+	return AnalyzeSet(ctx, n, func(j int) (*loader.Export, string, error) {
+		i := j
+		if idx != nil {
+			i = idx[j]
+		}
+		ex, err := set.Open(i)
+		return ex, set.Name(i), err
+	}, opt)
+}
+
 // AnalyzeSet runs the pass over n examples, opening each with open (which
 // returns the export and a name for it, usually its first file) and closing
 // it after use. Examples are processed one after another, each with all

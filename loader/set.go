@@ -431,3 +431,7 @@ func (l BlockLayout) describe() string {
 	}
 	return s
 }
+
+// Name names example i by its files, joined by commas (what results record
+// as a finding's example).
+func (s *Set) Name(i int) string { return strings.Join(s.Examples[i], ",") }

@@ -87,14 +87,7 @@ func (j *job) wait() tea.Cmd {
 func runAnalysis(j *job, set *loader.Set, opt analysis.Options) tea.Cmd {
 	return func() tea.Msg {
 		opt.Progress = j.report
-		p, err := analysis.AnalyzeSet(j.ctx, set.Len(), func(i int) (*loader.Export, string, error) {
-			ex, err := set.Open(i)
-			name := ""
-			if len(set.Examples[i]) > 0 {
-				name = set.Examples[i][0]
-			}
-			return ex, name, err
-		}, opt)
+		p, err := analysis.AnalyzeExamples(j.ctx, set, nil, opt)
 		var msg analysisMsg
 		if err != nil {
 			msg.err = err

@@ -66,10 +66,7 @@ func textReport(cmd *cobra.Command, set *loader.Set, why string) error {
 	defer ex.Close()
 	newInfoReport(set, ex).writeText(out)
 	fmt.Fprintln(out)
-	p, err := analysis.AnalyzeSet(cmd.Context(), set.Len(), func(i int) (*loader.Export, string, error) {
-		ex, err := set.Open(i)
-		return ex, strings.Join(set.Examples[i], ","), err
-	}, analysis.DefaultOptions())
+	p, err := analysis.AnalyzeExamples(cmd.Context(), set, nil, analysis.DefaultOptions())
 	if err != nil {
 		return err
 	}

@@ -116,13 +116,10 @@ func (sf *shardFlags) recordFlags() []recordedFlag {
 	return out
 }
 
-// exampleName is how runPass names example i (Cell.Example in the results).
-func exampleName(set *loader.Set, i int) string { return strings.Join(set.Examples[i], ",") }
-
 func setOf(set *loader.Set) setSpec {
 	h := sha256.New()
 	for i := range set.Examples {
-		fmt.Fprintln(h, exampleName(set, i))
+		fmt.Fprintln(h, set.Name(i))
 	}
 	return setSpec{Examples: set.Len(), SHA256: hex.EncodeToString(h.Sum(nil))}
 }
@@ -161,10 +158,10 @@ func (sf *shardFlags) runPass(ctx context.Context, args []string, lf *loadFlags,
 	for i := idx; i < set.Len(); i += n {
 		mine = append(mine, i)
 	}
-	p, err := analysis.AnalyzeSet(ctx, len(mine), func(j int) (*loader.Export, string, error) {
-		ex, err := set.Open(mine[j])
-		return ex, exampleName(set, mine[j]), err
-	}, opt)
+	if mine == nil {
+		mine = []int{} // a shard past the last example: none of them
+	}
+	p, err := analysis.AnalyzeExamples(ctx, set, mine, opt)
 	if err != nil {
 		return nil, nil, err
 	}

@@ -326,15 +326,8 @@ func shareStatistics(ctx context.Context, set *loader.Set) (*analysis.Result, er
 			fmt.Fprintf(os.Stderr, "\rheed share: statistics %3d%%", pct)
 		}
 	}
-	p, err := analysis.AnalyzeSet(ctx, set.Len(), func(i int) (*loader.Export, string, error) {
-		name := ""
-		if len(set.Examples[i]) > 0 {
-			name = set.Examples[i][0]
-		}
-		ex, err := set.Open(i) // AnalyzeSet closes it: not the shared export
-
-		return ex, name, err
-	}, opt)
+	// each example opened anew and closed after its pass: not the shared export
+	p, err := analysis.AnalyzeExamples(ctx, set, nil, opt)
 	if tty {
 		fmt.Fprint(os.Stderr, "\r\033[K")
 	}
