@@ -13,6 +13,7 @@ import (
 	"testing"
 
 	"github.com/heed-dev/heed/internal/termtest"
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 var heedBin string
@@ -44,15 +45,13 @@ func needTools(t *testing.T) {
 	if _, err := exec.LookPath("tmux"); err != nil {
 		t.Skip("tmux is not installed: the end-to-end tests drive heed in tmux (apt-get install tmux)")
 	}
-	if err := exec.Command("/usr/bin/python3", "-c", "import numpy").Run(); err != nil {
-		t.Skipf("the fixtures are written with /usr/bin/python3 and numpy: %v", err)
-	}
+	testpy.Require(t, "numpy") // the fixtures are written with numpy
 }
 
 func fixture(t *testing.T, name string, args ...string) string {
 	t.Helper()
 	out := filepath.Join(t.TempDir(), name)
-	cmd := exec.Command("/usr/bin/python3", append([]string{"../tui/testdata/make_export.py", out}, args...)...)
+	cmd := exec.Command(testpy.Path(), append([]string{"../tui/testdata/make_export.py", out}, args...)...)
 	if b, err := cmd.CombinedOutput(); err != nil {
 		t.Fatalf("make_export.py: %v\n%s", err, b)
 	}
@@ -193,7 +192,7 @@ func TestBadInput(t *testing.T) {
 func TestOneKeyToTheLeak(t *testing.T) {
 	needTools(t)
 	file := filepath.Join(t.TempDir(), "one.npz")
-	if out, err := exec.Command("/usr/bin/python3", "../tui/testdata/one_cell.py", file).CombinedOutput(); err != nil {
+	if out, err := exec.Command(testpy.Path(), "../tui/testdata/one_cell.py", file).CombinedOutput(); err != nil {
 		t.Fatalf("one_cell.py: %v\n%s", err, out)
 	}
 	for _, tc := range []struct {

@@ -11,15 +11,15 @@ import (
 	"slices"
 	"strings"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // Opening the same file gives the same answer every time: no choice
 // between arrays or blocks follows Go's map order (50 opens of files where
 // it used to).
 func TestOpenIsDeterministic(t *testing.T) {
-	if err := exec.Command("/usr/bin/python3", "-c", "import numpy").Run(); err != nil {
-		t.Skipf("needs /usr/bin/python3 with numpy to write the files: %v", err)
-	}
+	py := testpy.Require(t, "numpy")
 	dir := t.TempDir()
 	gradOnly, metaMany := filepath.Join(dir, "grad_only.npz"), filepath.Join(dir, "meta_many.npz")
 	script := `
@@ -30,7 +30,7 @@ np.savez(sys.argv[1], **{"decoder/grad/%d" % l: a for l in range(6)})
 meta = {"format": "heed-export/1", "blocks": {n: {"kind": "causal"} for n in ["zeta", "alpha", "mu", "decoder"]}}
 np.savez(sys.argv[2], **{"decoder/attn": np.full((2, 2, 4, 4), 0.25, dtype=np.float32), "meta": np.array(json.dumps(meta))})
 `
-	if out, err := exec.Command("/usr/bin/python3", "-c", script, gradOnly, metaMany).CombinedOutput(); err != nil {
+	if out, err := exec.Command(py, "-c", script, gradOnly, metaMany).CombinedOutput(); err != nil {
 		t.Fatalf("numpy: %v\n%s", err, out)
 	}
 	var firstErr string

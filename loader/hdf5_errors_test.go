@@ -12,6 +12,8 @@ import (
 	"sync"
 	"syscall"
 	"testing"
+
+	"github.com/heed-dev/heed/internal/testpy"
 )
 
 // TestHDF5ReadErrorsSayNothing: a dataset whose compressed chunks are
@@ -24,10 +26,7 @@ import (
 // a thread-safe build, and turning it off once on one thread let the
 // library print its error stack on stderr beside heed's line.
 func TestHDF5ReadErrorsSayNothing(t *testing.T) {
-	py := os.Getenv("HEED_PYTHON")
-	if py == "" {
-		py = "/usr/bin/python3"
-	}
+	py := testpy.Require(t, "numpy", "h5py")
 	path := filepath.Join(t.TempDir(), "bad_chunks.h5")
 	script := `import sys, numpy as np, h5py
 with h5py.File(sys.argv[1], "w") as f:

@@ -26,10 +26,7 @@ const hostileDir = "../testdata/hostile"
 // Debian's python3 and numpy).
 func hostileBig(t *testing.T, only string) string {
 	t.Helper()
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy, h5py").Run(); err != nil {
-		t.Skipf("%s cannot import numpy and h5py (set HEED_PYTHON): %v", py, err)
-	}
+	py := testpy.Require(t, "numpy", "h5py")
 	dir := t.TempDir()
 	if out, err := exec.Command(py, filepath.Join(hostileDir, "gen.py"), "--big", dir, "--only", only).CombinedOutput(); err != nil {
 		t.Fatalf("gen.py --big: %v\n%s", err, out)

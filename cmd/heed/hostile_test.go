@@ -71,10 +71,7 @@ func TestHostileCommands(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs heed in subprocesses on generated zip bombs")
 	}
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy, h5py").Run(); err != nil {
-		t.Skipf("%s cannot import numpy and h5py (set HEED_PYTHON)", py)
-	}
+	py := testpy.Require(t, "numpy", "h5py")
 	big := t.TempDir()
 	if out, err := exec.Command(py, filepath.Join(hostileDir, "gen.py"), "--big", big).CombinedOutput(); err != nil {
 		t.Fatalf("gen.py --big: %v\n%s", err, out)

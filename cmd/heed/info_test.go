@@ -297,10 +297,7 @@ func TestInfoRulesAreChecks(t *testing.T) {
 	// numpy writes rows that sum to 1 with one negative weight (-0.25 at
 	// query 1, key 0 of head 0); check must report rule negative, which info
 	// lists for the block
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
-		t.Skipf("skipping the negative cell: %s cannot import numpy (set HEED_PYTHON)", py)
-	}
+	py := testpy.Require(t, "numpy")
 	neg := filepath.Join(t.TempDir(), "neg.npy")
 	if b, err := exec.Command(py, "-c", `
 import sys, numpy as np

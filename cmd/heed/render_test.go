@@ -24,10 +24,7 @@ import (
 // head query key" (its metadata).
 func numpyForbidden(t *testing.T, file string, layer, batch, head int) [][]int {
 	t.Helper()
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
-		t.Skipf("skipping: %s cannot import numpy (Debian's python3-numpy; set HEED_PYTHON)", py)
-	}
+	py := testpy.Require(t, "numpy")
 	out, err := exec.Command(py, "-c", `
 import json, sys, numpy as np
 a = np.load(sys.argv[1])["decoder/attn"][int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])]
@@ -222,10 +219,7 @@ func TestRenderFigures(t *testing.T) {
 // TestRenderPagesLongSequences: a 300-token export's Map and Trace show 64
 // positions ending at the query, and say so; --from/--to pick others.
 func TestRenderPagesLongSequences(t *testing.T) {
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
-		t.Skipf("skipping: %s cannot import numpy", py)
-	}
+	py := testpy.Require(t, "numpy")
 	dir := t.TempDir()
 	file := filepath.Join(dir, "long.npz")
 	if out, err := exec.Command(py, "../../tui/testdata/make_export.py", file, "--leak", "--seq", "300").CombinedOutput(); err != nil {

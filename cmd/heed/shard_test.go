@@ -262,10 +262,7 @@ func TestShardFlagErrors(t *testing.T) {
 // definition heed documents, Clark et al. 2019).
 func numberedSet(t *testing.T, n int) (string, [][]float64) {
 	t.Helper()
-	py := testpy.Path()
-	if err := exec.Command(py, "-c", "import numpy").Run(); err != nil {
-		t.Skipf("%s cannot import numpy (set HEED_PYTHON)", py)
-	}
+	py := testpy.Require(t, "numpy")
 	dir := filepath.Join(t.TempDir(), "exports")
 	b, err := exec.Command(py, "-c", `
 import json, os, sys, numpy as np
