@@ -6,6 +6,7 @@ package main
 // Findings stays the screen's cells, without the cursor.
 
 import (
+	"cmp"
 	"context"
 	"fmt"
 	"math"
@@ -126,13 +127,6 @@ func (e *figureEnv) headWords() string {
 	return s
 }
 
-func (e *figureEnv) sideName(s string, def string) string {
-	if s == "" {
-		return def
-	}
-	return s
-}
-
 // mapFigure draws the Map (or Compare's |A−B|, diff) of the location.
 func (e *figureEnv) mapFigure(md *views.MapData, ruleNames string, what string, lines []string) (*picture.Figure, error) {
 	b := e.blk
@@ -152,8 +146,8 @@ func (e *figureEnv) mapFigure(md *views.MapData, ruleNames string, what string, 
 	return picture.MapFigure(md, picture.MapFigureOptions{
 		Title: e.locStr, Lines: lines, Note: pageNote([]string{"queries", "keys"}, qs, ks),
 		Q0: qs.lo, Q1: qs.hi, K0: ks.lo, K1: ks.hi, CursorQ: e.loc.Query, CursorK: e.loc.Key,
-		QueryAxis: "query (" + e.sideName(b.QuerySide, "query") + " token, row)",
-		KeyAxis:   "key (" + e.sideName(b.KeySide, "key") + " token, position)",
+		QueryAxis: "query (" + cmp.Or(b.QuerySide, "query") + " token, row)",
+		KeyAxis:   "key (" + cmp.Or(b.KeySide, "key") + " token, position)",
 		RuleName:  ruleNames, Styles: e.st,
 	})
 }
@@ -194,7 +188,7 @@ func (e *figureEnv) figure(screen string, res *analysis.Result) (*picture.Figure
 			return nil, err
 		}
 		return picture.TraceFigure(td, picture.TraceFigureOptions{Title: e.locStr, From: sp.lo, To: sp.hi,
-			Note: pageNote([]string{e.sideName(td.Side, "input") + " tokens"}, sp), Styles: e.st})
+			Note: pageNote([]string{cmp.Or(td.Side, "input") + " tokens"}, sp), Styles: e.st})
 	case "survey":
 		sd := e.surveyData(res)
 		return picture.SurveyFigure(sd, picture.SurveyFigureOptions{Title: e.locStr, Layer: e.loc.Layer, Head: e.loc.Head, Styles: e.st})
