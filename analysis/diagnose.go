@@ -1,10 +1,5 @@
 package analysis
 
-import (
-	"fmt"
-	"strings"
-)
-
 // Diagnosis names a likely bug behind one or more findings as a pattern
 // code and the facts its words need: the engine says no sentence and names
 // no option. Package internal/prose turns a Diagnosis into its sentence
@@ -190,14 +185,6 @@ type ItemChange struct {
 	Positions  []int `json:"positions"`
 	FirstLayer int   `json:"first_layer"`
 	From       int   `json:"from"`
-}
-
-func list(xs []int) string {
-	s := make([]string, len(xs))
-	for i, x := range xs {
-		s[i] = fmt.Sprint(x)
-	}
-	return strings.Join(s, ", ")
 }
 
 // possible returns the cells rule r forbids at offset o over the finding's

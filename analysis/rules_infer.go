@@ -7,6 +7,7 @@ import (
 	"math"
 	"slices"
 
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -164,7 +165,7 @@ func inferMask(seen []unitSeen, Q, K int) (kind loader.Kind, window, prefix int,
 		}
 		if len(breaks) > 0 {
 			slices.Sort(breaks)
-			evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", list(slices.Compact(breaks)))
+			evidence += fmt.Sprintf("; judged against a causal mask, the heads that break it (layer %s) are findings", words.List(slices.Compact(breaks)))
 		}
 		return loader.KindCausal, window, prefix, evidence
 	case 10*dense >= 8*informative && Q < K:

@@ -240,7 +240,7 @@ func writeInvarianceText(w io.Writer, res *invariance.Result, nameA, nameB strin
 			var ch []string
 			for b := 0; b < p.Batch; b++ {
 				if len(j.Changed[l][b]) > 0 {
-					ch = append(ch, fmt.Sprintf("item %d: %s", b, positions(j.Changed[l][b])))
+					ch = append(ch, fmt.Sprintf("item %d: %s", b, words.Span(j.Changed[l][b], 2)))
 				}
 			}
 			label := fmt.Sprint(l)
@@ -253,7 +253,7 @@ func writeInvarianceText(w io.Writer, res *invariance.Result, nameA, nameB strin
 	if len(res.Heads) > 0 {
 		fmt.Fprintf(w, "\nheads whose rows before P changed:\n")
 		for _, h := range res.Heads {
-			fmt.Fprintf(w, "  %s layer %d head %d item %d: rows %s (max |a-b| %.3g)\n", h.Block, h.Layer, h.Head, h.Batch, positions(h.Rows), jsonNum(h.MaxAbs))
+			fmt.Fprintf(w, "  %s layer %d head %d item %d: rows %s (max |a-b| %.3g)\n", h.Block, h.Layer, h.Head, h.Batch, words.Span(h.Rows, 2), jsonNum(h.MaxAbs))
 		}
 	}
 	for _, n := range res.Notes {
@@ -290,22 +290,4 @@ func lookAt(l analysis.Location) string {
 		return fmt.Sprintf("logits, batch item %d, position %d", l.Batch, l.Query)
 	}
 	return fmt.Sprintf("%s layer %d output, batch item %d, position %d", l.Block, l.Layer, l.Batch, l.Query)
-}
-
-// positions writes sorted positions compactly ("4-5", "0, 2, 7-9").
-func positions(xs []int) string {
-	var out []string
-	for i := 0; i < len(xs); {
-		j := i
-		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
-			j++
-		}
-		if j > i {
-			out = append(out, fmt.Sprintf("%d-%d", xs[i], xs[j]))
-		} else {
-			out = append(out, fmt.Sprint(xs[i]))
-		}
-		i = j + 1
-	}
-	return strings.Join(out, ", ")
 }

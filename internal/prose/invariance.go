@@ -2,32 +2,10 @@ package prose
 
 import (
 	"fmt"
-	"strings"
 
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/internal/words"
 )
-
-// span writes sorted positions compactly: "4-5", "0, 2, 7-9".
-func span(xs []int) string {
-	var out []string
-	for i := 0; i < len(xs); {
-		j := i
-		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
-			j++
-		}
-		switch {
-		case j == i:
-			out = append(out, fmt.Sprint(xs[i]))
-		case j == i+1:
-			out = append(out, fmt.Sprint(xs[i]), fmt.Sprint(xs[j]))
-		default:
-			out = append(out, fmt.Sprintf("%d-%d", xs[i], xs[j]))
-		}
-		i = j + 1
-	}
-	return strings.Join(out, ", ")
-}
 
 func seq(n int) []int {
 	s := make([]int, n)
@@ -58,13 +36,13 @@ func invWords(d *analysis.Diagnosis, w *Diagnosis) {
 	first := d.Layers[0]
 	for _, it := range f.Items {
 		w.Evidence = append(w.Evidence, fmt.Sprintf("batch item %d: %s %s changed at layer %d (tokens changed from %d on)",
-			it.Batch, words.Plural(len(it.Positions), "position", "positions"), span(it.Positions), it.FirstLayer, it.From))
+			it.Batch, words.Plural(len(it.Positions), "position", "positions"), words.Span(it.Positions, 3), it.FirstLayer, it.From))
 	}
 	if first > 0 {
-		w.Evidence = append(w.Evidence, fmt.Sprintf("layers %s agree within tolerance before P", span(seq(first))))
+		w.Evidence = append(w.Evidence, fmt.Sprintf("layers %s agree within tolerance before P", words.Span(seq(first), 3)))
 	}
 	if len(f.Changed) > 1 {
-		w.Evidence = append(w.Evidence, fmt.Sprintf("changed layers: %s", span(f.Changed)))
+		w.Evidence = append(w.Evidence, fmt.Sprintf("changed layers: %s", words.Span(f.Changed, 3)))
 	}
 	w.Evidence = append(w.Evidence, fmt.Sprintf("largest difference before P: %.3g absolute, %.3g relative (tolerance %.3g for %s)", f.MaxAbs, f.MaxRel, f.Tol, f.DType))
 	if f.Reach > 0 && !f.All {
@@ -96,12 +74,12 @@ func invWords(d *analysis.Diagnosis, w *Diagnosis) {
 func headWords(d *analysis.Diagnosis, f *analysis.InvFacts, w *Diagnosis) {
 	hl, hs, heads := int(d.Value), d.Heads, f.HeadTotal
 	for _, h := range f.HeadChanges {
-		w.Evidence = append(w.Evidence, fmt.Sprintf("layer %d head %d batch item %d: rows %s changed (largest difference %.3g)", h.Layer, h.Head, h.Batch, span(h.Rows), h.MaxAbs))
+		w.Evidence = append(w.Evidence, fmt.Sprintf("layer %d head %d batch item %d: rows %s changed (largest difference %.3g)", h.Layer, h.Head, h.Batch, words.Span(h.Rows, 3), h.MaxAbs))
 	}
 	hw := words.Plural(len(hs), "head", "heads")
 	if len(hs) < heads {
-		w.Text = fmt.Sprintf("at layer %d only %s %s of %d changed their rows before P: %s the future (the other heads of that layer agree).", hl, hw, list(hs), heads, words.Plural(len(hs), "it reads", "they read"))
-		w.Check = fmt.Sprintf("the mask or bias given to %s %s of layer %d: a per-head mask broadcast wrongly, or a head-specific path", hw, list(hs), hl)
+		w.Text = fmt.Sprintf("at layer %d only %s %s of %d changed their rows before P: %s the future (the other heads of that layer agree).", hl, hw, words.List(hs), heads, words.Plural(len(hs), "it reads", "they read"))
+		w.Check = fmt.Sprintf("the mask or bias given to %s %s of layer %d: a per-head mask broadcast wrongly, or a head-specific path", hw, words.List(hs), hl)
 	} else {
 		w.Text = fmt.Sprintf("at layer %d every head (%d) changed its rows before P: the layer's mask lets the queries see the future.", hl, heads)
 		w.Check = fmt.Sprintf("the mask layer %d passes to its attention", hl)

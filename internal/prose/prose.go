@@ -94,14 +94,6 @@ func Note(n analysis.Note) string {
 	return n.Block + ": " + n.Code
 }
 
-func list(xs []int) string {
-	s := make([]string, len(xs))
-	for i, x := range xs {
-		s[i] = fmt.Sprint(x)
-	}
-	return strings.Join(s, ", ")
-}
-
 // which names a set of indices: "all 4 heads", "head 2", "heads 1, 3".
 func which(xs []int, total int, one, many string) string {
 	switch {
@@ -110,7 +102,7 @@ func which(xs []int, total int, one, many string) string {
 	case len(xs) == 1:
 		return fmt.Sprintf("%s %d", one, xs[0])
 	}
-	return many + " " + list(xs)
+	return many + " " + words.List(xs)
 }
 
 // where names the block and the finding's layers, heads and batch items.
@@ -268,17 +260,17 @@ func whereWords(d *analysis.Diagnosis, w *Diagnosis) {
 	switch d.Pattern {
 	case analysis.PatOnlySomeHeads:
 		w.Text = fmt.Sprintf("Only %s %s of %s %s %s (%s) in %s: a mask broadcast over the head axis is wrong.",
-			words.Plural(len(d.Heads), "head", "heads"), list(d.Heads), words.Plural(len(d.Layers), "layer", "layers"), list(d.Layers),
+			words.Plural(len(d.Heads), "head", "heads"), words.List(d.Heads), words.Plural(len(d.Layers), "layer", "layers"), words.List(d.Layers),
 			words.Plural(len(d.Heads), "leaks", "leak"), d.Rule, d.Block)
 		w.Check = "check how the mask is expanded to [batch*heads, q, k] or [batch, heads, q, k] (repeat vs repeat_interleave, batch-major order) and any per-head bias"
 	case analysis.PatOnlySomeLayers:
 		w.Text = fmt.Sprintf("Only %s %s of %s %s (%s): %s.",
-			words.Plural(len(d.Layers), "layer", "layers"), list(d.Layers), d.Block, words.Plural(len(d.Layers), "leaks", "leak"), d.Rule,
+			words.Plural(len(d.Layers), "layer", "layers"), words.List(d.Layers), d.Block, words.Plural(len(d.Layers), "leaks", "leak"), d.Rule,
 			words.Plural(len(d.Layers), "that layer takes another code path or gets another mask", "those layers take another code path or get another mask"))
 		w.Check = "check what differs for these layers: layer type (full vs sliding), a kernel fallback, a mask passed per layer or cached from another layer"
 	case analysis.PatOnlySomeBatch:
 		w.Text = fmt.Sprintf("Only batch %s %s of %s %s (%s): the mask is wrong for some batch items.",
-			words.Plural(len(d.Batches), "item", "items"), list(d.Batches), d.Block, words.Plural(len(d.Batches), "leaks", "leak"), d.Rule)
+			words.Plural(len(d.Batches), "item", "items"), words.List(d.Batches), d.Block, words.Plural(len(d.Batches), "leaks", "leak"), d.Rule)
 		w.Check = "check how the mask is broadcast over the batch (a [1, q, k] mask vs per-item padding masks, a path taken only for unpadded items)"
 	}
 }

@@ -9,6 +9,7 @@ import (
 
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/analysis/invariance"
+	"github.com/heed-dev/heed/internal/words"
 	"github.com/heed-dev/heed/loader"
 )
 
@@ -119,8 +120,8 @@ func TestInvarianceSpan(t *testing.T) {
 		in   []int
 		want string
 	}{{nil, ""}, {[]int{4}, "4"}, {[]int{4, 5}, "4, 5"}, {[]int{0, 1, 2, 7}, "0-2, 7"}, {[]int{1, 3, 4, 5, 9, 10}, "1, 3-5, 9, 10"}} {
-		if got := span(c.in); got != c.want {
-			t.Errorf("span(%v) = %q, want %q", c.in, got, c.want)
+		if got := words.Span(c.in, 3); got != c.want {
+			t.Errorf("words.Span(%v, 3) = %q, want %q", c.in, got, c.want)
 		}
 	}
 }

@@ -117,6 +117,31 @@ func Ranges(xs []int, total int) string {
 	return strings.Join(parts, ",")
 }
 
+// Span writes sorted indices compactly, separated by ", ": a run of at
+// least minRun consecutive indices as "a-b", the others one by one
+// ("0, 2, 7-9" with minRun 3; "0-1, 3" with minRun 2).
+func Span(xs []int, minRun int) string {
+	var out []string
+	for i := 0; i < len(xs); {
+		j := i
+		for j+1 < len(xs) && xs[j+1] == xs[j]+1 {
+			j++
+		}
+		if j-i+1 >= max(minRun, 2) {
+			out = append(out, strconv.Itoa(xs[i])+"-"+strconv.Itoa(xs[j]))
+		} else {
+			for k := i; k <= j; k++ {
+				out = append(out, strconv.Itoa(xs[k]))
+			}
+		}
+		i = j + 1
+	}
+	return strings.Join(out, ", ")
+}
+
+// List writes indices one by one, separated by ", ".
+func List(xs []int) string { return Span(xs, len(xs)+1) }
+
 // Plural returns one when n is 1, else many.
 func Plural(n int, one, many string) string {
 	if n == 1 {

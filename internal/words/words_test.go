@@ -105,3 +105,26 @@ func TestOption(t *testing.T) {
 		}
 	}
 }
+
+// TestSpan: compact index lists as check's and the invariance check's words
+// print them (runs of minRun or more as a-b).
+func TestSpan(t *testing.T) {
+	for _, c := range []struct {
+		xs     []int
+		minRun int
+		want   string
+	}{
+		{[]int{0, 2, 7, 8, 9}, 3, "0, 2, 7-9"},
+		{[]int{4, 5}, 3, "4, 5"},
+		{[]int{0, 1, 3}, 2, "0-1, 3"},
+		{[]int{6}, 2, "6"},
+		{nil, 2, ""},
+	} {
+		if got := Span(c.xs, c.minRun); got != c.want {
+			t.Errorf("Span(%v, %d) = %q, want %q", c.xs, c.minRun, got, c.want)
+		}
+	}
+	if got := List([]int{1, 2, 3}); got != "1, 2, 3" {
+		t.Errorf("List(1, 2, 3) = %q", got)
+	}
+}
