@@ -75,17 +75,9 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 
 	// the methods' heads: name, normalisation, the bar's scale
 	x0 := float64(margin) + labelW + 12
-	seen := func(p int) bool { return p >= len(d.Status) || d.Status[p] == "" }
-	maxes := make([]float64, len(d.Methods))
-	totals := make([]float64, len(d.Methods))
+	maxes, totals := d.VisibleSums()
 	headH := 0.0
 	for i, m := range d.Methods {
-		for p, v := range m.Shares {
-			if seen(p) && !math.IsNaN(v) {
-				maxes[i] = math.Max(maxes[i], v)
-				totals[i] += v
-			}
-		}
 		px := x0 + float64(i)*panelW
 		f.Text(m.Name, px, y+lineSize, 0, Start, TextStyle{lineSize + 1, Bold, k.text})
 		yy := y + lineSize + 6
@@ -120,9 +112,6 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 	// nothing leaked, is one row
 	zebra := views.Blend(k.page, k.text, 0.05)
 	barW := panelW - 78
-	leaks := func(p int) bool {
-		return len(d.Methods) > 0 && p < len(d.Methods[0].Shares) && d.Methods[0].Shares[p] > 1e-6
-	}
 	row := 0
 	for p := from; p < to; row++ {
 		ry := y + float64(row)*rowH
@@ -130,10 +119,10 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 			f.Rect(margin, ry, w-2*margin, rowH, zebra)
 		}
 		base := ry + rowH/2 + 0.35*font
-		if !seen(p) {
+		if !d.Seen(p) {
 			e := p + 1
-			if !leaks(p) {
-				for e < to && !seen(e) && !leaks(e) && d.Status[e] == d.Status[p] {
+			if !d.Leaks(p) {
+				for e < to && !d.Seen(e) && !d.Leaks(e) && d.Status[e] == d.Status[p] {
 					e++
 				}
 			}
@@ -143,7 +132,7 @@ func TraceFigure(d *views.TraceData, o TraceFigureOptions) (*Figure, error) {
 				lbl = fmt.Sprintf("%d–%d", p, e-1)
 				msg = fmt.Sprintf("%s: %d positions not seen by this query", d.Status[p], e-p)
 			}
-			if leaks(p) {
+			if d.Leaks(p) {
 				msg += fmt.Sprintf(" (yet %s %s reaches it: a leak)", d.Methods[0].Name, strconv.FormatFloat(d.Methods[0].Shares[p], 'g', 3, 64))
 				col = k.bad
 			}

@@ -37,6 +37,33 @@ func shareSums(s []float64) (top, total float64, n int) {
 	return top, total, n
 }
 
+// Seen reports whether the query may see key p (it has no status).
+func (d *TraceData) Seen(p int) bool { return p >= len(d.Status) || d.Status[p] == "" }
+
+// Leaks reports whether the first method gives key p a share (above 1e-6):
+// at a key the query may not see, a leak.
+func (d *TraceData) Leaks(p int) bool {
+	return len(d.Methods) > 0 && p < len(d.Methods[0].Shares) && d.Methods[0].Shares[p] > 1e-6
+}
+
+// VisibleSums returns, per method, the largest share and the total of the
+// shares of the keys the query may see: what bars are scaled to and
+// percentages of unnormalised shares are of.
+func (d *TraceData) VisibleSums() (maxes, totals []float64) {
+	maxes, totals = make([]float64, len(d.Methods)), make([]float64, len(d.Methods))
+	for i, m := range d.Methods {
+		vis := make([]float64, len(m.Shares))
+		for p, v := range m.Shares {
+			vis[p] = v
+			if !d.Seen(p) {
+				vis[p] = math.NaN()
+			}
+		}
+		maxes[i], totals[i], _ = shareSums(vis)
+	}
+	return maxes, totals
+}
+
 // note is the method's note line: its own note, then for unnormalised
 // shares their total (the wording of heed trace's header).
 func (m TraceMethod) note() string {
@@ -186,23 +213,13 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 	c.Text(0, y, padLeft("#", posW)+" "+padRight("token", tokW), st.Faint, -1)
 	// bars are scaled to each method's largest share among the keys the
 	// query may see; percentages of unnormalised shares are of their total
-	maxes := make([]float64, len(d.Methods))
-	totals := make([]float64, len(d.Methods))
-	seen := func(p int) bool { return p >= len(d.Status) || d.Status[p] == "" }
+	maxes, totals := d.VisibleSums()
 	for i, m := range d.Methods {
 		name := m.Name + " (bar: ÷ largest)"
 		if StringWidth(name) > colW-1 {
 			name = m.Name
 		}
 		c.Text(labelW+1+i*colW, y, Ellipsize(name, colW-1), st.Faint, -1)
-		vis := make([]float64, len(m.Shares))
-		for p, v := range m.Shares {
-			vis[p] = v
-			if !seen(p) {
-				vis[p] = math.NaN()
-			}
-		}
-		maxes[i], totals[i], _ = shareSums(vis)
 	}
 	if opt.ByShare {
 		c.Text(max(0, w-18), y, "sorted by "+d.Methods[0].Name, st.Faint, -1)
@@ -226,12 +243,12 @@ func Trace(d *TraceData, w, h int, opt TraceOptions, st Styles) (*Canvas, TraceL
 			style = st.LabelHi
 		}
 		c.Text(0, yy, padLeft(strconv.Itoa(p), posW)+" "+padRight(d.Tokens[p], tokW), style, labelW)
-		if !seen(p) {
+		if !d.Seen(p) {
 			// a key the query may not see: what leaked there is not an
 			// explanation, and 0 would read as "no influence"
 			msg := d.Status[p] + ": not seen by this query"
 			style := st.Faint
-			if len(d.Methods) > 0 && p < len(d.Methods[0].Shares) && d.Methods[0].Shares[p] > 1e-6 {
+			if d.Leaks(p) {
 				msg += fmt.Sprintf(" (yet %s %s reaches it: a leak)", d.Methods[0].Name, strconv.FormatFloat(d.Methods[0].Shares[p], 'g', 3, 64))
 				style = st.Bad
 			}
