@@ -35,20 +35,11 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 	every := int(math.Ceil((2*Advance(labelFont)*float64(len(strconv.Itoa(d.Heads))) + 4) / cell))
 	everyL := int(math.Ceil((labelFont + 2) / cell))
 
-	lo, hi := math.Inf(1), math.Inf(-1)
+	sc := d.Scale()
+	lo, hi := sc.Lo, sc.Hi
 	nan := false
 	for _, v := range d.Values {
-		if math.IsNaN(v) || math.IsInf(v, 0) {
-			nan = true
-			continue
-		}
-		lo, hi = math.Min(lo, v), math.Max(hi, v)
-	}
-	switch {
-	case lo > hi:
-		lo, hi = 0, 1
-	case lo == hi:
-		hi = lo + 1
+		nan = nan || math.IsNaN(v) || math.IsInf(v, 0)
 	}
 	name := d.Stat
 	if d.Unit != "" {
@@ -107,14 +98,7 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 			if math.IsNaN(v) || math.IsInf(v, 0) {
 				continue
 			}
-			t := math.Max(0, math.Min(1, (v-lo)/(hi-lo)))
-			if d.Log {
-				t = 0
-				if v > 0 && hi > 0 {
-					t = math.Max(0, math.Min(1, 1+math.Log10(v/hi)/views.LogDecades))
-				}
-			}
-			col := k.st.Colormap.At(t)
+			col := k.st.Colormap.At(d.Frac(v, sc))
 			f.Rect(x, y, cell, cell, col)
 			if numbers {
 				ink := views.RGB(0, 0, 0)
@@ -127,7 +111,7 @@ func SurveyFigure(d *views.SurveyData, o SurveyFigureOptions) (*Figure, error) {
 	}
 	// marks over the cells: the frame of a head with forbidden mass
 	for i := range d.Values {
-		if i < len(d.Marks) && d.Marks[i] {
+		if d.Marked(i) {
 			marked = true
 			x, y := gridX+float64(i%d.Heads)*cell, gridY+float64(i/d.Heads)*cell
 			f.Frame(x, y, cell, cell, alarm)

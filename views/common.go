@@ -94,22 +94,22 @@ func drawFields(c *Canvas, x, y, w, maxLines int, fields []Field, st Styles) int
 	return line
 }
 
-// valueRange is the span of values a colour scale runs over.
-type valueRange struct{ lo, hi float64 }
+// ValueRange is the span of values a colour scale runs over.
+type ValueRange struct{ Lo, Hi float64 }
 
 // legendScale is what a colour scale's legend says: the name of what the
 // colours stand for and the values at its low and high ends.
 type legendScale struct {
 	name string
-	valueRange
+	ValueRange
 }
 
 // drawLegendBar writes "name lo [bar] hi", the bar barW cells wide, and
 // returns the next x.
 func drawLegendBar(c *Canvas, x, y, barW int, sc legendScale, st Styles) int {
 	x += c.Text(x, y, sc.name+" ", st.Faint, -1)
-	x += c.Text(x, y, FormatValue(sc.lo)+" ", st.Text, -1)
+	x += c.Text(x, y, FormatValue(sc.Lo)+" ", st.Text, -1)
 	x = drawScaleBar(c, x, y, barW, st)
-	x += c.Text(x, y, " "+FormatValue(sc.hi), st.Text, -1)
+	x += c.Text(x, y, " "+FormatValue(sc.Hi), st.Text, -1)
 	return x
 }

@@ -82,9 +82,11 @@ const GlyphMark = '!'
 // surveyHead is one head of the grid: its layer and its index in the layer.
 type surveyHead struct{ layer, head int }
 
-func (d *SurveyData) scale() valueRange {
+// Scale is the range the colours run over: Lo..Hi when set, else the finite
+// values' (one wide when they are all one value, 0..1 when there are none).
+func (d *SurveyData) Scale() ValueRange {
 	if d.Lo < d.Hi {
-		return valueRange{d.Lo, d.Hi}
+		return ValueRange{d.Lo, d.Hi}
 	}
 	lo, hi := math.Inf(1), math.Inf(-1)
 	for _, v := range d.Values {
@@ -93,17 +95,18 @@ func (d *SurveyData) scale() valueRange {
 		}
 	}
 	if lo > hi {
-		return valueRange{0, 1}
+		return ValueRange{0, 1}
 	}
 	if lo == hi {
-		return valueRange{lo, lo + 1}
+		return ValueRange{lo, lo + 1}
 	}
-	return valueRange{lo, hi}
+	return ValueRange{lo, hi}
 }
 
-// frac places v on the colour scale [0, 1] over r.
-func (d *SurveyData) frac(v float64, r valueRange) float64 {
-	lo, hi := r.lo, r.hi
+// Frac places v on the colour scale [0, 1] over r (on a log scale, LogDecades
+// decades below r.Hi).
+func (d *SurveyData) Frac(v float64, r ValueRange) float64 {
+	lo, hi := r.Lo, r.Hi
 	if math.IsNaN(v) {
 		return 0
 	}
@@ -116,7 +119,8 @@ func (d *SurveyData) frac(v float64, r valueRange) float64 {
 	return math.Max(0, math.Min(1, (v-lo)/(hi-lo)))
 }
 
-func (d *SurveyData) marked(i int) bool { return i < len(d.Marks) && d.Marks[i] }
+// Marked reports whether head i (layer*Heads + head) carries a mark.
+func (d *SurveyData) Marked(i int) bool { return i < len(d.Marks) && d.Marks[i] }
 
 // Survey draws the layers x heads grid (or the ranked list when d.Order is
 // set) with the cursor on (layer, head).
@@ -137,8 +141,8 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	if d.Layers <= 0 || d.Heads <= 0 {
 		return c, l
 	}
-	sc := d.scale()
-	lo, hi := sc.lo, sc.hi
+	sc := d.Scale()
+	lo, hi := sc.Lo, sc.Hi
 	footer := 5
 	var y int
 	cur := surveyHead{layer, head}
@@ -164,7 +168,7 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 	if d.Log {
 		legendLo = hi * math.Pow(10, -LogDecades)
 	}
-	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), legendScale{name, valueRange{legendLo, hi}}, st)
+	x = drawLegendBar(c, 0, y, min(16, max(4, w/5)), legendScale{name, ValueRange{legendLo, hi}}, st)
 	for _, v := range d.Values {
 		if math.IsNaN(v) {
 			what := "   blank: not defined for that head"
@@ -176,7 +180,7 @@ func Survey(d *SurveyData, w, h, layer, head int, st Styles) (*Canvas, SurveyLay
 		}
 	}
 	for i := range d.Marks {
-		if d.marked(i) {
+		if d.Marked(i) {
 			x += c.Text(x, y, "   ", st.Text, -1)
 			c.Set(x, y, GlyphMark, markStyle(st))
 			c.Text(x+1, y, " forbidden mass (any amount)", st.Faint, -1)
@@ -206,7 +210,7 @@ func markStyle(st Styles) Style {
 
 // surveyGrid draws the grid in the top h lines, with the cursor on cur and
 // colours over sc.
-func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc valueRange, st Styles) SurveyLayout {
+func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc ValueRange, st Styles) SurveyLayout {
 	layer, head := cur.layer, cur.head
 	var l SurveyLayout
 	labelW := 1 + digits(d.Layers-1)
@@ -266,7 +270,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc valueRang
 	c.Text(0, 1, padLeft("H", labelW), st.Faint, -1)
 	colour := func(ll, hh int) (Colour, float64) {
 		v := d.Values[ll*d.Heads+hh]
-		t := d.frac(v, sc)
+		t := d.Frac(v, sc)
 		return st.Colormap.At(t), t
 	}
 	lines = l.Rows
@@ -306,7 +310,7 @@ func surveyGrid(c *Canvas, d *SurveyData, w, h int, cur surveyHead, sc valueRang
 						under = bg
 					}
 					ch, cell = '◆', Style{FG: contrast(under), BG: under, Attr: Bold}
-				case d.marked(la*d.Heads+hh) || (lb < d.Layers && d.marked(lb*d.Heads+hh)):
+				case d.Marked(la*d.Heads+hh) || (lb < d.Layers && d.Marked(lb*d.Heads+hh)):
 					ch, cell = GlyphMark, markStyle(st)
 				case math.IsNaN(d.Values[la*d.Heads+hh]):
 					ch, cell = ' ', Style{}
@@ -347,13 +351,13 @@ func glyphsOf(cw int) int {
 type cellPlace struct{ x, y, w int }
 
 // surveyCell draws head hd's cell at at; cur says the cursor is on it.
-func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool, sc valueRange, st Styles) {
+func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool, sc ValueRange, st Styles) {
 	x, y, cw := at.x, at.y, at.w
 	i := hd.layer*d.Heads + hd.head
 	v := d.Values[i]
-	t := d.frac(v, sc)
+	t := d.Frac(v, sc)
 	col := st.Colormap.At(t)
-	mark := d.marked(i)
+	mark := d.Marked(i)
 	glyphs := glyphsOf(cw)
 	if d.Numbers {
 		s := padLeft(shortValue(v, glyphs-1), glyphs-1)
@@ -416,7 +420,7 @@ func surveyCell(c *Canvas, d *SurveyData, at cellPlace, hd surveyHead, cur bool,
 
 // surveyList draws the heads in d.Order as a ranked list in the top h
 // lines, with the cursor on hd and bars over sc.
-func surveyList(c *Canvas, d *SurveyData, w, h int, hd surveyHead, sc valueRange, st Styles) SurveyLayout {
+func surveyList(c *Canvas, d *SurveyData, w, h int, hd surveyHead, sc ValueRange, st Styles) SurveyLayout {
 	layer, head := hd.layer, hd.head
 	l := SurveyLayout{List: true, ListY: 2, order: d.Order, heads: d.Heads}
 	c.Text(0, 1, "  rank  layer  head  value", st.Faint, -1)
@@ -439,11 +443,11 @@ func surveyList(c *Canvas, d *SurveyData, w, h int, hd surveyHead, sc valueRange
 			style = st.Selected
 		}
 		x := c.Text(0, l.ListY+r, s, style, -1)
-		if d.marked(j) {
+		if d.Marked(j) {
 			c.Set(x, l.ListY+r, GlyphMark, markStyle(st))
 		}
 		x += 2
-		t := d.frac(v, sc)
+		t := d.Frac(v, sc)
 		n := int(math.Round(t * float64(barW)))
 		if !(t > 0) {
 			continue
