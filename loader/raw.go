@@ -248,8 +248,7 @@ func (r *rawArray) offsets(idx []int, fn func(i, off int)) {
 	}
 }
 
-func (r *rawArray) ReadFloat32(idx []int, dst []float32) (err error) {
-	defer r.faults(debug.SetPanicOnFault(true), &err)
+func (r *rawArray) ReadFloat32(idx []int, dst []float32) error {
 	if r.dtype == String {
 		return fmt.Errorf("loader: %s: a string array has no numeric values", r.label())
 	}
@@ -263,8 +262,15 @@ func (r *rawArray) ReadFloat32(idx []int, dst []float32) (err error) {
 		for i, v := range idx {
 			off += v * st[i]
 		}
-		return r.readFlat(off, n, dst)
+		return r.readFlat(off, n, dst) // guarded there
 	}
+	return r.readStrided(idx, dst)
+}
+
+// readStrided is ReadFloat32 of a sub-array that is not one run of the
+// stored bytes (Fortran order), element by element.
+func (r *rawArray) readStrided(idx []int, dst []float32) (err error) {
+	defer r.faults(debug.SetPanicOnFault(true), &err)
 	b, err := r.bytes()
 	if err != nil {
 		return err
