@@ -68,13 +68,19 @@ func (p *parts) set(r role, layer int, a Array) error {
 // lowestLayer is the per-layer array of the lowest layer: the one messages
 // name, the same from one run to the next (a map's order is not).
 func lowestLayer(per map[int]Array) Array {
-	best := -1
-	for l := range per {
-		if best < 0 || l < best {
-			best = l
-		}
+	return per[slices.Min(slices.Collect(maps.Keys(per)))]
+}
+
+// besideAttn is the array a message about a block without attention names:
+// its gradient (of the lowest layer when per layer), else its mask.
+func (p *parts) besideAttn() Array {
+	if len(p.gradL) > 0 {
+		return lowestLayer(p.gradL)
 	}
-	return per[best]
+	if p.grad != nil {
+		return p.grad
+	}
+	return p.allow
 }
 
 // layerArrays returns the arrays of a whole-or-per-layer role in layer order,
@@ -247,14 +253,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 	} else if len(p.outL) > 0 {
 		first = lowestLayer(p.outL)
 	} else {
-		a := p.grad
-		if a == nil {
-			a = p.allow
-		}
-		if len(p.gradL) > 0 {
-			a = lowestLayer(p.gradL)
-		}
-		return nil, ferr(a, "block %q has no attention (%s/attn or %s/attn/N)", p.name, p.name, p.name)
+		return nil, ferr(p.besideAttn(), "block %q has no attention (%s/attn or %s/attn/N)", p.name, p.name, p.name)
 	}
 	st, err := settings(p, mb, topCompute, opt, first)
 	if err != nil {
@@ -364,14 +363,7 @@ func buildBlock(p *parts, mb metaBlock, topCompute string, opt Options) (*Block,
 		}
 	} else {
 		b.Axes = ""
-		if p.grad != nil || len(p.gradL) > 0 || p.allow != nil {
-			a := p.grad
-			if a == nil {
-				a = p.allow
-			}
-			if len(p.gradL) > 0 {
-				a = lowestLayer(p.gradL)
-			}
+		if a := p.besideAttn(); a != nil {
 			return nil, ferr(a, "block %q has gradients or a mask but no attention (%s/attn)", p.name, p.name)
 		}
 	}
