@@ -313,14 +313,25 @@ func Open(paths []string, opt Options) (*Export, error) {
 	if err != nil {
 		return nil, err
 	}
-	var cs []Container
-	for _, r := range refs {
-		c, err := openFile(r)
+	return openGroup(refs, nil, opt)
+}
+
+// openGroup opens the files of refs, but for those already open in have
+// (nil, or one container or nil per ref), and assembles them as one
+// export; on failure it closes them all, have's included.
+func openGroup(refs []fileRef, have []Container, opt Options) (*Export, error) {
+	cs := make([]Container, len(refs))
+	copy(cs, have)
+	for i, r := range refs {
+		if cs[i] != nil {
+			continue
+		}
+		c, err := opt.openRef(r)
 		if err != nil {
 			closeAll(cs)
 			return nil, err
 		}
-		cs = append(cs, c)
+		cs[i] = c
 	}
 	ex, err := assembleContainers(cs, opt)
 	if err != nil {

@@ -175,20 +175,8 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 		s.Examples = append(s.Examples, paths)
 	}
 	// the first example: its layout is the set's
-	cs := make([]Container, len(s.groups[0]))
-	copy(cs, first)
-	for i, r := range s.groups[0] {
-		if cs[i] != nil {
-			continue
-		}
-		if cs[i], err = opt.openRef(r); err != nil {
-			closeAll(cs)
-			return nil, err
-		}
-	}
-	ex, err := assembleContainers(cs, opt)
+	ex, err := openGroup(s.groups[0], first, opt)
 	if err != nil {
-		closeAll(cs)
 		return nil, err
 	}
 	s.layout = layoutOf(ex)
@@ -382,18 +370,8 @@ func (s *Set) Open(i int) (*Export, error) {
 	if i < 0 || i >= len(s.groups) {
 		return nil, fmt.Errorf("loader: example %d of %d", i, len(s.groups))
 	}
-	var cs []Container
-	for _, r := range s.groups[i] {
-		c, err := s.opt.openRef(r)
-		if err != nil {
-			closeAll(cs)
-			return nil, err
-		}
-		cs = append(cs, c)
-	}
-	ex, err := assembleContainers(cs, s.opt)
+	ex, err := openGroup(s.groups[i], nil, s.opt)
 	if err != nil {
-		closeAll(cs)
 		return nil, err
 	}
 	if err := s.sameLayout(ex); err != nil {
