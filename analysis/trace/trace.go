@@ -332,16 +332,25 @@ func GradAbar(dst []float64, attn, grad [][]float32) {
 		dst[i] = 0
 	}
 	for h := range attn {
-		a, g := attn[h], grad[h]
-		for i := range dst {
-			if v := -float64(g[i]) * float64(a[i]); v > 0 {
-				dst[i] += v
-			}
+		addGradTerm(dst, attn[h], grad[h])
+	}
+	scaleBy(dst, 1/float64(len(attn)))
+}
+
+// addGradTerm adds one head's (-G * A)^+ to dst: the gradient-weighted
+// attention, its negatives clamped before the mean over heads.
+func addGradTerm(dst []float64, a, g []float32) {
+	for i := range dst {
+		if v := -float64(g[i]) * float64(a[i]); v > 0 {
+			dst[i] += v
 		}
 	}
-	inv := 1 / float64(len(attn))
+}
+
+// scaleBy multiplies dst by s.
+func scaleBy(dst []float64, s float64) {
 	for i := range dst {
-		dst[i] *= inv
+		dst[i] *= s
 	}
 }
 
@@ -612,11 +621,7 @@ func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float6
 				}
 				return
 			}
-			for i := range out {
-				if v := -float64(g[i]) * float64(a[i]); v > 0 {
-					out[i] += v
-				}
-			}
+			addGradTerm(out, a, g)
 		})
 	}
 	if err != nil {
@@ -627,10 +632,7 @@ func (lb *layerBufs) layer(blk *loader.Block, l, batch int, grad bool) ([]float6
 			out[i] /= float64(blk.Heads) // as headMean
 		}
 	} else {
-		inv := 1 / float64(blk.Heads) // as GradAbar
-		for i := range out {
-			out[i] *= inv
-		}
+		scaleBy(out, 1/float64(blk.Heads)) // as GradAbar
 	}
 	for _, x := range out {
 		if math.IsNaN(x) || math.IsInf(x, 0) {
