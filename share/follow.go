@@ -40,11 +40,21 @@ func (h *Hub) Publish(loc string) {
 	}
 }
 
-// Location is the presenter's latest location, "" before the first Publish.
-func (h *Hub) Location() string {
+// State is the presenter's latest published line, "" before the first
+// Publish: a location, then whatever else the TUI publishes with it.
+func (h *Hub) State() string {
 	h.mu.Lock()
 	defer h.mu.Unlock()
 	return h.loc
+}
+
+// Location is the location of the presenter's latest state (its first
+// word), "" before the first Publish.
+func (h *Hub) Location() string {
+	if w := strings.Fields(h.State()); len(w) > 0 {
+		return w[0]
+	}
+	return ""
 }
 
 // Subscribe returns a channel that receives each new location, and a
@@ -137,7 +147,7 @@ func (f *Framed) wait() tea.Cmd {
 func (f *Framed) Init() tea.Cmd {
 	cmds := []tea.Cmd{f.inner.Init()}
 	if f.hub != nil {
-		if loc := f.hub.Location(); loc != "" {
+		if loc := f.hub.State(); loc != "" {
 			cmds = append(cmds, func() tea.Msg { return presenterMoved{loc: loc} })
 		}
 		cmds = append(cmds, f.wait())
@@ -173,7 +183,7 @@ func (f *Framed) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 		// A location already applied is not applied again: a late message
 		// must not pull the guest back after they moved while following.
 		var cmd tea.Cmd
-		if loc := f.hub.Location(); f.following && loc != "" && loc != f.applied {
+		if loc := f.hub.State(); f.following && loc != "" && loc != f.applied {
 			f.applied = loc
 			cmd = f.forward(f.gotoMsg(loc))
 		}
@@ -186,7 +196,7 @@ func (f *Framed) Update(msg tea.Msg) (tea.Model, tea.Cmd) {
 		if f.hub != nil && key.Matches(msg, FollowKey) {
 			f.following = !f.following
 			if f.following {
-				if loc := f.hub.Location(); loc != "" {
+				if loc := f.hub.State(); loc != "" {
 					f.applied = loc
 					return f, f.forward(f.gotoMsg(loc))
 				}
@@ -202,10 +212,7 @@ func (f *Framed) statusText() string {
 	if f.hub == nil {
 		return f.status
 	}
-	loc := ""
-	if w := strings.Fields(f.hub.Location()); len(w) > 0 {
-		loc = w[0] // the location; the rest is for the TUI
-	}
+	loc := f.hub.Location()
 	if loc == "" {
 		loc = "not moved yet"
 	}

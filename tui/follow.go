@@ -30,14 +30,6 @@ func (m *Model) FollowState() string {
 // location, then the screen, zoom and origin when given.
 type FollowMsg struct{ State string }
 
-// FollowLoc is the location part of a FollowState.
-func FollowLoc(state string) string {
-	if f := strings.Fields(state); len(f) > 0 {
-		return f[0]
-	}
-	return ""
-}
-
 func (m *Model) follow(state string) error {
 	f := strings.Fields(state)
 	if len(f) == 0 {

@@ -215,8 +215,8 @@ func runShare(ctx context.Context, args []string, lf *loadFlags, tf *tuiFlags, s
 				o.Background = tf.background
 			}
 			if hub != nil {
-				if st := hub.Location(); st != "" {
-					o.At = tui.FollowLoc(st)
+				if loc := hub.Location(); loc != "" {
+					o.At = loc
 				}
 				o.ExtraHelp = []key.Binding{share.FollowKey}
 			}
