@@ -383,30 +383,28 @@ func downsampleRows(d *MapData, p *Pixels, lo, hi int, agg Agg) {
 					}
 					sum[pc] += s
 				}
-				if d.RowRuns == nil && d.Rule != nil && w == w {
-					for j, v := range cells {
-						if v > d.Tol && v > p.Forbid[i] {
-							if r := d.Rule(q, ka+j); r != "" {
-								p.Forbid[i] = v
-								p.Rule[i] = r
-							}
-						}
-					}
-				}
 				cnt[pc] += int32(kb - ka)
 				p.Weight[i] = w
 			}
 			switch {
 			case d.RowRuns != nil:
-				markRuns(d, p, row, raw, q, base)
-				countRuns(d, p, q, nForbid, nPad)
+				markRuns(d, p, row, raw, q, base, ruleCounts{nForbid, nPad})
 			case d.Rule != nil:
+				// the row's rules cell by cell: count the forbidden cells
+				// and mark the largest leak of each pixel still defined
 				for k := k0; k < kEnd; k++ {
-					if r := d.Rule(q, k); r != "" {
-						nForbid[(k-k0)/block]++
-						if r == "padding" {
-							nPad[(k-k0)/block]++
-						}
+					r := d.Rule(q, k)
+					if r == "" {
+						continue
+					}
+					pc := (k - k0) / block
+					nForbid[pc]++
+					if r == "padding" {
+						nPad[pc]++
+					}
+					i := base + pc
+					if v := row[k]; v > d.Tol && v > p.Forbid[i] && p.Weight[i] == p.Weight[i] {
+						p.Forbid[i], p.Rule[i] = v, r
 					}
 				}
 			}
@@ -470,46 +468,15 @@ func nextNonzero16(raw []uint16, k, end int) int {
 	return k
 }
 
+// ruleCounts are, per pixel column of a row, the cells a rule forbids
+// (forbid) and those forbidden as padding keys (pad).
+type ruleCounts struct{ forbid, pad []int32 }
+
 // markRuns marks the pixels of row q (pixel row starting at base) that hold
 // a forbidden cell above the tolerance, from the row's runs (MapData.RowRuns):
-// from row, or from raw through the table when the row is patterns. The
-// keys are those of p's window.
-func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base int) {
-	k0, kEnd, block := p.K0, p.keyEnd(d), p.Block
-	ends, rules := d.RowRuns(q)
-	a := 0
-	for j, e := range ends {
-		b, r := int(e), rules[j]
-		if r != "" && b > k0 && a < kEnd {
-			for k := max(a, k0); k < min(b, kEnd); k++ {
-				var v float32
-				if raw != nil {
-					// a mask that holds leaves zeros: skip them four at a time
-					if k = nextNonzero16(raw, k, min(b, kEnd)); k == min(b, kEnd) {
-						break
-					}
-					v = d.RawValue[raw[k]]
-				} else {
-					v = row[k]
-				}
-				if !(v > d.Tol) {
-					continue
-				}
-				i := base + (k-k0)/block
-				if v > p.Forbid[i] && p.Weight[i] == p.Weight[i] {
-					p.Forbid[i] = v
-					p.Rule[i] = r
-				}
-			}
-		}
-		a = b
-	}
-}
-
-// countRuns adds, per pixel column of p's window, the cells of row q that a
-// rule forbids (nForbid) and those forbidden as padding keys (nPad), from
-// the row's runs.
-func countRuns(d *MapData, p *Pixels, q int, nForbid, nPad []int32) {
+// from row, or from raw through the table when the row is patterns, and
+// adds the row's forbidden cells to n. The keys are those of p's window.
+func markRuns(d *MapData, p *Pixels, row []float32, raw []uint16, q, base int, n ruleCounts) {
 	k0, kEnd, block := p.K0, p.keyEnd(d), p.Block
 	ends, rules := d.RowRuns(q)
 	a := 0
@@ -523,11 +490,31 @@ func countRuns(d *MapData, p *Pixels, q int, nForbid, nPad []int32) {
 		for k := lo; k < hi; {
 			pc := (k - k0) / block
 			end := min(hi, k0+(pc+1)*block)
-			nForbid[pc] += int32(end - k)
+			n.forbid[pc] += int32(end - k)
 			if r == "padding" {
-				nPad[pc] += int32(end - k)
+				n.pad[pc] += int32(end - k)
 			}
 			k = end
+		}
+		for k := lo; k < hi; k++ {
+			var v float32
+			if raw != nil {
+				// a mask that holds leaves zeros: skip them four at a time
+				if k = nextNonzero16(raw, k, hi); k == hi {
+					break
+				}
+				v = d.RawValue[raw[k]]
+			} else {
+				v = row[k]
+			}
+			if !(v > d.Tol) {
+				continue
+			}
+			i := base + (k-k0)/block
+			if v > p.Forbid[i] && p.Weight[i] == p.Weight[i] {
+				p.Forbid[i] = v
+				p.Rule[i] = r
+			}
 		}
 	}
 }

@@ -533,7 +533,7 @@ func TestDownsampleRowRule(t *testing.T) {
 			a := Downsample(d, 0, 0, n, n, block, agg)
 			b := Downsample(&byRow, 0, 0, n, n, block, agg)
 			if !reflect.DeepEqual(a.Rule, b.Rule) || !slices.Equal(a.Forbid, b.Forbid) ||
-				fmt.Sprint(a.Weight) != fmt.Sprint(b.Weight) {
+				fmt.Sprint(a.Weight) != fmt.Sprint(b.Weight) || !slices.Equal(a.Kind, b.Kind) {
 				t.Errorf("agg %v block %d: RowRuns pixels differ from Rule's", agg, block)
 			}
 			if block == 1 && a.Forbid[0*37+1] == 0 {
