@@ -84,8 +84,6 @@ func ParseGroupMode(s string) (GroupMode, error) {
 
 // Grouping says how OpenSet grouped the files into examples.
 type Grouping struct {
-	// Mode is the mode asked for (GroupAuto: decided by the files).
-	Mode GroupMode
 	// Rule names the rule that decided, for people: "numbered files are
 	// examples", "array names", or the setting and its value ("group
 	// examples", worded by Options.SettingName).
@@ -139,7 +137,7 @@ func OpenSet(paths []string, opt Options) (*Set, error) {
 	if err != nil {
 		return nil, err
 	}
-	s := &Set{opt: opt, Grouping: Grouping{Mode: mode}}
+	s := &Set{opt: opt}
 	var first []Container // the first example's containers opened while grouping, by position (nil: not open)
 	switch {
 	case mode == GroupOne:
