@@ -13,6 +13,15 @@ import (
 // writeNPY writes a C-order little-endian NPY v1.0 file of dtype descr and
 // shape with data from fill (numpy's format module docstring gives the layout).
 func writeNPY(tb testing.TB, path, descr string, shape []int, data []byte) {
+	if err := os.WriteFile(path, npyBytes(descr, shape, data), 0o644); err != nil {
+		tb.Fatal(err)
+	}
+}
+
+// npyBytes is an NPY 1.0 file (numpy.lib.format's docstring: magic,
+// version, little-endian header length, a dict literal padded with spaces
+// so that the data starts at a multiple of 64) holding data.
+func npyBytes(descr string, shape []int, data []byte) []byte {
 	dims := make([]string, len(shape))
 	for i, d := range shape {
 		dims[i] = fmt.Sprint(d)
@@ -22,10 +31,7 @@ func writeNPY(tb testing.TB, path, descr string, shape []int, data []byte) {
 	hdr += strings.Repeat(" ", pad) + "\n"
 	b := append([]byte("\x93NUMPY\x01\x00"), byte(len(hdr)), byte(len(hdr)>>8))
 	b = append(b, hdr...)
-	b = append(b, data...)
-	if err := os.WriteFile(path, b, 0o644); err != nil {
-		tb.Fatal(err)
-	}
+	return append(b, data...)
 }
 
 // BenchmarkReadAttn reads every head of a mapped float16 NPY export

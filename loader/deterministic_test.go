@@ -95,17 +95,13 @@ func writeZip(t *testing.T, path string, members ...[2]string) {
 }
 
 // npyMember is an NPZ member: a [2, 4, 4] float32 array of 0.25 (a head of
-// uniform rows), in the NPY format (numpy.lib.format's docstring: magic,
-// version 1.0, little-endian header length, a dict literal padded to 64).
+// uniform rows) in the NPY format.
 func npyMember(name string) [2]string {
-	hdr := "{'descr': '<f4', 'fortran_order': False, 'shape': (2, 4, 4), }"
-	hdr += strings.Repeat(" ", (64-(10+len(hdr)+1)%64)%64) + "\n"
-	b := append([]byte("\x93NUMPY\x01\x00"), byte(len(hdr)), byte(len(hdr)>>8))
-	b = append(b, hdr...)
+	var data []byte
 	for i := 0; i < 2*4*4; i++ {
-		b = binary.LittleEndian.AppendUint32(b, math.Float32bits(0.25))
+		data = binary.LittleEndian.AppendUint32(data, math.Float32bits(0.25))
 	}
-	return [2]string{name + ".npy", string(b)}
+	return [2]string{name + ".npy", string(npyBytes("<f4", []int{2, 4, 4}, data))}
 }
 
 // Where two arrays could both be meant, opening is an error that names

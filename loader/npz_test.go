@@ -15,12 +15,7 @@ import (
 // data than DEFLATE can produce from its compressed bytes (about 1032:1 at
 // best, RFC 1951) is refused before anything is allocated for it.
 func TestDeflateRatioBound(t *testing.T) {
-	hdr := "{'descr': '<f4', 'fortran_order': False, 'shape': (100000, 100000), }"
-	pad := 64 - (10+len(hdr)+1)%64
-	npy := []byte("\x93NUMPY\x01\x00")
-	hl := len(hdr) + pad + 1
-	npy = append(npy, byte(hl), byte(hl>>8))
-	npy = append(npy, hdr+strings.Repeat(" ", pad)+"\n"...)
+	npy := npyBytes("<f4", []int{100000, 100000}, nil) // its header only
 	var comp bytes.Buffer
 	fw, _ := flate.NewWriter(&comp, flate.BestCompression)
 	fw.Write(npy)
@@ -44,14 +39,9 @@ func TestDeflateRatioBound(t *testing.T) {
 
 // deflatedNPZ returns an NPZ (numpy.savez_compressed's layout: one deflated
 // member NAME.npy) holding a float32 array of zeros of the given shape.
-func deflatedNPZ(t *testing.T, name string, shape string, n int) []byte {
+func deflatedNPZ(t *testing.T, name string, shape []int, n int) []byte {
 	t.Helper()
-	hdr := "{'descr': '<f4', 'fortran_order': False, 'shape': " + shape + ", }"
-	pad := 64 - (10+len(hdr)+1)%64
-	npy := []byte("\x93NUMPY\x01\x00") // NPY 1.0 (numpy/lib/format.py docstring)
-	hl := len(hdr) + pad + 1
-	npy = append(npy, byte(hl), byte(hl>>8))
-	npy = append(npy, hdr+strings.Repeat(" ", pad)+"\n"...)
+	npy := npyBytes("<f4", shape, nil)
 	var zb bytes.Buffer
 	zw := zip.NewWriter(&zb)
 	w, err := zw.CreateHeader(&zip.FileHeader{Name: name + ".npy", Method: zip.Deflate})
@@ -71,7 +61,7 @@ func deflatedNPZ(t *testing.T, name string, shape string, n int) []byte {
 // one line when the temporary directory has not the room.
 func TestInflateToTempFile(t *testing.T) {
 	const n = 10 << 20 // 40 MiB of float32 zeros
-	data := deflatedNPZ(t, "decoder/attn", "(10, 1048576)", n)
+	data := deflatedNPZ(t, "decoder/attn", []int{10, 1048576}, n)
 	open := func() (*npzFile, *rawArray) {
 		z, err := newNPZ("big.npz", memFile("big.npz", data))
 		if err != nil {

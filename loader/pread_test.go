@@ -119,13 +119,7 @@ func TestPreadTruncated(t *testing.T) {
 // after it was opened give an error naming the file and the array once,
 // not a crash: a fault past the end of the file (SIGBUS) is caught.
 func TestMappingTruncated(t *testing.T) {
-	hdr := "{'descr': '>f4', 'fortran_order': False, 'shape': (16, 4096), }"
-	pad := 64 - (10+len(hdr)+1)%64
-	b := []byte("\x93NUMPY\x01\x00") // NPY 1.0, numpy/lib/format.py docstring
-	hl := len(hdr) + pad + 1
-	b = append(b, byte(hl), byte(hl>>8))
-	b = append(b, hdr+strings.Repeat(" ", pad)+"\n"...)
-	b = append(b, make([]byte, 16*4096*4)...)
+	b := npyBytes(">f4", []int{16, 4096}, make([]byte, 16*4096*4))
 	path := filepath.Join(t.TempDir(), "cut.npy")
 	if err := os.WriteFile(path, b, 0o644); err != nil {
 		t.Fatal(err)
