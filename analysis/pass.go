@@ -528,14 +528,18 @@ type leakUnit struct {
 }
 
 // layerStore keeps (possibly strided) rows of every head of one (layer,
-// batch item) for the redundancy pass.
+// batch item) for the redundancy pass, a row's heads side by side (st.at):
+// the pass over pairs takes one row at a time, whose heads' rows then stay
+// in the caches (with a head's rows side by side instead, the H rows of
+// one stored row lay a power of two apart and evicted each other).
 type layerStore struct {
-	stride, rows, keys int
-	vals               []float32 // [head][row][key]
-	ent                []float64 // [head][row]
-	ok                 []bool    // [head][row]: judged and finite
-	neg                []bool    // [head][row]: holds a negative value
-	lo, hi             []int32   // [head][row]: first and last nonzero key
+	stride, rows, keys, heads int
+	vals                      []float32 // [row][head][key]
+	ent                       []float64 // [row][head]
+	ok                        []bool    // [row][head]: judged and finite
+	neg                       []bool    // [row][head]: holds a negative value
+	lo, hi                    []int32   // [row][head]: first and last nonzero key
+	div                       []float64 // [pair][row]: the pair's divergence at the row, -1 when not both judged and finite
 }
 
 func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, opt Options, prog *progress) error {
@@ -582,7 +586,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 		frees = append(frees, free)
 		return b
 	}
-	st := &layerStore{stride: stride, rows: nr, keys: K,
+	st := &layerStore{stride: stride, rows: nr, keys: K, heads: H,
 		vals: big(H * nr * K), ent: make([]float64, H*nr), ok: make([]bool, H*nr), neg: make([]bool, H*nr),
 		lo: make([]int32, H*nr), hi: make([]int32, H*nr)}
 	sumTol, sumLoose := RowSumTolerance(blk, opt.SumTol)
@@ -618,8 +622,6 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 		workers[i] = w
 	}
 	pairs := H * (H - 1) / 2
-	pairSum := make([]float64, pairs)
-	pairCnt := make([]int64, pairs)
 	pi, pj := make([]int, pairs), make([]int, pairs)
 	for i, n := 0, 0; i < H; i++ {
 		for j := i + 1; j < H; j++ {
@@ -627,9 +629,11 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 			n++
 		}
 	}
+	pairRows := nr // the rows of the pair pass (none without it)
 	if opt.NoRedundancy {
-		pairs = 0
+		pairs, pairRows = 0, 0
 	}
+	st.div = make([]float64, pairs*nr)
 	for l := 0; l < blk.Layers; l++ {
 		for b := 0; b < blk.Batch; b++ {
 			if err := ctx.Err(); err != nil {
@@ -641,18 +645,22 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 			if err != nil {
 				return err
 			}
-			err = parallel(ctx, workers, pairs, opt.Background, opt.Yield, func(w *worker, n int) error {
-				pairSum[n], pairCnt[n] = st.js(pi[n], pj[n])
+			// every pair of heads at one row per task: the heads' rows
+			// are read from the caches, where a pair per task read two
+			// heads' rows from memory for each of the H(H-1)/2 pairs
+			err = parallel(ctx, workers, pairRows, opt.Background, opt.Yield, func(w *worker, r int) error {
+				st.pairsAt(r, pi, pj)
 				return nil
 			})
 			if err != nil {
 				return err
 			}
 			for n := 0; n < pairs; n++ {
+				sum, cnt := st.pairSum(n)
 				for _, h := range [2]int{pi[n], pj[n]} {
 					u := bp.Unit(l, h, b)
-					u.JS.Add(pairSum[n])
-					u.JSRows += pairCnt[n]
+					u.JS.Add(sum)
+					u.JSRows += cnt
 				}
 			}
 			if prog != nil {
@@ -844,7 +852,7 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 		sr := q / st.stride
 		keep := q%st.stride == 0
 		if keep {
-			st.ok[h*st.rows+sr] = false
+			st.ok[st.at(h, sr)] = false
 		}
 		if !judged {
 			u.padRows++
@@ -956,12 +964,9 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			u.negMass += negm
 		}
 		if keep {
-			i := h*st.rows + sr
+			i := st.at(h, sr)
 			if rt != nil {
-				dst := st.vals[i*K : (i+1)*K]
-				for k, hb := range row16 {
-					dst[k] = rt.Val[hb]
-				}
+				kernels.Widen16(rt, st.vals[i*K:(i+1)*K], row16) // a finite row
 			} else {
 				copy(st.vals[i*K:(i+1)*K], row)
 			}
@@ -1066,41 +1071,59 @@ func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
 	}
 }
 
-// js returns the sum over rows judged and finite in both heads of the
-// Jensen-Shannon divergence between heads i and j, and the number of rows.
-// JS(P, Q) = H(M) - (H(P) + H(Q))/2 with M = (P+Q)/2 (Clark et al. 2019,
-// sec. 6); rows are used as exported, not renormalised.
-func (st *layerStore) js(i, j int) (float64, int64) {
-	var sum float64
-	var n int64
-	K := st.keys
-	for r := 0; r < st.rows; r++ {
-		a, b := i*st.rows+r, j*st.rows+r
-		if !st.ok[a] || !st.ok[b] {
-			continue
+// at is the index of head h's stored row r.
+func (st *layerStore) at(h, r int) int { return r*st.heads + h }
+
+// pairsAt sets the divergence of every pair of heads (pi[n], pj[n]) at
+// row r of the store.
+func (st *layerStore) pairsAt(r int, pi, pj []int) {
+	for n := range pi {
+		d, ok := st.js(st.at(pi[n], r), st.at(pj[n], r))
+		if !ok {
+			d = -1
 		}
-		// only keys where either row is nonzero contribute to H(M)
-		lo, hi := min(st.lo[a], st.lo[b]), max(st.hi[a], st.hi[b])
-		if st.lo[a] < 0 {
-			lo = st.lo[b]
-		} else if st.lo[b] < 0 {
-			lo = st.lo[a]
-		}
-		var hm float64
-		if lo >= 0 {
-			pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
-			if st.neg[a] || st.neg[b] {
-				hm = kernels.MlogmSumSlow(pa, pb)
-			} else {
-				hm = kernels.MlogmSum(pa, pb)
-			}
-		}
-		d := hm - 0.5*(st.ent[a]+st.ent[b])
-		if d < 0 {
-			d = 0
-		}
-		sum += d
-		n++
+		st.div[n*st.rows+r] = d
 	}
-	return sum, n
+}
+
+// pairSum returns the sum of pair n's divergences over the rows judged and
+// finite in both heads, in row order, and the number of rows.
+func (st *layerStore) pairSum(n int) (float64, int64) {
+	var sum float64
+	var cnt int64
+	for _, d := range st.div[n*st.rows : (n+1)*st.rows] {
+		if d >= 0 {
+			sum += d
+			cnt++
+		}
+	}
+	return sum, cnt
+}
+
+// js returns the Jensen-Shannon divergence between rows a and b of the
+// store ([head][row] indices), and false when either is not judged and
+// finite. JS(P, Q) = H(M) - (H(P) + H(Q))/2 with M = (P+Q)/2 (Clark et al.
+// 2019, sec. 6); rows are used as exported, not renormalised.
+func (st *layerStore) js(a, b int) (float64, bool) {
+	if !st.ok[a] || !st.ok[b] {
+		return 0, false
+	}
+	K := st.keys
+	// only keys where either row is nonzero contribute to H(M)
+	lo, hi := min(st.lo[a], st.lo[b]), max(st.hi[a], st.hi[b])
+	if st.lo[a] < 0 {
+		lo = st.lo[b]
+	} else if st.lo[b] < 0 {
+		lo = st.lo[a]
+	}
+	var hm float64
+	if lo >= 0 {
+		pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
+		if st.neg[a] || st.neg[b] {
+			hm = kernels.MlogmSumSlow(pa, pb)
+		} else {
+			hm = kernels.MlogmSum(pa, pb)
+		}
+	}
+	return max(hm-0.5*(st.ent[a]+st.ent[b]), 0), true
 }

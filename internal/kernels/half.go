@@ -369,3 +369,25 @@ func (rs *Sums) Sum32(run []float32) {
 	rs.S += (s0 + s1) + (s2 + s3)
 	rs.NZ += nz
 }
+
+// Widen16 sets dst[k] to the value of the finite pattern src[k] (t's
+// table; dst is at least as long as src): the rows of a layer the
+// redundancy pass keeps as float32. A GOEXPERIMENT=simd build converts
+// eight patterns at a time in registers (halfToFloat32, exact for finite
+// values); the value of an Inf or NaN pattern is then undefined.
+func Widen16(t *Half, dst []float32, src []uint16) {
+	if simdHalf && len(src) >= 8 {
+		widen16AVX2(t, dst, src)
+		return
+	}
+	Widen16Ref(t, dst, src)
+}
+
+// Widen16Ref is Widen16 one key at a time, through the table (exact for
+// every pattern).
+func Widen16Ref(t *Half, dst []float32, src []uint16) {
+	dst = dst[:len(src)]
+	for k, h := range src {
+		dst[k] = t.Val[h]
+	}
+}

@@ -8,3 +8,5 @@ const simdHalf = false
 func (rs *Sums) add16AVX2(t *Half, run []uint16, d, step float64) uint64 {
 	panic("kernels: no SIMD in this build")
 }
+
+func widen16AVX2(t *Half, dst []float32, src []uint16) { panic("kernels: no SIMD in this build") }

@@ -87,3 +87,18 @@ func (rs *Sums) add16AVX2(t *Half, run []uint16, d, step float64) uint64 {
 	ln.add(t, run[n:], step)
 	return rs.take(&ln)
 }
+
+// widen16AVX2 is Widen16 eight patterns a step; the last eight, which may
+// overlap the step before, too.
+func widen16AVX2(t *Half, dst []float32, src []uint16) {
+	f16 := t.Exp == 0x7c00
+	n := len(src)
+	dst = dst[:n]
+	for i := 0; ; i += 8 {
+		i = min(i, n-8)
+		halfToFloat32(archsimd.LoadUint16x8Slice(src[i:]), f16).StoreSlice(dst[i:])
+		if i == n-8 {
+			return
+		}
+	}
+}

@@ -140,3 +140,20 @@ func BenchmarkMlogmSum(b *testing.B) {
 		}
 	})
 }
+
+func BenchmarkWiden16(b *testing.B) {
+	rows, _, t := benchRows(64)
+	dst := make([]float32, benchKeys)
+	b.Run("ref", func(b *testing.B) {
+		b.SetBytes(2 * benchKeys)
+		for i := range b.N {
+			Widen16Ref(t, dst, rows[i&63])
+		}
+	})
+	b.Run("fast", func(b *testing.B) {
+		b.SetBytes(2 * benchKeys)
+		for i := range b.N {
+			Widen16(t, dst, rows[i&63])
+		}
+	})
+}

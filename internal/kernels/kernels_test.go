@@ -225,3 +225,37 @@ func bf16Values() *[65536]float32 {
 	}
 	return v
 }
+
+// Widen16 gives every finite pattern's value exactly: that of
+// github.com/x448/float16 (float16) and of the pattern shifted into a
+// float32's upper half (bfloat16, its definition), whichever loop the
+// build takes, on every finite pattern and on random rows of every length.
+func TestWiden16(t *testing.T) {
+	rng := rand.New(rand.NewPCG(11, 12))
+	for _, dt := range dtypes() {
+		tb := &dt.t
+		var all []uint16
+		for i := range 65536 {
+			if uint16(i)&tb.Exp != tb.Exp {
+				all = append(all, uint16(i))
+			}
+		}
+		rows := [][]uint16{all}
+		for _, n := range lengths {
+			rows = append(rows, randomRow(rng, n, dt.enc, tb.Exp, rng.IntN(3)))
+		}
+		for _, row := range rows {
+			got := make([]float32, len(row)+1)
+			got[len(row)] = 7 // past the end: untouched
+			Widen16(tb, got, row)
+			for k, h := range row {
+				if math.Float32bits(got[k]) != math.Float32bits(tb.Val[h]) {
+					t.Fatalf("%s: Widen16 of %#04x = %v (%#08x), want %v", dt.name, h, got[k], math.Float32bits(got[k]), tb.Val[h])
+				}
+			}
+			if got[len(row)] != 7 {
+				t.Fatalf("%s n=%d: Widen16 wrote past the row", dt.name, len(row))
+			}
+		}
+	}
+}
