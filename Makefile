@@ -11,8 +11,15 @@ BUILDVCS ?= -buildvcs=auto
 # libc and libm, not libhdf5's 37 shared libraries, at every start. `make build HDF5_TAGS=` links
 # the shared library instead, as a plain `go build ./cmd/heed` does.
 HDF5_TAGS ?= -tags=hdf5static
+# Build with Go 1.26's experimental SIMD package on amd64 (internal/kernels/*_simd.go: vector loops
+# on processors with AVX2 / AVX-512, chosen at run time; heed version says which run). `make build
+# SIMD=` builds the scalar loops only, as a plain `go build ./cmd/heed` does.
+SIMD ?= $(if $(filter amd64,$(shell $(GO) env GOARCH)),simd)
+# The build command with the experiment, and the same without it when the toolchain refuses it.
+gobuild = GOEXPERIMENT=$(SIMD) $(GO) $(1) || { [ -n "$(SIMD)" ] && \
+	echo "make: the GOEXPERIMENT=$(SIMD) build failed (above): building the scalar loops" && $(GO) $(1); }
 
-.PHONY: all build build-simd install demo deps test check-fmt vet staticcheck unit pytest-capture purego static fuzz crosscheck slurm-test bench clean
+.PHONY: all build install demo deps test check-fmt vet staticcheck unit simd pytest-capture purego static fuzz crosscheck slurm-test bench clean
 
 all: build
 
@@ -20,7 +27,7 @@ deps:
 	@scripts/install-deps.sh
 
 build: deps
-	$(GO) build $(BUILDVCS) $(HDF5_TAGS) -o $(BIN) ./cmd/heed
+	$(call gobuild,build $(BUILDVCS) $(HDF5_TAGS) -o $(BIN) ./cmd/heed)
 
 # Installs heed into GOBIN (default GOPATH/bin, i.e. ~/go/bin) from this clone, stamped with its
 # commit. Needs only Go (1.26.8 or later); with cgo and libhdf5-dev + pkg-config it reads HDF5 too,
@@ -29,28 +36,24 @@ build: deps
 # packages.
 install:
 	@if [ "$$($(GO) env CGO_ENABLED)" = 1 ] && pkg-config --exists hdf5 2>/dev/null; then \
-		echo "$(GO) install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed"; \
-		$(GO) install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed 2>/dev/null || { \
+		echo "GOEXPERIMENT=$(SIMD) $(GO) install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed"; \
+		$(call gobuild,install $(BUILDVCS) $(HDF5_TAGS) ./cmd/heed) 2>/dev/null || { \
 			echo "make install: HDF5's static archives did not link: linking its shared library"; \
-			echo "$(GO) install $(BUILDVCS) ./cmd/heed"; $(GO) install $(BUILDVCS) ./cmd/heed; }; \
+			echo "GOEXPERIMENT=$(SIMD) $(GO) install $(BUILDVCS) ./cmd/heed"; $(call gobuild,install $(BUILDVCS) ./cmd/heed); }; \
 	else \
 		echo "make install: no cgo or no HDF5 library (pkg-config hdf5): building heed without HDF5 support"; \
-		echo "CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed"; CGO_ENABLED=0 $(GO) install $(BUILDVCS) ./cmd/heed; \
+		echo "CGO_ENABLED=0 GOEXPERIMENT=$(SIMD) $(GO) install $(BUILDVCS) ./cmd/heed"; \
+		export CGO_ENABLED=0; $(call gobuild,install $(BUILDVCS) ./cmd/heed); \
 	fi
 	@bin=$$($(GO) env GOBIN); [ -n "$$bin" ] || bin=$$($(GO) env GOPATH)/bin; \
 	echo "installed $$bin/heed: $$($$bin/heed --version)"; \
 	case ":$$PATH:" in *":$$bin:"*) ;; *) echo "$$bin is not on your PATH: add it, e.g. export PATH=\"$$bin:\$$PATH\"";; esac
 
-# The same with Go's experimental SIMD package (internal/kernels/*_simd.go):
-# vector kernels on processors with AVX-512; the default build needs no experiment.
-build-simd: deps
-	GOEXPERIMENT=simd $(GO) build $(BUILDVCS) $(HDF5_TAGS) -o $(BIN) ./cmd/heed
-
 # The main job on the export embedded in the binary.
 demo: build
 	$(BIN) demo
 
-test: deps check-fmt vet staticcheck unit pytest-capture purego static fuzz crosscheck
+test: deps check-fmt vet staticcheck unit simd pytest-capture purego static fuzz crosscheck
 
 check-fmt:
 	@out=$$(gofmt -l $$(find . -name '*.go' -not -path './.git/*')); \
@@ -66,6 +69,12 @@ staticcheck:
 
 unit:
 	HEED_PYTHON=$(PYTHON) $(GO) test -race -count=1 -timeout 30m ./...
+
+# The vector loops make build runs (GOEXPERIMENT=simd): the kernels against their reference loops,
+# and the pass that uses them (analysis's tests against numpy, the read paths, shards) once more.
+simd:
+	@if [ -z "$(SIMD)" ]; then echo "make simd: no SIMD build on $$($(GO) env GOARCH): nothing to test"; exit 0; fi
+	HEED_PYTHON=$(PYTHON) GOEXPERIMENT=$(SIMD) $(GO) test -count=1 ./internal/kernels ./analysis/...
 
 # python/heed_capture.py against PyTorch's own outputs and autograd (torch 1.13+, numpy).
 pytest-capture:

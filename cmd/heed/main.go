@@ -17,6 +17,7 @@ import (
 	"sync/atomic"
 	"syscall"
 
+	"github.com/heed-dev/heed/internal/kernels"
 	"github.com/heed-dev/heed/loader"
 	"github.com/spf13/cobra"
 )
@@ -89,7 +90,7 @@ func newVersionCmd() *cobra.Command {
 			if !loader.HDF5Supported {
 				hdf5 = "no (built without cgo, or with -tags nohdf5: rebuild with cgo and libhdf5-dev to read .h5 files)"
 			}
-			fmt.Fprintf(cmd.OutOrStdout(), "heed version %s\n%s %s/%s, HDF5 support: %s\n", versionString(), runtime.Version(), runtime.GOOS, runtime.GOARCH, hdf5)
+			fmt.Fprintf(cmd.OutOrStdout(), "heed version %s\n%s %s/%s, HDF5 support: %s\nkernels: %s\n", versionString(), runtime.Version(), runtime.GOOS, runtime.GOARCH, hdf5, kernels.Paths())
 			return nil
 		},
 	}

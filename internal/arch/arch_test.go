@@ -34,7 +34,7 @@ var allowed = map[string][]string{
 	"share":               {},
 	"demo":                {},
 	"python":              {},
-	"cmd/heed":            {"analysis", "analysis/trace", "analysis/plan", "analysis/invariance", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem", "internal/prose"},
+	"cmd/heed":            {"analysis", "analysis/trace", "analysis/plan", "analysis/invariance", "loader", "views", "tui", "share", "picture", "demo", "python", "internal/words", "internal/bigmem", "internal/prose", "internal/kernels"},
 }
 
 func TestImportDirection(t *testing.T) {

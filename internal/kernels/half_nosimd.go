@@ -5,6 +5,9 @@ package kernels
 // simdHalf is false in the default build: Add16 is the scalar loop.
 const simdHalf = false
 
+// simdBuild: this is not a GOEXPERIMENT=simd build.
+const simdBuild = false
+
 func (rs *Sums) add16AVX2(t *Half, run []uint16, d, step float64) uint64 {
 	panic("kernels: no SIMD in this build")
 }

@@ -13,6 +13,9 @@ import (
 // row), not worth a second loop to keep equal.
 var simdHalf = archsimd.X86.AVX2()
 
+// simdBuild: this is a GOEXPERIMENT=simd build.
+const simdBuild = true
+
 // halfToFloat32 converts eight patterns to their float32 values without
 // the table (IEEE 754 binary16 and binary32 layouts). float16: the
 // magnitude shifted left by 13 puts its exponent in the low five bits of
