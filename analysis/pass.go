@@ -741,18 +741,20 @@ type passConfig struct {
 
 // lnN returns ln n for n >= 1, from a table up to 4096 keys.
 func lnN(n int64) float64 {
-	if n < int64(len(lnTable)) {
-		return lnTable[n]
+	if t := lnTable(); n < int64(len(t)) {
+		return t[n]
 	}
 	return math.Log(float64(n))
 }
 
-var lnTable = func() (t [4097]float64) {
+// lnTable is built on first use, not at every start of heed (32 KB).
+var lnTable = sync.OnceValue(func() *[4097]float64 {
+	t := new([4097]float64)
 	for n := 1; n < len(t); n++ {
 		t[n] = math.Log(float64(n))
 	}
-	return
-}()
+	return t
+})
 
 // finite32 returns the first non-finite key of row, or -1, true, and
 // whether the row holds a negative value.

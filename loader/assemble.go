@@ -12,6 +12,7 @@ import (
 	"slices"
 	"strconv"
 	"strings"
+	"sync"
 )
 
 // Assemble builds an export from arrays named by the heed-export/1
@@ -31,7 +32,8 @@ func ferr(a Array, format string, args ...any) error {
 	return &FormatError{File: a.File(), Array: a.Name(), Offset: -1, Msg: fmt.Sprintf(format, args...)}
 }
 
-var trailingNum = regexp.MustCompile(`^(.*?)[_.\-]?([0-9]+)$`)
+// trailingNum is compiled on first use, not at every start of heed.
+var trailingNum = sync.OnceValue(func() *regexp.Regexp { return regexp.MustCompile(`^(.*?)[_.\-]?([0-9]+)$`) })
 
 func assemble(arrays []Array, metas []metaSource, opt Options) (*Export, error) {
 	ex := &Export{Sides: map[string]*Side{}}
@@ -169,7 +171,7 @@ func bareBlocks(others []Array) (map[string]*parts, []Array, error) {
 			continue
 		}
 		base := a.Name()
-		if m := trailingNum.FindStringSubmatch(base); m != nil {
+		if m := trailingNum().FindStringSubmatch(base); m != nil {
 			base = m[1]
 		}
 		if _, ok := groups[base]; !ok {
@@ -204,7 +206,7 @@ func bareBlocks(others []Array) (map[string]*parts, []Array, error) {
 		}
 		p := &parts{name: name, bare: true, attnL: map[int]Array{}}
 		for _, a := range g {
-			m := trailingNum.FindStringSubmatch(a.Name())
+			m := trailingNum().FindStringSubmatch(a.Name())
 			if m == nil {
 				return nil, nil, ambiguous(g, fmt.Sprintf("could each be the attention of block %q (%s as a whole, the others as its layers)", name, a.Name()))
 			}

@@ -222,7 +222,7 @@ func numbered(r fileRef) (base string, ok bool) {
 	if _, role, _ := classify(r.npyName); role != roleOther {
 		return "", false
 	}
-	m := trailingNum.FindStringSubmatch(stem(r.path))
+	m := trailingNum().FindStringSubmatch(stem(r.path))
 	if m == nil {
 		return "", false
 	}

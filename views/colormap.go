@@ -103,19 +103,31 @@ var iridescentHex = []string{
 // returns fresh values: callers may keep and modify them.
 func Colormaps() []Colormap { return slices.Clone(colormaps()) }
 
-// colormaps builds the colormaps once, on first use (not in every process:
-// a flag's help that lists their names is built at every start).
+// colormapSpecs are the colormaps heed offers, the default first, built
+// by colormaps on first use: not in every process (a flag's help that lists
+// their names is made at every start, from the names alone).
+var colormapSpecs = []struct {
+	name, source string
+	alarm        Colour
+	lowIsLight   bool
+	stops        func() [][3]float64
+}{
+	{"dawn", "P. Tol, Colour Schemes, SRON/EPS/TN/09-002 (2021), the sequential scheme of 23 colours from cream to dark brown",
+		tolVibrantOrange, true, func() [][3]float64 { return hexStops(iridescentHex...) }},
+	{"viridis", "S. van der Walt & N. Smith (2015), matplotlib viridis, 256-entry table (CC0)",
+		tolVibrantMagenta, false, func() [][3]float64 { return viridisData[:] }},
+	{"cividis", "J. R. Nuñez, C. R. Anderton & R. S. Renslow (2018), PLOS ONE 13(7): e0199239, 256-entry table",
+		tolVibrantMagenta, false, func() [][3]float64 { return cividisData[:] }},
+	{"magma", "S. van der Walt & N. Smith (2015), matplotlib magma, 256-entry table (CC0)",
+		tolVibrantCyan, false, func() [][3]float64 { return magmaData[:] }},
+}
+
 var colormaps = sync.OnceValue(func() []Colormap {
-	return []Colormap{
-		newColormap("dawn", "P. Tol, Colour Schemes, SRON/EPS/TN/09-002 (2021), the sequential scheme of 23 colours from cream to dark brown",
-			tolVibrantOrange, true, hexStops(iridescentHex...)),
-		newColormap("viridis", "S. van der Walt & N. Smith (2015), matplotlib viridis, 256-entry table (CC0)",
-			tolVibrantMagenta, false, viridisData[:]),
-		newColormap("cividis", "J. R. Nuñez, C. R. Anderton & R. S. Renslow (2018), PLOS ONE 13(7): e0199239, 256-entry table",
-			tolVibrantMagenta, false, cividisData[:]),
-		newColormap("magma", "S. van der Walt & N. Smith (2015), matplotlib magma, 256-entry table (CC0)",
-			tolVibrantCyan, false, magmaData[:]),
+	cms := make([]Colormap, len(colormapSpecs))
+	for i, s := range colormapSpecs {
+		cms[i] = newColormap(s.name, s.source, s.alarm, s.lowIsLight, s.stops())
 	}
+	return cms
 })
 
 // DefaultColormap is the name of the colour-blind-safe default.
@@ -123,10 +135,9 @@ const DefaultColormap = "dawn"
 
 // ColormapNames lists the names Colormaps returns, in order.
 func ColormapNames() []string {
-	cms := colormaps()
-	names := make([]string, len(cms))
-	for i, c := range cms {
-		names[i] = c.Name
+	names := make([]string, len(colormapSpecs))
+	for i, s := range colormapSpecs {
+		names[i] = s.name
 	}
 	return names
 }

@@ -14,6 +14,7 @@ import (
 	"runtime"
 	"runtime/debug"
 	"strings"
+	"sync"
 	"sync/atomic"
 	"syscall"
 
@@ -33,7 +34,7 @@ func versionString() string {
 // pseudoVersion matches the version the go command gives a build of a commit
 // that carries no release tag (v0.0.0-20251204040700-f53f4b693b59, with
 // +dirty for uncommitted changes): the commit says more.
-var pseudoVersion = regexp.MustCompile(`[0-9]{14}-[0-9a-f]{12}(\+dirty)?$`)
+var pseudoVersion = sync.OnceValue(func() *regexp.Regexp { return regexp.MustCompile(`[0-9]{14}-[0-9a-f]{12}(\+dirty)?$`) })
 
 // versionFrom says which heed this is: the version set at link time, or the
 // module's version (a release installed with go install MODULE@VERSION),
@@ -48,7 +49,7 @@ func versionFrom(ldflags string, bi *debug.BuildInfo) string {
 	if bi == nil {
 		return v + " (no build information)"
 	}
-	if mv := bi.Main.Version; mv != "" && mv != "(devel)" && !pseudoVersion.MatchString(mv) {
+	if mv := bi.Main.Version; mv != "" && mv != "(devel)" && !pseudoVersion().MatchString(mv) {
 		v = strings.TrimSuffix(mv, "+dirty")
 	}
 	var rev, at, modified string
