@@ -58,7 +58,8 @@ func tuiTiming(c config, file string, s shape) error {
 		if _, err := tm.run(fmt.Sprintf("new-session -d -s %s -x 200 -y 60 %s %s --at %s", name, quote(c.heed), quote(file), at)); err != nil {
 			return fmt.Errorf("tmux new-session: %w", err)
 		}
-		d, err := tm.waitPane(name, t0, " L0  H0  ", 10*time.Second)
+		// the status line shows the cursor's location (decoder:L0:H0:q...:k...)
+		d, err := tm.waitPane(name, t0, "decoder:L0:H0:", 10*time.Second)
 		if err != nil {
 			tm.run("kill-session -t " + name)
 			return fmt.Errorf("first frame: %w", err)
@@ -69,7 +70,7 @@ func tuiTiming(c config, file string, s shape) error {
 			if _, err := tm.run("send-keys -t " + name + " " + quote("}")); err != nil {
 				return err
 			}
-			d, err := tm.waitPane(name, t, fmt.Sprintf(" L0  H%d  ", h), 5*time.Second)
+			d, err := tm.waitPane(name, t, fmt.Sprintf("decoder:L0:H%d:", h), 5*time.Second)
 			if err != nil {
 				tm.run("kill-session -t " + name)
 				return fmt.Errorf("switch to head %d: %w", h, err)
