@@ -756,19 +756,6 @@ var lnTable = sync.OnceValue(func() *[4097]float64 {
 	return t
 })
 
-// finite32 returns the first non-finite key of row, or -1, true, and
-// whether the row holds a negative value.
-func finite32(row []float32) (int, bool, bool) {
-	neg := false
-	for k, x := range row {
-		if math.Float32bits(x)&0x7f800000 == 0x7f800000 {
-			return k, false, false
-		}
-		neg = neg || x < 0
-	}
-	return -1, true, neg
-}
-
 // head computes everything about one (layer, batch item, head) in one pass
 // over its matrix and adds it to acc; it also copies the rows the redundancy
 // pass needs into st.
@@ -837,11 +824,11 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			}
 		} else {
 			row = w.a[q*K : (q+1)*K]
-			badK, fin, negRow = finite32(row)
+			badK, fin, negRow = kernels.Finite32(row)
 		}
 		if cfg.grad {
 			grow := w.g[q*K : (q+1)*K]
-			if _, gfin, _ := finite32(grow); fin && gfin {
+			if _, gfin, _ := kernels.Finite32(grow); fin && gfin {
 				var s float64
 				for k, x := range row {
 					s += float64(x) * float64(grow[k])

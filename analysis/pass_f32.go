@@ -110,7 +110,7 @@ func (w *worker) cells(ra *rowAcc, row []float32, rw *rowAt) {
 			allowedFast(ra, row, a, b, p, w.stats)
 		case r == RuleNone:
 			w.allowedRun(ra, row, a, b, p)
-		case allZero(row[a:b]):
+		case kernels.AllZero32(row[a:b]):
 			w.u.leak[r].forb += int64(b - a)
 			if x := float64(row[a]); x > ra.mx {
 				ra.mx = x
@@ -178,15 +178,6 @@ func (w *worker) rowRuns(rs *Rules, b, q int, allowRow []bool, full bool) ([]int
 		}
 	}
 	return ends, rules
-}
-
-func allZero(xs []float32) bool {
-	for _, x := range xs {
-		if x != 0 {
-			return false
-		}
-	}
-	return true
 }
 
 // allowedRun is the loop body of an allowed key, for keys [a, b), in rows

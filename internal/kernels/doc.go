@@ -1,9 +1,11 @@
 // Package kernels holds the hot loops of heed's attention pass over float16,
-// bfloat16 and float32 rows: row sums with the finite / negative flags,
-// the scan for non-finite values, the test that a forbidden run holds no
-// mass, the entropy and distance terms of a row (x ln x, x |k - p|) and the
-// Jensen-Shannon terms of two rows (m ln m). Package analysis calls them;
-// they import nothing of heed.
+// bfloat16 and float32 rows: row sums with the finite / negative flags
+// (Sums.Add16, Sum16, Add32, Sum32), the scan for non-finite values
+// (Finite16, Finite32), the test that a forbidden run holds no mass
+// (AllZero16, AllZero32), the entropy and distance terms of a row (x ln x,
+// x |k - p|), the widening of kept rows (Widen16) and the Jensen-Shannon
+// terms of two rows (m ln m, MlogmSum). Package analysis calls them; they
+// import nothing of heed.
 //
 // Every fast loop here has a plain reference loop beside it (the names
 // ending in Ref: one key at a time, in key order, the definition with

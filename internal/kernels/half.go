@@ -391,3 +391,46 @@ func Widen16Ref(t *Half, dst []float32, src []uint16) {
 		dst[k] = t.Val[h]
 	}
 }
+
+// Finite32 is Finite16 over float32 values: the first non-finite key of
+// row, or -1, true, and whether the row holds a negative value. A plain
+// loop: Finite16's way, four values a step without a branch and the flags
+// looked at once at the end, measured slower here (BenchmarkFinite32: 1.3
+// against 0.9 us a 1,024-key row), so there is no fast path to keep equal.
+func Finite32(row []float32) (int, bool, bool) {
+	neg := false
+	for k, x := range row {
+		if math.Float32bits(x)&0x7f800000 == 0x7f800000 {
+			return k, false, false
+		}
+		neg = neg || x < 0
+	}
+	return -1, true, neg
+}
+
+// AllZero32 is AllZero16 over float32 values: whether every value of xs
+// is +0 or -0, the magnitude bits of four values ORed a step.
+func AllZero32(xs []float32) bool {
+	n := len(xs) &^ 3
+	for i := 0; i < n; i += 4 {
+		if (math.Float32bits(xs[i])|math.Float32bits(xs[i+1])|math.Float32bits(xs[i+2])|math.Float32bits(xs[i+3]))&0x7fffffff != 0 {
+			return false
+		}
+	}
+	for _, x := range xs[n:] {
+		if x != 0 {
+			return false
+		}
+	}
+	return true
+}
+
+// AllZero32Ref is AllZero32 one key at a time.
+func AllZero32Ref(xs []float32) bool {
+	for _, x := range xs {
+		if x != 0 {
+			return false
+		}
+	}
+	return true
+}

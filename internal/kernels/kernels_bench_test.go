@@ -157,3 +157,29 @@ func BenchmarkWiden16(b *testing.B) {
 		}
 	})
 }
+
+// BenchmarkFinite32 times the plain loop Finite32 is (a branch-free loop
+// measured slower and was not kept).
+func BenchmarkFinite32(b *testing.B) {
+	_, fs, _ := benchRows(64)
+	b.SetBytes(4 * benchKeys)
+	for i := range b.N {
+		Finite32(fs[i&63])
+	}
+}
+
+func BenchmarkAllZero32(b *testing.B) {
+	zero := make([]float32, benchKeys)
+	b.Run("ref", func(b *testing.B) {
+		b.SetBytes(4 * benchKeys)
+		for range b.N {
+			AllZero32Ref(zero)
+		}
+	})
+	b.Run("fast", func(b *testing.B) {
+		b.SetBytes(4 * benchKeys)
+		for range b.N {
+			AllZero32(zero)
+		}
+	})
+}

@@ -259,3 +259,48 @@ func TestWiden16(t *testing.T) {
 		}
 	}
 }
+
+// Finite32 agrees with the Go standard library's math.IsInf / math.IsNaN
+// and AllZero32 with its reference loop on float32 rows
+// of every length with zeros of both signs, subnormals, a negative value,
+// an infinity or a NaN at a random key (IEEE 754 binary32: exponent bits
+// all set = Inf or NaN).
+func TestFloat32ScansEqualReference(t *testing.T) {
+	rng := rand.New(rand.NewPCG(13, 14))
+	odd := []float32{float32(math.Copysign(0, -1)), -0.25, float32(math.Inf(1)), float32(math.Inf(-1)), float32(math.NaN()), math.SmallestNonzeroFloat32}
+	for _, n := range lengths {
+		for rep := 0; rep < 40; rep++ {
+			row := make([]float32, n)
+			for k := range row {
+				if rng.IntN(3) > 0 {
+					row[k] = float32(rng.Float64() / float64(n+1))
+				}
+			}
+			if n > 0 && rep%7 > 0 {
+				row[rng.IntN(n)] = odd[rep%len(odd)]
+			}
+			k1, f1, n1 := Finite32(row)
+			k2, f2, n2 := -1, true, false
+			for k, x := range row {
+				if x64 := float64(x); math.IsInf(x64, 0) || math.IsNaN(x64) {
+					k2, f2, n2 = k, false, false
+					break
+				}
+				n2 = n2 || x < 0
+			}
+			if k1 != k2 || f1 != f2 || n1 != n2 {
+				t.Fatalf("n=%d rep=%d: Finite32 = %d %v %v, math.IsInf/IsNaN %d %v %v", n, rep, k1, f1, n1, k2, f2, n2)
+			}
+			if a, b := AllZero32(row), AllZero32Ref(row); a != b {
+				t.Fatalf("n=%d rep=%d: AllZero32 = %v, reference %v", n, rep, a, b)
+			}
+			zeros := make([]float32, n)
+			for i := range zeros {
+				zeros[i] = float32(math.Copysign(0, float64(rng.IntN(2)*2-1)))
+			}
+			if !AllZero32(zeros) || !AllZero32Ref(zeros) {
+				t.Fatalf("n=%d: a run of +0 and -0 is not all zero", n)
+			}
+		}
+	}
+}
