@@ -230,3 +230,41 @@ func rowStatNames() []string {
 	}
 	return ns
 }
+
+// Order returns the indices of vals in the order heads are ranked by a
+// statistic: ascending, or descending with desc; NaN (no value) last;
+// ties in index order. heed rank's --sort and the Survey's order use it.
+func Order(vals []float64, desc bool) []int {
+	order := make([]int, len(vals))
+	for i := range order {
+		order[i] = i
+	}
+	slices.SortStableFunc(order, func(a, b int) int {
+		va, vb := vals[a], vals[b]
+		if na, nb := math.IsNaN(va), math.IsNaN(vb); na || nb {
+			return cmpBool(na, nb)
+		}
+		if desc {
+			va, vb = vb, va
+		}
+		switch {
+		case va < vb:
+			return -1
+		case va > vb:
+			return 1
+		}
+		return 0
+	})
+	return order
+}
+
+// cmpBool orders false before true.
+func cmpBool(a, b bool) int {
+	switch {
+	case a == b:
+		return 0
+	case a:
+		return 1
+	}
+	return -1
+}

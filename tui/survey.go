@@ -197,31 +197,10 @@ func (s *surveyScreen) Refresh() {
 	}
 	s.order = nil
 	if s.ranked {
-		s.order = make([]int, len(d.Values))
-		for i := range s.order {
-			s.order[i] = i
-		}
-		// NaN last; ties by position
-		slices.SortStableFunc(s.order, func(a, b int) int {
-			va, vb := d.Values[a], d.Values[b]
-			switch {
-			case math.IsNaN(va) || math.IsNaN(vb):
-				return cmp.Compare(boolInt(math.IsNaN(va)), boolInt(math.IsNaN(vb)))
-			case st.lowFirst:
-				return cmp.Compare(va, vb)
-			}
-			return cmp.Compare(vb, va)
-		})
+		s.order = analysis.Order(d.Values, !st.lowFirst) // NaN last; ties by position
 		d.Order = s.order
 	}
 	c, l := views.Survey(d, s.w, s.h, m.sel.Layer, m.sel.Head, m.st)
 	s.layout = l
 	s.show(c)
-}
-
-func boolInt(b bool) int {
-	if b {
-		return 1
-	}
-	return 0
 }

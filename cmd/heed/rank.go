@@ -9,7 +9,6 @@ import (
 	"io"
 	"math"
 	"slices"
-	"sort"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -284,25 +283,24 @@ func (rf *rankFlags) report(res *analysis.Result, warnings []string, blocks []st
 // pruning plan made without them starts its own warning the same way.
 const noGradients = "no gradients in the export"
 
-// sortHeads sorts by a column (ascending, "-col" descending); heads without
-// a value go last; ties keep block, layer, head order.
+// sortHeads sorts by a column (ascending, "-col" descending; the order of
+// analysis.Order): heads without a value go last; ties keep block, layer,
+// head order.
 func sortHeads(hs []rankHead, col string) {
 	if col == "" || col == "block" {
 		return
 	}
 	desc := strings.HasPrefix(col, "-")
 	col = strings.TrimPrefix(col, "-")
-	sort.SliceStable(hs, func(i, j int) bool {
-		a, aok := hs[i].value(col)
-		b, bok := hs[j].value(col)
-		if aok != bok {
-			return aok
-		}
-		if desc {
-			return a > b
-		}
-		return a < b
-	})
+	vals := make([]float64, len(hs))
+	for i := range hs {
+		vals[i], _ = hs[i].value(col) // NaN when the head has none
+	}
+	sorted := make([]rankHead, len(hs))
+	for i, j := range analysis.Order(vals, desc) {
+		sorted[i] = hs[j]
+	}
+	copy(hs, sorted)
 }
 
 func writeRankCSV(w io.Writer, hs []rankHead) error {
