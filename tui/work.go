@@ -13,6 +13,7 @@ import (
 	tea "charm.land/bubbletea/v2"
 	"github.com/heed-dev/heed/analysis"
 	"github.com/heed-dev/heed/analysis/trace"
+	"github.com/heed-dev/heed/internal/prose"
 	"github.com/heed-dev/heed/loader"
 	"github.com/heed-dev/heed/views"
 )
@@ -207,7 +208,7 @@ func TraceData(ctx context.Context, ex *loader.Export, blockName string, batch, 
 		if td.Tokens == nil {
 			td.Side = res.Side
 			td.Predicted = predictedWords(res.Predicted)
-			td.Summary = res.Summary()
+			td.Summary = prose.TraceSummary(res)
 			n := 0
 			for _, t := range res.Tokens {
 				n = max(n, t.Index+1)

@@ -27,8 +27,6 @@ import (
 	"fmt"
 	"math"
 	"runtime"
-	"sort"
-	"strings"
 	"sync"
 
 	"github.com/heed-dev/heed/analysis"
@@ -150,7 +148,9 @@ type Result struct {
 	Position   int    `json:"position"`
 	// Predicted is what the model predicted there.
 	Predicted Prediction `json:"predicted"`
-	// Scale says how the shares are scaled, in words.
+	// Scale says how the shares are scaled, in words: set by whoever
+	// prints the result (heed trace: internal/prose's TraceScale), as this
+	// package words nothing.
 	Scale string `json:"scale"`
 }
 
@@ -749,63 +749,7 @@ func Trace(ctx context.Context, ex *loader.Export, opt Options) (*Result, error)
 	res.QueryToken = ex.Side(blk.QuerySide).Token(opt.Batch, res.Position)
 	res.Predicted = Predicted(ex, blk, opt.Batch, opt.Query)
 	res.LessIdentity = method == MethodGrad && blk.Kind != loader.KindCross
-	switch {
-	case res.Normalised:
-		res.Scale = "shares sum to 1 over the input tokens"
-	case res.LessIdentity:
-		res.Scale = "relevance the layers add (Chefer et al.'s R less its identity start), not normalised: % is of the total"
-	default:
-		res.Scale = "not normalised: % is of the total"
-	}
 	return res, nil
-}
-
-// Summary is one sentence on what the explanation says: the positions
-// with the largest shares among the keys the query may see, and how much
-// of the total they hold.
-func (r *Result) Summary() string {
-	// percentages as the columns show them: of 1 for normalised shares,
-	// of the total over the keys the query may see otherwise
-	var seenTotal, all float64
-	var seen []TokenShare
-	for _, t := range r.Tokens {
-		if math.IsNaN(t.Share) || t.Share <= 0 {
-			continue
-		}
-		all += t.Share
-		if t.Status == "" {
-			seenTotal += t.Share
-			seen = append(seen, t)
-		}
-	}
-	if seenTotal <= 0 {
-		return "no input token the query may see carries a share"
-	}
-	denom := seenTotal
-	if r.Normalised {
-		denom = all
-	}
-	sort.SliceStable(seen, func(i, j int) bool { return seen[i].Share > seen[j].Share })
-	n := min(3, len(seen))
-	var parts []string
-	var top float64
-	for _, t := range seen[:n] {
-		name := fmt.Sprintf("position %d (%.0f%%)", t.Index, 100*t.Share/denom)
-		if t.Token != "" {
-			name = fmt.Sprintf("%q (%d, %.0f%%)", t.Token, t.Index, 100*t.Share/denom)
-		}
-		parts = append(parts, name)
-		top += t.Share
-	}
-	what := fmt.Sprintf("query %d", r.Query)
-	if r.QueryToken != "" {
-		what = fmt.Sprintf("query %d %q", r.Query, r.QueryToken)
-	}
-	s := fmt.Sprintf("by %s, %s draws most on %s: %.0f%% together", r.Method, what, strings.Join(parts, ", "), 100*top/denom)
-	if leak := all - seenTotal; all > 0 && leak/all > 0.005 {
-		s += fmt.Sprintf("; %.0f%% reaches keys the query may not see (a leak)", 100*leak/all)
-	}
-	return s
 }
 
 // keyStatus says, for each key of the explained query, why the query may

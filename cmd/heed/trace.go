@@ -65,6 +65,7 @@ tiny. An explanation is evidence to confirm by re-evaluating the model.`,
 			if err != nil {
 				return traceAdvice(err)
 			}
+			res.Scale = prose.TraceScale(res)
 			if asJSON {
 				return writeJSON(cmd.OutOrStdout(), res)
 			}
@@ -142,7 +143,7 @@ func writeTraceText(w io.Writer, r *trace.Result) {
 		}
 		fmt.Fprintf(w, "%5d  %-*s  %-*s  %10s  %6s\n", t.Index, width, tok, bar, b, strconv.FormatFloat(t.Share, 'g', 4, 64), pct)
 	}
-	fmt.Fprintf(w, "summary: %s.\n", r.Summary())
+	fmt.Fprintf(w, "summary: %s.\n", prose.TraceSummary(r))
 	fmt.Fprintln(w, prose.Caveat)
 }
 

@@ -28,7 +28,7 @@ var allowed = map[string][]string{
 	"analysis/trace":      {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"analysis/plan":       {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
 	"analysis/invariance": {"analysis", "loader", "internal/bigmem", "internal/words", "internal/kernels"},
-	"internal/prose":      {"analysis", "analysis/invariance", "loader", "internal/words"},
+	"internal/prose":      {"analysis", "analysis/invariance", "analysis/trace", "loader", "internal/words"},
 	"picture":             {"views"},
 	"tui":                 {"analysis", "analysis/trace", "analysis/plan", "loader", "views", "internal/bigmem", "internal/words", "internal/prose"},
 	"share":               {},
