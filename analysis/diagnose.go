@@ -144,6 +144,10 @@ type Facts struct {
 	ZeroFrac float64 `json:"zero_frac,omitempty"`
 	// Leak is the pattern of the leak an only_some_* diagnosis locates.
 	Leak string `json:"leak,omitempty"`
+	// Examples: the examples that hold the block; InExamples: those in
+	// which the rule found a problem (0 when not counted: rule cut).
+	Examples   int64 `json:"examples,omitempty"`
+	InExamples int64 `json:"in_examples,omitempty"`
 	// Inv: the invariance check's facts (rule invariance only).
 	Inv *InvFacts `json:"invariance,omitempty"`
 }
@@ -192,7 +196,7 @@ type ItemChange struct {
 func possible(bp *BlockPartial, f *Finding, r Rule, o int) int64 {
 	var n int64
 	for _, b := range f.Batches {
-		n += bp.Geometry[b].Forbidden[r][o]
+		n += bp.Geometry[b].Leaky[r][o]
 	}
 	return n * int64(len(f.Layers)*len(f.Heads))
 }
@@ -209,7 +213,7 @@ func couldLeak(bp *BlockPartial, f *Finding, r Rule) int64 {
 	}
 	var g int64
 	for _, b := range f.Batches {
-		for _, c := range bp.Geometry[b].Forbidden[r] {
+		for _, c := range bp.Geometry[b].Leaky[r] {
 			g += c
 		}
 	}
@@ -240,7 +244,8 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 		f := &fs[i]
 		d := Diagnosis{Block: bp.Name, Rule: f.Rule, Layers: f.Layers, Heads: f.Heads, Batches: f.Batches, At: f.Worst,
 			Facts: Facts{BlockLayers: bp.Layers, BlockHeads: bp.Heads, BlockBatch: bp.Batch,
-				Mass: f.Mass, Cells: f.Cells, Max: f.Max, Rows: f.Rows, JudgedRows: f.JudgedRows, Offsets: f.Offsets, PadNaNLayer: -1}}
+				Mass: f.Mass, Cells: f.Cells, Max: f.Max, Rows: f.Rows, JudgedRows: f.JudgedRows, Offsets: f.Offsets, PadNaNLayer: -1,
+				Examples: bp.Examples, InExamples: f.InExamples}}
 		var could int64 // cells the rule forbids that could have leaked
 		if f.Rule.IsMask() {
 			could = couldLeak(bp, f, f.Rule)
@@ -252,8 +257,11 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 		}
 		switch f.Rule {
 		case RuleCausal:
-			allowed := f.agg.AllowMass.Float64()
-			self := mean(f.agg.Self, f.agg.SelfRows)
+			// of the examples where these units leak (a clean example of
+			// the set would add allowed mass)
+			in := &f.agg.InCausalLeak
+			allowed := in.AllowMass.Float64()
+			self := mean(in.Self, in.SelfRows)
 			maxOff := 0
 			if n := len(f.Offsets); n > 0 {
 				maxOff = f.Offsets[n-1].Offset
@@ -309,9 +317,9 @@ func diagnose(bp *BlockPartial, fs []Finding) []Diagnosis {
 			a := &f.agg
 			d.Facts.DType = bp.DType
 			d.Facts.SumMin, d.Facts.SumMax, d.Facts.SumMean = a.SumMin, a.SumMax, mean(a.RowSum, a.Rows)
-			zf := 0.0
-			if a.AllowCells > 0 {
-				zf = float64(a.AllowZeros) / float64(a.AllowCells)
+			zf := 0.0 // of the examples where these units have rows off their sum
+			if in := &a.InSumOff; in.AllowCells > 0 {
+				zf = float64(in.AllowZeros) / float64(in.AllowCells)
 			}
 			d.Facts.ZeroFrac = zf
 			// after dropout p the kept weights are scaled by 1/(1-p): rows that lost
@@ -380,7 +388,8 @@ func whereDiagnosis(bp *BlockPartial, f *Finding, what Diagnosis) (Diagnosis, bo
 		return Diagnosis{}, false
 	}
 	d := Diagnosis{Block: bp.Name, Rule: f.Rule, Layers: f.Layers, Heads: f.Heads, Batches: f.Batches, At: f.Worst,
-		Facts: Facts{BlockLayers: bp.Layers, BlockHeads: bp.Heads, BlockBatch: bp.Batch, Leak: what.Pattern, PadNaNLayer: -1}}
+		Facts: Facts{BlockLayers: bp.Layers, BlockHeads: bp.Heads, BlockBatch: bp.Batch, Leak: what.Pattern, PadNaNLayer: -1,
+			Examples: bp.Examples, InExamples: f.InExamples}}
 	switch {
 	case !allH:
 		d.Pattern = PatOnlySomeHeads

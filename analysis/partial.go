@@ -11,7 +11,10 @@ import (
 // 2: padding keys left out of the forbidden-cell counts, options no_stats.
 // 3: coverage (who gave the kind, inferred masks, query positions, axes,
 // compute dtype) and rows summing within a lower precision's rounding.
-const PartialVersion = "heed-partial/3"
+// 4: per block, the examples and those in which each rule found a problem;
+// per batch item, the cells the rules forbid in the examples where they
+// leaked (GeometryAcc.Leaky).
+const PartialVersion = "heed-partial/4"
 
 // Partial is the exact state of an analysis: per block, per (layer, head,
 // batch item) sums and counts over every example seen. It is what a shard of
@@ -92,6 +95,12 @@ type BlockPartial struct {
 	// Geometry holds, per batch item, what the rules forbid independently of
 	// the values (for coverage in the diagnosis), summed over examples.
 	Geometry []GeometryAcc `json:"geometry"`
+	// Examples counts the examples that hold the block; ProblemExamples[r]
+	// those in which rule r found a problem in some unit (a leaking cell, a
+	// NaN row, a row off its sum, a negative cell; not counted for RuleCut,
+	// which is judged over all rows at the end).
+	Examples        int64           `json:"examples"`
+	ProblemExamples [numRules]int64 `json:"problem_examples"`
 }
 
 // Unit returns the accumulator of (layer, head, batch).
@@ -202,6 +211,14 @@ type HeadAcc struct {
 
 	Leaks [numMask]LeakAcc `json:"leaks"` // indexed by Rule; [0] unused
 
+	// InCausalLeak and InSumOff: what the diagnosis reads of the examples
+	// in which this unit leaked under the causal rule, and in which it had
+	// rows off their sum, so that the clean examples of a set do not
+	// dilute it (an inverted mask: the allowed mass and the diagonal
+	// share; train mode: the share of allowed cells exactly 0).
+	InCausalLeak ExampleSlice `json:"in_causal_leak"`
+	InSumOff     ExampleSlice `json:"in_sum_off"`
+
 	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (rules_cut.go)
 
 	// Extra holds the statistics declared with a row function
@@ -276,11 +293,39 @@ func (c Cell) first(w Cell) bool {
 	return c.Key < w.Key
 }
 
+// ExampleSlice holds a unit's sums over some of its examples only
+// (HeadAcc.InCausalLeak, InSumOff).
+type ExampleSlice struct {
+	AllowMass  Sum   `json:"allowed_mass"`
+	AllowCells int64 `json:"allowed_cells"`
+	AllowZeros int64 `json:"allowed_zeros"`
+	Self       Sum   `json:"self"`
+	SelfRows   int64 `json:"self_rows"`
+}
+
+// sliceOf is what an ExampleSlice takes of one example's unit.
+func sliceOf(a *HeadAcc) ExampleSlice {
+	return ExampleSlice{AllowMass: a.AllowMass, AllowCells: a.AllowCells, AllowZeros: a.AllowZeros, Self: a.Self, SelfRows: a.SelfRows}
+}
+
+func (e *ExampleSlice) merge(o *ExampleSlice) {
+	e.AllowMass.Merge(o.AllowMass)
+	e.AllowCells += o.AllowCells
+	e.AllowZeros += o.AllowZeros
+	e.Self.Merge(o.Self)
+	e.SelfRows += o.SelfRows
+}
+
 // GeometryAcc counts, for one batch item over examples, the cells each
 // positional rule forbids in judged rows, by offset k - q.
 type GeometryAcc struct {
 	Rows      int64                  `json:"rows"`
 	Forbidden [numMask]map[int]int64 `json:"forbidden"`
+	// Leaky is Forbidden over the examples in which the rule leaked at
+	// this batch item only: how many cells could have leaked in the
+	// examples that leak, which the diagnosis compares the leaking cells
+	// with (a clean example of a set does not dilute a shifted mask).
+	Leaky [numMask]map[int]int64 `json:"leaky"`
 	// Reach counts the judged rows the cut check reads (cross blocks, prefix
 	// rows) by the offset d = last allowed key - p (rules_cut.go).
 	Reach map[int]int64 `json:"reach,omitempty"`
@@ -329,6 +374,8 @@ func (a *HeadAcc) Merge(o *HeadAcc) {
 	a.AllowCells += o.AllowCells
 	a.AllowZeros += o.AllowZeros
 	a.AllowMass.Merge(o.AllowMass)
+	a.InCausalLeak.merge(&o.InCausalLeak)
+	a.InSumOff.merge(&o.InSumOff)
 	if o.NaNWorst.first(a.NaNWorst) {
 		a.NaNWorst = o.NaNWorst
 	}
@@ -378,6 +425,7 @@ func (g *GeometryAcc) merge(o *GeometryAcc) {
 	g.Rows += o.Rows
 	for r := range g.Forbidden {
 		g.Forbidden[r] = mergeCounts(g.Forbidden[r], o.Forbidden[r])
+		g.Leaky[r] = mergeCounts(g.Leaky[r], o.Leaky[r])
 	}
 	g.Reach = mergeCounts(g.Reach, o.Reach)
 }
@@ -420,18 +468,65 @@ func (p *Partial) Merge(o *Partial) error {
 			p.Blocks = append(p.Blocks, cloneBlock(ob))
 			continue
 		}
-		pb.absorb(ob)
-		for i := range ob.Units {
-			for b := range ob.Units[i] {
-				pb.Units[i][b].Merge(&ob.Units[i][b])
-			}
-		}
-		for b := range ob.Geometry {
-			pb.Geometry[b].merge(&ob.Geometry[b])
-		}
+		pb.merge(ob)
 	}
 	sort.Slice(p.Blocks, func(i, j int) bool { return p.Blocks[i].Name < p.Blocks[j].Name })
 	return nil
+}
+
+// merge adds ob (the same block of other examples, of the same shape) into
+// bp.
+func (bp *BlockPartial) merge(ob *BlockPartial) {
+	bp.absorb(ob)
+	for i := range ob.Units {
+		for b := range ob.Units[i] {
+			bp.Units[i][b].Merge(&ob.Units[i][b])
+		}
+	}
+	for b := range ob.Geometry {
+		bp.Geometry[b].merge(&ob.Geometry[b])
+	}
+	bp.Examples += ob.Examples
+	for r := range bp.ProblemExamples {
+		bp.ProblemExamples[r] += ob.ProblemExamples[r]
+	}
+}
+
+// exampleDone records, in the block of one example just analysed, which
+// rules found a problem in it and where: the example counts (Examples,
+// ProblemExamples), the cells that could leak at the batch items where a
+// mask rule leaked (GeometryAcc.Leaky), and per unit the slices of it the
+// diagnosis reads (InCausalLeak, InSumOff).
+func (bp *BlockPartial) exampleDone() {
+	bp.Examples = 1
+	var found [numRules]bool
+	for l := 0; l < bp.Layers; l++ {
+		for h := 0; h < bp.Heads; h++ {
+			for b := 0; b < bp.Batch; b++ {
+				u := bp.Unit(l, h, b)
+				for r := RuleCausal; r < numRules; r++ {
+					if problemCount(u, r) == 0 {
+						continue
+					}
+					found[r] = true
+					if g := &bp.Geometry[b]; r.IsMask() && g.Leaky[r] == nil {
+						g.Leaky[r] = mergeCounts(nil, g.Forbidden[r])
+					}
+				}
+				if u.Leaks[RuleCausal].Cells > 0 {
+					u.InCausalLeak = sliceOf(u)
+				}
+				if u.SumBadRows > 0 {
+					u.InSumOff = sliceOf(u)
+				}
+			}
+		}
+	}
+	for r, f := range found {
+		if f && Rule(r) != RuleCut {
+			bp.ProblemExamples[r] = 1
+		}
+	}
 }
 
 func (p *Partial) block(name string) *BlockPartial {
@@ -515,6 +610,22 @@ func (p *Partial) Validate() error {
 			return fmt.Errorf("partial block %s: %d units for %d layers x %d heads", bp.Name, len(bp.Units), bp.Layers, bp.Heads)
 		case len(bp.Geometry) != bp.Batch:
 			return fmt.Errorf("partial block %s: geometry of %d batch items, %d declared", bp.Name, len(bp.Geometry), bp.Batch)
+		case bp.Examples < 0 || bp.Examples > p.Examples:
+			return fmt.Errorf("partial block %s: %d examples of the partial's %d", bp.Name, bp.Examples, p.Examples)
+		}
+		for r, n := range bp.ProblemExamples {
+			if n < 0 || n > bp.Examples {
+				return fmt.Errorf("partial block %s: rule %s found problems in %d of %d examples", bp.Name, Rule(r), n, bp.Examples)
+			}
+		}
+		for b := range bp.Geometry {
+			for r := range bp.Geometry[b].Leaky {
+				for o, n := range bp.Geometry[b].Leaky[r] {
+					if n < 0 || n > bp.Geometry[b].Forbidden[r][o] {
+						return fmt.Errorf("partial block %s: batch item %d: %d cells of rule %s could leak at offset %d, of %d forbidden", bp.Name, b, n, Rule(r), o, bp.Geometry[b].Forbidden[r][o])
+					}
+				}
+			}
 		}
 		seen[bp.Name] = true
 		for j, u := range bp.Units {

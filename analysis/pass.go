@@ -347,22 +347,30 @@ func (p *Partial) addBlock(ctx context.Context, in blockIn, opt Options, prog *p
 	if blk.Queries <= 0 || blk.Keys <= 0 || blk.Layers <= 0 || blk.Heads <= 0 || blk.Batch <= 0 {
 		return fmt.Errorf("analysis: block %s: empty shape", blk.Name)
 	}
+	// the example's block is analysed on its own, then added to the set's
+	// as a shard's is (merge): so what this example found is known
+	// (exampleDone) and the sums are the same as adding it in place
 	bp := p.block(blk.Name)
 	nb := newBlockPartial(blk, rules, opt)
+	if bp != nil {
+		if why := bp.sameShape(nb); why != "" {
+			return fmt.Errorf("analysis: %s: block %s: %s (every example must have the same layout)", example, blk.Name, why)
+		}
+	}
+	for b := range nb.Geometry {
+		nb.Geometry[b] = geometry(rules, b)
+	}
+	if err := runBlock(ctx, nb, in, rules, opt, prog); err != nil {
+		return err
+	}
+	nb.exampleDone()
 	if bp == nil {
-		bp = nb
-		p.Blocks = append(p.Blocks, bp)
+		p.Blocks = append(p.Blocks, nb)
 		sortBlocks(p.Blocks)
-	} else if why := bp.sameShape(nb); why != "" {
-		return fmt.Errorf("analysis: %s: block %s: %s (every example must have the same layout)", example, blk.Name, why)
 	} else {
-		bp.absorb(nb)
+		bp.merge(nb)
 	}
-	for b := 0; b < blk.Batch; b++ {
-		g := geometry(rules, b)
-		bp.Geometry[b].merge(&g)
-	}
-	return runBlock(ctx, bp, in, rules, opt, prog)
+	return nil
 }
 
 func sortBlocks(bs []*BlockPartial) {
@@ -528,18 +536,20 @@ type leakUnit struct {
 }
 
 // layerStore keeps (possibly strided) rows of every head of one (layer,
-// batch item) for the redundancy pass, a row's heads side by side (st.at):
-// the pass over pairs takes one row at a time, whose heads' rows then stay
-// in the caches (with a head's rows side by side instead, the H rows of
-// one stored row lay a power of two apart and evicted each other).
+// batch item) for the redundancy pass, a head's rows side by side (st.at,
+// st.vrow): each worker writes its own head's, and a layout with a row's
+// heads side by side had two workers share cache lines of the facts and
+// measured slower on short rows. The pass over pairs takes a run of rows
+// at a time and every pair of heads at each, so a row's H heads stay in
+// the caches while the H(H-1)/2 pairs read them.
 type layerStore struct {
-	stride, rows, keys, heads int
-	vals                      []float32 // [row][head][key]
-	ent                       []float64 // [row][head]
-	ok                        []bool    // [row][head]: judged and finite
-	neg                       []bool    // [row][head]: holds a negative value
-	lo, hi                    []int32   // [row][head]: first and last nonzero key
-	div                       []float64 // [pair][row]: the pair's divergence at the row, -1 when not both judged and finite
+	stride, rows, keys int
+	vals               []float32 // [head][row][key]
+	ent                []float64 // [head][row]
+	ok                 []bool    // [head][row]: judged and finite
+	neg                []bool    // [head][row]: holds a negative value
+	lo, hi             []int32   // [head][row]: first and last nonzero key
+	div                []float64 // [pair][row]: the pair's divergence at the row, -1 when not both judged and finite
 }
 
 func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, opt Options, prog *progress) error {
@@ -586,7 +596,7 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 		frees = append(frees, free)
 		return b
 	}
-	st := &layerStore{stride: stride, rows: nr, keys: K, heads: H,
+	st := &layerStore{stride: stride, rows: nr, keys: K,
 		vals: big(H * nr * K), ent: make([]float64, H*nr), ok: make([]bool, H*nr), neg: make([]bool, H*nr),
 		lo: make([]int32, H*nr), hi: make([]int32, H*nr)}
 	sumTol, sumLoose := RowSumTolerance(blk, opt.SumTol)
@@ -629,9 +639,12 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 			n++
 		}
 	}
-	pairRows := nr // the rows of the pair pass (none without it)
+	// the pair pass's tasks: runs of rows, about four per worker (a task a
+	// row cost more in scheduling than it gained on short rows)
+	chunk := max(1, nr/(4*nw))
+	pairTasks := (nr + chunk - 1) / chunk
 	if opt.NoRedundancy {
-		pairs, pairRows = 0, 0
+		pairs, pairTasks = 0, 0
 	}
 	st.div = make([]float64, pairs*nr)
 	for l := 0; l < blk.Layers; l++ {
@@ -645,11 +658,13 @@ func runBlock(ctx context.Context, bp *BlockPartial, in blockIn, rules *Rules, o
 			if err != nil {
 				return err
 			}
-			// every pair of heads at one row per task: the heads' rows
-			// are read from the caches, where a pair per task read two
+			// every pair of heads at each row of a task's run: the heads'
+			// rows are read from the caches, where a pair per task read two
 			// heads' rows from memory for each of the H(H-1)/2 pairs
-			err = parallel(ctx, workers, pairRows, opt.Background, opt.Yield, func(w *worker, r int) error {
-				st.pairsAt(r, pi, pj)
+			err = parallel(ctx, workers, pairTasks, opt.Background, opt.Yield, func(w *worker, t int) error {
+				for r := t * chunk; r < min(nr, (t+1)*chunk); r++ {
+					st.pairsAt(r, pi, pj)
+				}
 				return nil
 			})
 			if err != nil {
@@ -953,11 +968,11 @@ func (w *worker) head(rd reader, rules *Rules, cfg passConfig, acc *HeadAcc, st 
 			u.negMass += negm
 		}
 		if keep {
-			i := st.at(h, sr)
+			i, v := st.at(h, sr), st.vrow(h, sr)
 			if rt != nil {
-				kernels.Widen16(rt, st.vals[i*K:(i+1)*K], row16) // a finite row
+				kernels.Widen16(rt, v, row16) // a finite row
 			} else {
-				copy(st.vals[i*K:(i+1)*K], row)
+				copy(v, row)
 			}
 			st.ent[i] = ent
 			st.ok[i] = true
@@ -1060,14 +1075,20 @@ func (w *worker) commit(acc *HeadAcc, cfg passConfig) {
 	}
 }
 
-// at is the index of head h's stored row r.
-func (st *layerStore) at(h, r int) int { return r*st.heads + h }
+// at is the index of the facts of head h's stored row r.
+func (st *layerStore) at(h, r int) int { return h*st.rows + r }
+
+// vrow returns the values of head h's stored row r.
+func (st *layerStore) vrow(h, r int) []float32 {
+	i := (h*st.rows + r) * st.keys
+	return st.vals[i : i+st.keys]
+}
 
 // pairsAt sets the divergence of every pair of heads (pi[n], pj[n]) at
 // row r of the store.
 func (st *layerStore) pairsAt(r int, pi, pj []int) {
 	for n := range pi {
-		d, ok := st.js(st.at(pi[n], r), st.at(pj[n], r))
+		d, ok := st.js(pi[n], pj[n], r)
 		if !ok {
 			d = -1
 		}
@@ -1089,15 +1110,15 @@ func (st *layerStore) pairSum(n int) (float64, int64) {
 	return sum, cnt
 }
 
-// js returns the Jensen-Shannon divergence between rows a and b of the
-// store ([head][row] indices), and false when either is not judged and
-// finite. JS(P, Q) = H(M) - (H(P) + H(Q))/2 with M = (P+Q)/2 (Clark et al.
-// 2019, sec. 6); rows are used as exported, not renormalised.
-func (st *layerStore) js(a, b int) (float64, bool) {
+// js returns the Jensen-Shannon divergence between heads i and j at stored
+// row r, and false when either row is not judged and finite. JS(P, Q) =
+// H(M) - (H(P) + H(Q))/2 with M = (P+Q)/2 (Clark et al. 2019, sec. 6);
+// rows are used as exported, not renormalised.
+func (st *layerStore) js(i, j, r int) (float64, bool) {
+	a, b := st.at(i, r), st.at(j, r)
 	if !st.ok[a] || !st.ok[b] {
 		return 0, false
 	}
-	K := st.keys
 	// only keys where either row is nonzero contribute to H(M)
 	lo, hi := min(st.lo[a], st.lo[b]), max(st.hi[a], st.hi[b])
 	if st.lo[a] < 0 {
@@ -1107,7 +1128,7 @@ func (st *layerStore) js(a, b int) (float64, bool) {
 	}
 	var hm float64
 	if lo >= 0 {
-		pa, pb := st.vals[a*K+int(lo):a*K+int(hi)+1], st.vals[b*K+int(lo):b*K+int(hi)+1]
+		pa, pb := st.vrow(i, r)[lo:hi+1], st.vrow(j, r)[lo:hi+1]
 		if st.neg[a] || st.neg[b] {
 			hm = kernels.MlogmSumSlow(pa, pb)
 		} else {

@@ -495,6 +495,9 @@ type Finding struct {
 	Rows       int64         `json:"rows"`
 	JudgedRows int64         `json:"judged_rows"`
 	Offsets    []OffsetCount `json:"offsets,omitempty"`
+	// InExamples counts the examples in which the rule found a problem in
+	// this block (BlockPartial.ProblemExamples; 0 for RuleCut, not counted).
+	InExamples int64 `json:"in_examples,omitempty"`
 	// Worst is the cell to look at first (the largest leak, the first NaN
 	// row, the row furthest from summing to 1).
 	Worst Location `json:"worst"`
@@ -504,16 +507,23 @@ type Finding struct {
 
 type triple struct{ l, h, b int }
 
-func hasProblem(a *HeadAcc, r Rule) bool {
+func hasProblem(a *HeadAcc, r Rule) bool { return problemCount(a, r) > 0 }
+
+// problemCount is what a unit counts of rule r's problems: NaN rows, rows
+// off their sum, negative cells, a mask rule's leaking cells (0 for
+// RuleCut, judged over all rows: rules_cut.go).
+func problemCount(a *HeadAcc, r Rule) int64 {
 	switch r {
 	case RuleNaNRows:
-		return a.NaNRows > 0
+		return a.NaNRows
 	case RuleRowSum:
-		return a.SumBadRows > 0
+		return a.SumBadRows
 	case RuleNegative:
-		return a.NegCells > 0
+		return a.NegCells
+	case RuleCut:
+		return 0
 	}
-	return a.Leaks[r].Cells > 0
+	return a.Leaks[r].Cells
 }
 
 // findings groups the problem units of every rule into products of layer,
@@ -589,7 +599,7 @@ func findings(bp *BlockPartial) []Finding {
 }
 
 func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding {
-	f := Finding{Block: bp.Name, Rule: r, Layers: layers, Heads: heads, Batches: batches}
+	f := Finding{Block: bp.Name, Rule: r, Layers: layers, Heads: heads, Batches: batches, InExamples: bp.ProblemExamples[r]}
 	var worst Cell
 	var wl, wh, wb int
 	var first Cell

@@ -194,10 +194,10 @@ func TestJSDocExamples(t *testing.T) {
 	}
 	for _, c := range cases {
 		K := len(c.p)
-		st := &layerStore{stride: 1, rows: 1, keys: K, heads: 2, vals: append(append([]float32{}, c.p...), c.q...),
+		st := &layerStore{stride: 1, rows: 1, keys: K, vals: append(append([]float32{}, c.p...), c.q...),
 			ent: []float64{entropy32(c.p), entropy32(c.q)}, ok: []bool{true, true}, neg: []bool{false, false},
 			lo: []int32{0, 0}, hi: []int32{int32(K - 1), int32(K - 1)}}
-		got, ok := st.js(0, 1)
+		got, ok := st.js(0, 1, 0)
 		if !ok || !near(got, c.want, 1e-12) {
 			t.Errorf("JS(%v, %v) = %v, want %v", c.p, c.q, got, c.want)
 		}

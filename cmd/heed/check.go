@@ -262,6 +262,9 @@ func writeCheckText(w io.Writer, res *analysis.Result, warnings []string) {
 			case at.Key >= 0:
 				loc += fmt.Sprintf(" (weight %.3g)", d.At.Value)
 			}
+			if res.Examples > 1 && at.Example != "" {
+				loc += " in " + at.Example // which file of the set
+			}
 			fmt.Fprintf(w, "   look at:  %s\n", loc)
 			fmt.Fprintf(w, "   check:    %s\n", d.Check)
 			for _, e := range d.Evidence {

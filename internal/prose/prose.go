@@ -105,11 +105,17 @@ func which(xs []int, total int, one, many string) string {
 	return many + " " + words.List(xs)
 }
 
-// where names the block and the finding's layers, heads and batch items.
+// where names the block and the finding's layers, heads and batch items,
+// and of a set of examples, when the rule found nothing in some of them,
+// how many it found it in.
 func where(d *analysis.Diagnosis) string {
 	f := &d.Facts
-	return fmt.Sprintf("%s (%s, %s, %s)", d.Block, which(d.Layers, f.BlockLayers, "layer", "layers"),
-		which(d.Heads, f.BlockHeads, "head", "heads"), which(d.Batches, f.BlockBatch, "batch item", "batch items"))
+	ex := ""
+	if f.InExamples > 0 && f.InExamples < f.Examples {
+		ex = fmt.Sprintf("; in %d of %d examples", f.InExamples, f.Examples)
+	}
+	return fmt.Sprintf("%s (%s, %s, %s%s)", d.Block, which(d.Layers, f.BlockLayers, "layer", "layers"),
+		which(d.Heads, f.BlockHeads, "head", "heads"), which(d.Batches, f.BlockBatch, "batch item", "batch items"), ex)
 }
 
 // OffsetSummary writes offsets k - q and their counts: all of them up to 8,
