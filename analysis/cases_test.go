@@ -207,15 +207,10 @@ func TestCases(t *testing.T) {
 // export names the same patterns with the same values as alone, and each
 // finding counts 1 problem example of 2. Before, the clean example's cells
 // counted among those that could leak, and a shifted mask became a
-// generic leak. Not for the cut rule (cross_causal, prefix_causal): it is
-// judged over all rows of the set at the end, so a clean example does
-// dilute it.
+// generic leak; its rows hid a cut (cross_causal, prefix_causal) entirely.
 func TestCleanExampleDoesNotDilute(t *testing.T) {
 	exp := loadExpected(t)
 	for name, c := range exp.Cases {
-		if name == "cross_causal" || name == "prefix_causal" {
-			continue
-		}
 		t.Run(name, func(t *testing.T) {
 			alone := analyzePaths(t, DefaultOptions(), filepath.Join(casesDir, c.Bad)).Result()
 			pair := analyzePaths(t, DefaultOptions(), filepath.Join(casesDir, c.Bad), filepath.Join(casesDir, c.Good)).Result()
@@ -230,12 +225,12 @@ func TestCleanExampleDoesNotDilute(t *testing.T) {
 				t.Errorf("alone: %v\nwith the good export: %v", a, p)
 			}
 			for _, f := range pair.Findings {
-				if f.Rule != RuleCut && f.InExamples != 1 {
+				if f.InExamples != 1 {
 					t.Errorf("%s: problems in %d examples, want 1 (of 2)", describe(f), f.InExamples)
 				}
 			}
 			for _, d := range pair.Diagnoses {
-				if d.Rule != RuleCut && (d.Facts.Examples != 2 || d.Facts.InExamples != 1) {
+				if d.Facts.Examples != 2 || d.Facts.InExamples != 1 {
 					t.Errorf("%s %s: facts say %d of %d examples, want 1 of 2", d.Block, d.Pattern, d.Facts.InExamples, d.Facts.Examples)
 				}
 			}

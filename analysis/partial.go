@@ -97,8 +97,7 @@ type BlockPartial struct {
 	Geometry []GeometryAcc `json:"geometry"`
 	// Examples counts the examples that hold the block; ProblemExamples[r]
 	// those in which rule r found a problem in some unit (a leaking cell, a
-	// NaN row, a row off its sum, a negative cell; not counted for RuleCut,
-	// which is judged over all rows at the end).
+	// NaN row, a row off its sum, a negative cell, a cut unit).
 	Examples        int64           `json:"examples"`
 	ProblemExamples [numRules]int64 `json:"problem_examples"`
 }
@@ -218,6 +217,8 @@ type HeadAcc struct {
 	// share; train mode: the share of allowed cells exactly 0).
 	InCausalLeak ExampleSlice `json:"in_causal_leak"`
 	InSumOff     ExampleSlice `json:"in_sum_off"`
+	// InCut is Cut over the examples in which this unit was cut.
+	InCut CutAcc `json:"in_cut"`
 
 	Cut CutAcc `json:"cut"` // rows cut off before keys they may see (rules_cut.go)
 
@@ -327,8 +328,10 @@ type GeometryAcc struct {
 	// with (a clean example of a set does not dilute a shifted mask).
 	Leaky [numMask]map[int]int64 `json:"leaky"`
 	// Reach counts the judged rows the cut check reads (cross blocks, prefix
-	// rows) by the offset d = last allowed key - p (rules_cut.go).
-	Reach map[int]int64 `json:"reach,omitempty"`
+	// rows) by the offset d = last allowed key - p (rules_cut.go); CutReach
+	// the same over the examples in which a unit of this batch item was cut.
+	Reach    map[int]int64 `json:"reach,omitempty"`
+	CutReach map[int]int64 `json:"cut_reach,omitempty"`
 }
 
 // Merge adds o into a.
@@ -376,6 +379,7 @@ func (a *HeadAcc) Merge(o *HeadAcc) {
 	a.AllowMass.Merge(o.AllowMass)
 	a.InCausalLeak.merge(&o.InCausalLeak)
 	a.InSumOff.merge(&o.InSumOff)
+	a.InCut.merge(&o.InCut)
 	if o.NaNWorst.first(a.NaNWorst) {
 		a.NaNWorst = o.NaNWorst
 	}
@@ -428,6 +432,7 @@ func (g *GeometryAcc) merge(o *GeometryAcc) {
 		g.Leaky[r] = mergeCounts(g.Leaky[r], o.Leaky[r])
 	}
 	g.Reach = mergeCounts(g.Reach, o.Reach)
+	g.CutReach = mergeCounts(g.CutReach, o.CutReach)
 }
 
 // sameShape reports why two block partials cannot be merged ("" when they can).
@@ -495,8 +500,9 @@ func (bp *BlockPartial) merge(ob *BlockPartial) {
 // exampleDone records, in the block of one example just analysed, which
 // rules found a problem in it and where: the example counts (Examples,
 // ProblemExamples), the cells that could leak at the batch items where a
-// mask rule leaked (GeometryAcc.Leaky), and per unit the slices of it the
-// diagnosis reads (InCausalLeak, InSumOff).
+// mask rule leaked (GeometryAcc.Leaky) and where a unit was cut
+// (CutReach), and per unit the slices of it the diagnosis reads
+// (InCausalLeak, InSumOff, InCut).
 func (bp *BlockPartial) exampleDone() {
 	bp.Examples = 1
 	var found [numRules]bool
@@ -519,11 +525,19 @@ func (bp *BlockPartial) exampleDone() {
 				if u.SumBadRows > 0 {
 					u.InSumOff = sliceOf(u)
 				}
+				if g := &bp.Geometry[b]; isCut(&u.Cut, g.Reach) { // rules_cut.go
+					found[RuleCut] = true
+					u.InCut = CutAcc{}
+					u.InCut.merge(&u.Cut)
+					if g.CutReach == nil {
+						g.CutReach = mergeCounts(nil, g.Reach)
+					}
+				}
 			}
 		}
 	}
 	for r, f := range found {
-		if f && Rule(r) != RuleCut {
+		if f {
 			bp.ProblemExamples[r] = 1
 		}
 	}

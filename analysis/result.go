@@ -496,7 +496,7 @@ type Finding struct {
 	JudgedRows int64         `json:"judged_rows"`
 	Offsets    []OffsetCount `json:"offsets,omitempty"`
 	// InExamples counts the examples in which the rule found a problem in
-	// this block (BlockPartial.ProblemExamples; 0 for RuleCut, not counted).
+	// this block (BlockPartial.ProblemExamples).
 	InExamples int64 `json:"in_examples,omitempty"`
 	// Worst is the cell to look at first (the largest leak, the first NaN
 	// row, the row furthest from summing to 1).
@@ -511,7 +511,7 @@ func hasProblem(a *HeadAcc, r Rule) bool { return problemCount(a, r) > 0 }
 
 // problemCount is what a unit counts of rule r's problems: NaN rows, rows
 // off their sum, negative cells, a mask rule's leaking cells (0 for
-// RuleCut, judged over all rows: rules_cut.go).
+// RuleCut, judged per example by exampleDone: rules_cut.go).
 func problemCount(a *HeadAcc, r Rule) int64 {
 	switch r {
 	case RuleNaNRows:
@@ -614,7 +614,7 @@ func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding
 				case r == RuleNaNRows || r == RuleCut:
 					c = u.NaNWorst
 					if r == RuleCut {
-						c = u.Cut.First
+						c = u.InCut.First
 					}
 					// the first NaN (cut) row in layer order: lowest layer wins
 					if c.Set && !first.Set {
@@ -648,7 +648,7 @@ func makeFinding(bp *BlockPartial, r Rule, layers, heads, batches []int) Finding
 	case RuleCut:
 		// no forbidden mass: the mask took mass away from allowed keys,
 		// and how much the export cannot tell
-		f.Rows, f.Cells, f.Offsets = a.Cut.Rows, a.Cut.Cells, stopsList(a.Cut.Stops)
+		f.Rows, f.Cells, f.Offsets = a.InCut.Rows, a.InCut.Cells, stopsList(a.InCut.Stops)
 	default:
 		la := &a.Leaks[r]
 		f.Mass, f.Cells, f.Rows, f.Max = la.Mass.Float64(), la.Cells, la.Rows, worst.Value

@@ -202,24 +202,39 @@ func cutOffset(stops map[int]int64) (int, int64) {
 }
 
 // couldStop counts the rows of the batch items (per layer and head) that
-// have an allowed key after p + c.
+// have an allowed key after p + c, over the examples in which a unit of
+// the batch item was cut (GeometryAcc.CutReach).
 func couldStop(bp *BlockPartial, batches []int, c int) int64 {
 	var n int64
 	for _, b := range batches {
-		for d, m := range bp.Geometry[b].Reach {
-			if d > c {
-				n += m
-			}
+		n += reachPast(bp.Geometry[b].CutReach, c)
+	}
+	return n
+}
+
+// reachPast counts the rows of reach with an allowed key after p + c.
+func reachPast(reach map[int]int64, c int) int64 {
+	var n int64
+	for d, m := range reach {
+		if d > c {
+			n += m
 		}
 	}
 	return n
 }
 
-// cutProblem reports whether unit a of batch item b is cut (see the top of
-// this file).
+// isCut reports whether rows stopping as cut counts them are a cut (see
+// the top of this file), reach counting the rows that could stop.
+func isCut(cut *CutAcc, reach map[int]int64) bool {
+	c, n := cutOffset(cut.Stops)
+	return n >= minCutRows && float64(n) >= cutShare*float64(reachPast(reach, c))
+}
+
+// cutProblem reports whether unit a of batch item b is cut: judged over the
+// examples in which it was cut (HeadAcc.InCut, GeometryAcc.CutReach), so
+// that the clean examples of a set do not hide it.
 func cutProblem(bp *BlockPartial, b int, a *HeadAcc) bool {
-	c, n := cutOffset(a.Cut.Stops)
-	return n >= minCutRows && float64(n) >= cutShare*float64(couldStop(bp, []int{b}, c))
+	return isCut(&a.InCut, bp.Geometry[b].CutReach)
 }
 
 // problem reports whether unit a (batch item b) has a problem of rule r.
@@ -243,7 +258,7 @@ func stopsList(stops map[int]int64) []OffsetCount {
 // prefix_causal on the prefix rows of a prefix-LM; Value is the offset the
 // rows stop at.
 func diagnoseCut(bp *BlockPartial, f *Finding, d *Diagnosis) {
-	c, n := cutOffset(f.agg.Cut.Stops)
+	c, n := cutOffset(f.agg.InCut.Stops)
 	d.Value = float64(c)
 	d.Facts.Stopped = n
 	d.Facts.Could = couldStop(bp, f.Batches, c) * int64(len(f.Layers)*len(f.Heads))
