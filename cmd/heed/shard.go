@@ -259,6 +259,8 @@ func readPartial(path string) (*partialFile, error) {
 		return nil, fmt.Errorf("%s: not a heed partial (format %q, want %q)", path, pf.Format, partialFormat)
 	case pf.Partial == nil:
 		return nil, fmt.Errorf("%s: the partial has no analysis state", path)
+	case pf.Partial.Version != analysis.PartialVersion:
+		return nil, fmt.Errorf("%s: written by another version of heed (partial %q; this heed merges %q): run its shard again with this heed", path, pf.Partial.Version, analysis.PartialVersion)
 	case pf.Shard.Count < 1 || pf.Shard.Index < 0 || pf.Shard.Index >= pf.Shard.Count:
 		return nil, fmt.Errorf("%s: shard %d/%d is not valid", path, pf.Shard.Index, pf.Shard.Count)
 	}

@@ -5,6 +5,7 @@ import (
 	"encoding/binary"
 	"encoding/json"
 	"fmt"
+	"github.com/heed-dev/heed/analysis"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -452,5 +453,33 @@ func TestMergeRefusesDamagedPartial(t *testing.T) {
 	_, err = readPartial(p)
 	if err == nil || err.Error() != p+": a damaged partial: partial block decoder: 8 units for 3 layers x 4 heads" {
 		t.Errorf("error %v: want one line naming the file and the damage", err)
+	}
+}
+
+// A partial of another heed version is refused with one line that says so
+// and what to do, not as damaged.
+func TestMergeRefusesOtherVersion(t *testing.T) {
+	dir := t.TempDir()
+	p := filepath.Join(dir, "p0.json")
+	if out, code := run(t, "check", "--shard", "0/1", "--partial", p, filepath.Join(casesDir, "shift_bad.npz")); code != 0 {
+		t.Fatalf("partial: exit %d\n%s", code, out)
+	}
+	b, err := os.ReadFile(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	old := bytes.Replace(b, []byte(`"version":"`+analysis.PartialVersion+`"`), []byte(`"version":"heed-partial/3"`), 1)
+	if bytes.Equal(old, b) {
+		t.Fatal("the partial has no version to change")
+	}
+	if err := os.WriteFile(p, old, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if out, code := run(t, "merge", p); code != 2 {
+		t.Errorf("merge of an old partial: exit %d, want 2\n%s", code, out)
+	}
+	_, err = readPartial(p)
+	if err == nil || !strings.HasPrefix(err.Error(), p+": written by another version of heed") || strings.Contains(err.Error(), "\n") {
+		t.Errorf("error %v: want one line naming the file and saying it comes from another heed", err)
 	}
 }
