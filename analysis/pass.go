@@ -487,6 +487,7 @@ type worker struct {
 	u     unitAcc
 	r16   []uint16  // the head's 16-bit patterns on the pattern path (pass_raw16.go)
 	sums  []runSums // the allowed runs' sums of one row (cells16Clean)
+	wide  []float32 // one row's run widened from patterns (pass_raw16.go)
 	// freeR16 frees r16 (internal/bigmem), nil until r16 is made
 	freeR16 func()
 	cut     CutAcc   // the unit's rows cut off before allowed keys (rules_cut.go)

@@ -427,59 +427,40 @@ func TestPartialFollowsUmask(t *testing.T) {
 	}
 }
 
-// A damaged partial (its accumulators not matching its shape) is refused
-// with one line naming the file, exit 2, not merged or panicked on.
-func TestMergeRefusesDamagedPartial(t *testing.T) {
-	dir := t.TempDir()
-	p := filepath.Join(dir, "p0.json")
-	if out, code := run(t, "check", "--shard", "0/1", "--partial", p, filepath.Join(casesDir, "shift_bad.npz")); code != 0 {
-		t.Fatalf("partial: exit %d\n%s", code, out)
-	}
-	b, err := os.ReadFile(p)
-	if err != nil {
-		t.Fatal(err)
-	}
-	// the block says 3 layers while its units are those of 2
-	bad := bytes.Replace(b, []byte(`"layers":2,`), []byte(`"layers":3,`), 1)
-	if bytes.Equal(bad, b) {
-		t.Fatal("the partial has no \"layers\":2 to damage")
-	}
-	if err := os.WriteFile(p, bad, 0o644); err != nil {
-		t.Fatal(err)
-	}
-	if out, code := run(t, "merge", p); code != 2 {
-		t.Errorf("merge of a damaged partial: exit %d, want 2\n%s", code, out)
-	}
-	_, err = readPartial(p)
-	if err == nil || err.Error() != p+": a damaged partial: partial block decoder: 8 units for 3 layers x 4 heads" {
-		t.Errorf("error %v: want one line naming the file and the damage", err)
-	}
-}
-
-// A partial of another heed version is refused with one line that says so
-// and what to do, not as damaged.
-func TestMergeRefusesOtherVersion(t *testing.T) {
-	dir := t.TempDir()
-	p := filepath.Join(dir, "p0.json")
-	if out, code := run(t, "check", "--shard", "0/1", "--partial", p, filepath.Join(casesDir, "shift_bad.npz")); code != 0 {
-		t.Fatalf("partial: exit %d\n%s", code, out)
-	}
-	b, err := os.ReadFile(p)
-	if err != nil {
-		t.Fatal(err)
-	}
-	old := bytes.Replace(b, []byte(`"version":"`+analysis.PartialVersion+`"`), []byte(`"version":"heed-partial/3"`), 1)
-	if bytes.Equal(old, b) {
-		t.Fatal("the partial has no version to change")
-	}
-	if err := os.WriteFile(p, old, 0o644); err != nil {
-		t.Fatal(err)
-	}
-	if out, code := run(t, "merge", p); code != 2 {
-		t.Errorf("merge of an old partial: exit %d, want 2\n%s", code, out)
-	}
-	_, err = readPartial(p)
-	if err == nil || !strings.HasPrefix(err.Error(), p+": written by another version of heed") || strings.Contains(err.Error(), "\n") {
-		t.Errorf("error %v: want one line naming the file and saying it comes from another heed", err)
+// A damaged partial (its accumulators not matching its shape), and a
+// partial of another heed version, are refused with one line naming the
+// file and saying which, exit 2, not merged or panicked on.
+func TestMergeRefusesBadPartial(t *testing.T) {
+	for _, c := range []struct {
+		name, from, to, want string
+	}{
+		// the block says 3 layers while its units are those of 2
+		{"damaged", `"layers":2,`, `"layers":3,`, ": a damaged partial: partial block decoder: 8 units for 3 layers x 4 heads"},
+		{"other version", `"version":"` + analysis.PartialVersion + `"`, `"version":"heed-partial/3"`,
+			`: written by another version of heed (partial "heed-partial/3"; this heed merges "` + analysis.PartialVersion + `"): run its shard again with this heed`},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			p := filepath.Join(t.TempDir(), "p0.json")
+			if out, code := run(t, "check", "--shard", "0/1", "--partial", p, filepath.Join(casesDir, "shift_bad.npz")); code != 0 {
+				t.Fatalf("partial: exit %d\n%s", code, out)
+			}
+			b, err := os.ReadFile(p)
+			if err != nil {
+				t.Fatal(err)
+			}
+			bad := bytes.Replace(b, []byte(c.from), []byte(c.to), 1)
+			if bytes.Equal(bad, b) {
+				t.Fatalf("the partial has no %s to change", c.from)
+			}
+			if err := os.WriteFile(p, bad, 0o644); err != nil {
+				t.Fatal(err)
+			}
+			if out, code := run(t, "merge", p); code != 2 {
+				t.Errorf("merge: exit %d, want 2\n%s", code, out)
+			}
+			if _, err = readPartial(p); err == nil || err.Error() != p+c.want {
+				t.Errorf("error %v: want %q", err, p+c.want)
+			}
+		})
 	}
 }
